@@ -1,0 +1,1 @@
+"""expertloop: expert relabelling rounds for imitation-learned robot policies."""
