@@ -1,0 +1,148 @@
+"""Store access for users, API tokens and browser sessions."""
+
+from __future__ import annotations
+
+from datetime import datetime, timedelta
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from app.auth import security
+from app.auth.models import ApiToken, BrowserSession, User
+from app.errors import Conflict, InvalidInput, NotFound
+from app.models import utcnow
+
+ROLES = ("admin", "uploader", "annotator", "trainer")
+
+
+def _aware(moment: datetime) -> datetime:
+    # SQLite hands timestamps back without a zone; everything we store is UTC.
+    return moment if moment.tzinfo else moment.replace(tzinfo=utcnow().tzinfo)
+
+
+def create_user(
+    session: Session, *, name: str, roles: list[str], password: str | None = None
+) -> User:
+    """Create a user with roles and, optionally, a browser password."""
+    unknown = sorted(set(roles) - set(ROLES))
+    if unknown or not roles:
+        raise InvalidInput(f"roles must be among {list(ROLES)}; got {roles}")
+    if not name or len(name) > 100:
+        raise InvalidInput("user name must be 1 to 100 characters")
+    if session.scalar(select(User.id).where(User.name == name)) is not None:
+        raise Conflict(f"user '{name}' already exists")
+    user = User(
+        name=name,
+        roles=sorted(set(roles)),
+        password_hash=security.hash_password(password) if password else None,
+    )
+    session.add(user)
+    session.commit()
+    return user
+
+
+def get_user_by_name(session: Session, *, name: str) -> User:
+    """The user with this name, or NotFound."""
+    user = session.scalar(select(User).where(User.name == name))
+    if user is None:
+        raise NotFound(f"no user named '{name}'")
+    return user
+
+
+def set_password(session: Session, *, user: User, password: str) -> None:
+    """Replace a user's browser password."""
+    user.password_hash = security.hash_password(password)
+    session.commit()
+
+
+def list_users(session: Session) -> list[User]:
+    """All users, oldest first."""
+    return list(session.scalars(select(User).order_by(User.id)))
+
+
+def issue_token(session: Session, *, user: User) -> str:
+    """Create an API token for a user and return it; only its hash is kept."""
+    token = security.new_api_token()
+    session.add(
+        ApiToken(user_id=user.id, token_sha256=security.sha256_hex(token), prefix=token[:10])
+    )
+    session.commit()
+    return token
+
+
+def revoke_token(session: Session, *, prefix: str) -> int:
+    """Revoke every live token starting with `prefix`; returns how many."""
+    if len(prefix) < 8:
+        raise InvalidInput("give at least the first 8 characters of the token")
+    now = utcnow()
+    tokens = list(
+        session.scalars(
+            select(ApiToken).where(ApiToken.prefix == prefix[:10], ApiToken.revoked_at.is_(None))
+        )
+    )
+    for token in tokens:
+        token.revoked_at = now
+    session.commit()
+    return len(tokens)
+
+
+def user_for_token(session: Session, *, token: str) -> User | None:
+    """The active user owning a live token, or None."""
+    row = session.execute(
+        select(User, ApiToken.revoked_at)
+        .join(ApiToken, ApiToken.user_id == User.id)
+        .where(ApiToken.token_sha256 == security.sha256_hex(token))
+    ).first()
+    if row is None or row[1] is not None or not row[0].active:
+        return None
+    return row[0]
+
+
+def sign_in(session: Session, *, name: str, password: str, hours: float) -> tuple[str, str] | None:
+    """Check a password; on success open a browser session and return (session id, csrf)."""
+    user = session.scalar(select(User).where(User.name == name))
+    if (
+        user is None
+        or not user.active
+        or not security.verify_password(password, user.password_hash)
+    ):
+        return None
+    session_id = security.new_session_id()
+    csrf = security.new_csrf_token()
+    session.add(
+        BrowserSession(
+            user_id=user.id,
+            session_sha256=security.sha256_hex(session_id),
+            csrf_token=csrf,
+            expires_at=utcnow() + timedelta(hours=hours),
+        )
+    )
+    session.commit()
+    return session_id, csrf
+
+
+def browser_session(session: Session, *, session_id: str) -> tuple[User, BrowserSession] | None:
+    """The user and live session behind a cookie value, or None if unknown, ended or expired."""
+    row = session.execute(
+        select(User, BrowserSession)
+        .join(BrowserSession, BrowserSession.user_id == User.id)
+        .where(BrowserSession.session_sha256 == security.sha256_hex(session_id))
+    ).first()
+    if row is None:
+        return None
+    user, live = row
+    if live.ended_at is not None or _aware(live.expires_at) <= utcnow() or not user.active:
+        return None
+    return user, live
+
+
+def sign_out(session: Session, *, session_id: str) -> None:
+    """End a browser session."""
+    found = session.scalar(
+        select(BrowserSession).where(
+            BrowserSession.session_sha256 == security.sha256_hex(session_id)
+        )
+    )
+    if found is not None and found.ended_at is None:
+        found.ended_at = utcnow()
+        session.commit()

@@ -1,0 +1,212 @@
+"""The `expertloop` command: serve, db, loops, users, tokens, upload."""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+from typing import Annotated
+
+import typer
+from pydantic import ValidationError
+
+from app.config import get_settings
+
+cli = typer.Typer(
+    help="expertloop: expert relabelling rounds for imitation-learned policies.",
+    no_args_is_help=True,
+    add_completion=False,
+)
+db_cli = typer.Typer(help="Database schema.", no_args_is_help=True)
+loops_cli = typer.Typer(help="Loops (one per robot skill).", no_args_is_help=True)
+users_cli = typer.Typer(help="Users and roles.", no_args_is_help=True)
+tokens_cli = typer.Typer(help="API tokens.", no_args_is_help=True)
+cli.add_typer(db_cli, name="db")
+cli.add_typer(loops_cli, name="loops")
+cli.add_typer(users_cli, name="users")
+cli.add_typer(tokens_cli, name="tokens")
+
+URL_OPTION = typer.Option(envvar="EXPERTLOOP_URL", help="Service URL.")
+TOKEN_OPTION = typer.Option(envvar="EXPERTLOOP_TOKEN", help="API token.")
+
+
+def _session():  # type: ignore[no-untyped-def]
+    from app.db import make_engine, make_session_factory
+
+    engine = make_engine(get_settings().resolved_database_url)
+    return make_session_factory(engine)()
+
+
+def _fail(message: str) -> None:
+    typer.secho(message, fg=typer.colors.RED, err=True)
+    raise typer.Exit(code=2)
+
+
+@db_cli.command("upgrade")
+def db_upgrade() -> None:
+    """Bring the database schema to the newest migration."""
+    from app.migrations_state import upgrade
+
+    url = get_settings().resolved_database_url
+    upgrade(url)
+    typer.echo("database schema is up to date")
+
+
+@cli.command()
+def serve(
+    host: Annotated[str, typer.Option(help="Address to bind (loopback by default).")] = "127.0.0.1",
+    port: Annotated[int, typer.Option()] = 8000,
+    workers: Annotated[int, typer.Option(help="Server processes.")] = 1,
+    demo: Annotated[
+        bool, typer.Option(help="Load the invented demo loop and users first.")
+    ] = False,
+) -> None:
+    """Run the web service (migrating the database first)."""
+    import uvicorn
+
+    from app.migrations_state import upgrade
+
+    upgrade(get_settings().resolved_database_url)
+    if demo:
+        from app.demo.setup import prepare_demo
+
+        typer.echo(prepare_demo(host=host, port=port))
+    uvicorn.run("app.asgi:app", host=host, port=port, workers=workers, log_level="info")
+
+
+@loops_cli.command("create")
+def loops_create(spec_file: Path) -> None:
+    """Create a loop from a JSON spec file."""
+    from app.loops import service
+    from app.loops.schemas import LoopCreate
+
+    try:
+        spec = LoopCreate.model_validate(json.loads(spec_file.read_text()))
+    except (OSError, json.JSONDecodeError) as exc:
+        _fail(f"cannot read {spec_file}: {exc}")
+        return
+    except ValidationError as exc:
+        _fail(f"{spec_file} is not a valid loop spec:\n{exc}")
+        return
+    with _session() as session:
+        loop = service.create_loop(session, spec=spec, user_id=None)
+        typer.echo(f"created loop '{loop.slug}' with round 0 open for demonstrations")
+
+
+@loops_cli.command("list")
+def loops_list() -> None:
+    """List loops."""
+    from app.loops import service
+
+    with _session() as session:
+        for loop in service.list_loops(session):
+            kind = loop.action_space["kind"]
+            typer.echo(f"{loop.slug}\t{kind}\t{len(loop.features)} features\t{loop.title}")
+
+
+@users_cli.command("add")
+def users_add(
+    name: str,
+    role: Annotated[list[str], typer.Option(help="admin, uploader, annotator or trainer.")],
+    password: Annotated[bool, typer.Option(help="Ask for a browser password.")] = False,
+    token: Annotated[bool, typer.Option(help="Print a one-time API token.")] = True,
+) -> None:
+    """Create a user with roles; prints an API token once and/or sets a password."""
+    from app.auth import service
+    from app.errors import ExpertloopError
+
+    secret = None
+    if password:
+        secret = os.environ.get("EXPERTLOOP_NEW_PASSWORD") or typer.prompt(
+            "password", hide_input=True, confirmation_prompt=True
+        )
+    with _session() as session:
+        try:
+            user = service.create_user(session, name=name, roles=role, password=secret)
+        except ExpertloopError as exc:
+            _fail(exc.message)
+            return
+        typer.echo(f"created user '{user.name}' with roles {', '.join(user.roles)}")
+        if token:
+            typer.echo(f"API token (shown once): {service.issue_token(session, user=user)}")
+
+
+@users_cli.command("list")
+def users_list() -> None:
+    """List users and their roles."""
+    from app.auth import service
+
+    with _session() as session:
+        for user in service.list_users(session):
+            has_password = "password" if user.password_hash else "no password"
+            typer.echo(f"{user.name}\t{','.join(user.roles)}\t{has_password}")
+
+
+@tokens_cli.command("issue")
+def tokens_issue(name: str) -> None:
+    """Print a new API token for an existing user (shown once)."""
+    from app.auth import service
+    from app.errors import ExpertloopError
+
+    with _session() as session:
+        try:
+            user = service.get_user_by_name(session, name=name)
+        except ExpertloopError as exc:
+            _fail(exc.message)
+            return
+        typer.echo(f"API token (shown once): {service.issue_token(session, user=user)}")
+
+
+@tokens_cli.command("revoke")
+def tokens_revoke(
+    prefix: Annotated[str, typer.Argument(help="The token or its first 10 characters.")],
+) -> None:
+    """Revoke an API token."""
+    from app.auth import service
+    from app.errors import ExpertloopError
+
+    with _session() as session:
+        try:
+            count = service.revoke_token(session, prefix=prefix)
+        except ExpertloopError as exc:
+            _fail(exc.message)
+            return
+    if count == 0:
+        _fail("no live token starts with that prefix")
+    typer.echo(f"revoked {count} token(s)")
+
+
+@cli.command()
+def upload(
+    file: Path,
+    loop: Annotated[str, typer.Option(help="Loop slug.")],
+    round_number: Annotated[int, typer.Option("--round", help="Round number.")],
+    url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
+    token: Annotated[str, TOKEN_OPTION] = "",
+) -> None:
+    """Upload a rollout file (Parquet, .npz or JSON Lines) with a progress bar."""
+    from tqdm import tqdm
+
+    from app.client import ApiError, Client
+
+    if not file.exists():
+        _fail(f"no such file: {file}")
+    with (
+        Client(url, token) as client,
+        tqdm(total=file.stat().st_size, unit="B", unit_scale=True, desc=file.name) as bar,
+    ):
+        try:
+            result = client.upload(loop, round_number, file, progress=lambda n: bar.update(n))
+        except ApiError as exc:
+            bar.close()
+            _fail(f"refused: {exc.detail}")
+            return
+    note = (
+        " (this file was uploaded before; nothing new stored)" if result["duplicate_file"] else ""
+    )
+    typer.echo(f"stored {len(result['rollouts'])} rollouts, {result['steps']} steps{note}")
+
+
+def main() -> None:
+    """Entry point of the `expertloop` console script."""
+    cli()

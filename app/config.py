@@ -1,0 +1,57 @@
+"""Settings from the environment (EXPERTLOOP_*), one class, served by get_settings()."""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from pathlib import Path
+
+from pydantic import Field
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+class Settings(BaseSettings):
+    """Everything the service reads from its environment."""
+
+    model_config = SettingsConfigDict(env_prefix="EXPERTLOOP_", extra="ignore")
+
+    data_dir: Path = Field(
+        default=Path("expertloop-data"),
+        description="Folder for the embedded SQLite store, uploads in flight and image blobs.",
+    )
+    database_url: str | None = Field(
+        default=None,
+        description="SQLAlchemy URL; empty means a SQLite file in the data folder. "
+        "PostgreSQL: postgresql+psycopg://user@host/db",
+    )
+    max_upload_bytes: int = Field(
+        default=512 * 1024 * 1024, description="Largest rollout file accepted (413 above)."
+    )
+    job_mode: str = Field(
+        default="thread",
+        description="'thread': background jobs run inside the server; 'worker': only in "
+        "`expertloop worker` processes.",
+    )
+    session_hours: float = Field(default=12.0, description="Browser session lifetime.")
+
+    @property
+    def resolved_database_url(self) -> str:
+        """The database URL, defaulting to SQLite inside the data folder."""
+        if self.database_url:
+            return self.database_url
+        return f"sqlite:///{(self.data_dir / 'expertloop.db').resolve()}"
+
+    @property
+    def blob_dir(self) -> Path:
+        """Content-addressed folder for images attached to states."""
+        return self.data_dir / "blobs"
+
+    @property
+    def upload_dir(self) -> Path:
+        """Where uploads are spooled while they are validated."""
+        return self.data_dir / "uploads"
+
+
+@lru_cache
+def get_settings() -> Settings:
+    """The process-wide settings, read once from the environment."""
+    return Settings()

@@ -1,0 +1,107 @@
+"""Dependencies declared once: the store session, settings, and who is calling with which role."""
+
+from __future__ import annotations
+
+import hmac
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import Annotated
+
+from fastapi import Depends, Request
+from sqlalchemy.orm import Session
+
+from app.auth import service as auth_service
+from app.auth.models import User
+from app.config import Settings
+from app.errors import Forbidden, Unauthenticated
+
+SESSION_COOKIE = "expertloop_session"
+CSRF_HEADER = "x-csrf-token"
+CSRF_FIELD = "csrf_token"
+SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
+
+
+def get_session(request: Request) -> Iterator[Session]:
+    """A store session for one request."""
+    session = request.app.state.session_factory()
+    try:
+        yield session
+    finally:
+        session.close()
+
+
+def get_app_settings(request: Request) -> Settings:
+    """The settings the running app was created with (tests pass their own)."""
+    settings: Settings = request.app.state.settings
+    return settings
+
+
+SessionDep = Annotated[Session, Depends(get_session)]
+SettingsDep = Annotated[Settings, Depends(get_app_settings)]
+
+
+@dataclass
+class Caller:
+    """Who made a request, and how: by API token or by browser session (with its CSRF token)."""
+
+    user: User
+    csrf_token: str | None = None
+
+    @property
+    def user_id(self) -> int:
+        return self.user.id
+
+
+class Roles:
+    """Dependency that admits callers holding any of `roles` (admin is always admitted).
+
+    Every route declares one; tests walk the OpenAPI routes and find it by this type.
+    """
+
+    def __init__(self, *roles: str) -> None:
+        self.roles = frozenset(roles) | {"admin"}
+
+    async def __call__(self, request: Request, session: SessionDep) -> Caller:
+        caller = await _identify(request, session)
+        if caller is None:
+            raise Unauthenticated("sign in or send a valid API token (Authorization: Bearer ...)")
+        if not self.roles & set(caller.user.roles):
+            needed = ", ".join(sorted(self.roles))
+            raise Forbidden(f"this needs one of the roles: {needed}")
+        return caller
+
+
+async def _identify(request: Request, session: Session) -> Caller | None:
+    header = request.headers.get("authorization", "")
+    if header:
+        scheme, _, token = header.partition(" ")
+        if scheme.lower() != "bearer" or not token.strip():
+            return None
+        user = auth_service.user_for_token(session, token=token.strip())
+        return Caller(user=user) if user else None
+    cookie = request.cookies.get(SESSION_COOKIE)
+    if not cookie:
+        return None
+    found = auth_service.browser_session(session, session_id=cookie)
+    if found is None:
+        return None
+    user, live = found
+    if request.method not in SAFE_METHODS:
+        sent = request.headers.get(CSRF_HEADER)
+        if sent is None and request.headers.get("content-type", "").startswith(
+            ("application/x-www-form-urlencoded", "multipart/form-data")
+        ):
+            form = await request.form()
+            value = form.get(CSRF_FIELD)
+            sent = value if isinstance(value, str) else None
+        if not sent or not hmac.compare_digest(sent, live.csrf_token):
+            raise Forbidden("missing or wrong CSRF token; reload the page and try again")
+    return Caller(user=user, csrf_token=live.csrf_token)
+
+
+AdminDep = Annotated[Caller, Depends(Roles("admin"))]
+UploaderDep = Annotated[Caller, Depends(Roles("uploader"))]
+AnnotatorDep = Annotated[Caller, Depends(Roles("annotator"))]
+TrainerDep = Annotated[Caller, Depends(Roles("trainer"))]
+# Anyone signed in with any role may read loop metadata and reports.
+ReaderDep = Annotated[Caller, Depends(Roles("uploader", "annotator", "trainer"))]

@@ -1,0 +1,155 @@
+"""Turn Arrow columns into numpy arrays, refusing wrong types, widths, nulls and non-finite values.
+
+Errors name the 1-based row of the file and the column, so a fleet engineer can fix the file.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from app.errors import InvalidInput
+
+
+@dataclass
+class Vectors:
+    """Per-row vectors where some rows may carry none.
+
+    values : ndarray of shape (n_rows, *shape), float32, zeros where absent
+    present : ndarray of shape (n_rows,), bool
+    """
+
+    values: np.ndarray
+    present: np.ndarray
+
+
+def _first(mask: np.ndarray | np.bool_) -> int:
+    return int(np.flatnonzero(mask)[0])
+
+
+def fail(row: int, column: str, message: str) -> InvalidInput:
+    """An InvalidInput naming a 0-based row index as the file's 1-based row."""
+    return InvalidInput(f"row {row + 1}, column {column}: {message}")
+
+
+def null_mask(column: pa.ChunkedArray) -> np.ndarray:
+    """Rows where the column is null, as a bool array."""
+    return np.asarray(column.is_null().to_numpy(zero_copy_only=False), dtype=bool)
+
+
+def integers(column: pa.ChunkedArray, name: str) -> np.ndarray:
+    """A non-null integer column as int64."""
+    if not pa.types.is_integer(column.type):
+        raise InvalidInput(f"column {name}: expected integers, got {column.type}")
+    nulls = null_mask(column)
+    if nulls.any():
+        raise fail(_first(nulls), name, "value is missing")
+    return np.asarray(column.to_numpy(), dtype=np.int64)
+
+
+def floats(column: pa.ChunkedArray, name: str) -> np.ndarray:
+    """A non-null, finite numeric column as float64."""
+    if not (pa.types.is_floating(column.type) or pa.types.is_integer(column.type)):
+        raise InvalidInput(f"column {name}: expected numbers, got {column.type}")
+    nulls = null_mask(column)
+    if nulls.any():
+        raise fail(_first(nulls), name, "value is missing")
+    values = np.asarray(column.to_numpy(), dtype=np.float64)
+    bad = ~np.isfinite(values)
+    if bad.any():
+        raise fail(_first(bad), name, f"value {values[_first(bad)]} is not finite")
+    return values
+
+
+def strings(column: pa.ChunkedArray, name: str, *, allow_null: bool) -> np.ndarray:
+    """A string column as an object array (None where null and allowed)."""
+    if not (pa.types.is_string(column.type) or pa.types.is_large_string(column.type)):
+        if pa.types.is_null(column.type) and allow_null:
+            return np.full(len(column), None, dtype=object)
+        raise InvalidInput(f"column {name}: expected text, got {column.type}")
+    nulls = null_mask(column)
+    if nulls.any() and not allow_null:
+        raise fail(_first(nulls), name, "value is missing")
+    return np.asarray(column.to_numpy(zero_copy_only=False), dtype=object)
+
+
+def _is_list(type_: pa.DataType) -> bool:
+    return (
+        pa.types.is_list(type_)
+        or pa.types.is_large_list(type_)
+        or pa.types.is_fixed_size_list(type_)
+    )
+
+
+def float_vectors(
+    column: pa.ChunkedArray,
+    name: str,
+    width: int,
+    *,
+    allow_null: bool,
+    file_rows: np.ndarray | None = None,
+) -> Vectors:
+    """A list-of-numbers column of fixed width as float32 vectors.
+
+    file_rows maps this column's rows to the file's rows where they differ (nested lists).
+    """
+    rows = file_rows if file_rows is not None else np.arange(len(column))
+    if pa.types.is_null(column.type) and allow_null:
+        return Vectors(np.zeros((len(column), width), np.float32), np.zeros(len(column), bool))
+    if not _is_list(column.type) or not (
+        pa.types.is_floating(column.type.value_type) or pa.types.is_integer(column.type.value_type)
+    ):
+        raise InvalidInput(f"column {name}: expected a list of numbers, got {column.type}")
+    combined = column.combine_chunks() if column.num_chunks != 1 else column.chunk(0)
+    nulls = np.asarray(combined.is_null().to_numpy(zero_copy_only=False), dtype=bool)
+    if nulls.any() and not allow_null:
+        raise fail(int(rows[_first(nulls)]), name, "value is missing")
+    lengths = pc.fill_null(pc.list_value_length(combined), width).to_numpy(zero_copy_only=False)
+    wrong = lengths != width
+    if wrong.any():
+        i = _first(wrong)
+        raise fail(int(rows[i]), name, f"expected {width} values, got {lengths[i]}")
+    present = ~nulls
+    values = np.zeros((len(combined), width), dtype=np.float32)
+    if present.any():
+        taken = combined.filter(pa.array(present)) if nulls.any() else combined
+        flat = pc.list_flatten(taken)
+        if flat.null_count:
+            row = np.flatnonzero(present)[_first(null_mask(pa.chunked_array([flat]))) // width]
+            raise fail(int(rows[row]), name, "a value inside the list is missing")
+        dense = np.asarray(flat.to_numpy(zero_copy_only=False), dtype=np.float64).reshape(-1, width)
+        bad_rows = ~np.isfinite(dense).all(axis=1)
+        if bad_rows.any():
+            row = int(np.flatnonzero(present)[_first(bad_rows)])
+            raise fail(int(rows[row]), name, "values must be finite (found NaN or infinity)")
+        values[present] = dense
+    return Vectors(values, present)
+
+
+def float_matrices(column: pa.ChunkedArray, name: str, width: int) -> tuple[Vectors, int]:
+    """A list-of-lists column (members x width) as float32 arrays; all rows share the member count."""
+    if not _is_list(column.type) or not _is_list(column.type.value_type):
+        raise InvalidInput(f"column {name}: expected a list of lists of numbers, got {column.type}")
+    combined = column.combine_chunks() if column.num_chunks != 1 else column.chunk(0)
+    nulls = np.asarray(combined.is_null().to_numpy(zero_copy_only=False), dtype=bool)
+    present = ~nulls
+    if not present.any():
+        return Vectors(np.zeros((len(combined), 1, width), np.float32), present), 0
+    members = pc.list_value_length(combined).to_numpy(zero_copy_only=False)
+    counts = set(np.unique(members[present]).tolist())
+    if len(counts) != 1:
+        raise InvalidInput(f"column {name}: every row must have the same number of members")
+    n_members = int(counts.pop())
+    if n_members < 2:
+        raise InvalidInput(f"column {name}: an ensemble needs at least 2 members")
+    inner = pc.list_flatten(combined.filter(pa.array(present)))
+    member_rows = np.repeat(np.flatnonzero(present), n_members)
+    member_vectors = float_vectors(
+        pa.chunked_array([inner]), name, width, allow_null=False, file_rows=member_rows
+    )
+    values = np.zeros((len(combined), n_members, width), dtype=np.float32)
+    values[present] = member_vectors.values.reshape(-1, n_members, width)
+    return Vectors(values, present), n_members

@@ -1,0 +1,151 @@
+"""Read rollouts and steps back for the API, decoding vectors a page at a time."""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from app.errors import NotFound
+from app.ingest.models import CONTROL_EXPERT, Rollout, Step
+from app.ingest.schemas import RolloutRead, StepRead
+from app.ingest.validate import ActionSpec
+from app.loops.models import Loop, Round
+
+_STEP_FIELDS = (
+    Step.id,
+    Rollout.key,
+    Step.step_index,
+    Step.time_s,
+    Step.control,
+    Step.features,
+    Step.learner_action,
+    Step.learner_action_vec,
+    Step.expert_action,
+    Step.expert_action_vec,
+    Step.learner_probs,
+    Step.learner_ensemble,
+    Step.ensemble_size,
+    Step.learner_std,
+    Step.scene,
+    Step.image_sha256,
+)
+
+
+def list_rollouts(
+    session: Session, *, rnd: Round, offset: int, limit: int
+) -> tuple[list[RolloutRead], int]:
+    """A page of a round's rollouts, and how many there are."""
+    total = session.scalar(
+        select(func.count()).select_from(Rollout).where(Rollout.round_id == rnd.id)
+    )
+    rows = session.scalars(
+        select(Rollout)
+        .where(Rollout.round_id == rnd.id)
+        .order_by(Rollout.key)
+        .offset(offset)
+        .limit(limit)
+    )
+    items = [
+        RolloutRead(
+            key=r.key, round=rnd.number, robot=r.robot, steps=r.n_steps, created_at=r.created_at
+        )
+        for r in rows
+    ]
+    return items, int(total or 0)
+
+
+def get_rollout(session: Session, *, loop: Loop, key: str) -> Rollout:
+    """A loop's rollout by key, or NotFound."""
+    found = session.scalar(select(Rollout).where(Rollout.loop_id == loop.id, Rollout.key == key))
+    if found is None:
+        raise NotFound(f"loop '{loop.slug}' has no rollout '{key}'")
+    return found
+
+
+def list_steps(
+    session: Session, *, loop: Loop, rollout: Rollout, offset: int, limit: int
+) -> list[StepRead]:
+    """A page of a rollout's steps in step order."""
+    rows = session.execute(
+        select(*_STEP_FIELDS)
+        .join(Rollout, Rollout.id == Step.rollout_id)
+        .where(Step.rollout_id == rollout.id)
+        .order_by(Step.step_index)
+        .offset(offset)
+        .limit(limit)
+    ).all()
+    return decode_steps(rows, ActionSpec.from_loop(loop.features, loop.action_space))
+
+
+def state_with_context(
+    session: Session, *, loop: Loop, step_id: int, seconds: float
+) -> tuple[StepRead, list[StepRead], list[StepRead]]:
+    """One state of a loop with its rollout's steps within `seconds` before and after it."""
+    row = session.execute(
+        select(Step.rollout_id, Step.time_s)
+        .join(Rollout, Rollout.id == Step.rollout_id)
+        .where(Step.id == step_id, Rollout.loop_id == loop.id)
+    ).first()
+    if row is None:
+        raise NotFound(f"loop '{loop.slug}' has no state {step_id}")
+    rollout_id, time_s = row
+    rows = session.execute(
+        select(*_STEP_FIELDS)
+        .join(Rollout, Rollout.id == Step.rollout_id)
+        .where(
+            Step.rollout_id == rollout_id,
+            Step.time_s >= time_s - seconds,
+            Step.time_s <= time_s + seconds,
+        )
+        .order_by(Step.step_index)
+    ).all()
+    steps = decode_steps(rows, ActionSpec.from_loop(loop.features, loop.action_space))
+    at = next(i for i, s in enumerate(steps) if s.id == step_id)
+    return steps[at], steps[:at], steps[at + 1 :]
+
+
+def decode_steps(rows: Sequence[Any], spec: ActionSpec) -> list[StepRead]:
+    """StepRead objects from rows selected with _STEP_FIELDS; features decoded in one call."""
+    if not rows:
+        return []
+    width = len(spec.feature_names)
+    features = np.frombuffer(b"".join(r[5] for r in rows), dtype="<f4").reshape(len(rows), width)
+    out = []
+    r: Any
+    for r, feats in zip(rows, features.tolist(), strict=True):
+        members = _vector(r[11])
+        out.append(
+            StepRead(
+                id=r[0],
+                rollout=r[1],
+                step=r[2],
+                time_s=r[3],
+                control="expert" if r[4] == CONTROL_EXPERT else "learner",
+                features=feats,
+                learner_action=_action(r[6], r[7], spec),
+                expert_action=_action(r[8], r[9], spec),
+                learner_probs=_vector(r[10]),
+                learner_ensemble=None
+                if members is None
+                else np.reshape(np.asarray(members), (r[12], -1)).tolist(),
+                learner_std=_vector(r[13]),
+                scene=json.loads(r[14]) if r[14] else None,
+                image_sha256=r[15],
+            )
+        )
+    return out
+
+
+def _vector(blob: bytes | None) -> list[float] | None:
+    return None if blob is None else np.frombuffer(blob, dtype="<f4").tolist()
+
+
+def _action(index: int | None, blob: bytes | None, spec: ActionSpec) -> str | list[float] | None:
+    if spec.kind == "discrete":
+        return None if index is None else spec.action_names[index]
+    return _vector(blob)

@@ -1,0 +1,126 @@
+"""HTTP routes for rollout upload and reading rollouts, steps and states."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from pathlib import Path
+
+from fastapi import APIRouter, Query, UploadFile, status
+from fastapi.responses import FileResponse
+from starlette.concurrency import run_in_threadpool
+
+from app.deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep
+from app.errors import NotFound
+from app.ingest import reads, service
+from app.ingest.schemas import RolloutList, StateContext, StepList, UploadRead
+from app.ingest.spool import CHUNK_BYTES, spool
+from app.loops import service as loops_service
+
+router = APIRouter(prefix="/api", tags=["rollouts"])
+
+PAGE_MAX = 1000
+
+
+async def _chunks(upload: UploadFile) -> AsyncIterator[bytes]:
+    while chunk := await upload.read(CHUNK_BYTES):
+        yield chunk
+
+
+@router.post(
+    "/loops/{slug}/rounds/{number}/rollouts",
+    response_model=UploadRead,
+    status_code=status.HTTP_201_CREATED,
+)
+async def upload_rollouts(
+    slug: str,
+    number: int,
+    file: UploadFile,
+    session: SessionDep,
+    settings: SettingsDep,
+    caller: UploaderDep,
+) -> UploadRead:
+    """Upload one rollout file (Parquet, .npz or JSON Lines) into a round (uploader)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    rnd = loops_service.get_round(session, loop=loop, number=number)
+    path, sha = await spool(_chunks(file), settings.upload_dir, settings.max_upload_bytes)
+    try:
+        outcome = await run_in_threadpool(
+            service.ingest_file,
+            session,
+            loop=loop,
+            rnd=rnd,
+            path=path,
+            filename=file.filename or "upload",
+            file_sha256=sha,
+            user_id=caller.user_id,
+            blob_dir=settings.blob_dir,
+        )
+    finally:
+        path.unlink(missing_ok=True)
+    return UploadRead(
+        upload_id=outcome.upload_id,
+        duplicate_file=outcome.duplicate_file,
+        steps=outcome.n_steps,
+        rollouts=outcome.rollouts,
+        already_stored=outcome.already_stored,
+    )
+
+
+@router.get("/loops/{slug}/rounds/{number}/rollouts", response_model=RolloutList)
+def list_rollouts(
+    slug: str,
+    number: int,
+    session: SessionDep,
+    _: ReaderDep,
+    offset: int = Query(0, ge=0),
+    limit: int = Query(100, ge=1, le=PAGE_MAX),
+) -> RolloutList:
+    """A page of a round's rollouts."""
+    loop = loops_service.get_loop(session, slug=slug)
+    rnd = loops_service.get_round(session, loop=loop, number=number)
+    items, total = reads.list_rollouts(session, rnd=rnd, offset=offset, limit=limit)
+    return RolloutList(items=items, total=total, offset=offset, limit=limit)
+
+
+@router.get("/loops/{slug}/rollouts/{key}/steps", response_model=StepList)
+def list_steps(
+    slug: str,
+    key: str,
+    session: SessionDep,
+    _: ReaderDep,
+    offset: int = Query(0, ge=0),
+    limit: int = Query(200, ge=1, le=PAGE_MAX),
+) -> StepList:
+    """A page of one rollout's steps."""
+    loop = loops_service.get_loop(session, slug=slug)
+    rollout = reads.get_rollout(session, loop=loop, key=key)
+    items = reads.list_steps(session, loop=loop, rollout=rollout, offset=offset, limit=limit)
+    return StepList(items=items, total=rollout.n_steps, offset=offset, limit=limit)
+
+
+@router.get("/loops/{slug}/states/{step_id}", response_model=StateContext)
+def read_state(
+    slug: str,
+    step_id: int,
+    session: SessionDep,
+    _: ReaderDep,
+    seconds: float | None = Query(None, gt=0, le=120),
+) -> StateContext:
+    """One state with its rollout's steps around it in time (the bench's context)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    window = seconds if seconds is not None else float(loop.settings["context_seconds"])
+    state, before, after = reads.state_with_context(
+        session, loop=loop, step_id=step_id, seconds=window
+    )
+    return StateContext(state=state, before=before, after=after, context_seconds=window)
+
+
+@router.get("/images/{sha256}")
+def read_image(sha256: str, settings: SettingsDep, _: AnnotatorDep) -> FileResponse:
+    """A camera image attached to a state, by its content hash (annotator)."""
+    if len(sha256) != 64 or any(c not in "0123456789abcdef" for c in sha256):
+        raise NotFound("no such image")
+    path: Path = settings.blob_dir / sha256[:2] / sha256
+    if not path.exists():
+        raise NotFound("no such image")
+    return FileResponse(path)

@@ -1,0 +1,283 @@
+"""Store access for ingest: accept a validated rollout file in one transaction, read steps back."""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from sqlalchemy import func, insert, select
+from sqlalchemy.orm import Session
+
+from app.errors import Conflict
+from app.ingest import bulk
+from app.ingest.columns import Vectors
+from app.ingest.encode import rows_to_bytes
+from app.ingest.formats import detect_format, read_table
+from app.ingest.models import Rollout, Step, Upload
+from app.ingest.validate import ActionSpec, StepBatch, validate
+from app.loops.models import Loop, Round
+
+
+@dataclass
+class UploadOutcome:
+    """What an upload stored: new rollouts, and those already stored by an earlier upload."""
+
+    upload_id: int
+    duplicate_file: bool
+    n_steps: int
+    rollouts: list[dict[str, object]] = field(default_factory=list)
+    already_stored: list[str] = field(default_factory=list)
+
+
+def spec_of(loop: Loop) -> ActionSpec:
+    """The validation view of a loop's spec."""
+    return ActionSpec.from_loop(loop.features, loop.action_space)
+
+
+def ingest_file(
+    session: Session,
+    *,
+    loop: Loop,
+    rnd: Round,
+    path: Path,
+    filename: str,
+    file_sha256: str,
+    user_id: int | None,
+    blob_dir: Path,
+) -> UploadOutcome:
+    """Validate a spooled rollout file and store it all-or-nothing."""
+    if rnd.status == "closed":
+        raise Conflict(f"round {rnd.number} of '{loop.slug}' is closed and takes no uploads")
+    earlier = session.scalar(
+        select(Upload).where(Upload.round_id == rnd.id, Upload.file_sha256 == file_sha256)
+    )
+    if earlier is not None:
+        return _outcome_of(session, earlier, duplicate_file=True)
+
+    file_format = detect_format(path, filename)
+    batch = validate(read_table(path, file_format), spec_of(loop), round_number=rnd.number)
+    hashes = rollout_hashes(batch)
+    stored = dict(
+        session.execute(
+            select(Rollout.key, Rollout.content_sha256).where(
+                Rollout.loop_id == loop.id, Rollout.key.in_(batch.rollout_keys)
+            )
+        ).all()
+    )
+    clash = [
+        k for k, h in zip(batch.rollout_keys, hashes, strict=True) if k in stored and stored[k] != h
+    ]
+    if clash:
+        raise Conflict(
+            f"rollout key '{clash[0]}' is already stored with different steps; "
+            "a rollout key names one run: give this run a new key"
+        )
+    keep = np.array([k not in stored for k in batch.rollout_keys], dtype=bool)
+    try:
+        upload = _store(
+            session,
+            loop,
+            rnd,
+            batch,
+            hashes,
+            keep,
+            filename,
+            file_format,
+            file_sha256,
+            user_id,
+            blob_dir,
+        )
+        session.commit()
+    except Exception:
+        session.rollback()
+        raise
+    outcome = _outcome_of(session, upload, duplicate_file=False)
+    outcome.already_stored = [
+        k for k, kept in zip(batch.rollout_keys, keep, strict=True) if not kept
+    ]
+    return outcome
+
+
+def rollout_hashes(batch: StepBatch) -> list[str]:
+    """SHA-256 of each rollout's canonical content (rows in step order)."""
+    out = []
+    for rows in batch.rollout_slices():
+        h = hashlib.sha256()
+        for part in _content_arrays(batch):
+            h.update(np.ascontiguousarray(part[rows]).tobytes())
+        for optional in (batch.scene, batch.image):
+            if optional is not None:
+                for value in optional[rows]:
+                    h.update(
+                        b"\x00"
+                        if value is None
+                        else hashlib.sha256(
+                            value if isinstance(value, bytes) else str(value).encode()
+                        ).digest()
+                    )
+        out.append(h.hexdigest())
+    return out
+
+
+def _content_arrays(batch: StepBatch) -> list[np.ndarray]:
+    parts: list[np.ndarray] = [batch.step, batch.time_s, batch.control, batch.features]
+    for value in (
+        batch.learner_action,
+        batch.expert_action,
+        batch.learner_probs,
+        batch.learner_ensemble,
+        batch.learner_std,
+    ):
+        if isinstance(value, Vectors):
+            parts += [value.values, value.present]
+        elif value is not None:
+            parts.append(value)
+    return parts
+
+
+def _store(
+    session: Session,
+    loop: Loop,
+    rnd: Round,
+    batch: StepBatch,
+    hashes: list[str],
+    keep: np.ndarray,
+    filename: str,
+    file_format: str,
+    file_sha256: str,
+    user_id: int | None,
+    blob_dir: Path,
+) -> Upload:
+    row_keep = keep[batch.rollout_index]
+    slices = batch.rollout_slices()
+    upload = Upload(
+        round_id=rnd.id,
+        file_sha256=file_sha256,
+        filename=filename[:300],
+        file_format=file_format,
+        n_rollouts=int(keep.sum()),
+        n_steps=int(row_keep.sum()),
+        uploaded_by=user_id,
+    )
+    session.add(upload)
+    session.flush()
+    kept = np.flatnonzero(keep)
+    if len(kept) == 0:
+        return upload
+    rollout_rows = [
+        {
+            "loop_id": loop.id,
+            "round_id": rnd.id,
+            "upload_id": upload.id,
+            "key": batch.rollout_keys[r],
+            "robot": batch.robot[r],
+            "n_steps": slices[r].stop - slices[r].start,
+            "content_sha256": hashes[r],
+            "uploaded_by": user_id,
+        }
+        for r in kept
+    ]
+    created = session.execute(
+        insert(Rollout).returning(Rollout.id, Rollout.key), rollout_rows
+    ).all()
+    id_of_key = {key: rid for rid, key in created}
+    rollout_id_of = np.zeros(len(batch.rollout_keys), dtype=np.int64)
+    for r in kept:
+        rollout_id_of[r] = id_of_key[batch.rollout_keys[r]]
+    columns = step_columns(batch, row_keep, rollout_id_of, rnd.id, blob_dir)
+    bulk.insert_steps(session.connection(), columns, int(row_keep.sum()))
+    return upload
+
+
+def step_columns(
+    batch: StepBatch,
+    rows: np.ndarray,
+    rollout_id_of: np.ndarray,
+    round_id: int,
+    blob_dir: Path,
+) -> dict[str, bulk.Column]:
+    """The steps table's columns for the selected rows of a batch."""
+    n = int(rows.sum())
+
+    def vectors(value: Vectors | None) -> list[bytes | None] | None:
+        if value is None or not value.present[rows].any():
+            return None
+        blobs: list[bytes | None] = list(rows_to_bytes(value.values[rows]))
+        for i in np.flatnonzero(~value.present[rows]):
+            blobs[i] = None
+        return blobs
+
+    def discrete(value: np.ndarray | Vectors | None) -> list[int | None] | None:
+        if value is None or isinstance(value, Vectors):
+            return None
+        index = value[rows]
+        out: list[int | None] = index.tolist()
+        for i in np.flatnonzero(index < 0):
+            out[i] = None
+        return out
+
+    def continuous(value: np.ndarray | Vectors | None) -> list[bytes | None] | None:
+        return vectors(value) if isinstance(value, Vectors) else None
+
+    ensemble = vectors(batch.learner_ensemble)
+    return {
+        "rollout_id": rollout_id_of[batch.rollout_index[rows]],
+        "round_id": [round_id] * n,
+        "step_index": batch.step[rows],
+        "time_s": batch.time_s[rows],
+        "control": batch.control[rows].astype(np.int64),
+        "features": rows_to_bytes(batch.features[rows]),
+        "learner_action": discrete(batch.learner_action),
+        "learner_action_vec": continuous(batch.learner_action),
+        "expert_action": discrete(batch.expert_action),
+        "expert_action_vec": continuous(batch.expert_action),
+        "learner_probs": vectors(batch.learner_probs),
+        "learner_ensemble": ensemble,
+        "ensemble_size": None
+        if ensemble is None
+        else [batch.ensemble_size if b is not None else None for b in ensemble],
+        "learner_std": vectors(batch.learner_std),
+        "scene": None if batch.scene is None else list(batch.scene[rows]),
+        "image_sha256": None if batch.image is None else store_images(batch.image[rows], blob_dir),
+    }
+
+
+def store_images(images: np.ndarray, blob_dir: Path) -> list[str | None]:
+    """Write images to the content-addressed blob folder; return their hashes."""
+    out: list[str | None] = []
+    for image in images:
+        if image is None:
+            out.append(None)
+            continue
+        digest = hashlib.sha256(image).hexdigest()
+        target = blob_dir / digest[:2] / digest
+        if not target.exists():
+            target.parent.mkdir(parents=True, exist_ok=True)
+            partial = target.with_suffix(".part")
+            partial.write_bytes(image)
+            partial.replace(target)
+        out.append(digest)
+    return out
+
+
+def _outcome_of(session: Session, upload: Upload, *, duplicate_file: bool) -> UploadOutcome:
+    rows = session.execute(
+        select(Rollout.key, Rollout.n_steps)
+        .where(Rollout.upload_id == upload.id)
+        .order_by(Rollout.key)
+    ).all()
+    return UploadOutcome(
+        upload_id=upload.id,
+        duplicate_file=duplicate_file,
+        n_steps=int(sum(n for _, n in rows)),
+        rollouts=[{"key": k, "steps": n} for k, n in rows],
+    )
+
+
+def count_round_steps(session: Session, *, round_id: int) -> int:
+    """How many steps a round holds."""
+    return int(
+        session.scalar(select(func.count()).select_from(Step).where(Step.round_id == round_id)) or 0
+    )

@@ -1,0 +1,62 @@
+"""HTTP routes for loops and rounds."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, status
+
+from app.deps import AdminDep, ReaderDep, SessionDep
+from app.loops import service
+from app.loops.schemas import LoopCreate, LoopList, LoopRead, RoundList, RoundOpen, RoundRead
+
+router = APIRouter(prefix="/api/loops", tags=["loops"])
+
+
+@router.post("", response_model=LoopRead, status_code=status.HTTP_201_CREATED)
+def create_loop(spec: LoopCreate, session: SessionDep, caller: AdminDep) -> LoopRead:
+    """Create a loop from its spec (admin)."""
+    loop = service.create_loop(session, spec=spec, user_id=caller.user_id)
+    return LoopRead.model_validate(loop)
+
+
+@router.get("", response_model=LoopList)
+def list_loops(session: SessionDep, _: ReaderDep) -> LoopList:
+    """All loops."""
+    loops = service.list_loops(session)
+    return LoopList(items=[LoopRead.model_validate(x) for x in loops], total=len(loops))
+
+
+@router.get("/{slug}", response_model=LoopRead)
+def read_loop(slug: str, session: SessionDep, _: ReaderDep) -> LoopRead:
+    """One loop's spec and settings."""
+    return LoopRead.model_validate(service.get_loop(session, slug=slug))
+
+
+@router.get("/{slug}/rounds", response_model=RoundList)
+def list_rounds(slug: str, session: SessionDep, _: ReaderDep) -> RoundList:
+    """Rounds of a loop with rollout and step counts."""
+    loop = service.get_loop(session, slug=slug)
+    items = service.round_summaries(session, loop=loop)
+    return RoundList(items=items, total=len(items))
+
+
+@router.post("/{slug}/rounds", response_model=RoundRead, status_code=status.HTTP_201_CREATED)
+def open_round(slug: str, body: RoundOpen, session: SessionDep, caller: AdminDep) -> RoundRead:
+    """Open the next round for rollouts of a learner version (admin)."""
+    loop = service.get_loop(session, slug=slug)
+    new = service.open_round(
+        session, loop=loop, learner_version=body.learner_version, user_id=caller.user_id
+    )
+    return _summary(session, loop_slug=slug, number=new.number)
+
+
+@router.post("/{slug}/rounds/{number}/close", response_model=RoundRead)
+def close_round(slug: str, number: int, session: SessionDep, _: AdminDep) -> RoundRead:
+    """Close a round: it takes no more uploads (admin)."""
+    loop = service.get_loop(session, slug=slug)
+    service.close_round(session, loop=loop, number=number)
+    return _summary(session, loop_slug=slug, number=number)
+
+
+def _summary(session: SessionDep, *, loop_slug: str, number: int) -> RoundRead:
+    loop = service.get_loop(session, slug=loop_slug)
+    return next(r for r in service.round_summaries(session, loop=loop) if r.number == number)

@@ -1,0 +1,177 @@
+"""API shapes of loops and rounds, and the validation of a loop spec."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Annotated, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+
+NAME_PATTERN = r"^[a-z][a-z0-9_]{0,62}$"
+SLUG_PATTERN = r"^[a-z0-9][a-z0-9-]{1,62}$"
+
+# Column names of the rollout file contract; a feature may not shadow one of them.
+RESERVED_COLUMN_NAMES = frozenset(
+    {
+        "rollout",
+        "step",
+        "time_s",
+        "features",
+        "control",
+        "learner_action",
+        "learner_probs",
+        "learner_ensemble",
+        "learner_std",
+        "expert_action",
+        "robot",
+        "scene",
+        "image",
+    }
+)
+
+
+class FeatureSpec(BaseModel):
+    name: str = Field(pattern=NAME_PATTERN)
+    unit: str = Field(default="", max_length=32)
+
+
+class DiscreteActionSpace(BaseModel):
+    kind: Literal["discrete"]
+    actions: list[Annotated[str, Field(pattern=NAME_PATTERN)]] = Field(min_length=2, max_length=32)
+
+    @field_validator("actions")
+    @classmethod
+    def _unique(cls, actions: list[str]) -> list[str]:
+        if len(set(actions)) != len(actions):
+            raise ValueError("action names must be unique")
+        return actions
+
+
+class ContinuousDimension(BaseModel):
+    name: str = Field(pattern=NAME_PATTERN)
+    low: float
+    high: float
+    unit: str = Field(default="", max_length=32)
+
+    @model_validator(mode="after")
+    def _ordered(self) -> ContinuousDimension:
+        if not self.low < self.high:
+            raise ValueError(f"dimension {self.name}: low ({self.low}) must be below high")
+        return self
+
+
+class ContinuousActionSpace(BaseModel):
+    kind: Literal["continuous"]
+    dimensions: list[ContinuousDimension] = Field(min_length=1, max_length=16)
+
+    @field_validator("dimensions")
+    @classmethod
+    def _unique(cls, dims: list[ContinuousDimension]) -> list[ContinuousDimension]:
+        if len({d.name for d in dims}) != len(dims):
+            raise ValueError("dimension names must be unique")
+        return dims
+
+
+ActionSpace = Annotated[DiscreteActionSpace | ContinuousActionSpace, Field(discriminator="kind")]
+
+
+class LoopSettings(BaseModel):
+    """Per-loop settings; every default here is documented in the README."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    labels_per_state: int = Field(default=1, ge=1, le=10)
+    lease_seconds: int = Field(default=300, ge=10, le=86_400)
+    show_learner_fraction: float = Field(default=0.0, ge=0.0, le=1.0)
+    span_labels: bool = False
+    span_max_steps: int = Field(default=10, ge=1, le=100)
+    context_seconds: float = Field(default=5.0, gt=0, le=120)
+    uncertainty_weight: float = Field(default=0.5, ge=0.0)
+    novelty_weight: float = Field(default=0.5, ge=0.0)
+    novelty_k: int = Field(default=10, ge=1, le=100)
+    min_gap_s: float = Field(default=1.0, ge=0.0)
+    audit_fraction: float = Field(default=0.1, ge=0.0, le=1.0)
+    spread: bool = False
+    takeover_window_s: float = Field(default=3.0, ge=0.0)
+    takeover_boost: float = Field(default=0.25, ge=0.0, le=1.0)
+    continuous_tolerance: list[float] | None = Field(
+        default=None,
+        description="Per-dimension tolerance for counting a continuous disagreement; "
+        "default 10% of each dimension's range.",
+    )
+
+    @model_validator(mode="after")
+    def _weights(self) -> LoopSettings:
+        if self.uncertainty_weight + self.novelty_weight <= 0:
+            raise ValueError("uncertainty_weight + novelty_weight must be positive")
+        return self
+
+
+class LoopCreate(BaseModel):
+    """A loop spec: what the CLI reads from a file and the API takes as JSON."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    slug: str = Field(pattern=SLUG_PATTERN)
+    title: str = Field(min_length=1, max_length=200)
+    features: list[FeatureSpec] = Field(min_length=1, max_length=4096)
+    action_space: ActionSpace
+    settings: LoopSettings = Field(default_factory=LoopSettings)
+
+    @field_validator("features")
+    @classmethod
+    def _feature_names(cls, features: list[FeatureSpec]) -> list[FeatureSpec]:
+        names = [f.name for f in features]
+        if len(set(names)) != len(names):
+            raise ValueError("feature names must be unique")
+        clash = sorted(set(names) & RESERVED_COLUMN_NAMES)
+        if clash:
+            raise ValueError(f"feature names {clash} are column names of the rollout file")
+        return features
+
+    @model_validator(mode="after")
+    def _tolerance_width(self) -> LoopCreate:
+        tol = self.settings.continuous_tolerance
+        if tol is not None:
+            if not isinstance(self.action_space, ContinuousActionSpace):
+                raise ValueError("settings.continuous_tolerance needs a continuous action space")
+            if len(tol) != len(self.action_space.dimensions) or min(tol) <= 0:
+                raise ValueError("settings.continuous_tolerance: one positive value per dimension")
+        return self
+
+
+class LoopRead(BaseModel):
+    model_config = ConfigDict(from_attributes=True)
+
+    slug: str
+    title: str
+    features: list[FeatureSpec]
+    action_space: ActionSpace
+    settings: LoopSettings
+    created_at: datetime
+
+
+class LoopList(BaseModel):
+    items: list[LoopRead]
+    total: int
+
+
+class RoundOpen(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+    learner_version: str = Field(min_length=1, max_length=200)
+
+
+class RoundRead(BaseModel):
+    number: int
+    learner_version: str | None
+    status: str
+    opened_at: datetime
+    closed_at: datetime | None
+    rollouts: int
+    steps: int
+
+
+class RoundList(BaseModel):
+    items: list[RoundRead]
+    total: int

@@ -1,0 +1,120 @@
+"""Store access for loops and rounds."""
+
+from __future__ import annotations
+
+from sqlalchemy import func, select
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
+
+from app.errors import Conflict, NotFound
+from app.ingest.models import Rollout
+from app.loops.models import Loop, Round
+from app.loops.schemas import LoopCreate, RoundRead
+from app.models import utcnow
+
+DEMONSTRATION_VERSION = "demonstrations"
+
+
+def create_loop(session: Session, *, spec: LoopCreate, user_id: int | None) -> Loop:
+    """Create a loop and its round 0 (seed demonstrations)."""
+    if session.scalar(select(Loop.id).where(Loop.slug == spec.slug)) is not None:
+        raise Conflict(f"a loop with slug '{spec.slug}' already exists")
+    loop = Loop(
+        slug=spec.slug,
+        title=spec.title,
+        features=[f.model_dump() for f in spec.features],
+        action_space=spec.action_space.model_dump(),
+        settings=spec.settings.model_dump(),
+        created_by=user_id,
+    )
+    session.add(loop)
+    try:
+        session.flush()
+    except IntegrityError as exc:  # a concurrent create with the same slug
+        session.rollback()
+        raise Conflict(f"a loop with slug '{spec.slug}' already exists") from exc
+    session.add(
+        Round(loop_id=loop.id, number=0, learner_version=DEMONSTRATION_VERSION, opened_by=user_id)
+    )
+    session.commit()
+    return loop
+
+
+def list_loops(session: Session) -> list[Loop]:
+    """All loops, oldest first."""
+    return list(session.scalars(select(Loop).order_by(Loop.id)))
+
+
+def get_loop(session: Session, *, slug: str) -> Loop:
+    """The loop with this slug, or NotFound."""
+    loop = session.scalar(select(Loop).where(Loop.slug == slug))
+    if loop is None:
+        raise NotFound(f"no loop with slug '{slug}'")
+    return loop
+
+
+def get_round(session: Session, *, loop: Loop, number: int) -> Round:
+    """Round `number` of a loop, or NotFound."""
+    found = session.scalar(select(Round).where(Round.loop_id == loop.id, Round.number == number))
+    if found is None:
+        raise NotFound(f"loop '{loop.slug}' has no round {number}")
+    return found
+
+
+def open_round(session: Session, *, loop: Loop, learner_version: str, user_id: int | None) -> Round:
+    """Open the next round, recording the learner version whose rollouts it will hold."""
+    last = session.scalar(select(func.max(Round.number)).where(Round.loop_id == loop.id)) or 0
+    new = Round(
+        loop_id=loop.id, number=last + 1, learner_version=learner_version, opened_by=user_id
+    )
+    session.add(new)
+    try:
+        session.commit()
+    except IntegrityError as exc:
+        session.rollback()
+        raise Conflict(f"round {last + 1} of '{loop.slug}' was opened concurrently") from exc
+    return new
+
+
+def close_round(session: Session, *, loop: Loop, number: int) -> Round:
+    """Close a round: it takes no more uploads. Closing twice is harmless."""
+    rnd = get_round(session, loop=loop, number=number)
+    if rnd.status != "closed":
+        rnd.status = "closed"
+        rnd.closed_at = utcnow()
+        session.commit()
+    return rnd
+
+
+def round_summaries(session: Session, *, loop: Loop) -> list[RoundRead]:
+    """Rounds of a loop with their rollout and step counts, in two grouped queries."""
+    rounds = list(
+        session.scalars(select(Round).where(Round.loop_id == loop.id).order_by(Round.number))
+    )
+    ids = [r.id for r in rounds]
+    rollout_counts = dict(
+        session.execute(
+            select(Rollout.round_id, func.count())
+            .where(Rollout.round_id.in_(ids))
+            .group_by(Rollout.round_id)
+        ).all()
+    )
+    step_counts = dict(
+        session.execute(
+            select(Rollout.round_id, func.coalesce(func.sum(Rollout.n_steps), 0))
+            .where(Rollout.round_id.in_(ids))
+            .group_by(Rollout.round_id)
+        ).all()
+    )
+    return [
+        RoundRead(
+            number=r.number,
+            learner_version=r.learner_version,
+            status=r.status,
+            opened_at=r.opened_at,
+            closed_at=r.closed_at,
+            rollouts=int(rollout_counts.get(r.id, 0)),
+            steps=int(step_counts.get(r.id, 0)),
+        )
+        for r in rounds
+    ]

@@ -1,0 +1,84 @@
+"""create_app(): routers, templates, error handling and lifespan."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from typing import Any
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse, RedirectResponse, Response
+from fastapi.staticfiles import StaticFiles
+
+from app.config import Settings, get_settings
+from app.db import make_engine, make_session_factory
+from app.errors import ExpertloopError, Unauthenticated
+from app.templating import STATIC_DIR
+
+
+def _wants_page(request: Request) -> bool:
+    return not request.url.path.startswith("/api") and "text/html" in request.headers.get(
+        "accept", ""
+    )
+
+
+async def _domain_error(request: Request, exc: Exception) -> Response:
+    assert isinstance(exc, ExpertloopError)
+    if isinstance(exc, Unauthenticated) and _wants_page(request):
+        return RedirectResponse(f"/login?next={request.url.path}", status_code=303)
+    return JSONResponse({"detail": exc.message}, status_code=exc.status_code)
+
+
+async def _validation_error(request: Request, exc: Exception) -> Response:
+    assert isinstance(exc, RequestValidationError)
+    problems = []
+    for err in exc.errors():
+        where = ".".join(str(p) for p in err.get("loc", ()) if p != "body")
+        problems.append(f"{where}: {err.get('msg')}" if where else str(err.get("msg")))
+    errors = [{"loc": list(e.get("loc", ())), "msg": str(e.get("msg"))} for e in exc.errors()]
+    return JSONResponse({"detail": "; ".join(problems), "errors": errors}, status_code=422)
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    """Build the application for the given settings (defaults: from the environment)."""
+    settings = settings or get_settings()
+    engine = make_engine(settings.resolved_database_url)
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        yield
+        engine.dispose()
+
+    app = FastAPI(title="expertloop", version="0.1.0", lifespan=lifespan)
+    app.state.settings = settings
+    app.state.engine = engine
+    app.state.session_factory = make_session_factory(engine)
+    app.add_exception_handler(ExpertloopError, _domain_error)
+    app.add_exception_handler(RequestValidationError, _validation_error)
+
+    from app.auth.router import router as auth_router
+    from app.ingest.router import router as ingest_router
+    from app.loops.router import router as loops_router
+    from app.system.router import router as system_router
+
+    for router in (system_router, auth_router, loops_router, ingest_router):
+        app.include_router(router)
+    app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
+
+    @app.middleware("http")
+    async def refuse_oversized(request: Request, call_next: Any) -> Response:
+        # Refuse before the body is read; chunked bodies are still capped while spooling.
+        declared = request.headers.get("content-length")
+        if declared and declared.isdigit() and int(declared) > settings.max_upload_bytes + 65536:
+            return JSONResponse(
+                {
+                    "detail": f"the request is larger than the upload limit of "
+                    f"{settings.max_upload_bytes} bytes"
+                },
+                status_code=413,
+            )
+        response: Response = await call_next(request)
+        return response
+
+    return app

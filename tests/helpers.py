@@ -1,0 +1,91 @@
+"""Small builders shared by tests: loop specs and rollout tables in the file contract."""
+
+from __future__ import annotations
+
+import io
+import json
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+DISCRETE_SPEC: dict[str, Any] = {
+    "slug": "aisle-crossing",
+    "title": "Aisle crossing (test)",
+    "features": [
+        {"name": "gap_m", "unit": "m"},
+        {"name": "speed", "unit": "m/s"},
+        {"name": "occluded", "unit": ""},
+    ],
+    "action_space": {"kind": "discrete", "actions": ["proceed", "creep", "hold"]},
+}
+
+CONTINUOUS_SPEC: dict[str, Any] = {
+    "slug": "aisle-speed",
+    "title": "Aisle speed (test)",
+    "features": [{"name": "gap_m", "unit": "m"}, {"name": "speed", "unit": "m/s"}],
+    "action_space": {
+        "kind": "continuous",
+        "dimensions": [
+            {"name": "speed_cmd", "low": 0.0, "high": 2.0, "unit": "m/s"},
+            {"name": "curvature", "low": -0.2, "high": 0.2, "unit": "1/m"},
+        ],
+    },
+}
+
+
+def discrete_rows(
+    n_rollouts: int = 2, steps: int = 5, *, seed: int = 0, expert: bool = False, prefix: str = "r"
+) -> dict[str, list[Any]]:
+    """Columns of a small discrete rollout file (learner-driven unless expert=True)."""
+    rng = np.random.default_rng(seed)
+    cols: dict[str, list[Any]] = {
+        k: []
+        for k in (
+            "rollout",
+            "step",
+            "time_s",
+            "features",
+            "control",
+            "learner_action",
+            "learner_probs",
+            "expert_action",
+        )
+    }
+    actions = ["proceed", "creep", "hold"]
+    for r in range(n_rollouts):
+        for s in range(steps):
+            probs = rng.dirichlet(np.ones(3)).astype(np.float32)
+            probs = (probs / probs.sum()).tolist()
+            cols["rollout"].append(f"{prefix}{r}")
+            cols["step"].append(s)
+            cols["time_s"].append(0.1 * s)
+            cols["features"].append(rng.normal(size=3).round(3).tolist())
+            cols["control"].append("expert" if expert else "learner")
+            cols["learner_action"].append(None if expert else actions[int(np.argmax(probs))])
+            cols["learner_probs"].append(None if expert else probs)
+            cols["expert_action"].append(actions[s % 3] if expert else None)
+    return cols
+
+
+def parquet_bytes(columns: dict[str, list[Any]] | pa.Table) -> bytes:
+    table = columns if isinstance(columns, pa.Table) else pa.table(columns)
+    sink = io.BytesIO()
+    pq.write_table(table, sink)
+    return sink.getvalue()
+
+
+def jsonl_bytes(columns: dict[str, list[Any]]) -> bytes:
+    names = list(columns)
+    n = len(columns[names[0]])
+    lines = [
+        json.dumps({k: columns[k][i] for k in names if columns[k][i] is not None}) for i in range(n)
+    ]
+    return ("\n".join(lines) + "\n").encode()
+
+
+def npz_bytes(arrays: dict[str, np.ndarray]) -> bytes:
+    sink = io.BytesIO()
+    np.savez(sink, **arrays)
+    return sink.getvalue()
