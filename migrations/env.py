@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from alembic import context
+
 from app.db import make_engine
 from app.models import Base, import_all_tables
 
