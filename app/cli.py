@@ -74,6 +74,24 @@ def serve(
     uvicorn.run("app.asgi:app", host=host, port=port, workers=workers, log_level="info")
 
 
+@cli.command()
+def worker() -> None:
+    """Run background jobs (ranking, snapshots) until interrupted; for team deployments."""
+    import signal
+    import threading
+
+    from app.db import make_engine, make_session_factory
+    from app.jobs.runner import run_until_stopped
+
+    settings = get_settings()
+    factory = make_session_factory(make_engine(settings.resolved_database_url))
+    stop = threading.Event()
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(sig, lambda *_: stop.set())
+    typer.echo("worker running; Ctrl-C to stop")
+    run_until_stopped(factory, settings, stop)
+
+
 @loops_cli.command("create")
 def loops_create(spec_file: Path) -> None:
     """Create a loop from a JSON spec file."""
@@ -205,6 +223,49 @@ def upload(
         " (this file was uploaded before; nothing new stored)" if result["duplicate_file"] else ""
     )
     typer.echo(f"stored {len(result['rollouts'])} rollouts, {result['steps']} steps{note}")
+
+
+@cli.command()
+def rank(
+    loop: Annotated[str, typer.Option(help="Loop slug.")],
+    round_number: Annotated[int, typer.Option("--round", help="Round number.")],
+    budget: Annotated[int, typer.Option(help="Labels to ask for.")],
+    seed: Annotated[int | None, typer.Option(help="Audit sample seed (random if omitted).")] = None,
+    url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
+    token: Annotated[str, TOKEN_OPTION] = "",
+) -> None:
+    """Rank a round's states in the background and fill its queue, with a progress bar."""
+    import time
+
+    from tqdm import tqdm
+
+    from app.client import ApiError, Client
+
+    with Client(url, token) as client:
+        try:
+            job = client.request(
+                "POST",
+                f"/api/loops/{loop}/rounds/{round_number}/ranking",
+                json={"budget": budget, "seed": seed},
+            )["job"]
+        except ApiError as exc:
+            _fail(f"refused: {exc.detail}")
+            return
+        with tqdm(total=100, desc=f"ranking round {round_number}", unit="%") as bar:
+            while job["status"] in ("queued", "running"):
+                time.sleep(0.5)
+                job = client.request("GET", f"/api/jobs/{job['id']}")
+                bar.update(round(job["progress"] * 100) - bar.n)
+    if job["status"] == "failed":
+        _fail(f"ranking failed: {job['message']}")
+    result = job["result"]
+    typer.echo(
+        f"chose {result['chosen']} states ({result['audit']} audit) of {result['candidates']} "
+        f"candidates against {result['training_states']} training states; "
+        f"uncertainty: {result['uncertainty_method']}"
+    )
+    for note in result["notes"]:
+        typer.echo(f"note: {note}")
 
 
 def main() -> None:

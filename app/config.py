@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from functools import lru_cache
 from pathlib import Path
+from typing import Literal
 
 from pydantic import Field
 from pydantic_settings import BaseSettings, SettingsConfigDict
@@ -26,10 +27,10 @@ class Settings(BaseSettings):
     max_upload_bytes: int = Field(
         default=512 * 1024 * 1024, description="Largest rollout file accepted (413 above)."
     )
-    job_mode: str = Field(
+    job_mode: Literal["thread", "worker", "off"] = Field(
         default="thread",
         description="'thread': background jobs run inside the server; 'worker': only in "
-        "`expertloop worker` processes.",
+        "`expertloop worker` processes; 'off': not at all (tests that drive jobs by hand).",
     )
     session_hours: float = Field(default=12.0, description="Browser session lifetime.")
 

@@ -14,6 +14,7 @@ from fastapi.staticfiles import StaticFiles
 from app.config import Settings, get_settings
 from app.db import make_engine, make_session_factory
 from app.errors import ExpertloopError, Unauthenticated
+from app.jobs.runner import JobThread
 from app.templating import STATIC_DIR
 
 
@@ -47,7 +48,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        runner = None
+        if settings.job_mode == "thread":
+            runner = JobThread(app.state.session_factory, settings)
+            runner.start()
         yield
+        if runner is not None:
+            runner.stop()
         engine.dispose()
 
     app = FastAPI(title="expertloop", version="0.1.0", lifespan=lifespan)
@@ -59,10 +66,19 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     from app.auth.router import router as auth_router
     from app.ingest.router import router as ingest_router
+    from app.jobs.router import router as jobs_router
     from app.loops.router import router as loops_router
+    from app.sampler.router import router as sampler_router
     from app.system.router import router as system_router
 
-    for router in (system_router, auth_router, loops_router, ingest_router):
+    for router in (
+        system_router,
+        auth_router,
+        loops_router,
+        ingest_router,
+        jobs_router,
+        sampler_router,
+    ):
         app.include_router(router)
     app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
 

@@ -69,8 +69,12 @@ def database_url(migrated_template: str, tmp_path: Path) -> str:
 
 @pytest.fixture
 def settings(database_url: str, tmp_path: Path) -> Settings:
+    # Jobs run only where a test drives them (run_one) or asks for the thread explicitly.
     return Settings(
-        data_dir=tmp_path / "data", database_url=database_url, max_upload_bytes=5 * 1024 * 1024
+        data_dir=tmp_path / "data",
+        database_url=database_url,
+        max_upload_bytes=5 * 1024 * 1024,
+        job_mode="off",
     )
 
 

@@ -31,7 +31,7 @@ STEP_COLUMNS = (
     "image_sha256",
 )
 # PostgreSQL types of STEP_COLUMNS, for binary COPY
-_PG_TYPES = (
+PG_TYPES = (
     "int4",
     "int4",
     "int4",
@@ -55,24 +55,31 @@ Column = np.ndarray | list[Any] | None
 
 
 def insert_steps(connection: Connection, columns: dict[str, Column], n_rows: int) -> None:
-    """Insert n_rows steps given as whole columns (arrays or lists; None = all NULL)."""
+    """Insert n_rows steps given as whole columns (arrays or lists; None = all NULL).
+
+    Columns that are NULL throughout are left out of the statement: fewer values to bind per row.
+    """
     missing = set(STEP_COLUMNS) - set(columns)
     if missing:
         raise ValueError(f"step columns missing: {sorted(missing)}")
+    names = [name for name in STEP_COLUMNS if columns[name] is not None]
     if connection.dialect.name == "postgresql":
-        _copy_postgresql(connection, columns, n_rows)
+        _copy_postgresql(connection, columns, names, n_rows)
     else:
-        placeholders = ", ".join("?" for _ in STEP_COLUMNS)
-        sql = f"INSERT INTO steps ({', '.join(STEP_COLUMNS)}) VALUES ({placeholders})"
-        for chunk in _row_chunks(columns, n_rows):
+        placeholders = ", ".join("?" for _ in names)
+        sql = f"INSERT INTO steps ({', '.join(names)}) VALUES ({placeholders})"
+        for chunk in row_chunks(columns, names, n_rows):
             connection.exec_driver_sql(sql, chunk)
 
 
-def _row_chunks(columns: dict[str, Column], n_rows: int) -> Iterator[list[tuple[Any, ...]]]:
+def row_chunks(
+    columns: dict[str, Column], names: list[str], n_rows: int
+) -> Iterator[list[tuple[Any, ...]]]:
+    """Rows of the named columns as tuples, CHUNK_ROWS at a time."""
     for start in range(0, n_rows, CHUNK_ROWS):
         stop = min(start + CHUNK_ROWS, n_rows)
         parts = []
-        for name in STEP_COLUMNS:
+        for name in names:
             values = columns[name]
             if values is None:
                 parts.append([None] * (stop - start))
@@ -83,12 +90,20 @@ def _row_chunks(columns: dict[str, Column], n_rows: int) -> Iterator[list[tuple[
         yield list(zip(*parts, strict=True))
 
 
-def _copy_postgresql(connection: Connection, columns: dict[str, Column], n_rows: int) -> None:
+def copy_rows(connection: Connection, table: str, names: list[str], rows: Iterator[Any]) -> None:
+    """Binary COPY of row tuples into `table` on PostgreSQL."""
     driver = connection.connection.driver_connection
     assert driver is not None
-    sql = f"COPY steps ({', '.join(STEP_COLUMNS)}) FROM STDIN (FORMAT BINARY)"
+    types = [PG_TYPES[STEP_COLUMNS.index(name)] for name in names]
+    sql = f"COPY {table} ({', '.join(names)}) FROM STDIN (FORMAT BINARY)"
     with driver.cursor() as cursor, cursor.copy(sql) as copy:
-        copy.set_types(list(_PG_TYPES))
-        for chunk in _row_chunks(columns, n_rows):
-            for row in chunk:
-                copy.write_row(row)
+        copy.set_types(types)
+        for row in rows:
+            copy.write_row(row)
+
+
+def _copy_postgresql(
+    connection: Connection, columns: dict[str, Column], names: list[str], n_rows: int
+) -> None:
+    rows = (row for chunk in row_chunks(columns, names, n_rows) for row in chunk)
+    copy_rows(connection, "steps", names, rows)

@@ -107,25 +107,36 @@ def float_vectors(
     nulls = np.asarray(combined.is_null().to_numpy(zero_copy_only=False), dtype=bool)
     if nulls.any() and not allow_null:
         raise fail(int(rows[_first(nulls)]), name, "value is missing")
-    lengths = pc.fill_null(pc.list_value_length(combined), width).to_numpy(zero_copy_only=False)
-    wrong = lengths != width
-    if wrong.any():
-        i = _first(wrong)
-        raise fail(int(rows[i]), name, f"expected {width} values, got {lengths[i]}")
+    if pa.types.is_fixed_size_list(combined.type):
+        if combined.type.list_size != width:
+            raise fail(
+                int(rows[0]), name, f"expected {width} values, got {combined.type.list_size}"
+            )
+    else:
+        lengths = pc.fill_null(pc.list_value_length(combined), width).to_numpy(zero_copy_only=False)
+        wrong = lengths != width
+        if wrong.any():
+            i = _first(wrong)
+            raise fail(int(rows[i]), name, f"expected {width} values, got {lengths[i]}")
     present = ~nulls
+    if not present.any():
+        return Vectors(np.zeros((len(combined), width), np.float32), present)
+    taken = combined.filter(pa.array(present)) if nulls.any() else combined
+    flat = pc.list_flatten(taken)
+    if flat.null_count:
+        row = np.flatnonzero(present)[_first(null_mask(pa.chunked_array([flat]))) // width]
+        raise fail(int(rows[row]), name, "a value inside the list is missing")
+    # Cast to float32 before the finiteness check: a float64 beyond float32's range becomes
+    # infinite in storage, so it must be refused too.
+    dense = flat.to_numpy(zero_copy_only=False).astype(np.float32, copy=False).reshape(-1, width)
+    bad_rows = ~np.isfinite(dense).all(axis=1)
+    if bad_rows.any():
+        row = int(np.flatnonzero(present)[_first(bad_rows)])
+        raise fail(int(rows[row]), name, "values must be finite (found NaN or infinity)")
+    if not nulls.any():
+        return Vectors(dense, present)
     values = np.zeros((len(combined), width), dtype=np.float32)
-    if present.any():
-        taken = combined.filter(pa.array(present)) if nulls.any() else combined
-        flat = pc.list_flatten(taken)
-        if flat.null_count:
-            row = np.flatnonzero(present)[_first(null_mask(pa.chunked_array([flat]))) // width]
-            raise fail(int(rows[row]), name, "a value inside the list is missing")
-        dense = np.asarray(flat.to_numpy(zero_copy_only=False), dtype=np.float64).reshape(-1, width)
-        bad_rows = ~np.isfinite(dense).all(axis=1)
-        if bad_rows.any():
-            row = int(np.flatnonzero(present)[_first(bad_rows)])
-            raise fail(int(rows[row]), name, "values must be finite (found NaN or infinity)")
-        values[present] = dense
+    values[present] = dense
     return Vectors(values, present)
 
 

@@ -58,7 +58,7 @@ def read_table(path: Path, file_format: str) -> pa.Table:
 
 def _read_parquet(path: Path) -> pa.Table:
     try:
-        return pq.read_table(path)
+        return pq.read_table(path, memory_map=True)
     except (pa.ArrowException, OSError) as exc:
         raise InvalidInput(f"not a readable Parquet file (truncated or damaged?): {exc}") from exc
 

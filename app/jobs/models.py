@@ -5,7 +5,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import JSON, DateTime, Float, ForeignKey, Index, Integer, String, Text
+from sqlalchemy import JSON, DateTime, Float, ForeignKey, Index, Integer, String, Text, text
 from sqlalchemy.orm import Mapped, mapped_column
 
 from app.models import Base, utcnow
@@ -20,7 +20,18 @@ class Job(Base):
     """One unit of long work. Workers claim queued jobs, or running ones whose lease ran out."""
 
     __tablename__ = "jobs"
-    __table_args__ = (Index("ix_jobs_status_id", "status", "id"),)
+    __table_args__ = (
+        Index("ix_jobs_status_id", "status", "id"),
+        # at most one live job of a kind per round: a second ranking request is a conflict
+        Index(
+            "uq_jobs_live_kind_round",
+            "kind",
+            "round_id",
+            unique=True,
+            postgresql_where=text("status IN ('queued', 'running')"),
+            sqlite_where=text("status IN ('queued', 'running')"),
+        ),
+    )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     kind: Mapped[str] = mapped_column(String(32))

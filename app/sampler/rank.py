@@ -1,0 +1,176 @@
+"""Rank a round's learner-driven states and choose a selection: scores, then selection rules.
+
+Pure: arrays in, arrays out. The job in app/sampler/jobs.py loads the arrays and stores the result.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from app.errors import InvalidInput
+from app.sampler import scores
+from app.sampler.candidates import RoundSteps
+from app.sampler.novelty import novelty
+from app.sampler.selection import select, takeover_boost
+
+NEUTRAL_PERCENTILE = 0.5
+
+
+@dataclass(frozen=True)
+class RankParams:
+    """Everything that decides a selection; recorded with it so a rerun gives the same one."""
+
+    budget: int
+    seed: int
+    min_gap_s: float
+    audit_fraction: float
+    spread: bool
+    uncertainty_weight: float
+    novelty_weight: float
+    novelty_k: int
+    takeover_window_s: float
+    takeover_boost: float
+    discrete_method: str = "entropy"
+
+
+@dataclass
+class Ranking:
+    """Scores of every candidate (arrays of shape (n_candidates,)) and the chosen states."""
+
+    step_id: np.ndarray
+    uncertainty: np.ndarray  # nan where the learner reported nothing usable
+    novelty: np.ndarray  # nan when there is no training set yet
+    uncertainty_pct: np.ndarray
+    novelty_pct: np.ndarray
+    boost: np.ndarray
+    score: np.ndarray  # combined score plus boost
+    chosen: np.ndarray  # indexes into the candidates, audit picks first
+    reasons: np.ndarray
+    ranks: np.ndarray
+    uncertainty_method: str
+    notes: list[str] = field(default_factory=list)
+
+
+def _uncertainty(
+    steps: RoundSteps, rows: np.ndarray, kind: str, low: np.ndarray, high: np.ndarray, method: str
+) -> tuple[np.ndarray, str]:
+    """Uncertainty of the candidate rows from the richest output the learner reported."""
+    values = np.full(len(rows), np.nan)
+    if steps.ensemble is not None and steps.has_ensemble[rows].any():
+        have = steps.has_ensemble[rows]
+        found, name = scores.uncertainty_from_learner_outputs(
+            kind, ensemble=steps.ensemble[rows][have], low=low, high=high
+        )
+    elif kind == "discrete" and steps.probs is not None and steps.has_probs[rows].any():
+        have = steps.has_probs[rows]
+        found, name = scores.uncertainty_from_learner_outputs(
+            kind,
+            probs=steps.probs[rows][have],
+            method=method,  # type: ignore[arg-type]
+        )
+    elif kind == "continuous" and steps.std is not None and steps.has_std[rows].any():
+        have = steps.has_std[rows]
+        found, name = scores.uncertainty_from_learner_outputs(
+            kind, std=steps.std[rows][have], low=low, high=high
+        )
+    else:
+        return values, "novelty only"
+    assert found is not None
+    values[have] = found
+    return values, name
+
+
+def _percentiles(values: np.ndarray) -> np.ndarray:
+    out = np.full(len(values), NEUTRAL_PERCENTILE)
+    known = ~np.isnan(values)
+    if known.any():
+        out[known] = scores.percentile_rank(values[known])
+    return out
+
+
+def rank_round(
+    steps: RoundSteps,
+    training_features: np.ndarray,
+    *,
+    kind: str,
+    low: np.ndarray,
+    high: np.ndarray,
+    params: RankParams,
+    progress: Callable[[float], None] = lambda _: None,
+) -> Ranking:
+    """Score every learner-driven state of a round and choose the selection."""
+    candidates = np.flatnonzero(~steps.expert)
+    if len(candidates) == 0:
+        raise InvalidInput("the round has no learner-driven states to rank")
+    notes: list[str] = []
+    uncertainty, method = _uncertainty(steps, candidates, kind, low, high, params.discrete_method)
+    if method == "novelty only":
+        notes.append("the rollouts carry no learner outputs: ranked on novelty alone")
+    elif np.isnan(uncertainty).any():
+        notes.append(
+            f"{int(np.isnan(uncertainty).sum())} states carry no learner outputs: "
+            "they get the median uncertainty percentile"
+        )
+    progress(0.2)
+    if len(training_features):
+        novel = novelty(
+            steps.features[candidates],
+            training_features,
+            k=params.novelty_k,
+            rng=np.random.default_rng(params.seed),
+        )
+    else:
+        novel = np.full(len(candidates), np.nan)
+        notes.append("the training set is empty: ranked on uncertainty alone")
+    if method == "novelty only" and np.isnan(novel).all():
+        raise InvalidInput(
+            "nothing to rank on: the rollouts carry no learner outputs and the training set "
+            "is empty (upload round 0 demonstrations first)"
+        )
+    progress(0.8)
+    u_pct = _percentiles(uncertainty)
+    n_pct = _percentiles(novel)
+    combined = scores.combined_score(
+        None if method == "novelty only" else u_pct,
+        None if np.isnan(novel).all() else n_pct,
+        params.uncertainty_weight,
+        params.novelty_weight,
+    )
+    boost_all = takeover_boost(
+        steps.rollout_id,
+        steps.time_s,
+        steps.expert,
+        params.takeover_window_s,
+        params.takeover_boost,
+    )
+    boost = boost_all[candidates]
+    result = select(
+        combined,
+        steps.rollout_id[candidates],
+        steps.time_s[candidates],
+        params.budget,
+        min_gap_s=params.min_gap_s,
+        audit_fraction=params.audit_fraction,
+        rng=np.random.default_rng(params.seed),
+        features=steps.features[candidates] if params.spread else None,
+        spread=params.spread,
+        takeover_boost=boost,
+    )
+    progress(0.9)
+    return Ranking(
+        step_id=steps.step_id[candidates],
+        uncertainty=uncertainty,
+        novelty=novel,
+        uncertainty_pct=u_pct,
+        novelty_pct=n_pct,
+        boost=boost,
+        score=result.effective_scores,
+        chosen=result.indices,
+        reasons=result.reasons,
+        ranks=result.ranks,
+        uncertainty_method=method,
+        notes=notes,
+    )

@@ -1,0 +1,56 @@
+"""HTTP routes: start a ranking job for a round, read the round's selection."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Query, status
+
+from app.deps import AdminDep, ReaderDep, SessionDep
+from app.jobs.schemas import JobRead
+from app.loops import service as loops_service
+from app.sampler import service
+from app.sampler.schemas import RankingRequest, RankingStarted, SelectedStateRead, SelectionRead
+
+router = APIRouter(prefix="/api/loops/{slug}/rounds/{number}", tags=["sampler"])
+
+
+@router.post("/ranking", response_model=RankingStarted, status_code=status.HTTP_202_ACCEPTED)
+def start_ranking(
+    slug: str, number: int, body: RankingRequest, session: SessionDep, caller: AdminDep
+) -> RankingStarted:
+    """Rank the round's states in the background and fill its queue (admin); follow the job."""
+    loop = loops_service.get_loop(session, slug=slug)
+    rnd = loops_service.get_round(session, loop=loop, number=number)
+    job = service.request_ranking(
+        session, loop=loop, rnd=rnd, budget=body.budget, seed=body.seed, user_id=caller.user_id
+    )
+    return RankingStarted(job=JobRead.model_validate(job))
+
+
+@router.get("/selection", response_model=SelectionRead)
+def read_selection(
+    slug: str,
+    number: int,
+    session: SessionDep,
+    _: ReaderDep,
+    offset: int = Query(0, ge=0),
+    limit: int = Query(200, ge=1, le=1000),
+) -> SelectionRead:
+    """The chosen states with their scores and the reason each was chosen (ranked or audit)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    rnd = loops_service.get_round(session, loop=loop, number=number)
+    selection = service.get_selection(session, rnd=rnd)
+    items, total = service.selected_states(session, selection=selection, offset=offset, limit=limit)
+    return SelectionRead(
+        round=rnd.number,
+        budget=selection.budget,
+        seed=selection.seed,
+        uncertainty_method=selection.uncertainty_method,
+        n_candidates=selection.n_candidates,
+        n_training=selection.n_training,
+        params=selection.params,
+        created_at=selection.created_at,
+        items=[SelectedStateRead(**i) for i in items],
+        total=total,
+        offset=offset,
+        limit=limit,
+    )

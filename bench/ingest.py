@@ -1,0 +1,197 @@
+"""Ingest benchmark: the service's upload path (validation + insert) against a raw bulk insert.
+
+    python bench/ingest.py --steps 1000000                   # SQLite and PostgreSQL
+    python bench/ingest.py --steps 200000 --backend sqlite
+
+Writes one Parquet file of N steps (64 float32 features, a discrete action with probabilities),
+times the service's ingest path on it, and in the same run a raw baseline on the same rows into an
+equivalent table (binary COPY on PostgreSQL, executemany on SQLite), prepared in memory beforehand.
+Prints steps per second and the ratio (target: at least 0.5x the baseline on both backends).
+"""
+
+from __future__ import annotations
+
+import argparse
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+from sqlalchemy import text
+
+from app.db import make_engine, make_session_factory
+from app.ingest import bulk, service
+from app.ingest.encode import rows_to_bytes
+from app.loops import service as loops_service
+from app.loops.schemas import LoopCreate
+from app.migrations_state import upgrade
+
+N_FEATURES = 64
+ACTIONS = ["a0", "a1", "a2", "a3"]
+STEPS_PER_ROLLOUT = 1000
+PG_URL = "postgresql+psycopg://postgres@127.0.0.1:5432/expertloop_bench"
+
+
+def make_file(path: Path, n: int, seed: int = 0) -> dict[str, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    features = rng.standard_normal((n, N_FEATURES), dtype=np.float32)
+    logits = rng.standard_normal((n, len(ACTIONS)))
+    probs = (np.exp(logits) / np.exp(logits).sum(axis=1, keepdims=True)).astype(np.float32)
+    action = probs.argmax(axis=1)
+    rollout = np.arange(n) // STEPS_PER_ROLLOUT
+    step = np.arange(n) % STEPS_PER_ROLLOUT
+    table = pa.table(
+        {
+            "rollout": pa.array([f"bench-{r:06d}" for r in range(rollout[-1] + 1)]).take(
+                pa.array(rollout)
+            ),
+            "step": pa.array(step, pa.int64()),
+            "time_s": pa.array(step * 0.1),
+            "features": pa.FixedSizeListArray.from_arrays(
+                pa.array(features.reshape(-1)), N_FEATURES
+            ),
+            "learner_action": pa.array(action.astype(np.int64)),
+            "learner_probs": pa.FixedSizeListArray.from_arrays(
+                pa.array(probs.reshape(-1)), len(ACTIONS)
+            ),
+        }
+    )
+    pq.write_table(table, path)
+    return {
+        "features": features,
+        "probs": probs,
+        "action": action,
+        "step": step,
+        "rollout": rollout,
+    }
+
+
+def prepare_store(url: str) -> None:
+    if url.startswith("postgresql"):
+        admin = make_engine(url.rsplit("/", 1)[0] + "/postgres")
+        with admin.connect().execution_options(isolation_level="AUTOCOMMIT") as conn:
+            conn.execute(text("DROP DATABASE IF EXISTS expertloop_bench"))
+            conn.execute(text("CREATE DATABASE expertloop_bench"))
+        admin.dispose()
+    upgrade(url)
+
+
+def service_ingest(url: str, path: Path) -> float:
+    engine = make_engine(url)
+    factory = make_session_factory(engine)
+    spec = LoopCreate.model_validate(
+        {
+            "slug": "bench",
+            "title": "bench",
+            "features": [{"name": f"f{i}", "unit": ""} for i in range(N_FEATURES)],
+            "action_space": {"kind": "discrete", "actions": ACTIONS},
+        }
+    )
+    with factory() as session:
+        loop = loops_service.create_loop(session, spec=spec, user_id=None)
+        rnd = loops_service.open_round(session, loop=loop, learner_version="v1", user_id=None)
+        started = time.perf_counter()
+        service.ingest_file(
+            session,
+            loop=loop,
+            rnd=rnd,
+            path=path,
+            filename=path.name,
+            file_sha256="bench",
+            user_id=None,
+            blob_dir=path.parent / "blobs",
+        )
+        elapsed = time.perf_counter() - started
+    engine.dispose()
+    return elapsed
+
+
+def baseline_insert(url: str, data: dict[str, np.ndarray]) -> float:
+    """Raw insert of the same rows into a copy of the steps table, rows prepared beforehand."""
+    engine = make_engine(url)
+    n = len(data["step"])
+    columns: dict[str, bulk.Column] = {
+        "rollout_id": data["rollout"] + 1,
+        "round_id": [1] * n,
+        "step_index": data["step"],
+        "time_s": data["step"] * 0.1,
+        "control": np.zeros(n, dtype=np.int64),
+        "features": rows_to_bytes(data["features"]),
+        "learner_action": data["action"],
+        "learner_action_vec": None,
+        "expert_action": None,
+        "expert_action_vec": None,
+        "learner_probs": rows_to_bytes(data["probs"]),
+        "learner_ensemble": None,
+        "ensemble_size": None,
+        "learner_std": None,
+        "scene": None,
+        "image_sha256": None,
+    }
+    # the same columns the service fills; the rest stay NULL in both
+    filled = [name for name in bulk.STEP_COLUMNS if columns[name] is not None]
+    rows = [row for chunk in bulk.row_chunks(columns, filled, n) for row in chunk]
+    names = ", ".join(filled)
+    with engine.begin() as conn:
+        if url.startswith("postgresql"):
+            # LIKE copies columns, defaults, indexes and checks; add the foreign keys too, so the
+            # baseline pays for the same constraint checks as the steps table
+            conn.execute(text("CREATE TABLE bench_steps (LIKE steps INCLUDING ALL)"))
+            conn.execute(
+                text(
+                    "ALTER TABLE bench_steps "
+                    "ADD FOREIGN KEY (rollout_id) REFERENCES rollouts (id) ON DELETE CASCADE, "
+                    "ADD FOREIGN KEY (round_id) REFERENCES rounds (id) ON DELETE CASCADE"
+                )
+            )
+        else:
+            ddl = conn.execute(text("SELECT sql FROM sqlite_master WHERE name = 'steps'")).scalar()
+            conn.execute(
+                text(
+                    str(ddl)
+                    .replace('"steps"', "bench_steps")
+                    .replace("steps (", "bench_steps (", 1)
+                )
+            )
+    started = time.perf_counter()
+    with engine.begin() as conn:
+        if url.startswith("postgresql"):
+            bulk.copy_rows(conn, "bench_steps", filled, iter(rows))
+        else:
+            marks = ", ".join("?" for _ in filled)
+            conn.exec_driver_sql(f"INSERT INTO bench_steps ({names}) VALUES ({marks})", rows)
+    elapsed = time.perf_counter() - started
+    engine.dispose()
+    return elapsed
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(
+        description=__doc__, formatter_class=argparse.RawTextHelpFormatter
+    )
+    parser.add_argument("--steps", type=int, default=1_000_000)
+    parser.add_argument("--backend", choices=["both", "sqlite", "postgresql"], default="both")
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "rollouts.parquet"
+        data = make_file(path, args.steps)
+        size_mb = path.stat().st_size / 1e6
+        print(f"file: {args.steps} steps, {N_FEATURES} float32 features, {size_mb:.0f} MB Parquet")
+        backends = ["sqlite", "postgresql"] if args.backend == "both" else [args.backend]
+        for backend in backends:
+            url = f"sqlite:///{tmp}/bench-{backend}.db" if backend == "sqlite" else PG_URL
+            prepare_store(url)
+            ours = service_ingest(url, path)
+            raw = baseline_insert(url, data)
+            label = "executemany" if backend == "sqlite" else "binary COPY"
+            print(
+                f"{backend:10s} service ingest (validate + insert): {args.steps / ours:10,.0f} steps/s"
+                f" ({ours:.1f} s) | raw {label}: {args.steps / raw:10,.0f} steps/s ({raw:.1f} s)"
+                f" | ratio {raw / ours:.2f}x of baseline"
+            )
+
+
+if __name__ == "__main__":
+    main()
