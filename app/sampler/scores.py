@@ -39,10 +39,11 @@ def _as_probabilities(probs: ArrayLike, ndim: int, name: str) -> FloatArray:
     sums = p.sum(axis=-1, keepdims=True)
     bad = np.abs(sums - 1.0) > _PROBABILITY_SUM_TOLERANCE
     if np.any(bad):
-        first = np.argwhere(bad[..., 0])[0]
+        first = tuple(int(i) for i in np.argwhere(bad[..., 0])[0])
+        total = float(sums[first][0])
         raise ValueError(
-            f"{name}: row {tuple(int(i) for i in first)} sums to {float(sums[tuple(first)][0]):.6g},"
-            " not 1; pass probabilities, not logits or counts"
+            f"{name}: row {first} sums to {total:.6g}, not 1;"
+            " pass probabilities, not logits or counts"
         )
     return p / sums
 
@@ -255,6 +256,7 @@ def uncertainty_from_learner_outputs(
             raise ValueError("continuous uncertainty needs the action bounds low and high")
         if ensemble is not None:
             return ensemble_action_variance(ensemble, low, high), "ensemble_variance"
+        assert std is not None  # one of ensemble and std is set (checked above)
         return gaussian_std_scaled(std, low, high), "gaussian_std"
     raise ValueError(f"kind: expected 'discrete' or 'continuous', got {kind!r}")
 

@@ -85,15 +85,13 @@ def _count_before(
     flags = np.concatenate([np.full(n, data_flag), np.full(n, query_flag)])
     merged = np.lexsort((flags, all_times, all_codes))
     is_query = merged >= n
-    data_before = np.cumsum(~is_query) - (~is_query)
+    data_before: IntArray = np.cumsum(~is_query) - (~is_query)
     counts = np.empty(n, dtype=np.int64)
     counts[merged[is_query] - n] = data_before[is_query]
     return counts
 
 
-def _gap_windows(
-    codes: IntArray, times: FloatArray, min_gap_s: float
-) -> tuple[IntArray, IntArray]:
+def _gap_windows(codes: IntArray, times: FloatArray, min_gap_s: float) -> tuple[IntArray, IntArray]:
     """Canonical-position windows [lo, hi) of states within min_gap_s in the same rollout."""
     lo = _count_before(codes, times, times - min_gap_s, inclusive=True)
     hi = _count_before(codes, times, times + min_gap_s, inclusive=False)
@@ -334,8 +332,6 @@ def takeover_boost(
     has_next = nxt < onset.size
     nxt_pos = onset[np.minimum(nxt, onset.size - 1)]
     lead = c_times[nxt_pos] - c_times
-    in_window = (
-        has_next & (c_codes[nxt_pos] == c_codes) & (lead > 0) & (lead <= window_s) & ~c_mask
-    )
+    in_window = has_next & (c_codes[nxt_pos] == c_codes) & (lead > 0) & (lead <= window_s) & ~c_mask
     out[order[in_window]] = boost
     return out
