@@ -95,6 +95,23 @@ def _gap_windows(codes: IntArray, times: FloatArray, min_gap_s: float) -> tuple[
     """Canonical-position windows [lo, hi) of states within min_gap_s in the same rollout."""
     lo = _count_before(codes, times, times - min_gap_s, inclusive=True)
     hi = _count_before(codes, times, times + min_gap_s, inclusive=False)
+    # ``t_i <= t_j - gap`` and ``|t_i - t_j| >= gap`` can disagree in the last bit (e.g.
+    # 0.9 - 0.3 vs 0.9 - 0.6000000000000001), so move each edge until the rule as stated holds.
+    # Within a rollout the rule is monotone in time, so a few vectorised steps settle it.
+    start = np.searchsorted(codes, codes, side="left")
+    end = np.searchsorted(codes, codes, side="right")
+
+    def inside(pos: IntArray) -> NDArray[np.bool_]:
+        return np.abs(times[np.clip(pos, 0, codes.size - 1)] - times) < min_gap_s
+
+    while np.any(move := (lo > start) & inside(lo - 1)):
+        lo[move] -= 1
+    while np.any(move := (lo < hi) & ~inside(lo)):
+        lo[move] += 1
+    while np.any(move := (hi < end) & inside(hi)):
+        hi[move] += 1
+    while np.any(move := (hi > lo) & ~inside(hi - 1)):
+        hi[move] -= 1
     return lo, hi
 
 
