@@ -1,0 +1,311 @@
+"""Budgeted selection: audit sample, time gap, spread and takeover boost.
+
+No library implements these rules, so each fast path is compared with a slow, obvious
+reference written here (common practice), plus invariance properties (STYLE.md).
+"""
+
+import numpy as np
+import pytest
+from numpy.testing import assert_array_equal
+from scipy.spatial.distance import cdist
+from scipy.stats import chisquare
+
+from app.sampler import selection as sel
+
+
+def make_round(rng, n=3000, n_rollouts=40, step_s=0.1):
+    """Rollouts of consecutive steps at step_s intervals, shuffled into one array."""
+    rollout = rng.integers(0, n_rollouts, n)
+    times = np.empty(n)
+    for r in np.unique(rollout):
+        where = np.flatnonzero(rollout == r)
+        times[where] = np.arange(where.size) * step_s
+    scores = rng.random(n)
+    return scores, rollout, times
+
+
+def slow_ranked(scores, rollout, times, budget, min_gap_s, taken):
+    """Obvious reference: walk the score order, check every taken state in the same rollout."""
+    order = sorted(range(len(scores)), key=lambda i: (-scores[i], i))
+    taken = list(taken)
+    chosen = []
+    for i in order:
+        if len(chosen) == budget:
+            break
+        if i in taken:
+            continue
+        if any(rollout[j] == rollout[i] and abs(times[j] - times[i]) < min_gap_s for j in taken):
+            continue
+        chosen.append(i)
+        taken.append(i)
+    return chosen
+
+
+def assert_gap_respected(result, rollout, times, min_gap_s):
+    """Every ranked pick is at least min_gap_s from every other pick in its rollout."""
+    idx = result.indices
+    for pos, i in enumerate(idx):
+        if result.reasons[pos] != "ranked":
+            continue
+        others = np.delete(idx, pos)
+        same = rollout[others] == rollout[i]
+        assert np.all(np.abs(times[others][same] - times[i]) >= min_gap_s)
+
+
+def test_matches_slow_reference_with_audit_and_gap():
+    rng = np.random.default_rng(0)
+    scores, rollout, times = make_round(rng, n=1500)
+    result = sel.select(
+        scores,
+        rollout,
+        times,
+        120,
+        min_gap_s=0.55,
+        audit_fraction=0.1,
+        rng=np.random.default_rng(1),
+    )
+    audit = result.indices[result.reasons == "audit"]
+    ranked = result.indices[result.reasons == "ranked"]
+    assert audit.size == 12 and ranked.size == 108  # budget and audit fraction exactly
+    # input is not sorted by (rollout, time), so compare in canonical order
+    assert_array_equal(ranked, slow_ranked(scores, rollout, times, 108, 0.55, audit))
+    assert_gap_respected(result, rollout, times, 0.55)
+    assert np.all(result.reasons[: result.n_audit] == "audit")
+    assert len(set(result.indices.tolist())) == 120
+
+
+def test_without_gap_or_audit_is_plain_top_b_with_index_tie_break():
+    scores = np.array([0.5, 0.9, 0.5, 0.1, 0.9, 0.7])
+    rollout = np.arange(6)
+    times = np.zeros(6)
+    result = sel.select(
+        scores, rollout, times, 4, min_gap_s=0, audit_fraction=0, rng=np.random.default_rng(0)
+    )
+    # hand-checkable: descending, ties by index -> 1, 4, 5, 0
+    assert_array_equal(result.indices, [1, 4, 5, 0])
+    assert_array_equal(result.ranks, [1, 2, 3, 4])
+    assert list(result.reasons) == ["ranked"] * 4
+
+
+def test_gap_by_hand_boundary_is_allowed():
+    # one rollout, steps 1 s apart, gap 2 s: |dt| < 2 is blocked, |dt| = 2 allowed
+    times = np.arange(6.0)
+    scores = np.array([0.1, 0.9, 0.8, 0.7, 0.2, 0.3])
+    result = sel.select(
+        scores, np.zeros(6), times, 6, min_gap_s=2.0, audit_fraction=0, rng=np.random.default_rng(0)
+    )
+    # hand-checkable: take t=1 (0.9); t=2 blocked; t=3 (0.7) allowed; then t=5 (0.3)
+    assert_array_equal(result.indices, [1, 3, 5])
+
+
+def test_rollouts_are_independent_for_the_gap():
+    times = np.zeros(4)
+    rollout = np.array(["a", "b", "a", "c"])
+    result = sel.select(
+        np.array([4.0, 3, 2, 1]),
+        rollout,
+        times,
+        4,
+        min_gap_s=1.0,
+        audit_fraction=0,
+        rng=np.random.default_rng(0),
+    )
+    assert_array_equal(result.indices, [0, 1, 3])  # index 2 shares rollout "a" and time with 0
+
+
+def test_audit_fraction_rounds_half_up_and_is_uniform():
+    rng = np.random.default_rng(2)
+    scores, rollout, times = make_round(rng, n=20)
+    for budget, expected in [(5, 1), (10, 1), (15, 2), (25, 3), (4, 0)]:
+        result = sel.select(
+            scores,
+            rollout,
+            times,
+            budget,
+            min_gap_s=0,
+            audit_fraction=0.1,
+            rng=np.random.default_rng(0),
+        )
+        assert result.n_audit == expected  # floor(0.1 * budget + 0.5)
+    # Uniformity: 4000 draws of a 5-state audit from 20 candidates; chi-square against equal
+    # counts (reference: scipy.stats.chisquare). Scores must not influence the audit.
+    counts = np.zeros(20)
+    draw_rng = np.random.default_rng(123)
+    for _ in range(4000):
+        r = sel.select(scores, rollout, times, 5, min_gap_s=0, audit_fraction=1.0, rng=draw_rng)
+        counts[r.indices] += 1
+    assert counts.sum() == 20_000
+    assert chisquare(counts).pvalue > 1e-3
+
+
+def test_audit_ignores_scores():
+    rng = np.random.default_rng(3)
+    scores, rollout, times = make_round(rng, n=500)
+    a = sel.select(scores, rollout, times, 50, min_gap_s=0.3, rng=np.random.default_rng(9))
+    b = sel.select(-scores, rollout, times, 50, min_gap_s=0.3, rng=np.random.default_rng(9))
+    assert_array_equal(a.indices[: a.n_audit], b.indices[: b.n_audit])
+
+
+def test_same_seed_same_selection_different_seed_different_audit():
+    rng = np.random.default_rng(4)
+    scores, rollout, times = make_round(rng)
+    a = sel.select(scores, rollout, times, 200, min_gap_s=0.5, rng=np.random.default_rng(7))
+    b = sel.select(scores, rollout, times, 200, min_gap_s=0.5, rng=np.random.default_rng(7))
+    c = sel.select(scores, rollout, times, 200, min_gap_s=0.5, rng=np.random.default_rng(8))
+    assert_array_equal(a.indices, b.indices)
+    assert list(a.reasons) == list(b.reasons)
+    assert set(a.indices[: a.n_audit]) != set(c.indices[: c.n_audit])
+
+
+@pytest.mark.parametrize("spread", [False, True])
+def test_shuffling_candidates_does_not_change_the_states_chosen(spread):
+    rng = np.random.default_rng(5)
+    scores, rollout, times = make_round(rng, n=2000)
+    features = rng.standard_normal((2000, 6))
+    kwargs = dict(min_gap_s=0.35, audit_fraction=0.1, features=features, spread=spread)
+    base = sel.select(scores, rollout, times, 100, rng=np.random.default_rng(11), **kwargs)
+    perm = rng.permutation(2000)
+    kwargs["features"] = features[perm]
+    shuffled = sel.select(
+        scores[perm], rollout[perm], times[perm], 100, rng=np.random.default_rng(11), **kwargs
+    )
+    assert_array_equal(perm[shuffled.indices], base.indices)  # mapped back through perm
+    assert list(shuffled.reasons) == list(base.reasons)
+    assert_array_equal(shuffled.ranks, base.ranks)
+
+
+def test_budget_larger_than_candidates_takes_what_gap_allows():
+    rng = np.random.default_rng(6)
+    scores, rollout, times = make_round(rng, n=300, n_rollouts=5)
+    everything = sel.select(scores, rollout, times, 1000, min_gap_s=0, rng=np.random.default_rng(0))
+    assert sorted(everything.indices.tolist()) == list(range(300))
+    assert everything.n_audit == 100  # 10% of the budget, capped at nothing here
+    gapped = sel.select(
+        scores, rollout, times, 1000, min_gap_s=1.0, audit_fraction=0, rng=np.random.default_rng(0)
+    )
+    expected = slow_ranked(scores, rollout, times, 1000, 1.0, [])
+    assert_array_equal(gapped.indices, expected)
+    assert gapped.indices.size < 300
+
+
+def test_spread_is_farthest_first_over_the_gap_pool():
+    rng = np.random.default_rng(7)
+    scores, rollout, times = make_round(rng, n=800)
+    features = rng.standard_normal((800, 3)) * [1.0, 5.0, 0.2]
+    result = sel.select(
+        scores,
+        rollout,
+        times,
+        20,
+        min_gap_s=0.3,
+        audit_fraction=0,
+        rng=np.random.default_rng(0),
+        features=features,
+        spread=True,
+        spread_pool_factor=4,
+    )
+    pool = slow_ranked(scores, rollout, times, 80, 0.3, [])
+    # slow reference: farthest-first from the top-scored pool member, standardised features
+    z = (features - features.mean(axis=0)) / features.std(axis=0)
+    dist = cdist(z[pool], z[pool])  # reference: scipy cdist
+    picks = [0]
+    for _ in range(19):
+        picks.append(int(np.argmax(dist[:, picks].min(axis=1))))
+    assert_array_equal(result.indices, np.array(pool)[picks])
+    assert_gap_respected(result, rollout, times, 0.3)
+
+
+def test_spread_covers_more_clusters_than_plain_ranking():
+    # Scores favour cluster 0 (about 200 states); a pool of 30 x budget also holds the other
+    # clusters, and farthest-first reaches all of them while plain ranking stays in one.
+    rng = np.random.default_rng(8)
+    label = rng.integers(0, 5, 1000)
+    features = np.eye(5)[label] * 10 + rng.standard_normal((1000, 5)) * 0.1
+    scores = rng.random(1000) + (label == 0) * 1.0
+    rollout, times = np.arange(1000), np.zeros(1000)
+    kwargs = dict(min_gap_s=0, audit_fraction=0, features=features, spread_pool_factor=30)
+    plain = sel.select(scores, rollout, times, 10, rng=np.random.default_rng(0), **kwargs)
+    spread = sel.select(
+        scores, rollout, times, 10, rng=np.random.default_rng(0), spread=True, **kwargs
+    )
+    assert len(set(label[plain.indices])) == 1
+    assert len(set(label[spread.indices])) == 5
+    assert spread.indices[0] == plain.indices[0]  # seeded from the top-scored state
+
+
+def test_takeover_boost_by_hand():
+    # rollout a: expert from t=5 to 6, again at t=9; rollout b: no takeover
+    rollout = np.array(["a"] * 10 + ["b"] * 3)
+    times = np.concatenate([np.arange(10.0), np.arange(3.0)])
+    mask = np.zeros(13, dtype=bool)
+    mask[[5, 6, 9]] = True
+    boost = sel.takeover_boost(rollout, times, mask, window_s=2.0, boost=0.3)
+    expected = np.zeros(13)
+    expected[[3, 4, 7, 8]] = 0.3  # 2 s before t=5 and before t=9; expert steps get 0
+    assert_array_equal(boost, expected)
+
+
+def slow_boost(rollout, times, mask, window_s, boost):
+    """Obvious reference: find takeover starts per rollout, boost learner states before them."""
+    out = np.zeros(len(times))
+    for r in set(rollout.tolist()):
+        where = sorted(np.flatnonzero(rollout == r), key=lambda i: times[i])
+        starts = [
+            times[i] for j, i in enumerate(where) if mask[i] and (j == 0 or not mask[where[j - 1]])
+        ]
+        for i in where:
+            if not mask[i] and any(0 < t - times[i] <= window_s for t in starts):
+                out[i] = boost
+    return out
+
+
+def test_takeover_boost_matches_slow_reference_and_is_order_free():
+    rng = np.random.default_rng(9)
+    _, rollout, times = make_round(rng, n=2000, n_rollouts=15)
+    mask = rng.random(2000) < 0.05
+    mask |= np.roll(mask, 1)  # takeovers of a few steps
+    got = sel.takeover_boost(rollout, times, mask, window_s=0.45, boost=0.25)
+    assert_array_equal(got, slow_boost(rollout, times, mask, 0.45, 0.25))
+    assert got.max() == 0.25 and np.count_nonzero(got) > 50
+    perm = rng.permutation(2000)
+    shuffled = sel.takeover_boost(rollout[perm], times[perm], mask[perm], 0.45, 0.25)
+    assert_array_equal(shuffled, got[perm])
+
+
+def test_boost_changes_the_ranking():
+    scores = np.array([0.9, 0.5, 0.4])
+    result = sel.select(
+        scores,
+        np.arange(3),
+        np.zeros(3),
+        1,
+        min_gap_s=0,
+        audit_fraction=0,
+        rng=np.random.default_rng(0),
+        takeover_boost=np.array([0.0, 0.0, 0.6]),
+    )
+    assert_array_equal(result.indices, [2])
+    assert result.effective_scores[2] == pytest.approx(1.0)
+
+
+def test_invalid_parameters_are_refused():
+    s, r, t = np.ones(3), np.zeros(3), np.arange(3.0)
+    with pytest.raises(ValueError, match="budget"):
+        sel.select(s, r, t, -1, min_gap_s=0, rng=np.random.default_rng(0))
+    with pytest.raises(ValueError, match="audit_fraction"):
+        sel.select(s, r, t, 1, min_gap_s=0, audit_fraction=1.5, rng=np.random.default_rng(0))
+    with pytest.raises(ValueError, match="features"):
+        sel.select(s, r, t, 1, min_gap_s=0, spread=True, rng=np.random.default_rng(0))
+    with pytest.raises(ValueError, match="same length"):
+        sel.select(s, r[:2], t, 1, min_gap_s=0, rng=np.random.default_rng(0))
+
+
+def test_gap_rule_holds_at_float_boundaries():
+    # Times 0.1 * k with gap 0.3: 0.9 - 0.6000000000000001 < 0.3 in float64, while
+    # 0.6000000000000001 <= 0.9 - 0.3; the rule as stated (|t - t_taken| < gap) must win.
+    rng = np.random.default_rng(10)
+    scores, rollout, times = make_round(rng, n=1500, n_rollouts=10)
+    result = sel.select(
+        scores, rollout, times, 400, min_gap_s=0.3, audit_fraction=0, rng=np.random.default_rng(0)
+    )
+    assert_array_equal(result.indices, slow_ranked(scores, rollout, times, 400, 0.3, []))
