@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from typing import Literal
 
 import numpy as np
 
@@ -55,7 +56,12 @@ class Ranking:
 
 
 def _uncertainty(
-    steps: RoundSteps, rows: np.ndarray, kind: str, low: np.ndarray, high: np.ndarray, method: str
+    steps: RoundSteps,
+    rows: np.ndarray,
+    kind: Literal["discrete", "continuous"],
+    low: np.ndarray,
+    high: np.ndarray,
+    method: str,
 ) -> tuple[np.ndarray, str]:
     """Uncertainty of the candidate rows from the richest output the learner reported."""
     values = np.full(len(rows), np.nan)
@@ -95,7 +101,7 @@ def rank_round(
     steps: RoundSteps,
     training_features: np.ndarray,
     *,
-    kind: str,
+    kind: Literal["discrete", "continuous"],
     low: np.ndarray,
     high: np.ndarray,
     params: RankParams,
