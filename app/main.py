@@ -10,6 +10,7 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse, RedirectResponse, Response
 from fastapi.staticfiles import StaticFiles
+from sqlalchemy.exc import InterfaceError, OperationalError
 
 from app.config import Settings, get_settings
 from app.db import make_engine, make_session_factory
@@ -29,6 +30,15 @@ async def _domain_error(request: Request, exc: Exception) -> Response:
     if isinstance(exc, Unauthenticated) and _wants_page(request):
         return RedirectResponse(f"/login?next={request.url.path}", status_code=303)
     return JSONResponse({"detail": exc.message}, status_code=exc.status_code)
+
+
+async def _store_unreachable(request: Request, exc: Exception) -> Response:
+    # Only connection-level failures land here; pool_pre_ping reconnects once the store is back.
+    return JSONResponse(
+        {"detail": "the database is unreachable right now; nothing was changed, try again shortly"},
+        status_code=503,
+        headers={"Retry-After": "2"},
+    )
 
 
 async def _validation_error(request: Request, exc: Exception) -> Response:
@@ -63,6 +73,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.session_factory = make_session_factory(engine)
     app.add_exception_handler(ExpertloopError, _domain_error)
     app.add_exception_handler(RequestValidationError, _validation_error)
+    app.add_exception_handler(OperationalError, _store_unreachable)
+    app.add_exception_handler(InterfaceError, _store_unreachable)
 
     from app.auth.router import router as auth_router
     from app.ingest.router import router as ingest_router

@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 from fastapi import APIRouter, Request
-from fastapi.responses import JSONResponse
+from fastapi.responses import JSONResponse, Response
 from sqlalchemy import text
 
+from app.deps import AdminDep
 from app.migrations_state import current_and_head
+from app.system.metrics import render
 
 router = APIRouter(tags=["system"])
 
@@ -33,3 +35,9 @@ def readyz(request: Request) -> JSONResponse:
             status_code=503,
         )
     return JSONResponse({"status": "ready", "schema": current})
+
+
+@router.get("/metrics")
+def metrics(request: Request, _: AdminDep) -> Response:
+    """Prometheus metrics (admin: give the scraper an admin token)."""
+    return Response(render(request.app.state.engine), media_type="text/plain; version=0.0.4")
