@@ -14,10 +14,13 @@ import numpy as np
 from app.errors import InvalidInput
 from app.sampler import scores
 from app.sampler.candidates import RoundSteps
-from app.sampler.novelty import novelty
+from app.sampler.novelty import DEFAULT_EXACT_THRESHOLD, novelty
 from app.sampler.selection import select, takeover_boost
 
 NEUTRAL_PERCENTILE = 0.5
+# Exact search costs about 10 ns per (candidate, training state) pair on our machines: above this
+# many pairs (a couple of seconds) the approximate index answers faster at recall near 1.
+EXACT_PAIR_BUDGET = 2e8
 
 
 @dataclass(frozen=True)
@@ -122,10 +125,12 @@ def rank_round(
         )
     progress(0.2)
     if len(training_features):
+        pairs = float(len(candidates)) * len(training_features)
         novel = novelty(
             steps.features[candidates],
             training_features,
             k=params.novelty_k,
+            exact_threshold=DEFAULT_EXACT_THRESHOLD if pairs <= EXACT_PAIR_BUDGET else 0,
             rng=np.random.default_rng(params.seed),
         )
     else:
