@@ -24,8 +24,15 @@ def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
     cursor.close()
 
 
+# Execution option asking for BEGIN IMMEDIATE on SQLite: the transaction takes the write lock
+# at its start, so reads inside it cannot go stale before its writes (queue claims rely on it).
+# Other backends ignore it; app/queue/locking.py shows the use.
+SQLITE_BEGIN_IMMEDIATE = "expertloop_sqlite_begin_immediate"
+
+
 def _sqlite_begin(conn: Any) -> None:
-    conn.exec_driver_sql("BEGIN")
+    immediate = conn.get_execution_options().get(SQLITE_BEGIN_IMMEDIATE, False)
+    conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
 
 
 def make_engine(url: str) -> Engine:

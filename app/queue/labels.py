@@ -1,0 +1,277 @@
+"""Submitting a label: checked against the loop's action space, idempotent on the client's
+submission id, and optionally copied to the steps just before (span labels)."""
+
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
+
+import numpy as np
+from sqlalchemy import delete, func, insert, select, update
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
+
+from app.errors import Conflict, InvalidInput
+from app.ingest.encode import FLOAT32_LE
+from app.ingest.models import Step
+from app.ingest.validate import ActionSpec
+from app.loops.models import Loop
+from app.loops.schemas import LoopSettings
+from app.queue.locking import write_transaction
+from app.queue.models import ANSWER_ACTION, ANSWER_UNSURE, ITEM_DONE, ITEM_OPEN, Label, Lease
+from app.queue.models import QueueItem as Item
+from app.queue.rules import live_lease, lock_item, loop_settings
+
+# Room is left in the 64-character column for the ".N" suffix of span labels.
+SUBMISSION_ID = re.compile(r"^[A-Za-z0-9_-]{8,48}$")
+MAX_SECONDS_SPENT = 86_400.0
+
+
+@dataclass(frozen=True)
+class Submitted:
+    """The stored label, how many span labels came with it, and whether it was a repeat."""
+
+    label: Label
+    span_labels: int
+    repeated: bool
+
+
+def check_answer(spec: ActionSpec, *, answer: str, action: Any) -> tuple[int | None, bytes | None]:
+    """Validate an answer against the action space; returns (discrete index, continuous bytes).
+
+    Raises InvalidInput naming the field: an index out of range, a vector of the wrong length,
+    a value that is not finite or lies outside its dimension's bounds.
+    """
+    if answer == ANSWER_UNSURE:
+        if action is not None:
+            raise InvalidInput("action: leave it empty when the answer is unsure")
+        return None, None
+    if answer != ANSWER_ACTION:
+        raise InvalidInput(f"answer: expected 'action' or 'unsure', got {answer!r}")
+    if action is None:
+        raise InvalidInput("action: required when the answer is an action")
+    if spec.kind == "discrete":
+        names = ", ".join(f"{i} {n}" for i, n in enumerate(spec.action_names))
+        if isinstance(action, bool) or not isinstance(action, int):
+            raise InvalidInput(f"action: a discrete action is an index ({names}); got {action!r}")
+        if not 0 <= action < len(spec.action_names):
+            raise InvalidInput(f"action: index {action} is out of range ({names})")
+        return action, None
+    if not isinstance(action, list | tuple) or any(
+        isinstance(v, bool) or not isinstance(v, int | float) for v in action
+    ):
+        raise InvalidInput(f"action: a continuous action is a list of numbers; got {action!r}")
+    if len(action) != spec.action_width:
+        raise InvalidInput(
+            f"action: expected {spec.action_width} values ({', '.join(spec.action_names)}), "
+            f"got {len(action)}"
+        )
+    values = np.asarray(action, dtype=np.float64)
+    for i, value in enumerate(values.tolist()):
+        name, unit = spec.action_names[i], spec.units[i]
+        if not math.isfinite(value):
+            raise InvalidInput(f"action[{i}] ({name}): must be a finite number")
+        if not spec.low[i] <= value <= spec.high[i]:
+            raise InvalidInput(
+                f"action[{i}] ({name}): {value:g} is outside its bounds "
+                f"{spec.low[i]:g} to {spec.high[i]:g} {unit}".rstrip()
+            )
+    return None, values.astype(FLOAT32_LE).tobytes()
+
+
+def stored_action(label: Label) -> int | list[float] | None:
+    """A label's action as the API shows it: an index, a vector, or None (unsure)."""
+    if label.action_vec is not None:
+        return np.frombuffer(label.action_vec, dtype=FLOAT32_LE).tolist()
+    return label.action
+
+
+def _check_request(
+    settings: LoopSettings,
+    *,
+    submission_id: str,
+    answer: str,
+    span_steps: int,
+    seconds_spent: float | None,
+) -> None:
+    if not isinstance(submission_id, str) or not SUBMISSION_ID.match(submission_id):
+        raise InvalidInput("submission_id: 8 to 48 letters, digits, '-' or '_' (one per answer)")
+    if span_steps < 0:
+        raise InvalidInput("span_steps: must be 0 or more")
+    if span_steps > 0:
+        if not settings.span_labels:
+            raise InvalidInput("span_steps: span labels are off for this loop (span_labels)")
+        if answer != ANSWER_ACTION:
+            raise InvalidInput("span_steps: only an action can be applied to earlier steps")
+        if span_steps > settings.span_max_steps:
+            raise InvalidInput(
+                f"span_steps: at most {settings.span_max_steps} (span_max_steps), got {span_steps}"
+            )
+    if seconds_spent is not None and not (
+        math.isfinite(seconds_spent) and 0 <= seconds_spent <= MAX_SECONDS_SPENT
+    ):
+        raise InvalidInput(f"seconds_spent: between 0 and {MAX_SECONDS_SPENT:g}")
+
+
+def submit(
+    session: Session,
+    *,
+    loop: Loop,
+    item_id: int,
+    user_id: int,
+    submission_id: str,
+    answer: str,
+    action: Any,
+    span_steps: int = 0,
+    seconds_spent: float | None = None,
+    now: datetime,
+) -> Submitted:
+    """Store an annotator's answer on an item they hold a live lease on.
+
+    A repeat with the same submission id returns the stored label (nothing new is written); the
+    id reused on another item is a Conflict, as is a submit without a live lease. The item is
+    done when `labels_done` reaches `labels_needed`. With `span_steps`, the same action is also
+    stored for that many steps just before (within the context window), flagged as span labels.
+    """
+    settings = loop_settings(loop)
+    _check_request(
+        settings,
+        submission_id=submission_id,
+        answer=answer,
+        span_steps=span_steps,
+        seconds_spent=seconds_spent,
+    )
+    index, vector = check_answer(
+        ActionSpec.from_loop(loop.features, loop.action_space), answer=answer, action=action
+    )
+    try:
+        with write_transaction(session):
+            item = lock_item(session, loop=loop, item_id=item_id)
+            stored = _by_submission(session, submission_id)
+            if stored is not None:
+                return _repeat(session, stored, item_id=item_id, user_id=user_id)
+            if _labelled(session, item=item, user_id=user_id):
+                raise Conflict(f"you already labelled item {item_id}")
+            if live_lease(session, item_id=item_id, user_id=user_id, now=now) is None:
+                raise Conflict(
+                    f"you hold no live claim on item {item_id} (it lapsed or was never taken); "
+                    "claim the next item"
+                )
+            if item.status != ITEM_OPEN:
+                raise Conflict(f"item {item_id} already has all its labels")
+            earlier = _preceding_steps(
+                session, step_id=item.step_id, count=span_steps, seconds=settings.context_seconds
+            )
+            label = Label(
+                item_id=item.id,
+                step_id=item.step_id,
+                round_id=item.round_id,
+                user_id=user_id,
+                submission_id=submission_id,
+                answer=answer,
+                action=index,
+                action_vec=vector,
+                learner_shown=item.show_learner,
+                span=False,
+                seconds_spent=seconds_spent,
+                created_at=now,
+            )
+            session.add(label)
+            session.flush()
+            if earlier:
+                session.execute(
+                    insert(Label),
+                    [
+                        {
+                            "item_id": None,
+                            "step_id": step_id,
+                            "round_id": round_id,
+                            "user_id": user_id,
+                            "submission_id": f"{submission_id}.{k}",
+                            "answer": answer,
+                            "action": index,
+                            "action_vec": vector,
+                            "learner_shown": False,
+                            "span": True,
+                            "span_anchor_id": label.id,
+                            "created_at": now,
+                        }
+                        for k, (step_id, round_id) in enumerate(earlier, start=1)
+                    ],
+                )
+            done = item.labels_done + 1 >= item.labels_needed
+            session.execute(
+                update(Item)
+                .where(Item.id == item.id)
+                .values(labels_done=Item.labels_done + 1, status=ITEM_DONE if done else ITEM_OPEN)
+            )
+            # a finished item frees every lease on it (only lapsed ones can be left by then)
+            freed = delete(Lease).where(Lease.item_id == item.id)
+            session.execute(freed if done else freed.where(Lease.user_id == user_id))
+            return Submitted(label=label, span_labels=len(earlier), repeated=False)
+    except IntegrityError:
+        # a concurrent submit with the same id won the race; the unique column decided it
+        stored = _by_submission(session, submission_id)
+        if stored is None:
+            raise
+        return _repeat(session, stored, item_id=item_id, user_id=user_id)
+
+
+def _by_submission(session: Session, submission_id: str) -> Label | None:
+    return session.scalar(
+        select(Label)
+        .where(Label.submission_id == submission_id)
+        .execution_options(populate_existing=True)
+    )
+
+
+def _repeat(session: Session, stored: Label, *, item_id: int, user_id: int) -> Submitted:
+    if stored.item_id != item_id or stored.user_id != user_id or stored.span:
+        raise Conflict(
+            f"submission id '{stored.submission_id}' was already used for another answer; "
+            "send a new id with each answer"
+        )
+    spans = session.scalar(
+        select(func.count()).select_from(Label).where(Label.span_anchor_id == stored.id)
+    )
+    return Submitted(label=stored, span_labels=int(spans or 0), repeated=True)
+
+
+def _labelled(session: Session, *, item: Item, user_id: int) -> bool:
+    found = session.scalar(
+        select(Label.id).where(
+            Label.step_id == item.step_id, Label.item_id == item.id, Label.user_id == user_id
+        )
+    )
+    return found is not None
+
+
+def _preceding_steps(
+    session: Session, *, step_id: int, count: int, seconds: float
+) -> list[tuple[int, int]]:
+    """(step id, round id) of the `count` steps just before a state, nearest first."""
+    if count == 0:
+        return []
+    anchor = session.execute(
+        select(Step.rollout_id, Step.step_index, Step.time_s).where(Step.id == step_id)
+    ).one()
+    # the same window the bench's context view shows (reads.state_with_context)
+    rows = session.execute(
+        select(Step.id, Step.round_id)
+        .where(
+            Step.rollout_id == anchor.rollout_id,
+            Step.step_index < anchor.step_index,
+            Step.time_s >= anchor.time_s - seconds,
+        )
+        .order_by(Step.step_index.desc())
+        .limit(count)
+    ).all()
+    if len(rows) < count:
+        raise InvalidInput(
+            f"span_steps: only {len(rows)} steps precede this state within its "
+            f"{seconds:g} s context; ask for at most that many"
+        )
+    return [(int(r.id), int(r.round_id)) for r in rows]

@@ -1,0 +1,143 @@
+"""How far the queue has come: an annotator's progress and pace, and a round's queue counts."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from datetime import UTC, datetime
+
+import numpy as np
+from sqlalchemy import case, func, select
+from sqlalchemy.orm import Session
+
+from app.loops.models import Loop, Round
+from app.queue.models import ANSWER_UNSURE, ITEM_DONE, ITEM_OPEN, Label, Lease, QueueItem, Skip
+from app.queue.rules import answered_by, rounds_of
+from app.reports.stats import labels_per_hour
+
+
+@dataclass(frozen=True)
+class Progress:
+    """An annotator's day on one loop.
+
+    ``left_for_you`` counts open items the annotator has neither labelled nor skipped;
+    ``labels_missing`` counts the labels all open items still need from anyone. The pace is
+    the report's labels-per-active-hour over today's labels (idle gaps excluded), None until
+    two labels give a timed gap.
+    """
+
+    labelled_today: int
+    left_for_you: int
+    labels_missing: int
+    seconds_per_label: float | None
+    expected_seconds_left: float | None
+
+
+@dataclass(frozen=True)
+class RoundQueue:
+    """Counts of a round's queue, for admins."""
+
+    items: int
+    open: int
+    done: int
+    labels_needed: int
+    labels: int
+    unsure: int
+    span_labels: int
+    live_leases: int
+    skips: int
+    learner_shown_items: int
+
+
+def _aware(moment: datetime) -> datetime:
+    # SQLite hands timestamps back without a zone; everything we store is UTC.
+    return moment if moment.tzinfo else moment.replace(tzinfo=UTC)
+
+
+def progress(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Progress:
+    """Labelled today (UTC day), left in the queue, and the expected time left at today's pace."""
+    day_start = now.astimezone(UTC).replace(hour=0, minute=0, second=0, microsecond=0)
+    times = session.scalars(
+        select(Label.created_at).where(
+            Label.user_id == user_id,
+            Label.span.is_(False),
+            Label.round_id.in_(rounds_of(loop.id)),
+            Label.created_at >= day_start,
+        )
+    ).all()
+    in_loop = QueueItem.round_id.in_(rounds_of(loop.id))
+    left = session.scalar(
+        select(func.count())
+        .select_from(QueueItem)
+        .where(in_loop, QueueItem.status == ITEM_OPEN, ~answered_by(user_id))
+    )
+    missing = session.scalar(
+        select(func.coalesce(func.sum(QueueItem.labels_needed - QueueItem.labels_done), 0)).where(
+            in_loop, QueueItem.status == ITEM_OPEN
+        )
+    )
+    seconds_per_label = None
+    if len(times) >= 2:
+        pace = labels_per_hour(np.array([_aware(t).timestamp() for t in times]))
+        if math.isfinite(pace.labels_per_hour) and pace.labels_per_hour > 0:
+            seconds_per_label = 3600.0 / pace.labels_per_hour
+    left_for_you = int(left or 0)
+    return Progress(
+        labelled_today=len(times),
+        left_for_you=left_for_you,
+        labels_missing=int(missing or 0),
+        seconds_per_label=seconds_per_label,
+        expected_seconds_left=None
+        if seconds_per_label is None
+        else seconds_per_label * left_for_you,
+    )
+
+
+def round_queue(session: Session, *, rnd: Round, now: datetime) -> RoundQueue:
+    """Items by status, labels by kind, live leases and skips of one round's queue."""
+    items = session.execute(
+        select(
+            func.count(),
+            func.coalesce(func.sum(case((QueueItem.status == ITEM_OPEN, 1), else_=0)), 0),
+            func.coalesce(func.sum(case((QueueItem.status == ITEM_DONE, 1), else_=0)), 0),
+            func.coalesce(func.sum(QueueItem.labels_needed), 0),
+            func.coalesce(func.sum(case((QueueItem.show_learner.is_(True), 1), else_=0)), 0),
+        ).where(QueueItem.round_id == rnd.id)
+    ).one()
+    labels = session.execute(
+        select(
+            func.coalesce(func.sum(case((Label.span.is_(False), 1), else_=0)), 0),
+            func.coalesce(
+                func.sum(
+                    case(((Label.span.is_(False)) & (Label.answer == ANSWER_UNSURE), 1), else_=0)
+                ),
+                0,
+            ),
+            func.coalesce(func.sum(case((Label.span.is_(True), 1), else_=0)), 0),
+        ).where(Label.round_id == rnd.id)
+    ).one()
+    of_round = QueueItem.round_id == rnd.id
+    leases = session.scalar(
+        select(func.count())
+        .select_from(Lease)
+        .join(QueueItem, QueueItem.id == Lease.item_id)
+        .where(of_round, Lease.expires_at > now)
+    )
+    skips = session.scalar(
+        select(func.count())
+        .select_from(Skip)
+        .join(QueueItem, QueueItem.id == Skip.item_id)
+        .where(of_round)
+    )
+    return RoundQueue(
+        items=int(items[0]),
+        open=int(items[1]),
+        done=int(items[2]),
+        labels_needed=int(items[3]),
+        labels=int(labels[0]),
+        unsure=int(labels[1]),
+        span_labels=int(labels[2]),
+        live_leases=int(leases or 0),
+        skips=int(skips or 0),
+        learner_shown_items=int(items[4]),
+    )

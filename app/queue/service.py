@@ -1,0 +1,255 @@
+"""The relabelling queue: enqueue a round's selected states, claim them with leases, renew, skip.
+
+Submitting labels lives in `app.queue.labels`, progress in `app.queue.progress`; both are
+re-exported here so other domains import one module (`from app.queue import service`).
+
+Claim rules, for an annotator on a loop: the item is open, `labels_done` plus the live leases of
+other annotators is below `labels_needed`, and the annotator has neither labelled nor skipped it.
+An annotator holding a live lease gets that item back (resuming). Every write runs in
+`write_transaction`: rows locked with FOR UPDATE (SKIP LOCKED for claims) on PostgreSQL, BEGIN
+IMMEDIATE on SQLite.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+
+import numpy as np
+from sqlalchemy import delete, func, insert, or_, select, update
+from sqlalchemy.orm import Session
+
+from app.auth.models import User
+from app.errors import Conflict, InvalidInput
+from app.ingest.models import Step
+from app.loops.models import Loop, Round
+from app.queue.labels import Submitted, submit
+from app.queue.locking import is_postgresql, write_transaction
+from app.queue.models import ITEM_OPEN, Label, Lease, QueueItem, Skip
+from app.queue.progress import Progress, RoundQueue, progress, round_queue
+from app.queue.rules import has_room, lock_item, loop_settings, room_for, rounds_of, take_lease
+from app.sampler.models import SelectedState, Selection
+
+__all__ = [
+    "Claim",
+    "Progress",
+    "RoundQueue",
+    "Submitted",
+    "claim_next",
+    "enqueue_selection",
+    "enqueue_steps",
+    "loop_settings",
+    "progress",
+    "renew",
+    "round_queue",
+    "skip",
+    "submit",
+]
+
+
+@dataclass(frozen=True)
+class Claim:
+    """An item held by an annotator until `expires_at` (unless renewed)."""
+
+    item: QueueItem
+    expires_at: datetime
+
+
+# --- enqueue -------------------------------------------------------------------------------
+
+
+def enqueue_selection(session: Session, *, rnd: Round, selection: Selection, loop: Loop) -> int:
+    """Queue a selection's states in rank order; returns how many items were added.
+
+    Audit states keep the places the selection gave them, and nothing on an item tells its
+    reason. Whether the bench shows the learner's action is drawn once per item from a generator
+    seeded with the selection's seed. Does not commit: the caller commits with the selection.
+    """
+    if selection.round_id != rnd.id or rnd.loop_id != loop.id:
+        raise InvalidInput(f"selection {selection.id} does not belong to round {rnd.number}")
+    rows = session.execute(
+        select(SelectedState.id, SelectedState.step_id)
+        .where(SelectedState.selection_id == selection.id)
+        .order_by(SelectedState.rank, SelectedState.id)
+    ).all()
+    return _enqueue(
+        session,
+        rnd=rnd,
+        loop=loop,
+        step_ids=[r.step_id for r in rows],
+        selected_ids=[r.id for r in rows],
+        rng=np.random.default_rng(selection.seed),
+    )
+
+
+def enqueue_steps(
+    session: Session, *, rnd: Round, loop: Loop, step_ids: Sequence[int], seed: int = 0
+) -> int:
+    """Queue steps of a round in the given order, without a selection (development, tests)."""
+    wanted = list(dict.fromkeys(int(s) for s in step_ids))
+    found = set(
+        session.scalars(select(Step.id).where(Step.id.in_(wanted), Step.round_id == rnd.id))
+    )
+    missing = [s for s in wanted if s not in found]
+    if missing:
+        raise InvalidInput(f"step_ids: {missing[:10]} are not states of round {rnd.number}")
+    return _enqueue(
+        session,
+        rnd=rnd,
+        loop=loop,
+        step_ids=wanted,
+        selected_ids=[None] * len(wanted),
+        rng=np.random.default_rng(seed),
+    )
+
+
+def _enqueue(
+    session: Session,
+    *,
+    rnd: Round,
+    loop: Loop,
+    step_ids: list[int],
+    selected_ids: list[int | None],
+    rng: np.random.Generator,
+) -> int:
+    settings = loop_settings(loop)
+    # One draw per state in queue order, so the shown/hidden split is reproducible from the seed.
+    draws = rng.random(len(step_ids))
+    with_learner = set(
+        session.scalars(
+            select(Step.id).where(
+                Step.id.in_(step_ids),
+                or_(Step.learner_action.is_not(None), Step.learner_action_vec.is_not(None)),
+            )
+        )
+    )
+    queued = set(
+        session.scalars(
+            select(QueueItem.step_id).where(
+                QueueItem.round_id == rnd.id, QueueItem.step_id.in_(step_ids)
+            )
+        )
+    )
+    last = session.scalar(select(func.max(QueueItem.position)).where(QueueItem.round_id == rnd.id))
+    position = -1 if last is None else int(last)
+    rows = []
+    for step_id, selected_id, draw in zip(step_ids, selected_ids, draws.tolist(), strict=True):
+        if step_id in queued:
+            continue
+        queued.add(step_id)
+        position += 1
+        rows.append(
+            {
+                "round_id": rnd.id,
+                "step_id": step_id,
+                "selected_state_id": selected_id,
+                "position": position,
+                "labels_needed": settings.labels_per_state,
+                "labels_done": 0,
+                # nothing to show where the learner did not act
+                "show_learner": bool(draw < settings.show_learner_fraction)
+                and step_id in with_learner,
+                "status": ITEM_OPEN,
+            }
+        )
+    if rows:
+        session.execute(insert(QueueItem), rows)
+    session.flush()
+    return len(rows)
+
+
+# --- claim, renew, skip --------------------------------------------------------------------
+
+
+def claim_next(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Claim | None:
+    """Lease the next item for an annotator (or renew the one they hold); None when none is left.
+
+    PostgreSQL: the candidate row is locked with FOR UPDATE SKIP LOCKED, then its room is checked
+    again in a statement of its own, because a row unlocked by a claim that committed meanwhile
+    was judged on the older snapshot. SQLite: the whole claim runs under BEGIN IMMEDIATE.
+    """
+    expires_at = now + timedelta(seconds=loop_settings(loop).lease_seconds)
+    postgres = is_postgresql(session)
+    with write_transaction(session):
+        if postgres:  # one claim at a time per annotator, so a double click takes one lease
+            session.execute(
+                select(User.id).where(User.id == user_id).with_for_update(key_share=True)
+            )
+        held = session.execute(
+            select(Lease.id, Lease.item_id)
+            .join(QueueItem, QueueItem.id == Lease.item_id)
+            .where(
+                Lease.user_id == user_id,
+                Lease.expires_at > now,
+                QueueItem.status == ITEM_OPEN,
+                QueueItem.round_id.in_(rounds_of(loop.id)),
+            )
+            .order_by(Lease.claimed_at, Lease.id)
+            .limit(1)
+        ).first()
+        if held is not None:
+            session.execute(update(Lease).where(Lease.id == held.id).values(expires_at=expires_at))
+            item = lock_item(session, loop=loop, item_id=held.item_id, lock=False)
+            return Claim(item=item, expires_at=expires_at)
+        passed: list[int] = []
+        while True:
+            query = (
+                select(QueueItem)
+                .where(QueueItem.round_id.in_(rounds_of(loop.id)), *room_for(user_id, now))
+                .order_by(QueueItem.round_id, QueueItem.position)
+                .limit(1)
+                .execution_options(populate_existing=True)
+            )
+            if passed:
+                query = query.where(QueueItem.id.not_in(passed))
+            if postgres:
+                query = query.with_for_update(skip_locked=True, of=QueueItem)
+            candidate = session.scalars(query).first()
+            if candidate is None:
+                return None
+            if has_room(session, item_id=candidate.id, user_id=user_id, now=now):
+                take_lease(
+                    session, item_id=candidate.id, user_id=user_id, now=now, expires_at=expires_at
+                )
+                return Claim(item=candidate, expires_at=expires_at)
+            passed.append(candidate.id)
+
+
+def renew(session: Session, *, loop: Loop, item_id: int, user_id: int, now: datetime) -> datetime:
+    """Extend the user's lease on an item; a lapsed lease is taken again if the item has room."""
+    expires_at = now + timedelta(seconds=loop_settings(loop).lease_seconds)
+    with write_transaction(session):
+        lock_item(session, loop=loop, item_id=item_id)
+        renewed = session.execute(
+            update(Lease)
+            .where(Lease.item_id == item_id, Lease.user_id == user_id, Lease.expires_at > now)
+            .values(expires_at=expires_at)
+        )
+        if renewed.rowcount == 0:  # type: ignore[attr-defined]
+            if not has_room(session, item_id=item_id, user_id=user_id, now=now):
+                raise Conflict(
+                    f"you hold no claim on item {item_id} (it lapsed or was never taken) and the "
+                    "item is no longer free for you; claim the next item"
+                )
+            take_lease(session, item_id=item_id, user_id=user_id, now=now, expires_at=expires_at)
+    return expires_at
+
+
+def skip(session: Session, *, loop: Loop, item_id: int, user_id: int, now: datetime) -> None:
+    """Pass on an item: the lease is returned and the item is not offered to the user again."""
+    with write_transaction(session):
+        item = lock_item(session, loop=loop, item_id=item_id)
+        labelled = session.scalar(
+            select(Label.id).where(
+                Label.step_id == item.step_id, Label.item_id == item.id, Label.user_id == user_id
+            )
+        )
+        if labelled is not None:
+            raise Conflict(f"you already labelled item {item_id}; a label cannot be skipped")
+        session.execute(delete(Lease).where(Lease.item_id == item_id, Lease.user_id == user_id))
+        already = session.scalar(
+            select(Skip.id).where(Skip.item_id == item_id, Skip.user_id == user_id)
+        )
+        if already is None:
+            session.execute(insert(Skip).values(item_id=item_id, user_id=user_id, created_at=now))
