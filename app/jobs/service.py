@@ -17,6 +17,7 @@ from sqlalchemy.orm import Session
 from app.errors import Conflict, NotFound
 from app.jobs.models import JOB_DONE, JOB_FAILED, JOB_QUEUED, JOB_RUNNING, Job
 from app.models import utcnow
+from app.queue.locking import write_transaction
 
 DEFAULT_LEASE_SECONDS = 30.0
 
@@ -85,23 +86,25 @@ def claim(
     )
     if session.get_bind().dialect.name == "postgresql":
         claimable = claimable.with_for_update(skip_locked=True)
-    job_id = session.scalar(
-        update(Job)
-        .where(Job.id == claimable.scalar_subquery())
-        .values(
-            status=JOB_RUNNING,
-            worker=worker,
-            lease_until=now + timedelta(seconds=lease_seconds),
-            attempts=Job.attempts + 1,
-            started_at=now,
+    with write_transaction(session):
+        job_id = session.scalar(
+            update(Job)
+            .where(Job.id == claimable.scalar_subquery())
+            .values(
+                status=JOB_RUNNING,
+                worker=worker,
+                lease_until=now + timedelta(seconds=lease_seconds),
+                attempts=Job.attempts + 1,
+                started_at=now,
+            )
+            .returning(Job.id)
         )
-        .returning(Job.id)
-    )
-    session.commit()
     if job_id is None:
         return None
     session.expire_all()
-    return session.get(Job, job_id)
+    job = session.get(Job, job_id)
+    session.commit()  # end the read: a stale SQLite read transaction could not write later
+    return job
 
 
 def heartbeat(

@@ -28,6 +28,9 @@ def rank_job(ctx: JobContext) -> dict[str, Any]:
         steps = load_round_steps(session, loop=loop, rnd=rnd)
         cutoff = training_set.current_cutoff(session, loop=loop, up_to_round=rnd.number)
         _, training = training_set.training_features(session, loop=loop, cutoff=cutoff)
+        # End the read transaction: on SQLite a transaction whose snapshot predates another
+        # connection's write (our own heartbeats) may not write later.
+        session.commit()
         ctx.progress(0.25, force=True)
         space = loop.action_space
         if space["kind"] == "continuous":

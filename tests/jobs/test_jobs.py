@@ -100,19 +100,24 @@ def test_concurrent_claims_never_share_a_job(app):
         for i in range(40):
             service.enqueue(session, kind="test-none", params={"i": i})
     claimed: list[int] = []
+    errors: list[BaseException] = []
     lock = threading.Lock()
 
     def worker(name: str) -> None:
-        with factory() as session:
-            while (job := service.claim(session, worker=name)) is not None:
-                with lock:
-                    claimed.append(job.id)
+        try:
+            with factory() as session:
+                while (job := service.claim(session, worker=name)) is not None:
+                    with lock:
+                        claimed.append(job.id)
+        except BaseException as exc:  # a failed claim must fail the test, not vanish
+            errors.append(exc)
 
     threads = [threading.Thread(target=worker, args=(f"w{i}",)) for i in range(6)]
     for t in threads:
         t.start()
     for t in threads:
         t.join()
+    assert errors == []
     assert sorted(claimed) == list(range(1, 41))  # every job once, none twice
     with factory() as session:
         assert all(j.status == JOB_RUNNING for j in session.query(Job))
