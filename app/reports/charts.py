@@ -78,18 +78,22 @@ def _tick_text(value: float, ticks: Sequence[float]) -> str:
     return f"{value:.3g}"
 
 
-def _marker(shape: Marker, x: float, y: float, colour: str, hollow: bool) -> str:
-    fill = PAPER if hollow else colour
-    paint = f'fill="{fill}" stroke="{colour}" stroke-width="1.8"'
+def _marker(shape: Marker, x: float, y: float, colour: str, hollow: bool, size: float = 1.0) -> str:
+    paint = f'fill="{PAPER if hollow else colour}" stroke="{colour}" stroke-width="1.8"'
+    r = 4.5 * size
     if shape == "circle":
-        return f'<circle cx="{x:.1f}" cy="{y:.1f}" r="4.5" {paint}/>'
+        return f'<circle cx="{x:.1f}" cy="{y:.1f}" r="{r:.1f}" {paint}/>'
     if shape == "square":
-        return f'<rect x="{x - 4:.1f}" y="{y - 4:.1f}" width="8" height="8" {paint}/>'
+        side = 2 * r - 1
+        return f'<rect x="{x - side / 2:.1f}" y="{y - side / 2:.1f}" width="{side:.1f}" ' + (
+            f'height="{side:.1f}" {paint}/>'
+        )
     if shape == "triangle":
-        pts = f"{x:.1f},{y - 5.5:.1f} {x + 5:.1f},{y + 3.5:.1f} {x - 5:.1f},{y + 3.5:.1f}"
-        return f'<polygon points="{pts}" {paint}/>'
-    pts = f"{x:.1f},{y - 5.5:.1f} {x + 5.5:.1f},{y:.1f} {x:.1f},{y + 5.5:.1f} {x - 5.5:.1f},{y:.1f}"
-    return f'<polygon points="{pts}" {paint}/>'
+        corners = [(x, y - 1.2 * r), (x + 1.1 * r, y + 0.8 * r), (x - 1.1 * r, y + 0.8 * r)]
+    else:  # diamond
+        corners = [(x, y - 1.2 * r), (x + 1.2 * r, y), (x, y + 1.2 * r), (x - 1.2 * r, y)]
+    points = " ".join(f"{a:.1f},{b:.1f}" for a, b in corners)
+    return f'<polygon points="{points}" {paint}/>'
 
 
 def _open(chart_id: str, title: str, description: str, width: int, height: int) -> list[str]:
@@ -100,7 +104,8 @@ def _open(chart_id: str, title: str, description: str, width: int, height: int) 
         f'aria-describedby="{ident}-desc" {FONT} font-size="12">',
         f'<title id="{ident}-title">{escape(title)}</title>',
         f'<desc id="{ident}-desc">{escape(description)}</desc>',
-        f'<rect x="0" y="0" width="{width}" height="{height}" fill="#fff" stroke="{GRID}"/>',
+        f'<rect x="0.5" y="0.5" width="{width - 1}" height="{height - 1}" fill="#fff" '
+        f'stroke="{GRID}"/>',
     ]
 
 
@@ -128,19 +133,24 @@ def point_chart(
     """
     if len(series) > len(PALETTE):
         raise ValueError(f"at most {len(PALETTE)} series per chart")
-    left, right, top, bottom = 58, 14, 34, 40
+    # series with notes (values withheld) get a row each under the round numbers, where the
+    # note sits beside the series' own marker, so it never collides with the plotted lines
+    noted = [i for i, s in enumerate(series) if any(p.y is None and p.note for p in s.points)]
+    left, right, top, bottom = 58, 14, 34, 40 + 13 * len(noted)
     plot_w, plot_h = width - left - right, height - top - bottom
     parts = _open(chart_id, title, description, width, height)
+    lx = float(left)
     for i, s in enumerate(series):  # legend across the top: marker, line style and name
-        lx = left + i * 150
+        if i:  # room for the previous name, about 0.6 em per character at 12 px
+            lx += 46 + 7.0 * len(series[i - 1].name)
         colour = PALETTE[i]
         dash = ' stroke-dasharray="5 3"' if s.dashed else ""
         parts.append(
-            f'<line x1="{lx}" y1="16" x2="{lx + 22}" y2="16" stroke="{colour}" '
+            f'<line x1="{lx:.1f}" y1="16" x2="{lx + 22:.1f}" y2="16" stroke="{colour}" '
             f'stroke-width="1.5"{dash}/>'
         )
         parts.append(_marker(s.marker, lx + 11, 16, colour, s.hollow))
-        parts.append(f'<text x="{lx + 28}" y="20" fill="{INK}">{escape(s.name)}</text>')
+        parts.append(f'<text x="{lx + 28:.1f}" y="20" fill="{INK}">{escape(s.name)}</text>')
     xs = sorted({p.x for s in series for p in s.points})
     values = [v for s in series for p in s.points for v in (p.y, p.lower, p.upper) if v is not None]
     values = [v for v in values if math.isfinite(v)]
@@ -191,12 +201,13 @@ def point_chart(
         f'<text transform="translate(14 {top + plot_h / 2:.0f}) rotate(-90)" '
         f'text-anchor="middle" fill="{INK}">{escape(y_label)}</text>'
     )
+    # notes need about 60 px between rounds; with more rounds the table beside says it
+    room_for_notes = len(xs) < 2 or (plot_w - 24) / (len(xs) - 1) >= 60
     for i, s in enumerate(series):
         colour, offset = PALETTE[i], (i - (len(series) - 1) / 2) * 8
-        shown = [p for p in s.points if p.y is not None and math.isfinite(p.y)]
-        if len(shown) > 1:
-            path = " ".join(f"{xpos(p.x) + offset:.1f},{ypos(p.y):.1f}" for p in shown)  # type: ignore[arg-type]
-            dash = ' stroke-dasharray="5 3"' if s.dashed else ""
+        dash = ' stroke-dasharray="5 3"' if s.dashed else ""
+        for run in _runs(s.points):  # a missing value breaks the line instead of bridging it
+            path = " ".join(f"{xpos(x) + offset:.1f},{ypos(y):.1f}" for x, y in run)
             parts.append(
                 f'<polyline points="{path}" fill="none" stroke="{colour}" '
                 f'stroke-width="1.5"{dash}/>'
@@ -204,11 +215,14 @@ def point_chart(
         for p in s.points:
             x = xpos(p.x) + offset
             if p.y is None or not math.isfinite(p.y):
-                if p.note:
+                if p.note and room_for_notes:
+                    row_y = top + plot_h + 30 + 13 * noted.index(i)
+                    # marker and text centred under the round, kept inside the frame
+                    start = min(max(x - 24, 4.0), width - 8 - 6 * len(p.note) - 6)
+                    parts.append(_marker(s.marker, start + 3, row_y - 3.5, colour, s.hollow, 0.7))
                     parts.append(
-                        f'<text x="{x:.1f}" y="{top + plot_h - 6 - 12 * i}" '
-                        f'text-anchor="middle" font-size="10" fill="{colour}">'
-                        f"{escape(p.note)}</text>"
+                        f'<text x="{start + 9:.1f}" y="{row_y:.1f}" font-size="10" '
+                        f'fill="{INK}">{escape(p.note)}</text>'
                     )
                 continue
             if p.lower is not None and p.upper is not None:
@@ -220,6 +234,17 @@ def point_chart(
             parts.append(_marker(s.marker, x, ypos(p.y), colour, s.hollow))
     parts.append("</svg>")
     return "".join(parts)
+
+
+def _runs(points: Sequence[Point]) -> list[list[tuple[float, float]]]:
+    """Stretches of consecutive points (in x order) that all have a value, two or more long."""
+    runs: list[list[tuple[float, float]]] = [[]]
+    for p in sorted(points, key=lambda p: p.x):
+        if p.y is None or not math.isfinite(p.y):
+            runs.append([])
+        else:
+            runs[-1].append((p.x, p.y))
+    return [r for r in runs if len(r) > 1]
 
 
 def _number_text(value: float) -> str:

@@ -393,13 +393,12 @@ def annotators_read(
     median in every dimension.
     """
     votes = _multi_votes(labels)
-    consensus = labels.consensus[votes.states][votes.unit] if len(votes.unit) else None
-    if kind.discrete or consensus is None:
-        action, target = votes.action, labels.consensus[votes.states]
-    else:
-        within = np.all(np.abs(votes.action - consensus) <= kind.tolerance, axis=1)
+    target = labels.consensus[votes.states]
+    action = votes.action
+    if not kind.discrete:  # recode as 1 = within tolerance of the median, against target 1
+        within = np.all(np.abs(votes.action - target[votes.unit]) <= kind.tolerance, axis=1)
         action = within.astype(np.int64)
-        target = np.where(_present(labels.consensus[votes.states]), 1, -1)
+        target = np.where(_present(target), 1, -1)
     found = stats.agreement_with_consensus(
         votes.annotators[votes.annotator], votes.unit, action, target
     )

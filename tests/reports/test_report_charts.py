@@ -46,7 +46,8 @@ def test_point_chart_is_an_accessible_image_with_escaped_text():
     assert "audit <sample> & co" in texts  # the legend names each series in words
     assert "too few" in texts  # a missing value says why instead of vanishing
     # series differ by shape as well as colour: circles for one, squares for the other
-    assert len(list(root.iter(f"{SVG}circle"))) == 2  # legend + one point (the other is None)
+    # legend, the one point with a value, and the small marker beside the "too few" note
+    assert len(list(root.iter(f"{SVG}circle"))) == 3
     hollow = [r for r in root.iter(f"{SVG}rect") if r.get("fill") == charts.PAPER]
     assert len(hollow) == 3  # legend + two points, drawn hollow
 
@@ -57,7 +58,7 @@ def test_point_chart_places_values_on_a_linear_axis():
         y_floor=0.0, y_ceiling=1.0, height=260,
     )  # fmt: skip
     root = _parse(svg)
-    top, plot_h = 34, 260 - 34 - 40  # the chart's margins
+    top, plot_h = 34, 260 - 34 - 40 - 13  # the chart's margins, one row for a series' notes
     point = [c for c in root.iter(f"{SVG}circle")][1]
     # linear scale (common practice): 0.5 on a 0..1 axis sits halfway down the plot
     assert float(point.get("cy")) == pytest.approx(top + plot_h / 2, abs=0.06)
@@ -120,3 +121,18 @@ def test_bar_chart_draws_signed_bars_from_zero_with_their_values():
 )
 def test_nice_ticks(low, high, expected):
     assert charts.nice_ticks(low, high) == pytest.approx(expected)
+
+
+def test_a_missing_value_breaks_the_line():
+    points = [
+        charts.Point(1, 0.2),
+        charts.Point(2, 0.3),
+        charts.Point(3, None),
+        charts.Point(4, 0.1),
+    ]
+    svg = charts.point_chart(
+        [charts.Series("kappa", points)], chart_id="g", title="t", description="d", y_label="y"
+    )
+    lines = list(_parse(svg).iter(f"{SVG}polyline"))
+    # rounds 1-2 joined; round 4 stands alone rather than being bridged from round 2
+    assert len(lines) == 1 and len(lines[0].get("points").split()) == 2
