@@ -37,8 +37,8 @@ from app.ingest.models import CONTROL_LEARNER, Rollout, Step
 from app.loops import service as loops_service
 from app.loops.models import Loop, Round
 from app.queue.models import ANSWER_UNSURE, Label
-from app.reports import compute, stats, table
-from app.reports.schemas import CountsRead, LoopReport, RoundReport
+from app.reports import compute, stats
+from app.reports.schemas import CountsRead, RoundReport
 from app.sampler.models import REASON_AUDIT, SelectedState, Selection
 from app.snapshots import training_set as ts
 
@@ -386,16 +386,3 @@ def loop_reports(
                 cache.put(key, found)
         reports.append(found)
     return reports
-
-
-def loop_report(*, loop: Loop, reports: list[RoundReport]) -> LoopReport:
-    """The table across rounds built from the rounds' reports."""
-    rows = [table.report_row(r) for r in reports]
-    return LoopReport(
-        loop=loop.slug,
-        title=loop.title,
-        action_kind="discrete" if ts.is_discrete(loop) else "continuous",
-        min_audit_labels=stats.MIN_AUDIT_LABELS,
-        items=rows,
-        total=len(rows),
-    )

@@ -5,7 +5,9 @@ from __future__ import annotations
 import csv
 import io
 
-from app.reports.schemas import RoundReport, RoundReportRow
+from app.loops.models import Loop
+from app.reports import stats
+from app.reports.schemas import LoopReport, RoundReport, RoundReportRow
 
 
 def report_row(report: RoundReport) -> RoundReportRow:
@@ -50,10 +52,25 @@ def report_row(report: RoundReport) -> RoundReportRow:
     )
 
 
+def loop_table(loop: Loop, reports: list[RoundReport]) -> LoopReport:
+    """The table across rounds built from the rounds' reports."""
+    rows = [report_row(r) for r in reports]
+    return LoopReport(
+        loop=loop.slug,
+        title=loop.title,
+        action_kind="discrete" if loop.action_space["kind"] == "discrete" else "continuous",
+        min_audit_labels=stats.MIN_AUDIT_LABELS,
+        items=rows,
+        total=len(rows),
+    )
+
+
 def rows_csv(rows: list[RoundReportRow]) -> str:
     """CSV text with a header of the row's field names; empty cells for ``None``.
 
     Floats are written with ``repr`` precision so the file round-trips to the JSON values.
+    Text starting with ``= + - @`` gets a leading apostrophe so that a spreadsheet does not
+    run it as a formula (OWASP guidance on CSV injection).
     """
     sink = io.StringIO()
     names = list(RoundReportRow.model_fields)
@@ -61,5 +78,13 @@ def rows_csv(rows: list[RoundReportRow]) -> str:
     writer.writerow(names)
     for row in rows:
         values = row.model_dump()
-        writer.writerow(["" if values[n] is None else values[n] for n in names])
+        writer.writerow([_cell(values[n]) for n in names])
     return sink.getvalue()
+
+
+def _cell(value: object) -> object:
+    if value is None:
+        return ""
+    if isinstance(value, str) and value.startswith(("=", "+", "-", "@")):
+        return "'" + value
+    return value

@@ -175,7 +175,7 @@ def add_selection_and_labels(
                     step_id=spec.step_id,
                     round_id=rnd.id,
                     user_id=spec.user_id,
-                    submission_id=f"test-{number}-{n}",
+                    submission_id=f"{slug}-{number}-{n}",
                     answer=ANSWER_UNSURE if spec.unsure else ANSWER_ACTION,
                     action=None if spec.unsure else spec.action,
                     action_vec=None if spec.unsure else vector,

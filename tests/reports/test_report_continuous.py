@@ -171,3 +171,18 @@ def test_annotator_agreement_within_tolerance_of_the_median(world):
         span_hours = 25.0 * (mine[-1] - mine[0]) / 3600  # labels are written 25 s apart
         assert row.labels == len(mine)
         assert row.labels_per_hour == pytest.approx((len(mine) - 1) / span_hours)
+
+
+def test_round_zero_and_the_page_of_a_continuous_loop(app, client, world, make_user):
+    with app.state.session_factory() as session:
+        loop = loops_service.get_loop(session, slug="aisle-speed")
+        zero = service.round_report(session, loop=loop, number=0)
+    assert zero.counts.labels == 0 and zero.annotators == []
+    assert [a.alpha for a in zero.agreement.krippendorff] == [None, None]
+    reader = make_user("trainer", name="c-reader")
+    response = client.get("/loops/aisle-speed", headers=reader)
+    assert response.status_code == 200
+    assert "α speed_cmd" in response.text and "α curvature" in response.text
+    table = client.get("/api/loops/aisle-speed/report", headers=reader).json()["items"]
+    alphas = [a.alpha for a in world[0].agreement.krippendorff]
+    assert table[1]["krippendorff_alpha"] == min(alphas)  # the weakest dimension
