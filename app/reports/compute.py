@@ -1,6 +1,7 @@
 """Turn a round's arrays into report sections by calling the statistics in ``stats``.
 
-Pure functions: arrays in, report schemas out, no store access. ``service`` loads the arrays.
+Pure functions: arrays in, report schemas out, no store access. ``service`` loads the arrays;
+the annotator sections are in ``annotators``.
 
 Conventions (shared with ``service``)
 -------------------------------------
@@ -15,7 +16,6 @@ Conventions (shared with ``service``)
 
 from __future__ import annotations
 
-from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
@@ -23,15 +23,10 @@ from numpy.typing import NDArray
 
 from app.reports import stats
 from app.reports.schemas import (
-    AgreementRead,
-    AlphaRead,
-    AnnotatorRead,
     FeatureShiftRead,
-    PaceRead,
     RateRead,
     SampleRead,
     ShiftRead,
-    ShownHiddenRead,
 )
 
 MOST_SHIFTED = 10
@@ -85,16 +80,17 @@ class LabelArrays:
 
     def voted(self) -> NDArray[np.bool_]:
         """Labels that name an action (not unsure)."""
-        return _present(self.action)
+        return present(self.action)
 
 
-def _present(actions: np.ndarray) -> NDArray[np.bool_]:
+def present(actions: np.ndarray) -> NDArray[np.bool_]:
+    """Which actions are given: index >= 0 (discrete) or a row without ``nan`` (continuous)."""
     if actions.ndim == 1:
         return np.asarray(actions >= 0)
     return np.asarray(~np.isnan(actions).any(axis=1))
 
 
-def _number(value: float) -> float | None:
+def json_number(value: float) -> float | None:
     """A float for JSON: ``None`` where the statistic is undefined."""
     return float(value) if np.isfinite(value) else None
 
@@ -117,9 +113,9 @@ def rate_read(found: stats.Disagreement, minimum: int, what: str) -> RateRead:
         n=found.n,
         n_excluded=found.n_excluded,
         quoted=quoted,
-        rate=_number(found.rate) if quoted else None,
-        lower=_number(found.lower) if quoted else None,
-        upper=_number(found.upper) if quoted else None,
+        rate=json_number(found.rate) if quoted else None,
+        lower=json_number(found.lower) if quoted else None,
+        upper=json_number(found.upper) if quoted else None,
         mean_absolute_error=[float(v) for v in mae] if quoted and mae is not None else None,
         note=note,
     )
@@ -142,7 +138,7 @@ def continuous_disagreement_by_change(
     learner_action, expert_action, previous_learner_action : ndarray of shape (n, n_dims)
     tolerance : ndarray of shape (n_dims,)
     """
-    keep = _present(expert_action) & _present(previous_learner_action)
+    keep = present(expert_action) & present(previous_learner_action)
     excluded = int((~keep).sum())
     change = np.zeros(len(keep), dtype=bool)
     change[keep] = np.any(
@@ -174,7 +170,7 @@ def sample_read(reason: str, arrays: SampleArrays, kind: ActionKind, minimum: in
     so they count in ``n_excluded``).
     """
     learner, expert, previous = arrays.learner, arrays.expert.copy(), arrays.previous
-    missing_learner = ~_present(learner)
+    missing_learner = ~present(learner)
     what = "audit labels" if reason == "audit" else "labels in the ranked sample"
     if kind.discrete:
         expert[missing_learner] = -1
@@ -272,196 +268,11 @@ def shift_read(
             FeatureShiftRead(
                 name=s.name,
                 unit=units[s.name],
-                smd=_number(s.smd),
+                smd=json_number(s.smd),
                 mean_training=s.mean_x,
                 mean_round=s.mean_y,
                 pooled_std=s.pooled_std,
             )
             for s in shifts
         ],
-    )
-
-
-# --- annotators ------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class _MultiVotes:
-    """Votes on states with at least two, one per (annotator, state): the last one given."""
-
-    annotator: NDArray[np.int64]  # index into annotators
-    annotators: NDArray[np.int64]  # user ids
-    unit: NDArray[np.int64]  # index into states
-    states: NDArray[np.int64]  # index into the consensus arrays
-    action: np.ndarray
-    all_label_index: NDArray[np.int64]  # position in LabelArrays
-
-
-def _multi_votes(labels: LabelArrays) -> _MultiVotes:
-    voted = np.flatnonzero(labels.voted())
-    # keep the last vote of an annotator on a state (the queue allows one; be safe anyway)
-    pair = np.stack([labels.state[voted], labels.annotator[voted]], axis=1)
-    _, first_from_end = np.unique(pair[::-1], axis=0, return_index=True)
-    voted = np.sort(voted[::-1][first_from_end])
-    per_state = np.bincount(labels.state[voted], minlength=len(labels.consensus))
-    voted = voted[per_state[labels.state[voted]] >= 2]
-    annotators, who = np.unique(labels.annotator[voted], return_inverse=True)
-    states, unit = np.unique(labels.state[voted], return_inverse=True)
-    return _MultiVotes(
-        who.astype(np.int64),
-        annotators.astype(np.int64),
-        unit.astype(np.int64),
-        states.astype(np.int64),
-        labels.action[voted],
-        voted.astype(np.int64),
-    )
-
-
-def agreement_read(labels: LabelArrays, kind: ActionKind) -> AgreementRead:
-    """Cohen, Fleiss and Krippendorff agreement on states with at least two votes.
-
-    Unsure answers are not votes and are left out. Cohen's kappa is given when exactly two
-    annotators voted on these states (then every such state has both their votes); Fleiss'
-    kappa when every such state has the same number of votes; Krippendorff's alpha always
-    (nominal for discrete actions, interval per dimension for continuous ones).
-    """
-    votes = _multi_votes(labels)
-    n_states, n_annotators = len(votes.states), len(votes.annotators)
-    if n_states == 0:
-        alphas = [AlphaRead(dimension=None, level="nominal", alpha=None)]
-        if not kind.discrete:
-            alphas = [
-                AlphaRead(dimension=d, level="interval", alpha=None) for d in kind.dimension_names
-            ]
-        return AgreementRead(
-            n_states=0,
-            n_annotators=0,
-            n_votes=0,
-            cohen_kappa=None,
-            fleiss_kappa=None,
-            krippendorff=alphas,
-            note="no state has two or more votes, so annotator agreement cannot be measured",
-        )
-    per_state = np.bincount(votes.unit, minlength=n_states)
-    cohen = fleiss = None
-    if kind.discrete:
-        reliability = np.full((n_annotators, n_states), np.nan)
-        reliability[votes.annotator, votes.unit] = votes.action
-        if n_annotators == 2:
-            cohen = _number(
-                stats.cohen_kappa(
-                    reliability[0].astype(np.int64),
-                    reliability[1].astype(np.int64),
-                    kind.n_actions,
-                )
-            )
-        if np.all(per_state == per_state[0]):
-            table = np.bincount(
-                votes.unit * kind.n_actions + votes.action, minlength=n_states * kind.n_actions
-            ).reshape(n_states, kind.n_actions)
-            fleiss = _number(stats.fleiss_kappa(table))
-        alphas = [
-            AlphaRead(
-                dimension=None,
-                level="nominal",
-                alpha=_number(stats.krippendorff_alpha(reliability, "nominal")),
-            )
-        ]
-    else:
-        alphas = []
-        for d, name in enumerate(kind.dimension_names):
-            reliability = np.full((n_annotators, n_states), np.nan)
-            reliability[votes.annotator, votes.unit] = votes.action[:, d]
-            alpha = stats.krippendorff_alpha(reliability, "interval")
-            alphas.append(AlphaRead(dimension=name, level="interval", alpha=_number(alpha)))
-    return AgreementRead(
-        n_states=n_states,
-        n_annotators=n_annotators,
-        n_votes=len(votes.unit),
-        cohen_kappa=cohen,
-        fleiss_kappa=fleiss,
-        krippendorff=alphas,
-    )
-
-
-def annotators_read(
-    labels: LabelArrays, kind: ActionKind, names: Mapping[int, str]
-) -> list[AnnotatorRead]:
-    """Per annotator: labels given, agreement with consensus on multi-vote states, pace.
-
-    For continuous actions a vote agrees when it lies within the tolerance of the consensus
-    median in every dimension.
-    """
-    votes = _multi_votes(labels)
-    target = labels.consensus[votes.states]
-    action = votes.action
-    if not kind.discrete:  # recode as 1 = within tolerance of the median, against target 1
-        within = np.all(np.abs(votes.action - target[votes.unit]) <= kind.tolerance, axis=1)
-        action = within.astype(np.int64)
-        target = np.where(_present(target), 1, -1)
-    found = stats.agreement_with_consensus(
-        votes.annotators[votes.annotator], votes.unit, action, target
-    )
-    by_user = {
-        int(u): (int(c), int(a), float(f))
-        for u, c, a, f in zip(
-            found.annotator_ids, found.n_compared, found.n_agreeing, found.fraction, strict=True
-        )
-    }
-    rows = []
-    for user in np.unique(labels.annotator).tolist():
-        mine = labels.annotator == user
-        pace = stats.labels_per_hour(labels.created_s[mine])
-        compared, agreeing, fraction = by_user.get(user, (0, 0, float("nan")))
-        rows.append(
-            AnnotatorRead(
-                name=names.get(user, f"user {user}"),
-                labels=int(mine.sum()),
-                compared=compared,
-                agreeing=agreeing,
-                agreement=_number(fraction),
-                labels_per_hour=_number(pace.labels_per_hour),
-            )
-        )
-    return rows
-
-
-def pace_read(labels: LabelArrays) -> PaceRead:
-    """Labels per active person-hour over all the round's answers (unsure ones included)."""
-    pace = stats.labels_per_hour(labels.created_s, labels.annotator)
-    return PaceRead(
-        labels=pace.n_labels,
-        timed_labels=pace.timed_labels,
-        active_hours=pace.active_hours,
-        labels_per_hour=_number(pace.labels_per_hour),
-    )
-
-
-def shown_hidden_read(labels: LabelArrays, kind: ActionKind) -> ShownHiddenRead:
-    """Agreement with the learner's action when the bench showed it versus when it did not.
-
-    Votes on states without a learner action are left out.
-    """
-    keep = labels.voted() & _present(labels.learner_action)
-    action, learner = labels.action[keep], labels.learner_action[keep]
-    if kind.discrete:
-        agree = np.asarray(action == learner)
-    else:
-        agree = np.all(np.abs(action - learner) <= kind.tolerance, axis=1)
-    found = stats.shown_vs_hidden_effect(agree.astype(bool), labels.learner_shown[keep])
-    note = None
-    if found.n_shown == 0 or found.n_hidden == 0:
-        note = (
-            "needs labels both with the learner's action shown and hidden "
-            f"({found.n_shown} shown, {found.n_hidden} hidden)"
-        )
-    return ShownHiddenRead(
-        n_shown=found.n_shown,
-        n_hidden=found.n_hidden,
-        rate_shown=_number(found.rate_shown),
-        rate_hidden=_number(found.rate_hidden),
-        difference=_number(found.difference),
-        lower=_number(found.lower),
-        upper=_number(found.upper),
-        note=note,
     )

@@ -37,7 +37,7 @@ from app.ingest.models import CONTROL_LEARNER, Rollout, Step
 from app.loops import service as loops_service
 from app.loops.models import Loop, Round
 from app.queue.models import ANSWER_UNSURE, Label
-from app.reports import compute, stats
+from app.reports import annotators, compute, stats
 from app.reports.schemas import CountsRead, RoundReport
 from app.sampler.models import REASON_AUDIT, SelectedState, Selection
 from app.snapshots import training_set as ts
@@ -217,10 +217,10 @@ def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundR
         audit=samples["audit"],
         ranked=samples["ranked"],
         shift=shift,
-        agreement=compute.agreement_read(labels, kind),
-        annotators=compute.annotators_read(labels, kind, names),
-        pace=compute.pace_read(labels),
-        shown_vs_hidden=compute.shown_hidden_read(labels, kind),
+        agreement=annotators.agreement_read(labels, kind),
+        annotators=annotators.annotators_read(labels, kind, names),
+        pace=annotators.pace_read(labels),
+        shown_vs_hidden=annotators.shown_hidden_read(labels, kind),
     )
 
 

@@ -19,6 +19,8 @@ from statsmodels.stats.proportion import confint_proportions_2indep, proportion_
 
 from app.loops import service as loops_service
 from app.reports import service
+from tests.helpers import DISCRETE_SPEC
+from tests.reports import builders
 from tests.reports.scenario import ANNOTATORS, BREAK_AFTER, SECONDS_APART, build_discrete
 
 
@@ -218,3 +220,36 @@ def test_round_zero_and_an_unlabelled_round_report_without_numbers(
     assert zero.audit.disagreement.n == 0 and zero.audit.disagreement.rate is None
     assert zero.agreement.n_states == 0 and zero.agreement.note
     assert zero.pace.labels_per_hour is None
+
+
+def test_shift_on_a_seeded_subsample_of_a_large_round(app, client, admin, uploader, make_user):
+    rng = np.random.default_rng(8)
+    slug = builders.create_loop(client, admin, DISCRETE_SPEC)
+    builders.open_round(client, admin, slug, "v1")
+    demos = rng.normal(size=(4, 10, 3)).astype(np.float32)
+    builders.upload_round(
+        client, uploader, slug=slug, number=0, features=demos,
+        actions=rng.integers(0, 3, (4, 10)), action_names=["proceed", "creep", "hold"],
+        prefix="d",
+    )  # fmt: skip
+    visited = (rng.normal(size=(60, 20, 3)) + [0.0, 0.0, 0.4]).astype(np.float32)
+    keys = builders.upload_round(
+        client, uploader, slug=slug, number=1, features=visited,
+        actions=rng.integers(0, 3, (60, 20)), action_names=["proceed", "creep", "hold"],
+        prefix="v",
+    )  # fmt: skip
+    ids = builders.step_ids(app, slug, keys, 20).reshape(-1)
+    shift = _report(app, slug).shift
+    assert (shift.n_round, shift.n_round_sample, shift.n_training_sample) == (1200, 1000, 40)
+    # the documented draw: a generator seeded with (SHIFT_SEED, round number) picks 1000 of the
+    # round's step ids without replacement (the 40 training states are all used)
+    draw = np.random.default_rng([service.SHIFT_SEED, 1])
+    chosen = set(np.sort(draw.choice(np.sort(ids), 1000, replace=False)).tolist())
+    by_id = dict(zip(ids.tolist(), visited.reshape(-1, 3).astype(np.float64), strict=True))
+    y = np.array([by_id[i] for i in sorted(chosen)])
+    x = demos.reshape(-1, 3).astype(np.float64)
+    centre, scale = x.mean(axis=0), x.std(axis=0)
+    xs, ys = (x - centre) / scale, (y - centre) / scale
+    bandwidth = np.median(pdist(np.vstack([xs, ys])))  # scipy pdist, REFERENCES.md section 8
+    assert_allclose(shift.bandwidth, bandwidth, rtol=1e-9)
+    assert_allclose(shift.mmd2, _direct_unbiased_mmd2(xs, ys, bandwidth), rtol=1e-7)
