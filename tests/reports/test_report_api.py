@@ -8,6 +8,7 @@ import io
 import pytest
 
 from app.loops import service as loops_service
+from app.queue.models import Label
 from app.reports import service
 from app.reports.schemas import RoundReportRow
 from tests.helpers import DISCRETE_SPEC
@@ -53,11 +54,8 @@ def test_report_follows_new_labels(app, client, world, reader):
     assert client.get(url, headers=reader).json() == first  # unchanged data, same report
     spare = next(s for s in world.learner if s not in set(world.audit) | set(world.ranked))
     with app.state.session_factory() as session:
-        from app.loops.models import Round
-        from app.queue.models import Label
-
         loop = loops_service.get_loop(session, slug=world.slug)
-        round_id = session.query(Round.id).filter_by(loop_id=loop.id, number=1).scalar()
+        round_id = loops_service.get_round(session, loop=loop, number=1).id
         session.add(
             Label(step_id=spare, round_id=round_id, user_id=world.users["ann-a"],
                   submission_id="late-1", answer="action", action=0, created_at=builders.T0)
@@ -94,10 +92,12 @@ def test_table_across_rounds_and_its_csv(client, world, reader):
 
 
 def test_csv_neutralises_spreadsheet_formulas(app, client, admin, reader):
-    slug = builders.create_loop(
-        client, admin, {**DISCRETE_SPEC, "slug": "formula"}
-    )
+    slug = builders.create_loop(client, admin, {**DISCRETE_SPEC, "slug": "formula"})
     builders.open_round(client, admin, slug, "=HYPERLINK(1)")
-    rows = list(csv.DictReader(io.StringIO(client.get(f"/api/loops/{slug}/report.csv", headers=reader).text)))
+    rows = list(
+        csv.DictReader(
+            io.StringIO(client.get(f"/api/loops/{slug}/report.csv", headers=reader).text)
+        )
+    )
     # OWASP guidance on CSV injection: a cell starting with = is prefixed with a quote
     assert rows[1]["learner_version"] == "'=HYPERLINK(1)"
