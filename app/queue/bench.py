@@ -12,7 +12,8 @@ from app.queue.service import Claim, loop_settings
 
 
 def _bench_step(step: StepRead) -> BenchStep:
-    return BenchStep(
+    # the values were validated as a StepRead a moment ago; no need to check them again
+    return BenchStep.model_construct(
         id=step.id,
         rollout=step.rollout,
         step=step.step,
