@@ -81,6 +81,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     from app.ingest.router import router as ingest_router
     from app.jobs.router import router as jobs_router
     from app.loops.router import router as loops_router
+    from app.queue.router import router as queue_router
     from app.reports.router import router as reports_router
     from app.sampler.router import router as sampler_router
     from app.system.router import router as system_router
@@ -93,6 +94,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         ingest_router,
         jobs_router,
         sampler_router,
+        queue_router,
         reports_router,
     ):
         app.include_router(router)
