@@ -60,9 +60,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     from app.auth.router import router as auth_router
     from app.ingest.router import router as ingest_router
     from app.loops.router import router as loops_router
+    from app.snapshots.router import router as snapshots_router
     from app.system.router import router as system_router
 
-    for router in (system_router, auth_router, loops_router, ingest_router):
+    for router in (system_router, auth_router, loops_router, ingest_router, snapshots_router):
         app.include_router(router)
     app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
 
