@@ -176,16 +176,17 @@ def iter_batches(
     *,
     loop: Loop,
     cutoff: Cutoff,
-    batch: int = DEFAULT_BATCH,
+    batch: int | None = None,
     with_features: bool = True,
 ) -> Iterator[RowBatch]:
-    """The training set's rows in step-id order, at most about 2 x `batch` rows at a time.
+    """The training set's rows in step-id order, at most 2 x `batch` rows at a time.
 
     Expert-driven steps (demonstrations in round 0, takeovers later) are read by step id a page
     at a time; relabelled states (resolved consensus on a learner-driven step) are read by id in
     pages of `batch`; the two sorted streams are merged. Memory is bounded by the batch size plus
     the consensus arrays, which grow with the number of labels, not of steps.
     """
+    batch = DEFAULT_BATCH if batch is None else batch
     if batch < 1:
         raise ValueError(f"batch must be >= 1, got {batch}")
     rounds = _Rounds.of(session, loop)
