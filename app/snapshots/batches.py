@@ -13,6 +13,12 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+SOURCE_DEMONSTRATION = "demonstration"
+SOURCE_TAKEOVER = "takeover"
+SOURCE_RELABEL = "relabel"
+# a row's source is stored as its index here
+SOURCES = (SOURCE_DEMONSTRATION, SOURCE_TAKEOVER, SOURCE_RELABEL)
+
 
 @dataclass
 class RowBatch:
@@ -22,7 +28,7 @@ class RowBatch:
     ----------
     step_id : ndarray of int64, shape (n,)
     source : ndarray of int8, shape (n,)
-        Index into ``training_set.SOURCES``.
+        Index into ``SOURCES``.
     action : ndarray of int64, shape (n,), or of float32, shape (n, n_dims)
         The expert's (or the consensus) action: an index into the discrete action list, or a
         continuous action vector.
@@ -112,9 +118,15 @@ def concat(batches: list[RowBatch]) -> RowBatch:
 
 
 def _sorted_union(parts: list[RowBatch]) -> RowBatch:
-    joined = concat(parts)
-    order = np.argsort(joined.step_id, kind="stable")
-    return joined.take(order)
+    """The rows of sorted parts in step-id order, copying only when they interleave."""
+    filled = [p for p in parts if len(p)]
+    if len(filled) <= 1:
+        return filled[0] if filled else parts[0]
+    filled.sort(key=lambda p: int(p.step_id[0]))
+    joined = concat(filled)
+    if all(a.step_id[-1] < b.step_id[0] for a, b in zip(filled, filled[1:], strict=False)):
+        return joined
+    return joined.take(np.argsort(joined.step_id, kind="stable"))
 
 
 def merge_sorted(first: Iterable[RowBatch], second: Iterable[RowBatch]) -> Iterator[RowBatch]:

@@ -9,27 +9,49 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from app.ingest.encode import FLOAT32_LE
-from app.ingest.models import CONTROL_EXPERT, Rollout, Step
+from app.ingest.models import Rollout, Step
 from app.loops.models import Loop, Round
 from app.queue.models import ANSWER_UNSURE, Label
-from app.snapshots.batches import RowBatch, concat, merge_sorted
+from app.snapshots import rows
+from app.snapshots.batches import (
+    SOURCE_DEMONSTRATION,
+    SOURCE_RELABEL,
+    SOURCE_TAKEOVER,
+    SOURCES,
+    RowBatch,
+    concat,
+    merge_sorted,
+)
 from app.snapshots.consensus import continuous_consensus, discrete_consensus
 
-SOURCE_DEMONSTRATION = "demonstration"
-SOURCE_TAKEOVER = "takeover"
-SOURCE_RELABEL = "relabel"
-SOURCES = (SOURCE_DEMONSTRATION, SOURCE_TAKEOVER, SOURCE_RELABEL)
+__all__ = [
+    "SOURCES",
+    "SOURCE_DEMONSTRATION",
+    "SOURCE_RELABEL",
+    "SOURCE_TAKEOVER",
+    "Cutoff",
+    "Members",
+    "Relabels",
+    "action_width",
+    "continuous_tolerance",
+    "current_cutoff",
+    "is_discrete",
+    "iter_batches",
+    "iter_step_rows",
+    "members",
+    "relabels",
+    "training_features",
+]
 # default tolerance of a continuous disagreement, as a fraction of each dimension's range
 DEFAULT_TOLERANCE_FRACTION = 0.1
 # rows per page read from the store while streaming the training set
-DEFAULT_BATCH = 20_000
+DEFAULT_BATCH = 8192
 
 
 @dataclass(frozen=True)
@@ -179,24 +201,34 @@ def iter_batches(
     batch: int | None = None,
     with_features: bool = True,
 ) -> Iterator[RowBatch]:
-    """The training set's rows in step-id order, at most 2 x `batch` rows at a time.
+    """The training set's rows in step-id order, a bounded number of rows at a time.
 
-    Expert-driven steps (demonstrations in round 0, takeovers later) are read by step id a page
-    at a time; relabelled states (resolved consensus on a learner-driven step) are read by id in
-    pages of `batch`; the two sorted streams are merged. Memory is bounded by the batch size plus
-    the consensus arrays, which grow with the number of labels, not of steps.
+    Expert-driven steps (demonstrations in round 0, takeovers later) are read a page of `batch`
+    ids at a time per round; relabelled states (resolved consensus on a learner-driven step) in
+    pages of `batch` ids; the sorted streams are merged, so a batch holds at most
+    (rounds + 1) x `batch` rows and usually about `batch`. Memory is bounded by the batch size
+    plus the consensus arrays, which grow with the number of labels, not of steps.
     """
     batch = DEFAULT_BATCH if batch is None else batch
     if batch < 1:
         raise ValueError(f"batch must be >= 1, got {batch}")
-    rounds = _Rounds.of(session, loop)
+    shape = rows.Shape(len(loop.features), is_discrete(loop), action_width(loop))
+    rounds = rows.RoundTable.of(session, loop.id)
     found = relabels(session, loop=loop, cutoff=cutoff)
     keep = found.resolved
-    expert = _expert_batches(session, loop, cutoff, rounds, batch, with_features)
-    relabelled = _relabel_batches(
+    expert = rows.expert_batches(
         session,
-        loop,
-        rounds,
+        shape=shape,
+        rounds=rounds,
+        up_to_round=cutoff.up_to_round,
+        max_step_id=cutoff.max_step_id,
+        batch=batch,
+        with_features=with_features,
+    )
+    relabelled = rows.relabel_batches(
+        session,
+        shape=shape,
+        rounds=rounds,
         step_ids=found.step_id[keep],
         action=found.action[keep],
         label_count=found.label_count[keep],
@@ -205,166 +237,6 @@ def iter_batches(
         with_features=with_features,
     )
     return merge_sorted(expert, relabelled)
-
-
-@dataclass(frozen=True)
-class _Rounds:
-    """Round ids of a loop (sorted) with their numbers and learner versions."""
-
-    ids: np.ndarray
-    numbers: np.ndarray
-    learner_versions: dict[int, str | None]
-
-    @classmethod
-    def of(cls, session: Session, loop: Loop) -> _Rounds:
-        rows = session.execute(
-            select(Round.id, Round.number, Round.learner_version)
-            .where(Round.loop_id == loop.id)
-            .order_by(Round.id)
-        ).all()
-        return cls(
-            ids=np.array([r[0] for r in rows], dtype=np.int64),
-            numbers=np.array([r[1] for r in rows], dtype=np.int64),
-            learner_versions={int(r[1]): r[2] for r in rows},
-        )
-
-    def number_of(self, round_ids: np.ndarray) -> np.ndarray:
-        return self.numbers[np.searchsorted(self.ids, round_ids)]
-
-    def ids_up_to(self, number: int) -> list[int]:
-        return self.ids[self.numbers <= number].tolist()
-
-
-def _step_columns(with_features: bool) -> list[Any]:
-    columns: list[Any] = [Step.id, Step.rollout_id, Step.round_id, Step.step_index]
-    return columns + [Step.features] if with_features else columns
-
-
-def _batch_from_rows(
-    session: Session,
-    loop: Loop,
-    rounds: _Rounds,
-    columns: list[tuple[Any, ...]],
-    with_features: bool,
-    **rest: np.ndarray,
-) -> RowBatch:
-    """A RowBatch from the column tuples of (id, rollout_id, round_id, step_index[, features])."""
-    n = len(columns[0])
-    rollout_id = np.array(columns[1], dtype=np.int64)
-    features = None
-    if with_features:
-        width = len(loop.features)
-        blob = b"".join(columns[4])
-        features = np.frombuffer(blob, dtype=FLOAT32_LE).reshape(n, width)
-    wanted = np.unique(rollout_id).tolist()
-    keys = dict(
-        session.execute(select(Rollout.id, Rollout.key).where(Rollout.id.in_(wanted))).all()
-    )
-    return RowBatch(
-        step_id=np.array(columns[0], dtype=np.int64),
-        round=rounds.number_of(np.array(columns[2], dtype=np.int64)),
-        rollout_id=rollout_id,
-        step_index=np.array(columns[3], dtype=np.int64),
-        features=features,
-        rollout_keys=keys,
-        learner_versions=rounds.learner_versions,
-        **rest,
-    )
-
-
-def _expert_batches(
-    session: Session,
-    loop: Loop,
-    cutoff: Cutoff,
-    rounds: _Rounds,
-    batch: int,
-    with_features: bool,
-) -> Iterator[RowBatch]:
-    """Expert-driven steps within the cut-off, a page of `batch` at a time (keyset by id)."""
-    discrete = is_discrete(loop)
-    action_column = Step.expert_action if discrete else Step.expert_action_vec
-    round_ids = rounds.ids_up_to(cutoff.up_to_round)
-    demonstration, takeover = SOURCES.index(SOURCE_DEMONSTRATION), SOURCES.index(SOURCE_TAKEOVER)
-    after = 0
-    while True:
-        rows = session.execute(
-            select(*_step_columns(with_features), action_column)
-            .where(
-                Step.round_id.in_(round_ids),
-                Step.control == CONTROL_EXPERT,
-                Step.id > after,
-                Step.id <= cutoff.max_step_id,
-            )
-            .order_by(Step.id)
-            .limit(batch)
-        ).all()
-        if not rows:
-            return
-        columns = list(zip(*rows, strict=True))
-        n = len(rows)
-        action: np.ndarray
-        if discrete:
-            action = np.array(columns[-1], dtype=np.int64)
-        else:
-            blob = b"".join(columns[-1])
-            action = np.frombuffer(blob, dtype=FLOAT32_LE).reshape(n, action_width(loop))
-        found = _batch_from_rows(
-            session,
-            loop,
-            rounds,
-            columns[:-1],
-            with_features,
-            source=np.zeros(n, np.int8),
-            action=action,
-            label_count=np.ones(n, np.int64),
-            agreement=np.ones(n, np.float64),
-        )
-        found.source = np.where(found.round == 0, demonstration, takeover).astype(np.int8)
-        yield found
-        after = int(found.step_id[-1])
-
-
-def _relabel_batches(
-    session: Session,
-    loop: Loop,
-    rounds: _Rounds,
-    *,
-    step_ids: np.ndarray,
-    action: np.ndarray,
-    label_count: np.ndarray,
-    agreement: np.ndarray,
-    batch: int,
-    with_features: bool,
-) -> Iterator[RowBatch]:
-    """Learner-driven steps with a resolved consensus, `batch` ids at a time.
-
-    Labels on an expert-driven step cannot arise (such steps are never queued); if one did, the
-    expert's own action wins and the step is read only by the expert stream.
-    """
-    dtype = np.int64 if is_discrete(loop) else np.float32
-    relabel = SOURCES.index(SOURCE_RELABEL)
-    for start in range(0, len(step_ids), batch):
-        chunk = step_ids[start : start + batch]
-        rows = session.execute(
-            select(*_step_columns(with_features))
-            .where(Step.id.in_(chunk.tolist()), Step.control != CONTROL_EXPERT)
-            .order_by(Step.id)
-        ).all()
-        if not rows:
-            continue
-        columns = list(zip(*rows, strict=True))
-        at = start + np.searchsorted(chunk, np.array(columns[0], dtype=np.int64))
-        yield _batch_from_rows(
-            session,
-            loop,
-            rounds,
-            columns,
-            with_features,
-            source=np.full(len(rows), relabel, np.int8),
-            action=action[at].astype(dtype),
-            label_count=label_count[at].astype(np.int64),
-            agreement=agreement[at].astype(np.float64),
-        )
 
 
 StepRow = tuple[int, bytes, int, str, int, str | None]
