@@ -84,6 +84,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     from app.queue.router import router as queue_router
     from app.reports.router import router as reports_router
     from app.sampler.router import router as sampler_router
+    from app.snapshots.router import router as snapshots_router
     from app.system.router import router as system_router
 
     import_all_tables()  # every table known before the first query, whatever the route
@@ -95,6 +96,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         jobs_router,
         sampler_router,
         queue_router,
+        snapshots_router,
         reports_router,
     ):
         app.include_router(router)
