@@ -203,11 +203,11 @@ def iter_batches(
 ) -> Iterator[RowBatch]:
     """The training set's rows in step-id order, a bounded number of rows at a time.
 
-    Expert-driven steps (demonstrations in round 0, takeovers later) are read a page of `batch`
-    ids at a time per round; relabelled states (resolved consensus on a learner-driven step) in
-    pages of `batch` ids; the sorted streams are merged, so a batch holds at most
-    (rounds + 1) x `batch` rows and usually about `batch`. Memory is bounded by the batch size
-    plus the consensus arrays, which grow with the number of labels, not of steps.
+    Expert-driven steps (demonstrations in round 0, takeovers later) are read `batch` rows at a
+    time from one driver cursor per round; relabelled states (resolved consensus on a
+    learner-driven step) `batch` ids at a time; the sorted streams are merged. A yielded batch
+    holds at most (rounds + 1) x `batch` rows and usually about `batch`. Memory holds one page
+    per stream plus the consensus arrays, which grow with the number of labels, not of steps.
     """
     batch = DEFAULT_BATCH if batch is None else batch
     if batch < 1:
