@@ -206,9 +206,10 @@ def _action(table: pa.Table, name: str, spec: ActionSpec) -> np.ndarray | col.Ve
     column = table[name]
     if spec.kind == "continuous":
         vectors = col.float_vectors(column, name, spec.action_width, allow_null=True)
-        outside = vectors.present[:, None] & (
-            (vectors.values < spec.low) | (vectors.values > spec.high)
-        )
+        # Actions are stored as float32: compare with the bounds in float32 too, so an action
+        # exactly at a bound (0.2 becomes 0.2000000030 in float32) is not refused.
+        low, high = spec.low.astype(np.float32), spec.high.astype(np.float32)
+        outside = vectors.present[:, None] & ((vectors.values < low) | (vectors.values > high))
         if outside.any():
             i, j = (int(v[0]) for v in np.nonzero(outside))
             raise col.fail(

@@ -373,3 +373,19 @@ def test_continuous_action_out_of_bounds(client, admin, uploader, engine):
         in response.json()["detail"]
     )
     assert store_contents(engine) == before
+
+
+def test_continuous_action_exactly_at_a_bound_is_accepted(client, admin, uploader):
+    # 0.2 and -0.2 are not exact in float32; stored actions are float32, so bounds compare there
+    client.post("/api/loops", json=CONTINUOUS_SPEC, headers=admin)
+    rows = {
+        "rollout": ["c0", "c0"],
+        "step": [0, 1],
+        "time_s": [0.0, 0.1],
+        "features": [[1.0, 0.5], [0.9, 0.6]],
+        "expert_action": [[2.0, 0.2], [0.0, -0.2]],
+    }
+    response = upload(
+        client, uploader, parquet_bytes(rows), url="/api/loops/aisle-speed/rounds/{n}/rollouts", n=0
+    )
+    assert response.status_code == 201, response.text

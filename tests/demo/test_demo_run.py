@@ -53,7 +53,9 @@ def test_dagger_rounds_improve_the_learner(tmp_path: Path) -> None:
         assert all(r.audit_n > 0 for r in rows[1:])
     behaviour_cloning = sum(rows[0].conflicts_per_100 for rows in runs)
     after_last_round = sum(rows[-1].conflicts_per_100 for rows in runs)
-    print("conflicts/100 per seed:", [[round(r.conflicts_per_100, 1) for r in rows] for rows in runs])
+    print(
+        "conflicts/100 per seed:", [[round(r.conflicts_per_100, 1) for r in rows] for rows in runs]
+    )
     assert after_last_round < behaviour_cloning, (behaviour_cloning, after_last_round)
     first = sum(rows[1].audit_count for rows in runs) / sum(rows[1].audit_n for rows in runs)
     last = sum(rows[-1].audit_count for rows in runs) / sum(rows[-1].audit_n for rows in runs)
