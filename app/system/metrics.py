@@ -65,7 +65,8 @@ class StoreCollector(Collector):
         yield by_status
         durations: dict[str, list[float]] = {}
         for kind, started, ended in finished:
-            durations.setdefault(kind, []).append((ended - started).total_seconds())
+            if started is not None and ended is not None:  # the query excludes NULLs; for mypy
+                durations.setdefault(kind, []).append((ended - started).total_seconds())
         seconds = GaugeMetricFamily(
             "expertloop_job_seconds_total", "Time spent in finished jobs, by kind.", labels=["kind"]
         )
