@@ -78,6 +78,8 @@ def logging_config(log_format: LogFormat, level: str = "INFO") -> dict[str, Any]
             "uvicorn": {"handlers": ["stderr"], "level": level, "propagate": False},
             "uvicorn.error": {"level": level},
             "uvicorn.access": {"handlers": ["stderr"], "level": level, "propagate": False},
+            # alembic logs its set-up at INFO whenever /readyz reads the schema revision
+            "alembic": {"level": "WARNING"},
         },
         "root": {"handlers": ["stderr"], "level": level},
     }
