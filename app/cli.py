@@ -288,6 +288,63 @@ def rank(
         typer.echo(f"note: {note}")
 
 
+@cli.command("demo-run")
+def demo_run(
+    rounds: Annotated[int, typer.Option(help="DAgger rounds after the demonstrations.")] = 3,
+    budget: Annotated[int, typer.Option(help="Labels asked for per round.")] = 100,
+    selection: Annotated[str, typer.Option(help="ranked or uniform.")] = "ranked",
+    seed: Annotated[int, typer.Option()] = 0,
+    actions: Annotated[str, typer.Option(help="discrete or continuous.")] = "discrete",
+    url: Annotated[
+        str | None, typer.Option(help="Use a running server (default: start one).")
+    ] = None,
+    token: Annotated[str, TOKEN_OPTION] = "",
+    plot: Annotated[Path, typer.Option(help="Where to write the SVG plot.")] = Path("demo-run.svg"),
+) -> None:
+    """Run the invented demo loop end to end through the HTTP API and print a per-round table."""
+    import tempfile
+
+    from app.client import Client
+    from app.config import Settings
+    from app.demo import loop_run
+    from app.demo.local_server import local_server
+    from app.demo.plot import write_plot
+
+    if selection not in ("ranked", "uniform") or actions not in ("discrete", "continuous"):
+        _fail("--selection is ranked or uniform; --actions is discrete or continuous")
+    typer.echo(
+        f"invented demo: {actions} actions, {selection} selection, budget {budget}, seed {seed}"
+    )
+    typer.echo(loop_run.TABLE_HEADER)
+
+    def go(admin: Client, annotator: Client) -> list[loop_run.RoundRow]:
+        return loop_run.run(
+            admin,
+            annotator,
+            kind=actions,
+            rounds=rounds,
+            budget=budget,
+            selection=selection,
+            seed=seed,
+            report=lambda row: typer.echo(loop_run.format_row(row)),
+        )
+
+    if url:
+        with Client(url, token) as client:
+            rows = go(client, client)
+    else:
+        with tempfile.TemporaryDirectory() as tmp:
+            settings = Settings(data_dir=Path(tmp), job_mode="thread")
+            with (
+                local_server(settings) as server,
+                Client(server.url, server.admin_token) as admin,
+                Client(server.url, server.annotator_token) as annotator,
+            ):
+                rows = go(admin, annotator)
+    write_plot(rows, plot, title=f"Invented demo, {actions} actions, {selection} selection")
+    typer.echo(f"plot written to {plot}")
+
+
 def main() -> None:
     """Entry point of the `expertloop` console script."""
     cli()

@@ -41,7 +41,15 @@ def make_engine(url: str) -> Engine:
         path = url.split("///", 1)[-1]
         if path and path != ":memory:":
             Path(path).parent.mkdir(parents=True, exist_ok=True)
-        engine = create_engine(url, connect_args={"check_same_thread": False, "timeout": 30})
+        # No cap on connections to a local file: requests hold theirs until the response is
+        # sent, and a capped pool let 32 concurrent annotators wait on one another until the
+        # pool timeout (the sign-in check checks out a connection on the event loop).
+        engine = create_engine(
+            url,
+            connect_args={"check_same_thread": False, "timeout": 30},
+            pool_size=20,
+            max_overflow=-1,
+        )
         event.listen(engine, "connect", _sqlite_pragmas)
         event.listen(engine, "begin", _sqlite_begin)
         return engine

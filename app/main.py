@@ -16,6 +16,7 @@ from app.config import Settings, get_settings
 from app.db import make_engine, make_session_factory
 from app.errors import ExpertloopError, Unauthenticated
 from app.jobs.runner import JobThread
+from app.models import import_all_tables
 from app.templating import STATIC_DIR
 
 
@@ -80,9 +81,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     from app.ingest.router import router as ingest_router
     from app.jobs.router import router as jobs_router
     from app.loops.router import router as loops_router
+    from app.queue.router import router as queue_router
+    from app.reports.router import router as reports_router
     from app.sampler.router import router as sampler_router
     from app.system.router import router as system_router
 
+    import_all_tables()  # every table known before the first query, whatever the route
     for router in (
         system_router,
         auth_router,
@@ -90,6 +94,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         ingest_router,
         jobs_router,
         sampler_router,
+        queue_router,
+        reports_router,
     ):
         app.include_router(router)
     app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")

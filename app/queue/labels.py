@@ -7,10 +7,24 @@ import math
 import re
 from dataclasses import dataclass
 from datetime import datetime
+from functools import cache
 from typing import Any
 
 import numpy as np
-from sqlalchemy import delete, func, insert, select, update
+from sqlalchemy import (
+    Delete,
+    Select,
+    Update,
+    and_,
+    bindparam,
+    case,
+    delete,
+    func,
+    insert,
+    or_,
+    select,
+    update,
+)
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
@@ -23,7 +37,7 @@ from app.loops.schemas import LoopSettings
 from app.queue.locking import write_transaction
 from app.queue.models import ANSWER_ACTION, ANSWER_UNSURE, ITEM_DONE, ITEM_OPEN, Label, Lease
 from app.queue.models import QueueItem as Item
-from app.queue.rules import live_lease, lock_item, loop_settings
+from app.queue.rules import lock_item, loop_settings
 
 # Room is left in the 64-character column for the ".N" suffix of span labels.
 SUBMISSION_ID = re.compile(r"^[A-Za-z0-9_-]{8,48}$")
@@ -150,37 +164,49 @@ def submit(
     try:
         with write_transaction(session):
             item = lock_item(session, loop=loop, item_id=item_id)
-            stored = _by_submission(session, submission_id)
-            if stored is not None:
-                return _repeat(session, stored, item_id=item_id, user_id=user_id)
-            if _labelled(session, item=item, user_id=user_id):
+            params = {
+                "submission_id": submission_id,
+                "item_id": item.id,
+                "step_id": item.step_id,
+                "user_id": user_id,
+                "now": now,
+            }
+            earlier_answers = list(session.scalars(_answers_query(), params))
+            for stored in earlier_answers:
+                if stored.submission_id == submission_id:
+                    return _repeat(session, stored, item_id=item_id, user_id=user_id)
+            if earlier_answers:
                 raise Conflict(f"you already labelled item {item_id}")
-            if live_lease(session, item_id=item_id, user_id=user_id, now=now) is None:
+            if item.status != ITEM_OPEN:
+                raise Conflict(f"item {item_id} already has all its labels")
+            # the lease is returned here; finding none live refuses the submit (and rolls back)
+            if session.execute(_return_lease(), params).rowcount == 0:  # type: ignore[attr-defined]
                 raise Conflict(
                     f"you hold no live claim on item {item_id} (it lapsed or was never taken); "
                     "claim the next item"
                 )
-            if item.status != ITEM_OPEN:
-                raise Conflict(f"item {item_id} already has all its labels")
             earlier = _preceding_steps(
                 session, step_id=item.step_id, count=span_steps, seconds=settings.context_seconds
             )
-            label = Label(
-                item_id=item.id,
-                step_id=item.step_id,
-                round_id=item.round_id,
-                user_id=user_id,
-                submission_id=submission_id,
-                answer=answer,
-                action=index,
-                action_vec=vector,
-                learner_shown=item.show_learner,
-                span=False,
-                seconds_spent=seconds_spent,
-                created_at=now,
-            )
-            session.add(label)
-            session.flush()
+            label = session.scalars(
+                insert(Label).returning(Label),
+                [
+                    {
+                        "item_id": item.id,
+                        "step_id": item.step_id,
+                        "round_id": item.round_id,
+                        "user_id": user_id,
+                        "submission_id": submission_id,
+                        "answer": answer,
+                        "action": index,
+                        "action_vec": vector,
+                        "learner_shown": item.show_learner,
+                        "span": False,
+                        "seconds_spent": seconds_spent,
+                        "created_at": now,
+                    }
+                ],
+            ).one()
             if earlier:
                 session.execute(
                     insert(Label),
@@ -203,21 +229,59 @@ def submit(
                     ],
                 )
             done = item.labels_done + 1 >= item.labels_needed
-            session.execute(
-                update(Item)
-                .where(Item.id == item.id)
-                .values(labels_done=Item.labels_done + 1, status=ITEM_DONE if done else ITEM_OPEN)
-            )
-            # a finished item frees every lease on it (only lapsed ones can be left by then)
-            freed = delete(Lease).where(Lease.item_id == item.id)
-            session.execute(freed if done else freed.where(Lease.user_id == user_id))
+            session.execute(_count_label(), params)
+            if done and item.labels_needed > 1:  # lapsed leases of others may be left
+                session.execute(delete(Lease).where(Lease.item_id == item.id))
             return Submitted(label=label, span_labels=len(earlier), repeated=False)
     except IntegrityError:
         # a concurrent submit with the same id won the race; the unique column decided it
-        stored = _by_submission(session, submission_id)
-        if stored is None:
+        winner = _by_submission(session, submission_id)
+        if winner is None:
             raise
-        return _repeat(session, stored, item_id=item_id, user_id=user_id)
+        return _repeat(session, winner, item_id=item_id, user_id=user_id)
+
+
+# Statements of the submit path, built once (see app/queue/rules.py for why).
+@cache
+def _answers_query() -> Select[Any]:
+    """Labels with :submission_id, or of :user_id on item :item_id (one query)."""
+    return (
+        select(Label)
+        .where(
+            or_(
+                Label.submission_id == bindparam("submission_id"),
+                and_(
+                    Label.step_id == bindparam("step_id"),
+                    Label.item_id == bindparam("item_id"),
+                    Label.user_id == bindparam("user_id"),
+                ),
+            )
+        )
+        .execution_options(populate_existing=True)
+    )
+
+
+@cache
+def _return_lease() -> Delete:
+    return delete(Lease).where(
+        Lease.item_id == bindparam("item_id"),
+        Lease.user_id == bindparam("user_id"),
+        Lease.expires_at > bindparam("now"),
+    )
+
+
+@cache
+def _count_label() -> Update:
+    """One more label on item :item_id; done when it reaches labels_needed."""
+    return (
+        update(Item)
+        .where(Item.id == bindparam("item_id"))
+        .values(
+            labels_done=Item.labels_done + 1,
+            status=case((Item.labels_done + 1 >= Item.labels_needed, ITEM_DONE), else_=ITEM_OPEN),
+        )
+        .execution_options(synchronize_session=False)
+    )
 
 
 def _by_submission(session: Session, submission_id: str) -> Label | None:
@@ -238,15 +302,6 @@ def _repeat(session: Session, stored: Label, *, item_id: int, user_id: int) -> S
         select(func.count()).select_from(Label).where(Label.span_anchor_id == stored.id)
     )
     return Submitted(label=stored, span_labels=int(spans or 0), repeated=True)
-
-
-def _labelled(session: Session, *, item: Item, user_id: int) -> bool:
-    found = session.scalar(
-        select(Label.id).where(
-            Label.step_id == item.step_id, Label.item_id == item.id, Label.user_id == user_id
-        )
-    )
-    return found is not None
 
 
 def _preceding_steps(

@@ -69,7 +69,8 @@ def progress(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Pr
     left = session.scalar(
         select(func.count())
         .select_from(QueueItem)
-        .where(in_loop, QueueItem.status == ITEM_OPEN, ~answered_by(user_id))
+        .where(in_loop, QueueItem.status == ITEM_OPEN, ~answered_by()),
+        {"user_id": user_id},
     )
     missing = session.scalar(
         select(func.coalesce(func.sum(QueueItem.labels_needed - QueueItem.labels_done), 0)).where(

@@ -1,12 +1,30 @@
-"""Who may hold which queue item: the query pieces shared by claims, renewals, skips and labels."""
+"""Who may hold which queue item: the statements shared by claims, renewals, skips and labels.
+
+The statements on the claim and submit paths are built once with bound parameters (:loop_id,
+:user_id, :now, :item_id) and reused: building one costs about as much as running it.
+"""
 
 from __future__ import annotations
 
 from datetime import datetime
+from functools import cache
 from typing import Any
 
-from sqlalchemy import ColumnElement, Select, delete, func, insert, or_, select
+from sqlalchemy import (
+    ColumnElement,
+    DateTime,
+    Integer,
+    Select,
+    Table,
+    bindparam,
+    delete,
+    func,
+    insert,
+    or_,
+    select,
+)
 from sqlalchemy.orm import Session
+from sqlalchemy.sql.dml import ReturningInsert
 
 from app.errors import NotFound
 from app.loops.models import Loop, Round
@@ -20,93 +38,138 @@ def loop_settings(loop: Loop) -> LoopSettings:
     return LoopSettings.model_validate(loop.settings)
 
 
-def rounds_of(loop_id: int) -> Select[Any]:
-    """Ids of a loop's rounds, as a subquery for IN (so row locks stay on queue_items alone)."""
-    return select(Round.id).where(Round.loop_id == loop_id)
+def rounds_of(loop_id: Any = None) -> Select[Any]:
+    """Ids of a loop's rounds, as a subquery for IN (so row locks stay on queue_items alone).
+
+    Without an argument the loop id is the bound parameter :loop_id.
+    """
+    return select(Round.id).where(
+        Round.loop_id == (bindparam("loop_id") if loop_id is None else loop_id)
+    )
 
 
-def answered_by(user_id: int) -> ColumnElement[bool]:
-    """EXISTS a label or a skip of the user on the correlated QueueItem."""
+def answered_by() -> ColumnElement[bool]:
+    """EXISTS a label or a skip of user :user_id on the correlated QueueItem."""
+    user = bindparam("user_id", type_=Integer)
     # step_id leads the label lookup to its index; item_id then pins the item
     labelled = (
         select(Label.id)
         .where(
-            Label.step_id == QueueItem.step_id,
-            Label.item_id == QueueItem.id,
-            Label.user_id == user_id,
+            Label.step_id == QueueItem.step_id, Label.item_id == QueueItem.id, Label.user_id == user
         )
         .correlate(QueueItem)
         .exists()
     )
     skipped = (
         select(Skip.id)
-        .where(Skip.item_id == QueueItem.id, Skip.user_id == user_id)
+        .where(Skip.item_id == QueueItem.id, Skip.user_id == user)
         .correlate(QueueItem)
         .exists()
     )
     return or_(labelled, skipped)
 
 
-def room_for(user_id: int, now: datetime) -> list[ColumnElement[bool]]:
-    """WHERE clauses on QueueItem: open, a label slot free of others' live leases, and neither
-    labelled nor skipped by the user."""
+def room_for() -> list[ColumnElement[bool]]:
+    """WHERE clauses on QueueItem: open, a label slot free of others' live leases at :now, and
+    neither labelled nor skipped by :user_id."""
     live_by_others = (
         select(func.count())
         .select_from(Lease)
-        .where(Lease.item_id == QueueItem.id, Lease.user_id != user_id, Lease.expires_at > now)
+        .where(
+            Lease.item_id == QueueItem.id,
+            Lease.user_id != bindparam("user_id"),
+            Lease.expires_at > bindparam("now"),
+        )
         .correlate(QueueItem)
         .scalar_subquery()
     )
     return [
         QueueItem.status == ITEM_OPEN,
         QueueItem.labels_done + live_by_others < QueueItem.labels_needed,
-        ~answered_by(user_id),
+        ~answered_by(),
     ]
 
 
-def has_room(session: Session, *, item_id: int, user_id: int, now: datetime) -> bool:
-    """Whether the user may take a lease on the item now (read in a statement of its own)."""
-    found = session.scalar(
-        select(QueueItem.id).where(QueueItem.id == item_id, *room_for(user_id, now))
+@cache
+def candidate_query(postgres: bool) -> Select[Any]:
+    """The first item in queue order with room for :user_id in loop :loop_id at :now; on
+    PostgreSQL locked, skipping rows other claims hold."""
+    query = (
+        select(QueueItem)
+        .where(QueueItem.round_id.in_(rounds_of()), *room_for())
+        .order_by(QueueItem.round_id, QueueItem.position)
+        .limit(1)
+        .execution_options(populate_existing=True)
     )
-    return found is not None
+    return query.with_for_update(skip_locked=True, of=QueueItem) if postgres else query
+
+
+@cache
+def held_lease_query() -> Select[int, int]:
+    """The live lease (id, item id) :user_id holds on an open item of loop :loop_id at :now."""
+    return (
+        select(Lease.id, Lease.item_id)
+        .join(QueueItem, QueueItem.id == Lease.item_id)
+        .where(
+            Lease.user_id == bindparam("user_id"),
+            Lease.expires_at > bindparam("now"),
+            QueueItem.status == ITEM_OPEN,
+            QueueItem.round_id.in_(rounds_of()),
+        )
+        .order_by(Lease.claimed_at, Lease.id)
+        .limit(1)
+    )
+
+
+@cache
+def _lease_if_room() -> ReturningInsert[int]:
+    """Lease item :item_id to :user_id until :expires_at, only if it has room for them at :now."""
+    room = select(QueueItem.id).where(QueueItem.id == bindparam("item_id"), *room_for()).exists()
+    source = select(
+        bindparam("item_id", type_=Integer),
+        bindparam("user_id", type_=Integer),
+        bindparam("expires_at", type_=DateTime(timezone=True)),
+        bindparam("now", type_=DateTime(timezone=True)),
+    ).where(room)
+    # the Core table: an ORM-enabled INSERT would read the bound parameters as row values
+    leases: Table = Lease.__table__  # type: ignore[assignment]
+    columns = [leases.c.item_id, leases.c.user_id, leases.c.expires_at, leases.c.claimed_at]
+    return insert(leases).from_select(columns, source).returning(leases.c.id)
 
 
 def take_lease(
     session: Session, *, item_id: int, user_id: int, now: datetime, expires_at: datetime
-) -> None:
-    """Give the user a lease on the item, clearing lapsed leases on it (theirs or others')."""
+) -> bool:
+    """Lease the item to the user if it has room for them now; False if it has none.
+
+    Lapsed leases on the item (theirs or others') are cleared first. The room is judged in the
+    INSERT itself, a statement of its own: on PostgreSQL a row just unlocked by a claim that
+    committed meanwhile was judged on an older snapshot by the query that found it.
+    """
     session.execute(
         delete(Lease).where(
             Lease.item_id == item_id, or_(Lease.user_id == user_id, Lease.expires_at <= now)
         )
     )
-    session.execute(
-        insert(Lease).values(
-            item_id=item_id, user_id=user_id, expires_at=expires_at, claimed_at=now
-        )
-    )
+    params = {"item_id": item_id, "user_id": user_id, "expires_at": expires_at, "now": now}
+    # RETURNING, not rowcount: drivers need not count the rows of INSERT ... SELECT
+    return session.execute(_lease_if_room(), params).first() is not None
 
 
-def live_lease(session: Session, *, item_id: int, user_id: int, now: datetime) -> int | None:
-    """Id of the user's unexpired lease on the item, if any."""
-    return session.scalar(
-        select(Lease.id).where(
-            Lease.item_id == item_id, Lease.user_id == user_id, Lease.expires_at > now
-        )
+@cache
+def _item_query(lock: bool) -> Select[Any]:
+    query = (
+        select(QueueItem)
+        .where(QueueItem.id == bindparam("item_id"), QueueItem.round_id.in_(rounds_of()))
+        .execution_options(populate_existing=True)
     )
+    return query.with_for_update(of=QueueItem) if lock else query
 
 
 def lock_item(session: Session, *, loop: Loop, item_id: int, lock: bool = True) -> QueueItem:
     """The loop's queue item read fresh; with `lock`, locked for the transaction on PostgreSQL."""
-    query = (
-        select(QueueItem)
-        .where(QueueItem.id == item_id, QueueItem.round_id.in_(rounds_of(loop.id)))
-        .execution_options(populate_existing=True)
-    )
-    if lock and is_postgresql(session):
-        query = query.with_for_update(of=QueueItem)
-    item = session.scalars(query).first()
+    query = _item_query(lock and is_postgresql(session))
+    item = session.scalars(query, {"item_id": item_id, "loop_id": loop.id}).first()
     if item is None:
         raise NotFound(f"loop '{loop.slug}' has no queue item {item_id}")
     return item

@@ -28,7 +28,13 @@ from app.queue.labels import Submitted, submit
 from app.queue.locking import is_postgresql, write_transaction
 from app.queue.models import ITEM_OPEN, Label, Lease, QueueItem, Skip
 from app.queue.progress import Progress, RoundQueue, progress, round_queue
-from app.queue.rules import has_room, lock_item, loop_settings, room_for, rounds_of, take_lease
+from app.queue.rules import (
+    candidate_query,
+    held_lease_query,
+    lock_item,
+    loop_settings,
+    take_lease,
+)
 from app.sampler.models import SelectedState, Selection
 
 __all__ = [
@@ -165,55 +171,37 @@ def _enqueue(
 def claim_next(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Claim | None:
     """Lease the next item for an annotator (or renew the one they hold); None when none is left.
 
-    PostgreSQL: the candidate row is locked with FOR UPDATE SKIP LOCKED, then its room is checked
-    again in a statement of its own, because a row unlocked by a claim that committed meanwhile
-    was judged on the older snapshot. SQLite: the whole claim runs under BEGIN IMMEDIATE.
+    PostgreSQL: the candidate row is locked with FOR UPDATE SKIP LOCKED, and the lease is taken
+    only if the item still has room when judged again in the INSERT, because a row unlocked by a
+    claim that committed meanwhile was judged on the older snapshot. SQLite: the whole claim runs
+    under BEGIN IMMEDIATE.
     """
     expires_at = now + timedelta(seconds=loop_settings(loop).lease_seconds)
     postgres = is_postgresql(session)
+    params = {"loop_id": loop.id, "user_id": user_id, "now": now}
     with write_transaction(session):
         if postgres:  # one claim at a time per annotator, so a double click takes one lease
             session.execute(
                 select(User.id).where(User.id == user_id).with_for_update(key_share=True)
             )
-        held = session.execute(
-            select(Lease.id, Lease.item_id)
-            .join(QueueItem, QueueItem.id == Lease.item_id)
-            .where(
-                Lease.user_id == user_id,
-                Lease.expires_at > now,
-                QueueItem.status == ITEM_OPEN,
-                QueueItem.round_id.in_(rounds_of(loop.id)),
-            )
-            .order_by(Lease.claimed_at, Lease.id)
-            .limit(1)
-        ).first()
+        held = session.execute(held_lease_query(), params).first()
         if held is not None:
             session.execute(update(Lease).where(Lease.id == held.id).values(expires_at=expires_at))
             item = lock_item(session, loop=loop, item_id=held.item_id, lock=False)
             return Claim(item=item, expires_at=expires_at)
         passed: list[int] = []
         while True:
-            query = (
-                select(QueueItem)
-                .where(QueueItem.round_id.in_(rounds_of(loop.id)), *room_for(user_id, now))
-                .order_by(QueueItem.round_id, QueueItem.position)
-                .limit(1)
-                .execution_options(populate_existing=True)
-            )
+            query = candidate_query(postgres)
             if passed:
                 query = query.where(QueueItem.id.not_in(passed))
-            if postgres:
-                query = query.with_for_update(skip_locked=True, of=QueueItem)
-            candidate = session.scalars(query).first()
+            candidate = session.scalars(query, params).first()
             if candidate is None:
                 return None
-            if has_room(session, item_id=candidate.id, user_id=user_id, now=now):
-                take_lease(
-                    session, item_id=candidate.id, user_id=user_id, now=now, expires_at=expires_at
-                )
+            if take_lease(
+                session, item_id=candidate.id, user_id=user_id, now=now, expires_at=expires_at
+            ):
                 return Claim(item=candidate, expires_at=expires_at)
-            passed.append(candidate.id)
+            passed.append(candidate.id)  # judged on a stale snapshot (PostgreSQL): next one
 
 
 def renew(session: Session, *, loop: Loop, item_id: int, user_id: int, now: datetime) -> datetime:
@@ -226,13 +214,13 @@ def renew(session: Session, *, loop: Loop, item_id: int, user_id: int, now: date
             .where(Lease.item_id == item_id, Lease.user_id == user_id, Lease.expires_at > now)
             .values(expires_at=expires_at)
         )
-        if renewed.rowcount == 0:  # type: ignore[attr-defined]
-            if not has_room(session, item_id=item_id, user_id=user_id, now=now):
-                raise Conflict(
-                    f"you hold no claim on item {item_id} (it lapsed or was never taken) and the "
-                    "item is no longer free for you; claim the next item"
-                )
-            take_lease(session, item_id=item_id, user_id=user_id, now=now, expires_at=expires_at)
+        if renewed.rowcount == 0 and not take_lease(  # type: ignore[attr-defined]
+            session, item_id=item_id, user_id=user_id, now=now, expires_at=expires_at
+        ):
+            raise Conflict(
+                f"you hold no claim on item {item_id} (it lapsed or was never taken) and the "
+                "item is no longer free for you; claim the next item"
+            )
     return expires_at
 
 

@@ -50,7 +50,8 @@ def with_scene(cols: dict[str, list]) -> dict[str, list]:
 def make_loop(client, admin, uploader, app) -> Callable[..., str]:
     """Create a loop with round 1 holding uploaded rollouts; queue its states in step-id order.
 
-    Returns the loop slug. `queue` limits how many states are queued (None: all).
+    Returns the loop slug. Queued: `queue` states (None: all) from position `start` in
+    (rollout, step) order.
     """
 
     def make(
@@ -59,6 +60,7 @@ def make_loop(client, admin, uploader, app) -> Callable[..., str]:
         columns: dict[str, list] | None = None,
         queue: int | None = None,
         seed: int = 0,
+        start: int = 0,
     ) -> str:
         body = {**spec, "settings": settings or {}}
         created = client.post("/api/loops", json=body, headers=admin)
@@ -95,7 +97,7 @@ def make_loop(client, admin, uploader, app) -> Callable[..., str]:
                 session,
                 rnd=rnd,
                 loop=loop,
-                step_ids=step_ids if queue is None else step_ids[:queue],
+                step_ids=step_ids[start:] if queue is None else step_ids[start : start + queue],
                 seed=seed,
             )
             session.commit()

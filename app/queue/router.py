@@ -1,0 +1,143 @@
+"""HTTP routes of the queue (claim, renew, skip, submit, progress), the bench page, and the
+admins' view of a round's queue."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Request, Response, status
+from fastapi.responses import HTMLResponse
+
+from app.deps import AdminDep, AnnotatorDep, SessionDep
+from app.loops import service as loops_service
+from app.models import utcnow
+from app.queue import service
+from app.queue.bench import bench_item
+from app.queue.labels import stored_action
+from app.queue.schemas import (
+    ClaimRead,
+    LabelCreate,
+    LabelRead,
+    LeaseRead,
+    ProgressRead,
+    RoundQueueRead,
+    SkipRead,
+)
+from app.templating import templates
+
+router = APIRouter(tags=["queue"])
+
+QUEUE = "/api/loops/{slug}/queue"
+
+
+@router.post(QUEUE + "/claim", response_model=ClaimRead)
+def claim(slug: str, session: SessionDep, caller: AnnotatorDep) -> ClaimRead:
+    """Lease the next state to label, or get back the one already held (annotator)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    claimed = service.claim_next(session, loop=loop, user_id=caller.user_id, now=utcnow())
+    if claimed is None:
+        return ClaimRead(item=None)
+    return ClaimRead(item=bench_item(session, loop=loop, claim=claimed))
+
+
+@router.post(QUEUE + "/items/{item_id}/renew", response_model=LeaseRead)
+def renew(slug: str, item_id: int, session: SessionDep, caller: AnnotatorDep) -> LeaseRead:
+    """Extend the lease on a held item while its annotator works (annotator)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    expires_at = service.renew(
+        session, loop=loop, item_id=item_id, user_id=caller.user_id, now=utcnow()
+    )
+    return LeaseRead(item_id=item_id, lease_expires_at=expires_at)
+
+
+@router.post(QUEUE + "/items/{item_id}/skip", response_model=SkipRead)
+def skip(slug: str, item_id: int, session: SessionDep, caller: AnnotatorDep) -> SkipRead:
+    """Pass on an item; it is not offered to this annotator again (annotator)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    service.skip(session, loop=loop, item_id=item_id, user_id=caller.user_id, now=utcnow())
+    return SkipRead(item_id=item_id, skipped=True)
+
+
+@router.post(
+    QUEUE + "/items/{item_id}/labels",
+    response_model=LabelRead,
+    status_code=status.HTTP_201_CREATED,
+    responses={200: {"description": "a repeated submission: the label stored the first time"}},
+)
+def submit(
+    slug: str,
+    item_id: int,
+    body: LabelCreate,
+    response: Response,
+    session: SessionDep,
+    caller: AnnotatorDep,
+) -> LabelRead:
+    """Submit an answer (an action, or unsure) for a held item; repeats are harmless (annotator)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    done = service.submit(
+        session,
+        loop=loop,
+        item_id=item_id,
+        user_id=caller.user_id,
+        submission_id=body.submission_id,
+        answer=body.answer,
+        action=body.action,
+        span_steps=body.span_steps,
+        seconds_spent=body.seconds_spent,
+        now=utcnow(),
+    )
+    if done.repeated:
+        response.status_code = status.HTTP_200_OK
+    label = done.label
+    action = stored_action(label)
+    names = loop.action_space.get("actions")
+    return LabelRead(
+        id=label.id,
+        item_id=item_id,
+        step_id=label.step_id,
+        answer=label.answer,
+        action=action,
+        action_name=names[action] if names and isinstance(action, int) else None,
+        learner_shown=label.learner_shown,
+        span_labels=done.span_labels,
+        seconds_spent=label.seconds_spent,
+        created_at=label.created_at,
+        repeated=done.repeated,
+    )
+
+
+@router.get(QUEUE + "/progress", response_model=ProgressRead)
+def progress(slug: str, session: SessionDep, caller: AnnotatorDep) -> ProgressRead:
+    """Labelled today, left in the queue, and expected time left at today's pace (annotator)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    found = service.progress(session, loop=loop, user_id=caller.user_id, now=utcnow())
+    return ProgressRead(**found.__dict__)
+
+
+@router.get("/api/loops/{slug}/rounds/{number}/queue", response_model=RoundQueueRead)
+def round_queue(slug: str, number: int, session: SessionDep, _: AdminDep) -> RoundQueueRead:
+    """Counts of a round's queue: items, labels, live leases, skips (admin)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    rnd = loops_service.get_round(session, loop=loop, number=number)
+    counts = service.round_queue(session, rnd=rnd, now=utcnow())
+    return RoundQueueRead(round=number, **counts.__dict__)
+
+
+@router.get("/loops/{slug}/bench", response_class=HTMLResponse)
+def bench_page(request: Request, slug: str, session: SessionDep, caller: AnnotatorDep) -> Response:
+    """The bench: label the loop's queued states, keyboard first (annotator)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    settings = service.loop_settings(loop)
+    config = {
+        "slug": loop.slug,
+        "features": loop.features,
+        "action_space": loop.action_space,
+        "lease_seconds": settings.lease_seconds,
+        "context_seconds": settings.context_seconds,
+        "span_labels": settings.span_labels,
+        "plotted_features": min(3, len(loop.features)),
+    }
+    return templates.TemplateResponse(
+        request,
+        "bench.html",
+        # "subject", not "loop": Jinja's for-loops own the name `loop`
+        {"caller": caller, "subject": loop, "settings": settings, "config": config},
+    )

@@ -1,0 +1,69 @@
+"""HTTP routes of the round report: JSON per round, the table across rounds, CSV, the loop page."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import APIRouter, Depends, Request
+from fastapi.responses import HTMLResponse, Response
+
+from app.deps import ReaderDep, SessionDep
+from app.loops import service as loops_service
+from app.reports import page, service, table
+from app.reports.schemas import LoopReport, RoundReport
+from app.templating import templates
+
+router = APIRouter(tags=["reports"])
+
+
+def get_report_cache(request: Request) -> service.ReportCache:
+    """The process's report cache, made on first use."""
+    state = request.app.state
+    if getattr(state, "report_cache", None) is None:
+        state.report_cache = service.ReportCache()
+    cache: service.ReportCache = state.report_cache
+    return cache
+
+
+CacheDep = Annotated[service.ReportCache, Depends(get_report_cache)]
+
+
+@router.get("/api/loops/{slug}/rounds/{number}/report", response_model=RoundReport)
+def round_report(
+    slug: str, number: int, session: SessionDep, cache: CacheDep, _: ReaderDep
+) -> RoundReport:
+    """One round's report: disagreement, shift, agreement, pace (any signed-in role)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    return service.round_report(session, loop=loop, number=number, cache=cache)
+
+
+@router.get("/api/loops/{slug}/report", response_model=LoopReport)
+def loop_report(slug: str, session: SessionDep, cache: CacheDep, _: ReaderDep) -> LoopReport:
+    """The table across a loop's rounds (any signed-in role)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    return table.loop_table(loop, service.loop_reports(session, loop=loop, cache=cache))
+
+
+@router.get("/api/loops/{slug}/report.csv", response_class=Response)
+def loop_report_csv(slug: str, session: SessionDep, cache: CacheDep, _: ReaderDep) -> Response:
+    """The table across rounds as CSV, one row per round (any signed-in role)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    rows = table.loop_table(loop, service.loop_reports(session, loop=loop, cache=cache)).items
+    return Response(
+        table.rows_csv(rows),
+        media_type="text/csv; charset=utf-8",
+        headers={"Content-Disposition": f'attachment; filename="{loop.slug}-report.csv"'},
+    )
+
+
+@router.get("/loops/{slug}", response_class=HTMLResponse)
+def loop_page(
+    request: Request, slug: str, session: SessionDep, cache: CacheDep, caller: ReaderDep
+) -> Response:
+    """The loop page: rounds table, charts across rounds, shifted features (any signed-in role)."""
+    loop = loops_service.get_loop(session, slug=slug)
+    reports = service.loop_reports(session, loop=loop, cache=cache)
+    context = page.loop_page_context(loop, reports)
+    return templates.TemplateResponse(
+        request, "loop.html", {**context, "this_loop": loop, "caller": caller}
+    )

@@ -1,0 +1,388 @@
+"""Round reports: load a round's arrays from the store in bulk, then compute (``compute``).
+
+Definitions (also in the README's report section)
+--------------------------------------------------
+- Expert answer on a state: the consensus of all its labels (``training_set.relabels``:
+  majority vote with ties unresolved, or the per-dimension median for continuous actions).
+- Audit and ranked samples: the round's selected states by ``SelectedState.reason``. Only the
+  audit sample (uniform at random) estimates the learner's on-policy disagreement without
+  bias; the ranked sample is chosen for being hard and is marked biased.
+- Previous learner action: the learner's action at ``step_index - 1`` of the same rollout;
+  first steps (and steps after one without a learner action) are left out of the split.
+- Shift: the round's learner-controlled states against the training set up to the round
+  before (``current_cutoff(up_to_round=round - 1)``), each side a seeded uniform subsample of
+  at most ``MAX_SHIFT_SAMPLES`` states, standardised with the training sample's mean and
+  standard deviation, unbiased MMD^2 with an RBF kernel whose bandwidth is the median
+  pairwise distance of the pooled sample, and ``SHIFT_PERMUTATIONS`` permutations.
+- Reports are computed on request; results are kept per process keyed by a fingerprint of
+  everything they read (``ReportCache``), so an unchanged round is not recomputed.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import threading
+from collections import OrderedDict
+from datetime import UTC, datetime
+from typing import Any
+
+import numpy as np
+from sqlalchemy import and_, func, select
+from sqlalchemy.orm import Session, aliased
+
+from app.auth.models import User
+from app.ingest.encode import FLOAT32_LE
+from app.ingest.models import CONTROL_LEARNER, Rollout, Step
+from app.loops import service as loops_service
+from app.loops.models import Loop, Round
+from app.queue.models import ANSWER_UNSURE, Label
+from app.reports import annotators, compute, stats
+from app.reports.schemas import CountsRead, RoundReport
+from app.sampler.models import REASON_AUDIT, SelectedState, Selection
+from app.snapshots import training_set as ts
+
+MAX_SHIFT_SAMPLES = 1000
+"""States drawn from each side for the shift test (memory and time grow with its square)."""
+SHIFT_PERMUTATIONS = 200
+"""Permutations of the MMD test: the smallest p-value it can give is 1/201."""
+SHIFT_SEED = 20_240_611
+"""Fixed seed: the same data always gives the same report. Combined with the round number."""
+_CHUNK = 5_000
+
+
+def kind_of(loop: Loop) -> compute.ActionKind:
+    """The loop's action space as the computation needs it."""
+    if ts.is_discrete(loop):
+        return compute.ActionKind(True, ts.action_width(loop), (), np.zeros(0))
+    names = tuple(d["name"] for d in loop.action_space["dimensions"])
+    return compute.ActionKind(False, 0, names, ts.continuous_tolerance(loop))
+
+
+def _chunks(ids: np.ndarray) -> list[list[int]]:
+    return [ids[i : i + _CHUNK].tolist() for i in range(0, len(ids), _CHUNK)]
+
+
+def _actions(ints: list[Any], blobs: list[Any], kind: compute.ActionKind) -> np.ndarray:
+    """Stored actions (index or float32 bytes, ``None`` where absent) as one array."""
+    if kind.discrete:
+        return np.array([-1 if v is None else v for v in ints], dtype=np.int64).reshape(-1)
+    width = len(kind.dimension_names)
+    out = np.full((len(blobs), width), np.nan)
+    present = [i for i, b in enumerate(blobs) if b is not None]
+    if present:
+        joined = b"".join(blobs[i] for i in present)
+        out[present] = np.frombuffer(joined, dtype=FLOAT32_LE).reshape(len(present), width)
+    return out
+
+
+def _step_actions(
+    session: Session, step_ids: np.ndarray, kind: compute.ActionKind
+) -> tuple[np.ndarray, np.ndarray]:
+    """Learner action at each step and at the step before it in its rollout (id order in)."""
+    previous = aliased(Step)
+    rows: list[Any] = []
+    for chunk in _chunks(step_ids):
+        rows.extend(
+            session.execute(
+                select(
+                    Step.id,
+                    Step.learner_action,
+                    Step.learner_action_vec,
+                    previous.learner_action,
+                    previous.learner_action_vec,
+                )
+                .outerjoin(
+                    previous,
+                    and_(
+                        previous.rollout_id == Step.rollout_id,
+                        previous.step_index == Step.step_index - 1,
+                    ),
+                )
+                .where(Step.id.in_(chunk))
+            ).all()
+        )
+    order = {row[0]: i for i, row in enumerate(rows)}
+    rows = [rows[order[s]] for s in step_ids.tolist()]
+    learner = _actions([r[1] for r in rows], [r[2] for r in rows], kind)
+    before = _actions([r[3] for r in rows], [r[4] for r in rows], kind)
+    return learner, before
+
+
+def _expert(found: ts.Relabels, step_ids: np.ndarray, kind: compute.ActionKind) -> np.ndarray:
+    """Consensus action of each step id; "none" where unlabelled or unresolved."""
+    hit = np.zeros(len(step_ids), dtype=bool)
+    at = np.zeros(len(step_ids), dtype=np.int64)
+    if len(found.step_id):
+        at = np.minimum(np.searchsorted(found.step_id, step_ids), len(found.step_id) - 1)
+        hit = (found.step_id[at] == step_ids) & found.resolved[at]
+    if kind.discrete:
+        expert = np.full(len(step_ids), -1, np.int64)
+        expert[hit] = found.action[at[hit]]
+        return expert
+    expert_vec = np.full((len(step_ids), len(kind.dimension_names)), np.nan)
+    expert_vec[hit] = found.action[at[hit]]
+    return expert_vec
+
+
+def _features(session: Session, step_ids: np.ndarray, width: int) -> np.ndarray:
+    """Float32 features of sorted step ids, shape (n, width)."""
+    out = np.empty((len(step_ids), width), dtype=np.float32)
+    at = 0
+    for chunk in _chunks(step_ids):
+        blobs = session.scalars(select(Step.features).where(Step.id.in_(chunk)).order_by(Step.id))
+        block = np.frombuffer(b"".join(blobs), dtype=FLOAT32_LE).reshape(-1, width)
+        out[at : at + len(block)] = block
+        at += len(block)
+    return out
+
+
+def _subsample(ids: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    if len(ids) <= MAX_SHIFT_SAMPLES:
+        return ids
+    return np.sort(rng.choice(ids, MAX_SHIFT_SAMPLES, replace=False))
+
+
+def _seconds(moment: datetime) -> float:
+    # SQLite hands back naive datetimes; the store only writes UTC
+    return (moment if moment.tzinfo else moment.replace(tzinfo=UTC)).timestamp()
+
+
+def _counts(session: Session, rnd: Round) -> dict[str, int]:
+    by_control = dict(
+        session.execute(
+            select(Step.control, func.count()).where(Step.round_id == rnd.id).group_by(Step.control)
+        ).all()
+    )
+    rollouts = (
+        session.scalar(select(func.count()).select_from(Rollout).where(Rollout.round_id == rnd.id))
+        or 0
+    )
+    learner = int(by_control.get(CONTROL_LEARNER, 0))
+    states = int(sum(by_control.values()))
+    return {"rollouts": int(rollouts), "states": states, "learner_states": learner}
+
+
+def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundReport:
+    """Compute the report of one round from the store (no cache)."""
+    rnd = loops_service.get_round(session, loop=loop, number=number)
+    kind = kind_of(loop)
+    counts = _counts(session, rnd)
+    found = ts.relabels(
+        session, loop=loop, cutoff=ts.current_cutoff(session, loop=loop, up_to_round=number)
+    )
+
+    selected = session.execute(
+        select(SelectedState.step_id, SelectedState.reason)
+        .join(Selection, Selection.id == SelectedState.selection_id)
+        .where(Selection.round_id == rnd.id)
+        .order_by(SelectedState.step_id)
+    ).all()
+    selected_ids = np.array([r[0] for r in selected], dtype=np.int64)
+    is_audit = np.array([r[1] == REASON_AUDIT for r in selected], dtype=bool)
+    learner, before = _step_actions(session, selected_ids, kind)
+    expert = _expert(found, selected_ids, kind)
+    samples = {
+        reason: compute.sample_read(
+            reason,
+            compute.SampleArrays(learner[mask], expert[mask], before[mask]),
+            kind,
+            stats.MIN_AUDIT_LABELS,
+        )
+        for reason, mask in (("audit", is_audit), ("ranked", ~is_audit))
+    }
+
+    labels, names = _labels(session, rnd, found, kind)
+    voted_states = np.bincount(labels.state[labels.voted()], minlength=len(labels.consensus))
+    rng = np.random.default_rng([SHIFT_SEED, number])
+    shift = _shift(session, loop=loop, rnd=rnd, rng=rng)
+    return RoundReport(
+        loop=loop.slug,
+        round=number,
+        learner_version=rnd.learner_version,
+        status=rnd.status,
+        action_kind="discrete" if kind.discrete else "continuous",
+        min_audit_labels=stats.MIN_AUDIT_LABELS,
+        counts=CountsRead(
+            **counts,
+            expert_states=counts["states"] - counts["learner_states"],
+            selected=len(selected_ids),
+            selected_audit=int(is_audit.sum()),
+            selected_ranked=int((~is_audit).sum()),
+            labels=len(labels.annotator),
+            unsure_labels=int((~labels.voted()).sum()),
+            labelled_states=len(labels.consensus),
+            multi_label_states=int((voted_states >= 2).sum()),
+        ),
+        audit=samples["audit"],
+        ranked=samples["ranked"],
+        shift=shift,
+        agreement=annotators.agreement_read(labels, kind),
+        annotators=annotators.annotators_read(labels, kind, names),
+        pace=annotators.pace_read(labels),
+        shown_vs_hidden=annotators.shown_hidden_read(labels, kind),
+    )
+
+
+def _labels(
+    session: Session, rnd: Round, found: ts.Relabels, kind: compute.ActionKind
+) -> tuple[compute.LabelArrays, dict[int, str]]:
+    rows = session.execute(
+        select(
+            Label.step_id,
+            Label.user_id,
+            Label.answer,
+            Label.action,
+            Label.action_vec,
+            Label.learner_shown,
+            Label.created_at,
+        )
+        .where(Label.round_id == rnd.id)
+        .order_by(Label.id)
+    ).all()
+    step_ids = np.array([r[0] for r in rows], dtype=np.int64)
+    states, state_index = np.unique(step_ids, return_inverse=True)
+    unsure = np.array([r[2] == ANSWER_UNSURE for r in rows], dtype=bool)
+    action = _actions([r[3] for r in rows], [r[4] for r in rows], kind)
+    action[unsure] = -1 if kind.discrete else np.nan
+    learner, _ = _step_actions(session, states, kind)
+    users = sorted({r[1] for r in rows})
+    names = dict(session.execute(select(User.id, User.name).where(User.id.in_(users))).all())
+    labels = compute.LabelArrays(
+        annotator=np.array([r[1] for r in rows], dtype=np.int64),
+        state=state_index.astype(np.int64).reshape(-1),
+        action=action,
+        created_s=np.array([_seconds(r[6]) for r in rows], dtype=np.float64),
+        learner_shown=np.array([bool(r[5]) for r in rows], dtype=bool),
+        learner_action=learner[state_index.reshape(-1)] if len(rows) else learner,
+        consensus=_expert(found, states, kind),
+    )
+    return labels, {int(k): str(v) for k, v in names.items()}
+
+
+def _shift(session: Session, *, loop: Loop, rnd: Round, rng: np.random.Generator) -> Any:
+    names = [f["name"] for f in loop.features]
+    units = [f.get("unit", "") for f in loop.features]
+    if rnd.number == 0:
+        training_ids = np.zeros(0, np.int64)
+    else:
+        cutoff = ts.current_cutoff(session, loop=loop, up_to_round=rnd.number - 1)
+        training_ids = ts.members(session, loop=loop, cutoff=cutoff).step_id
+    visited_ids = np.array(
+        session.scalars(
+            select(Step.id)
+            .where(Step.round_id == rnd.id, Step.control == CONTROL_LEARNER)
+            .order_by(Step.id)
+        ).all(),
+        dtype=np.int64,
+    )
+    # subsample by id first so that only the drawn states' features are read
+    training_sample = _subsample(training_ids, rng)
+    visited_sample = _subsample(visited_ids, rng)
+    return compute.shift_read(
+        _features(session, training_sample, len(names)),
+        _features(session, visited_sample, len(names)),
+        n_training=len(training_ids),
+        n_round=len(visited_ids),
+        feature_names=names,
+        feature_units=units,
+        n_permutations=SHIFT_PERMUTATIONS,
+        rng=rng,
+    )
+
+
+# --- reports on request, kept while their inputs do not change --------------------------------
+
+
+class ReportCache:
+    """Computed reports by fingerprint, least recently used dropped first; thread-safe.
+
+    One per app process (``app.state.report_cache``). A fingerprint covers everything a report
+    reads, so a stale entry is never served: it simply stops being asked for.
+    """
+
+    def __init__(self, max_entries: int = 256) -> None:
+        self._entries: OrderedDict[str, RoundReport] = OrderedDict()
+        self._lock = threading.Lock()
+        self.max_entries = max_entries
+
+    def get(self, key: str) -> RoundReport | None:
+        with self._lock:
+            found = self._entries.get(key)
+            if found is not None:
+                self._entries.move_to_end(key)
+            return found
+
+    def put(self, key: str, report: RoundReport) -> None:
+        with self._lock:
+            self._entries[key] = report
+            self._entries.move_to_end(key)
+            while len(self._entries) > self.max_entries:
+                self._entries.popitem(last=False)
+
+
+def _fingerprints(session: Session, *, loop: Loop) -> dict[int, str]:
+    """A hash per round of what its report reads: the loop's spec, its own rows and selection,
+    and the steps and labels of every earlier round (the training set it is compared with)."""
+    rounds = session.execute(
+        select(Round.id, Round.number, Round.status, Round.learner_version)
+        .where(Round.loop_id == loop.id)
+        .order_by(Round.number)
+    ).all()
+    ids = [r[0] for r in rounds]
+
+    def grouped(column: Any, key: Any, *joins: Any) -> dict[int, tuple[int, int]]:
+        query = select(key, func.count(), func.max(column))
+        for target, on in joins:
+            query = query.join(target, on)
+        rows = session.execute(query.where(key.in_(ids)).group_by(key)).all()
+        return {int(r[0]): (int(r[1]), int(r[2] or 0)) for r in rows}
+
+    steps = grouped(Step.id, Step.round_id)
+    labels = grouped(Label.id, Label.round_id)
+    chosen = grouped(
+        SelectedState.id,
+        Selection.round_id,
+        (SelectedState, SelectedState.selection_id == Selection.id),
+    )
+    spec = json.dumps([loop.features, loop.action_space, loop.settings], sort_keys=True)
+    prints: dict[int, str] = {}
+    digest = hashlib.sha256(spec.encode())
+    for round_id, number, status, version in rounds:
+        digest.update(repr((number, steps.get(round_id), labels.get(round_id))).encode())
+        own = digest.copy()
+        own.update(repr((status, version, chosen.get(round_id), SHIFT_SEED)).encode())
+        prints[number] = own.hexdigest()
+    return prints
+
+
+def round_report(
+    session: Session, *, loop: Loop, number: int, cache: ReportCache | None = None
+) -> RoundReport:
+    """The report of one round, from the cache when its inputs are unchanged."""
+    loops_service.get_round(session, loop=loop, number=number)  # NotFound for a wrong number
+    if cache is None:
+        return compute_round_report(session, loop=loop, number=number)
+    key = f"{loop.id}:{number}:{_fingerprints(session, loop=loop)[number]}"
+    found = cache.get(key)
+    if found is None:
+        found = compute_round_report(session, loop=loop, number=number)
+        cache.put(key, found)
+    return found
+
+
+def loop_reports(
+    session: Session, *, loop: Loop, cache: ReportCache | None = None
+) -> list[RoundReport]:
+    """Reports of every round of a loop, oldest first."""
+    prints = _fingerprints(session, loop=loop)
+    reports = []
+    for number, fingerprint in prints.items():
+        key = f"{loop.id}:{number}:{fingerprint}"
+        found = cache.get(key) if cache is not None else None
+        if found is None:
+            found = compute_round_report(session, loop=loop, number=number)
+            if cache is not None:
+                cache.put(key, found)
+        reports.append(found)
+    return reports

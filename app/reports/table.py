@@ -1,0 +1,90 @@
+"""The table across rounds: one flat row per round report, and its CSV text."""
+
+from __future__ import annotations
+
+import csv
+import io
+
+from app.loops.models import Loop
+from app.reports import stats
+from app.reports.schemas import LoopReport, RoundReport, RoundReportRow
+
+
+def report_row(report: RoundReport) -> RoundReportRow:
+    """Flatten a round report into one row; withheld or undefined numbers stay ``None``.
+
+    ``krippendorff_alpha`` is the nominal alpha for discrete actions and, for continuous
+    ones, the lowest of the per-dimension interval alphas (the weakest dimension).
+    """
+    audit, ranked = report.audit.disagreement, report.ranked.disagreement
+    alphas = [a.alpha for a in report.agreement.krippendorff if a.alpha is not None]
+    features = report.shift.features
+    return RoundReportRow(
+        round=report.round,
+        learner_version=report.learner_version,
+        status=report.status,
+        states=report.counts.states,
+        learner_states=report.counts.learner_states,
+        selected_audit=report.counts.selected_audit,
+        selected_ranked=report.counts.selected_ranked,
+        labels=report.counts.labels,
+        labelled_states=report.counts.labelled_states,
+        audit_n=audit.n,
+        audit_disagreement=audit.rate,
+        audit_lower=audit.lower,
+        audit_upper=audit.upper,
+        ranked_n=ranked.n,
+        ranked_disagreement=ranked.rate,
+        ranked_lower=ranked.lower,
+        ranked_upper=ranked.upper,
+        changed_n=report.audit.changed.n,
+        changed_disagreement=report.audit.changed.rate,
+        unchanged_n=report.audit.unchanged.n,
+        unchanged_disagreement=report.audit.unchanged.rate,
+        shift_mmd2=report.shift.mmd2,
+        shift_p_value=report.shift.p_value,
+        most_shifted_feature=features[0].name if features else None,
+        cohen_kappa=report.agreement.cohen_kappa,
+        fleiss_kappa=report.agreement.fleiss_kappa,
+        krippendorff_alpha=min(alphas) if alphas else None,
+        labels_per_hour=report.pace.labels_per_hour,
+        shown_minus_hidden=report.shown_vs_hidden.difference,
+    )
+
+
+def loop_table(loop: Loop, reports: list[RoundReport]) -> LoopReport:
+    """The table across rounds built from the rounds' reports."""
+    rows = [report_row(r) for r in reports]
+    return LoopReport(
+        loop=loop.slug,
+        title=loop.title,
+        action_kind="discrete" if loop.action_space["kind"] == "discrete" else "continuous",
+        min_audit_labels=stats.MIN_AUDIT_LABELS,
+        items=rows,
+        total=len(rows),
+    )
+
+
+def rows_csv(rows: list[RoundReportRow]) -> str:
+    """CSV text with a header of the row's field names; empty cells for ``None``.
+
+    Floats are written with ``repr`` precision so the file round-trips to the JSON values.
+    Text starting with ``= + - @`` gets a leading apostrophe so that a spreadsheet does not
+    run it as a formula (OWASP guidance on CSV injection).
+    """
+    sink = io.StringIO()
+    names = list(RoundReportRow.model_fields)
+    writer = csv.writer(sink, lineterminator="\n")
+    writer.writerow(names)
+    for row in rows:
+        values = row.model_dump()
+        writer.writerow([_cell(values[n]) for n in names])
+    return sink.getvalue()
+
+
+def _cell(value: object) -> object:
+    if value is None:
+        return ""
+    if isinstance(value, str) and value.startswith(("=", "+", "-", "@")):
+        return "'" + value
+    return value

@@ -1,0 +1,332 @@
+"""Queue benchmark: annotator clients doing claim + submit against a live server on loopback.
+
+    python -m bench.queue                      # SQLite in a temporary folder, 1 server worker
+    python -m bench.queue --postgres postgresql+psycopg://postgres@127.0.0.1:5432/DBNAME
+                                               # PostgreSQL, 2 workers; DBNAME IS EMPTIED
+
+Two phases with the same 32 clients. "paced": each annotator looks at a state for a while
+(uniform 0.5 to 1.5 s by default, `--think`; real experts take longer) before submitting, and
+they start at random moments within the first pause: the load the bench puts on the server. "flat out": no pause at all, which finds the throughput
+ceiling; there, latency is mostly waiting in line (32 clients / throughput, by Little's law).
+Prints p50/p99 round-trip latency of claims and submits, throughput in labels per second, and
+the count of double assignments. Baseline, measured in the same run with the same clients:
+`GET /api/me` (sign-in check and one query), so the ratio shows what the queue adds to the
+cheapest authenticated request. Run from the repository root.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+
+# `python bench/queue.py` would put bench/ first on sys.path, where this file would shadow the
+# standard library's `queue` module; run with the repository root instead.
+_here = os.path.dirname(os.path.abspath(__file__))
+sys.path[:] = [p for p in sys.path if os.path.abspath(p or ".") != _here]
+sys.path.insert(0, os.path.dirname(_here))
+
+import argparse  # noqa: E402
+import hashlib  # noqa: E402
+import random  # noqa: E402
+import socket  # noqa: E402
+import subprocess  # noqa: E402
+import tempfile  # noqa: E402
+import threading  # noqa: E402
+import time  # noqa: E402
+import uuid  # noqa: E402
+from collections import Counter  # noqa: E402
+from pathlib import Path  # noqa: E402
+from typing import Any  # noqa: E402
+
+import httpx  # noqa: E402
+import numpy as np  # noqa: E402
+import pyarrow as pa  # noqa: E402
+import pyarrow.parquet as pq  # noqa: E402
+from sqlalchemy import func, select, text  # noqa: E402
+
+ROOT = Path(_here).parent
+
+
+def rollout_file(path: Path, n_rollouts: int, steps: int, seed: int = 0) -> None:
+    """An invented discrete-action rollout file: 3 features at 10 Hz, learner probabilities."""
+    rng = np.random.default_rng(seed)
+    n = n_rollouts * steps
+    probs = rng.dirichlet(np.ones(3), size=n).astype(np.float32)
+    probs /= probs.sum(axis=1, keepdims=True)
+    table = pa.table(
+        {
+            "rollout": [f"bench-{r:04d}" for r in range(n_rollouts) for _ in range(steps)],
+            "step": [s for _ in range(n_rollouts) for s in range(steps)],
+            "time_s": [0.1 * s for _ in range(n_rollouts) for s in range(steps)],
+            "features": rng.normal(size=(n, 3)).round(3).tolist(),
+            "learner_action": [["proceed", "creep", "hold"][i] for i in probs.argmax(axis=1)],
+            "learner_probs": probs.tolist(),
+        }
+    )
+    pq.write_table(table, path)
+
+
+def prepare(url: str, data_dir: Path, n_items: int, n_clients: int) -> list[str]:
+    """Migrate an empty store, create the loop, round, rollouts and queue; return API tokens."""
+    from app.auth import service as auth_service
+    from app.db import make_engine, make_session_factory
+    from app.ingest import service as ingest_service
+    from app.loops import service as loops_service
+    from app.loops.schemas import LoopCreate
+    from app.migrations_state import upgrade
+    from app.queue import service as queue_service
+
+    if url.startswith("postgresql"):
+        engine = make_engine(url)
+        with engine.begin() as conn:
+            conn.execute(text("DROP SCHEMA public CASCADE"))
+            conn.execute(text("CREATE SCHEMA public"))
+        engine.dispose()
+    upgrade(url)
+    engine = make_engine(url)
+    with make_session_factory(engine)() as session:
+        spec = LoopCreate.model_validate(
+            {
+                "slug": "bench-crossing",
+                "title": "Benchmark crossing (invented)",
+                "features": [
+                    {"name": "gap_m", "unit": "m"},
+                    {"name": "speed", "unit": "m/s"},
+                    {"name": "occluded"},
+                ],
+                "action_space": {"kind": "discrete", "actions": ["proceed", "creep", "hold"]},
+            }
+        )
+        loop = loops_service.create_loop(session, spec=spec, user_id=None)
+        rnd = loops_service.open_round(session, loop=loop, learner_version="v1", user_id=None)
+        file = data_dir / "bench.parquet"
+        rollout_file(file, n_rollouts=max(1, n_items // 100), steps=100)
+        ingest_service.ingest_file(
+            session,
+            loop=loop,
+            rnd=rnd,
+            path=file,
+            filename=file.name,
+            file_sha256=hashlib.sha256(file.read_bytes()).hexdigest(),
+            user_id=None,
+            blob_dir=data_dir / "blobs",
+        )
+        from app.ingest.models import Step
+
+        step_ids = list(session.scalars(select(Step.id).order_by(Step.id)))[:n_items]
+        queue_service.enqueue_steps(session, rnd=rnd, loop=loop, step_ids=step_ids, seed=1)
+        session.commit()
+        tokens = []
+        for i in range(n_clients):
+            user = auth_service.create_user(session, name=f"bench-{i:02d}", roles=["annotator"])
+            tokens.append(auth_service.issue_token(session, user=user))
+    engine.dispose()
+    return tokens
+
+
+def start_server(url: str, data_dir: Path, workers: int) -> tuple[subprocess.Popen[bytes], str]:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        port = sock.getsockname()[1]
+    env = {
+        **os.environ,
+        "EXPERTLOOP_DATABASE_URL": url,
+        "EXPERTLOOP_DATA_DIR": str(data_dir),
+        "PYTHONPATH": str(ROOT),
+    }
+    process = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "uvicorn",
+            "app.asgi:app",
+            "--host",
+            "127.0.0.1",
+            "--port",
+            str(port),
+            "--workers",
+            str(workers),
+            "--log-level",
+            "warning",
+            "--no-access-log",
+        ],
+        cwd=ROOT,
+        env=env,
+    )
+    base = f"http://127.0.0.1:{port}"
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        try:
+            if httpx.get(base + "/healthz", timeout=1).status_code == 200:
+                return process, base
+        except httpx.TransportError:
+            time.sleep(0.1)
+    process.kill()
+    raise SystemExit("the server did not start")
+
+
+def run_clients(base: str, tokens: list[str], work: Any) -> tuple[float, list[list[Any]]]:
+    """Run `work(client, results, i)` in one thread per token, all released at once."""
+    start = threading.Barrier(len(tokens) + 1)
+    results: list[list[Any]] = [[] for _ in tokens]
+    failures: list[BaseException] = []
+
+    def body(i: int) -> None:
+        headers = {"Authorization": f"Bearer {tokens[i]}"}
+        with httpx.Client(base_url=base, headers=headers, timeout=60) as client:
+            client.get("/api/me")  # open the connection before the clock starts
+            start.wait()
+            try:
+                work(client, results[i], i)
+            except BaseException as exc:  # reported after the run
+                failures.append(exc)
+
+    threads = [threading.Thread(target=body, args=(i,)) for i in range(len(tokens))]
+    for t in threads:
+        t.start()
+    start.wait()
+    began = time.perf_counter()
+    for t in threads:
+        t.join()
+    if failures:
+        raise SystemExit(f"a client failed: {failures[0]!r}")
+    return time.perf_counter() - began, results
+
+
+def baseline(client: httpx.Client, out: list[Any], _: int, rounds: int = 40) -> None:
+    for _ in range(rounds):
+        t = time.perf_counter()
+        assert client.get("/api/me").status_code == 200
+        out.append(time.perf_counter() - t)
+
+
+def claim_and_submit(
+    client: httpx.Client, out: list[Any], *, think: float, quota: int | None, seed: int
+) -> None:
+    """Claim, look for `think` seconds on average, submit; until `quota` labels or none left."""
+    rng = random.Random(seed)
+    queue = "/api/loops/bench-crossing/queue"
+    if think > 0:  # annotators do not all start in the same millisecond
+        time.sleep(rng.uniform(0, think))
+    while quota is None or len(out) < quota:
+        t = time.perf_counter()
+        got = client.post(queue + "/claim")
+        claim_s = time.perf_counter() - t
+        if got.status_code != 200:
+            raise SystemExit(f"claim failed: {got.status_code} {got.text}")
+        item = got.json()["item"]
+        if item is None:
+            return
+        if think > 0:
+            time.sleep(rng.uniform(0.5 * think, 1.5 * think))
+        body = {"submission_id": uuid.uuid4().hex, "answer": "action", "action": rng.randrange(3)}
+        t = time.perf_counter()
+        sent = client.post(f"{queue}/items/{item['item_id']}/labels", json=body)
+        submit_s = time.perf_counter() - t
+        if sent.status_code != 201:
+            raise SystemExit(f"submit failed: {sent.status_code} {sent.text}")
+        out.append((item["item_id"], claim_s, submit_s))
+
+
+def double_assignments(url: str, results: list[list[Any]], k: int) -> int:
+    """Items handed to more annotators than they need labels, plus items over k labels or
+    labelled twice by one annotator (from the clients' records and the store)."""
+    from app.db import make_engine
+    from app.queue.models import Label
+
+    handed = Counter(item for rows in results for item, _, _ in rows)
+    over = sum(1 for n in handed.values() if n > k)
+    engine = make_engine(url)
+    with engine.connect() as conn:
+        stored_over = conn.execute(
+            select(func.count()).select_from(
+                select(Label.item_id).group_by(Label.item_id).having(func.count() > k).subquery()
+            )
+        ).scalar_one()
+        twice = conn.execute(
+            select(func.count()).select_from(
+                select(Label.item_id, Label.user_id)
+                .group_by(Label.item_id, Label.user_id)
+                .having(func.count() > 1)
+                .subquery()
+            )
+        ).scalar_one()
+    engine.dispose()
+    return int(over + stored_over + twice)
+
+
+def percentile_ms(values: list[float], q: float) -> float:
+    return float(np.percentile(np.asarray(values), q) * 1000)
+
+
+def report(name: str, rows: list[list[Any]], wall: float, me: list[float]) -> None:
+    claims = [c for r in rows for _, c, _ in r]
+    submits = [s for r in rows for _, _, s in r]
+    both = claims + submits
+    print(
+        f"-- {name}: {len(claims)} labels in {wall:.1f} s, "
+        f"{len(claims) / wall:.1f} labels/s ({len(both) / wall:.0f} requests/s)"
+    )
+    print(f"   {'request':<22}{'p50 ms':>9}{'p99 ms':>9}")
+    for label, values in (("claim", claims), ("submit", submits), ("claim or submit", both)):
+        print(f"   {label:<22}{percentile_ms(values, 50):>9.1f}{percentile_ms(values, 99):>9.1f}")
+    print(
+        f"   p50 / p99 against the baseline: {percentile_ms(both, 50) / percentile_ms(me, 50):.2f}"
+        f" / {percentile_ms(both, 99) / percentile_ms(me, 99):.2f}"
+    )
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--postgres", help="PostgreSQL URL; that database is emptied")
+    parser.add_argument("--workers", type=int, help="server workers (default 2 PG, 1 SQLite)")
+    parser.add_argument("--clients", type=int, default=32)
+    parser.add_argument("--items", type=int, default=2000)
+    parser.add_argument("--paced-labels", type=int, default=15, help="labels per client, paced")
+    parser.add_argument("--think", type=float, default=1.0, help="mean seconds per state, paced")
+    args = parser.parse_args()
+    with tempfile.TemporaryDirectory() as tmp:
+        data_dir = Path(tmp)
+        url = args.postgres or f"sqlite:///{data_dir / 'bench.db'}"
+        workers = args.workers or (2 if args.postgres else 1)
+        tokens = prepare(url, data_dir, args.items, args.clients)
+        process, base = start_server(url, data_dir, workers)
+        try:
+            _, base_rows = run_clients(base, tokens, baseline)
+            paced_wall, paced = run_clients(
+                base,
+                tokens,
+                lambda c, out, i: claim_and_submit(
+                    c, out, think=args.think, quota=args.paced_labels, seed=i
+                ),
+            )
+            flat_wall, flat = run_clients(
+                base,
+                tokens,
+                lambda c, out, i: claim_and_submit(c, out, think=0.0, quota=None, seed=1000 + i),
+            )
+        finally:
+            process.terminate()
+            process.wait(timeout=30)
+        doubles = double_assignments(url, paced + flat, k=1)
+    me = [x for r in base_rows for x in r]
+    backend = "PostgreSQL" if args.postgres else "SQLite"
+    labelled = sum(len(r) for r in paced + flat)
+    print(
+        f"queue benchmark: {backend}, {workers} server worker(s), {args.clients} annotator "
+        f"clients, {labelled} of {args.items} items labelled (k=1), {os.cpu_count()} CPUs, "
+        f"load average {os.getloadavg()[0]:.1f}"
+    )
+    print(
+        f"-- baseline GET /api/me: p50 {percentile_ms(me, 50):.1f} ms, "
+        f"p99 {percentile_ms(me, 99):.1f} ms"
+    )
+    report(f"paced (think {args.think:g} s on average)", paced, paced_wall, me)
+    report("flat out (no think time)", flat, flat_wall, me)
+    print(f"double assignments: {doubles}")
+    if labelled != args.items:
+        raise SystemExit(f"only {labelled} of {args.items} items were labelled")
+
+
+if __name__ == "__main__":
+    main()

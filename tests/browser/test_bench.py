@@ -1,0 +1,237 @@
+"""The bench in headless Chromium (Debian's, never downloaded): sign in, label by keyboard, skip,
+answer unsure, set a continuous action with the slider; then read the labels from the store.
+
+Screenshots go to artifacts/ (gitignored) for a person to look at.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import struct
+import zlib
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from sqlalchemy import select
+
+from app.queue.models import Label, Lease, QueueItem, Skip
+from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC
+from tests.live_server import ROOT, live_server
+from tests.queue.conftest import user_id
+
+pytestmark = pytest.mark.browser
+
+CHROMIUM = "/usr/bin/chromium"
+CHROMIUM_ARGS = [
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--no-first-run",
+]
+ARTIFACTS = ROOT / "artifacts"
+PASSWORD = "correct horse battery"
+
+
+def png_bytes(pixels: np.ndarray) -> bytes:
+    """A PNG file of an (height, width, 3) uint8 image (PNG spec: filter byte 0 per row)."""
+    height, width, _ = pixels.shape
+    raw = b"".join(b"\x00" + row.tobytes() for row in pixels)
+
+    def chunk(tag: bytes, data: bytes) -> bytes:
+        return struct.pack(">I", len(data)) + tag + data + struct.pack(">I", zlib.crc32(tag + data))
+
+    header = struct.pack(">IIBBBBB", width, height, 8, 2, 0, 0, 0)
+    return (
+        b"\x89PNG\r\n\x1a\n"
+        + chunk(b"IHDR", header)
+        + chunk(b"IDAT", zlib.compress(raw))
+        + chunk(b"IEND", b"")
+    )
+
+
+def camera_image() -> bytes:
+    """An invented camera view: floor, a far wall and a dark box in the aisle."""
+    img = np.zeros((90, 160, 3), np.uint8)
+    img[:] = (214, 206, 190)
+    img[:40] = (236, 232, 222)
+    img[38:42] = (120, 112, 100)
+    img[45:75, 95:120] = (60, 70, 85)
+    return png_bytes(img)
+
+
+def crossing_rows(steps: int = 40) -> dict[str, list[Any]]:
+    """An invented tow-tractor approach to an aisle crossing, with a person walking across."""
+    cols: dict[str, list[Any]] = {
+        k: []
+        for k in (
+            "rollout",
+            "step",
+            "time_s",
+            "features",
+            "learner_action",
+            "learner_probs",
+            "scene",
+            "image",
+        )
+    }
+    image = camera_image()
+    for s in range(steps):
+        t = 0.1 * s
+        gap = 9.0 - 1.1 * t
+        speed = 1.2 - 0.25 * t + 0.05 * math.sin(3 * t)
+        occluded = 1.0 if 1.2 < t < 2.4 else 0.0
+        probs = [0.6 - 0.1 * t, 0.25 + 0.05 * t, 0.15 + 0.05 * t]
+        scene = {
+            "frame": "robot",
+            "agents": [
+                {"kind": "pedestrian", "x": gap, "y": 3.5 - 0.9 * t, "heading": -1.57},
+                {"kind": "forklift", "x": gap + 3.0, "y": -4.0 + 0.6 * t, "heading": 1.2},
+                {"kind": "robot", "x": -2.5, "y": 2.0, "heading": 0.0},
+                {"kind": "pallet", "x": 5.0, "y": -2.2, "heading": 0.4},
+            ],
+        }
+        cols["rollout"].append("demo-crossing-1")
+        cols["step"].append(s)
+        cols["time_s"].append(round(t, 3))
+        cols["features"].append([round(gap, 3), round(speed, 3), occluded])
+        cols["learner_action"].append(["proceed", "creep", "hold"][int(np.argmax(probs))])
+        cols["learner_probs"].append(probs)
+        cols["scene"].append(json.dumps(scene))
+        cols["image"].append(image)
+    return cols
+
+
+@pytest.fixture
+def browser():
+    from playwright.sync_api import sync_playwright
+
+    with sync_playwright() as playwright:
+        launched = playwright.chromium.launch(
+            executable_path=CHROMIUM, args=CHROMIUM_ARGS, headless=True
+        )
+        try:
+            yield launched
+        finally:
+            launched.close()
+
+
+def sign_in_and_open_bench(page: Any, base: str, slug: str) -> None:
+    page.goto(f"{base}/loops/{slug}/bench")
+    assert "/login" in page.url  # the page sends a signed-out browser to the sign-in form
+    page.focus("#name")  # autofocus may land after the load event
+    page.keyboard.type("ann")
+    page.keyboard.press("Tab")
+    page.keyboard.type(PASSWORD)
+    page.keyboard.press("Enter")
+    page.wait_for_url(f"{base}/loops/{slug}/bench")
+    page.wait_for_selector("#bench[data-phase=ready]")
+
+
+def current_item(page: Any) -> int:
+    return int(page.get_attribute("#bench", "data-item-id"))
+
+
+def answer_and_wait(page: Any, keys: list[str]) -> int:
+    before = current_item(page)
+    for key in keys:
+        page.keyboard.press(key)
+    page.wait_for_function(
+        "(before) => { const b = document.getElementById('bench');"
+        " return b.dataset.phase !== 'loading' && b.dataset.itemId !== String(before); }",
+        arg=before,
+    )
+    return before
+
+
+def test_label_by_keyboard_skip_and_unsure(make_loop, make_user, settings, app, browser):
+    slug = make_loop(DISCRETE_SPEC, columns=crossing_rows(), queue=6, start=20)
+    make_user("annotator", name="ann", password=PASSWORD)
+    requests: list[str] = []
+    with live_server(settings.resolved_database_url, settings.data_dir) as base:
+        page = browser.new_page(viewport={"width": 1440, "height": 1000})
+        page.on("request", lambda request: requests.append(request.url))
+        sign_in_and_open_bench(page, base, slug)
+        assert page.is_hidden("#learner-box")  # hidden by default (show_learner_fraction 0)
+        page.wait_for_function("document.getElementById('p-left').textContent === '6 states'")
+        assert page.locator(".action[aria-pressed=true]").count() == 0
+        page.keyboard.press("Tab")  # keyboard focus is visible
+        outline = page.evaluate("getComputedStyle(document.activeElement).outlineStyle")
+        assert outline == "solid"
+        page.keyboard.press("Shift+Tab")
+        page.keyboard.press(",")  # view an earlier step, then come back: the answer is for now
+        assert page.is_visible("#viewing-note")
+        page.keyboard.press("Escape")
+        assert page.is_hidden("#viewing-note")
+        page.keyboard.press("1")
+        assert page.get_attribute(".action[data-action='0']", "aria-pressed") == "true"
+        ARTIFACTS.mkdir(exist_ok=True)
+        page.screenshot(path=str(ARTIFACTS / "bench-discrete.png"), full_page=True)
+        labelled = [answer_and_wait(page, ["Enter"])]
+        labelled.append(answer_and_wait(page, ["3", "Enter"]))
+        labelled.append(answer_and_wait(page, ["2", "Enter"]))
+        skipped = answer_and_wait(page, ["s"])
+        unsure = answer_and_wait(page, ["u", "Enter"])
+        page.wait_for_function("document.getElementById('p-today').textContent === '4'")
+        page.keyboard.press(",")
+        page.keyboard.press(",")
+        page.screenshot(path=str(ARTIFACTS / "bench-discrete-earlier-step.png"), full_page=True)
+        still_held = current_item(page)
+        page.close()
+    assert all(url.startswith(base) for url in requests), "the page loaded something elsewhere"
+    ann = user_id(app, "ann")
+    with app.state.session_factory() as session:
+        labels = session.scalars(select(Label).where(Label.user_id == ann).order_by(Label.id)).all()
+        positions = dict(session.execute(select(QueueItem.id, QueueItem.position)).all())
+        skips = session.scalars(select(Skip.item_id).where(Skip.user_id == ann)).all()
+        leases = session.scalars(select(Lease.item_id).where(Lease.user_id == ann)).all()
+    assert [(lab.item_id, lab.answer, lab.action) for lab in labels] == [
+        (labelled[0], "action", 0),
+        (labelled[1], "action", 2),
+        (labelled[2], "action", 1),
+        (unsure, "unsure", None),
+    ]
+    assert [positions[i] for i in (*labelled, skipped, unsure, still_held)] == [0, 1, 2, 3, 4, 5]
+    assert skips == [skipped] and leases == [still_held]
+    assert all(not lab.learner_shown and not lab.span for lab in labels)
+    assert all(lab.seconds_spent is not None and lab.seconds_spent >= 0 for lab in labels)
+
+
+def test_continuous_action_with_the_slider(make_loop, make_user, settings, app, browser):
+    slug = make_loop(CONTINUOUS_SPEC, queue=2, start=5)
+    make_user("annotator", name="ann", password=PASSWORD)
+    with live_server(settings.resolved_database_url, settings.data_dir) as base:
+        page = browser.new_page(viewport={"width": 1440, "height": 900})
+        sign_in_and_open_bench(page, base, slug)
+        page.keyboard.press("Enter")  # nothing set yet: refused on the page, nothing sent
+        assert "Problem" in page.inner_text("#status")
+        page.keyboard.press("1")  # the speed_cmd slider
+        assert page.evaluate("document.activeElement.id") == "dim-0-range"
+        for _ in range(25):  # arrows move a focused slider by its step, 1% of the range
+            page.keyboard.press("ArrowRight")
+        page.keyboard.press("2")
+        for _ in range(10):
+            page.keyboard.press("ArrowLeft")
+        page.keyboard.press("+")  # a nudge on the active dimension
+        assert page.input_value("#dim-0-number") == "1.5"
+        ARTIFACTS.mkdir(exist_ok=True)
+        page.screenshot(path=str(ARTIFACTS / "bench-continuous.png"), full_page=True)
+        labelled = answer_and_wait(page, ["Enter"])
+        page.close()
+    with app.state.session_factory() as session:
+        label = session.scalar(select(Label).where(Label.user_id == user_id(app, "ann")))
+    assert label.item_id == labelled and label.answer == "action"
+    # 1 + 25 x 0.02 m/s and 0 - 10 x 0.004 + 0.004 1/m, stored as float32
+    np.testing.assert_allclose(
+        np.frombuffer(label.action_vec, dtype="<f4"), [1.5, -0.036], rtol=0, atol=1e-6
+    )
+
+
+@pytest.fixture(autouse=True)
+def _artifacts_ignored() -> None:
+    # screenshots must never be committed
+    assert "/artifacts/" in Path(ROOT / ".gitignore").read_text()

@@ -1,0 +1,255 @@
+"""Round report values against reference libraries computed from the test's own record.
+
+The sources are named beside each check. Expected values never come from app.reports.
+"""
+
+from __future__ import annotations
+
+from collections import Counter, defaultdict
+
+import krippendorff
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy.spatial.distance import pdist
+from sklearn.metrics import cohen_kappa_score
+from sklearn.metrics.pairwise import rbf_kernel
+from statsmodels.stats.inter_rater import aggregate_raters, fleiss_kappa
+from statsmodels.stats.proportion import confint_proportions_2indep, proportion_confint
+
+from app.loops import service as loops_service
+from app.reports import service
+from tests.helpers import DISCRETE_SPEC
+from tests.reports import builders
+from tests.reports.scenario import ANNOTATORS, BREAK_AFTER, SECONDS_APART, build_discrete
+
+
+def _report(app, slug, number=1):
+    with app.state.session_factory() as session:
+        loop = loops_service.get_loop(session, slug=slug)
+        return service.round_report(session, loop=loop, number=number)
+
+
+def _check_rate(rate, k, n):
+    """Rate and Wilson 95% limits against statsmodels proportion_confint(method='wilson')."""
+    assert (rate.count, rate.n) == (k, n)
+    if n < 30:  # MIN_AUDIT_LABELS: no rate is quoted below it
+        assert not rate.quoted and rate.rate is None and "too few" in rate.note
+        return
+    lower, upper = proportion_confint(k, n, alpha=0.05, method="wilson")
+    assert rate.quoted
+    assert_allclose([rate.rate, rate.lower, rate.upper], [k / n, lower, upper], rtol=1e-12)
+
+
+@pytest.fixture(params=["two", "three", "varied"])
+def world(request, app, client, admin, uploader, make_user):
+    return build_discrete(app, client, admin, uploader, make_user, mode=request.param)
+
+
+def test_disagreement_and_its_split_match_statsmodels_wilson(app, world):
+    report = _report(app, world.slug)
+    consensus = world.consensus()
+    for sample, steps in (("audit", world.audit), ("ranked", world.ranked)):
+        read = getattr(report, sample)
+        compared = [s for s in steps if s in consensus]
+        differs = [world.learner[s] != consensus[s] for s in compared]
+        _check_rate(read.disagreement, sum(differs), len(compared))
+        assert read.disagreement.n_excluded == len(steps) - len(compared)
+        # split by whether the expert's answer differs from the learner's previous action
+        with_previous = [s for s in compared if world.previous[s] >= 0]
+        changed = [s for s in with_previous if consensus[s] != world.previous[s]]
+        kept = [s for s in with_previous if consensus[s] == world.previous[s]]
+        _check_rate(
+            read.changed, sum(world.learner[s] != consensus[s] for s in changed), len(changed)
+        )
+        _check_rate(read.unchanged, sum(world.learner[s] != consensus[s] for s in kept), len(kept))
+        assert read.biased == (sample == "ranked")
+    assert report.audit.disagreement.quoted  # the scenario has enough audit labels
+    assert report.counts.selected_audit == len(world.audit)
+    assert report.counts.labels == len(world.votes)
+
+
+def _direct_unbiased_mmd2(x, y, bandwidth):
+    # Gretton et al. 2012, Lemma 6 (REFERENCES.md section 8), with sklearn's rbf_kernel and
+    # gamma = 1 / (2 l^2); the within-sample sums leave out i == j.
+    kxx = rbf_kernel(x, x, gamma=1 / (2 * bandwidth**2))
+    kyy = rbf_kernel(y, y, gamma=1 / (2 * bandwidth**2))
+    kxy = rbf_kernel(x, y, gamma=1 / (2 * bandwidth**2))
+    m, n = len(x), len(y)
+    return (
+        (kxx.sum() - np.trace(kxx)) / (m * (m - 1))
+        + (kyy.sum() - np.trace(kyy)) / (n * (n - 1))
+        - 2 * kxy.mean()
+    )
+
+
+def test_shift_matches_direct_mmd_and_cohens_d(app, client, admin, uploader, make_user):
+    world = build_discrete(app, client, admin, uploader, make_user, mode="two")
+    shift = _report(app, world.slug).shift
+    x, y = world.demo_features, world.round_features
+    # standardised with the training set's mean and (population) standard deviation
+    centre, scale = x.mean(axis=0), x.std(axis=0)
+    xs, ys = (x - centre) / scale, (y - centre) / scale
+    # median heuristic: median of scipy pdist over the pooled sample (REFERENCES.md section 8)
+    bandwidth = np.median(pdist(np.vstack([xs, ys])))
+    assert (shift.n_training, shift.n_round) == (60, 200)
+    assert (shift.n_training_sample, shift.n_round_sample) == (60, 200)  # under the cap
+    assert_allclose(shift.bandwidth, bandwidth, rtol=1e-9)
+    assert_allclose(shift.mmd2, _direct_unbiased_mmd2(xs, ys, bandwidth), rtol=1e-7)
+    # a 1.5-sd mean shift in one feature: no permutation of 200 reaches it, so p = 1/201,
+    # the smallest value the permutation p-value (1 + count) / (1 + 200) can take
+    assert shift.p_value == pytest.approx(1 / 201)
+    # Cohen's d with a pooled ddof=1 standard deviation (common practice), gap_m first
+    pooled = np.sqrt(((59) * x.var(axis=0, ddof=1) + 199 * y.var(axis=0, ddof=1)) / 258)
+    d = (y.mean(axis=0) - x.mean(axis=0)) / pooled
+    assert shift.features[0].name == "gap_m" and shift.features[0].unit == "m"
+    by_name = {f.name: f.smd for f in shift.features}
+    assert_allclose([by_name[n] for n in ("gap_m", "speed", "occluded")], d, rtol=1e-9)
+    assert_allclose(shift.features[0].mean_round, y[:, 0].mean(), rtol=1e-9)
+    # the same data always gives the same report (fixed seed)
+    assert _report(app, world.slug).shift == shift
+
+
+def _multi_vote_matrix(world):
+    """Annotator x state matrix of real votes on states with at least two votes."""
+    votes = defaultdict(dict)
+    for v in world.votes:
+        if v.action >= 0:
+            votes[v.step][v.annotator] = v.action
+    states = sorted(s for s, got in votes.items() if len(got) >= 2)
+    names = sorted({a for s in states for a in votes[s]})
+    matrix = np.full((len(names), len(states)), np.nan)
+    for j, s in enumerate(states):
+        for a, action in votes[s].items():
+            matrix[names.index(a), j] = action
+    return names, states, matrix
+
+
+def test_annotator_agreement_matches_reference_libraries(app, world):
+    agreement = _report(app, world.slug).agreement
+    names, states, matrix = _multi_vote_matrix(world)
+    assert (agreement.n_states, agreement.n_annotators) == (len(states), len(names))
+    # krippendorff package, nominal level, coders x units (REFERENCES.md section 6 layout)
+    expected_alpha = krippendorff.alpha(reliability_data=matrix, level_of_measurement="nominal")
+    assert_allclose(agreement.krippendorff[0].alpha, expected_alpha, rtol=1e-9)
+    assert agreement.krippendorff[0].level == "nominal"
+    if len(names) == 2:  # scenario "two": Cohen's kappa by sklearn cohen_kappa_score
+        assert_allclose(agreement.cohen_kappa, cohen_kappa_score(matrix[0], matrix[1]), rtol=1e-9)
+    else:
+        assert agreement.cohen_kappa is None
+    per_state = (~np.isnan(matrix)).sum(axis=0)
+    if np.all(per_state == per_state[0]):  # statsmodels fleiss_kappa on aggregate_raters
+        table, _ = aggregate_raters(matrix.T.astype(int), n_cat=3)
+        assert_allclose(agreement.fleiss_kappa, fleiss_kappa(table), rtol=1e-9)
+    else:
+        assert agreement.fleiss_kappa is None
+
+
+def test_annotators_agreement_with_consensus_and_pace(app, world):
+    report = _report(app, world.slug)
+    consensus = world.consensus()
+    _, states, _ = _multi_vote_matrix(world)
+    multi = set(states)
+    rows = {a.name: a for a in report.annotators}
+    for name in ANNOTATORS:
+        mine = [v for v in world.votes if v.annotator == name]
+        if not mine:
+            assert name not in rows
+            continue
+        compared = [v for v in mine if v.action >= 0 and v.step in multi and v.step in consensus]
+        agreeing = sum(v.action == consensus[v.step] for v in compared)
+        row = rows[name]
+        # agreement with consensus: share of votes equal to the majority (common practice)
+        assert (row.labels, row.compared, row.agreeing) == (len(mine), len(compared), agreeing)
+        if compared:
+            assert row.agreement == pytest.approx(agreeing / len(compared))
+        # pace: gaps of at most 15 minutes are working time (common practice arithmetic);
+        # labels are SECONDS_APART apart, ann-a's one break is left out with the label after it
+        timed = len(mine) - 1 - (1 if name == "ann-a" and len(mine) > BREAK_AFTER else 0)
+        if timed:
+            assert row.labels_per_hour == pytest.approx(3600 / SECONDS_APART[name])
+    pace = report.pace
+    gaps = {name: len([v for v in world.votes if v.annotator == name]) for name in ANNOTATORS}
+    timed = {
+        n: max(c - 1, 0) - (1 if n == "ann-a" and c > BREAK_AFTER else 0) for n, c in gaps.items()
+    }
+    hours = sum(timed[n] * SECONDS_APART[n] for n in ANNOTATORS) / 3600
+    assert pace.timed_labels == sum(timed.values())
+    assert pace.labels_per_hour == pytest.approx(sum(timed.values()) / hours)
+
+
+def test_shown_versus_hidden_matches_statsmodels_newcombe(app, world):
+    effect = _report(app, world.slug).shown_vs_hidden
+    counts = Counter()
+    for v in world.votes:
+        if v.action < 0:
+            continue
+        group = "shown" if v.step in world.shown else "hidden"
+        counts[group, "n"] += 1
+        counts[group, "k"] += int(v.action == world.learner[v.step])
+    assert (effect.n_shown, effect.n_hidden) == (counts["shown", "n"], counts["hidden", "n"])
+    k1, n1, k2, n2 = (
+        counts["shown", "k"],
+        counts["shown", "n"],
+        counts["hidden", "k"],
+        counts["hidden", "n"],
+    )
+    assert effect.difference == pytest.approx(k1 / n1 - k2 / n2)
+    # statsmodels confint_proportions_2indep(method='newcomb'): Newcombe 1998 method 10
+    lower, upper = confint_proportions_2indep(k1, n1, k2, n2, method="newcomb", compare="diff")
+    assert_allclose([effect.lower, effect.upper], [lower, upper], rtol=1e-9)
+
+
+def test_too_few_audit_labels_are_said_not_quoted(app, client, admin, uploader, make_user):
+    world = build_discrete(app, client, admin, uploader, make_user, mode="three", n_audit=12)
+    audit = _report(app, world.slug).audit.disagreement
+    consensus = world.consensus()
+    assert audit.n == sum(s in consensus for s in world.audit) < 30
+    assert not audit.quoted
+    assert audit.rate is None and audit.lower is None and audit.upper is None
+    assert audit.note.startswith(f"too few audit labels: {audit.n} states")
+
+
+def test_round_zero_and_an_unlabelled_round_report_without_numbers(
+    app, client, admin, uploader, make_user
+):
+    world = build_discrete(app, client, admin, uploader, make_user, mode="two")
+    zero = _report(app, world.slug, number=0)
+    assert zero.counts.states == 60 and zero.counts.learner_states == 0
+    assert zero.shift.mmd2 is None and "no training set" in zero.shift.note
+    assert zero.audit.disagreement.n == 0 and zero.audit.disagreement.rate is None
+    assert zero.agreement.n_states == 0 and zero.agreement.note
+    assert zero.pace.labels_per_hour is None
+
+
+def test_shift_on_a_seeded_subsample_of_a_large_round(app, client, admin, uploader, make_user):
+    rng = np.random.default_rng(8)
+    slug = builders.create_loop(client, admin, DISCRETE_SPEC)
+    builders.open_round(client, admin, slug, "v1")
+    demos = rng.normal(size=(4, 10, 3)).astype(np.float32)
+    builders.upload_round(
+        client, uploader, slug=slug, number=0, features=demos,
+        actions=rng.integers(0, 3, (4, 10)), action_names=["proceed", "creep", "hold"],
+        prefix="d",
+    )  # fmt: skip
+    visited = (rng.normal(size=(60, 20, 3)) + [0.0, 0.0, 0.4]).astype(np.float32)
+    keys = builders.upload_round(
+        client, uploader, slug=slug, number=1, features=visited,
+        actions=rng.integers(0, 3, (60, 20)), action_names=["proceed", "creep", "hold"],
+        prefix="v",
+    )  # fmt: skip
+    ids = builders.step_ids(app, slug, keys, 20).reshape(-1)
+    shift = _report(app, slug).shift
+    assert (shift.n_round, shift.n_round_sample, shift.n_training_sample) == (1200, 1000, 40)
+    # the documented draw: a generator seeded with (SHIFT_SEED, round number) picks 1000 of the
+    # round's step ids without replacement (the 40 training states are all used)
+    draw = np.random.default_rng([service.SHIFT_SEED, 1])
+    chosen = set(np.sort(draw.choice(np.sort(ids), 1000, replace=False)).tolist())
+    by_id = dict(zip(ids.tolist(), visited.reshape(-1, 3).astype(np.float64), strict=True))
+    y = np.array([by_id[i] for i in sorted(chosen)])
+    x = demos.reshape(-1, 3).astype(np.float64)
+    centre, scale = x.mean(axis=0), x.std(axis=0)
+    xs, ys = (x - centre) / scale, (y - centre) / scale
+    bandwidth = np.median(pdist(np.vstack([xs, ys])))  # scipy pdist, REFERENCES.md section 8
+    assert_allclose(shift.bandwidth, bandwidth, rtol=1e-9)
+    assert_allclose(shift.mmd2, _direct_unbiased_mmd2(xs, ys, bandwidth), rtol=1e-7)
