@@ -1,4 +1,4 @@
-"""The `expertloop` command: serve, db, loops, users, tokens, upload."""
+"""The `expertloop` command: serve, db, loops, users, tokens, upload, export."""
 
 from __future__ import annotations
 
@@ -343,6 +343,53 @@ def demo_run(
                 rows = go(admin, annotator)
     write_plot(rows, plot, title=f"Invented demo, {actions} actions, {selection} selection")
     typer.echo(f"plot written to {plot}")
+
+
+@cli.command()
+def export(
+    loop: Annotated[str, typer.Option(help="Loop slug.")],
+    version: Annotated[str, typer.Option(help="Snapshot version: vN or latest.")] = "latest",
+    file_format: Annotated[
+        str, typer.Option("--format", help="parquet, npz or jsonl.")
+    ] = "parquet",
+    out: Annotated[
+        Path | None, typer.Option(help="Output file (default: LOOP-vN.FORMAT here).")
+    ] = None,
+    since: Annotated[
+        str | None, typer.Option(help="Only rows not identical in this earlier version (vN).")
+    ] = None,
+    url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
+    token: Annotated[str, TOKEN_OPTION] = "",
+) -> None:
+    """Download a snapshot (training-set version) with a progress bar."""
+    from tqdm import tqdm
+
+    from app.client import ApiError, Client
+
+    target = out or Path(f"{loop}-{version}.{file_format}")
+    with (
+        Client(url, token) as client,
+        tqdm(unit="B", unit_scale=True, desc=target.name) as bar,
+    ):
+        try:
+            headers = client.export(
+                loop,
+                target,
+                version=version,
+                file_format=file_format,
+                since=since,
+                progress=lambda n: bar.update(n),
+            )
+        except ApiError as exc:
+            bar.close()
+            _fail(f"refused: {exc.detail}")
+            return
+    rows = headers.get("x-expertloop-rows")
+    what = f"{rows} rows" if rows else f"rows not identical in {since}"
+    typer.echo(
+        f"wrote {target}: {headers.get('x-expertloop-version')} of '{loop}', {what}, "
+        f"content sha256 {headers.get('x-expertloop-content-sha256')}"
+    )
 
 
 def main() -> None:

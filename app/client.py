@@ -2,11 +2,17 @@
 
 from __future__ import annotations
 
+import os
+import tempfile
 from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import IO, Any
+from typing import IO, TYPE_CHECKING, Any
 
 import httpx
+
+if TYPE_CHECKING:
+    import numpy as np
+    import pyarrow as pa
 
 DEFAULT_TIMEOUT = httpx.Timeout(30.0, read=600.0, write=600.0)
 
@@ -108,3 +114,95 @@ class Client:
                 f"/api/loops/{slug}/rounds/{round_number}/rollouts",
                 files={"file": (path.name, body, "application/octet-stream")},
             )
+
+    # snapshots (training-set versions)
+    def create_snapshot(self, slug: str, up_to_round: int | None = None) -> Any:
+        """Make the next version up to a round (default: the newest round)."""
+        return self.request(
+            "POST", f"/api/loops/{slug}/snapshots", json={"up_to_round": up_to_round}
+        )
+
+    def snapshots(self, slug: str) -> Any:
+        return self.request("GET", f"/api/loops/{slug}/snapshots")["items"]
+
+    def snapshot(self, slug: str, version: str = "latest") -> Any:
+        """One version's summary and manifest."""
+        return self.request("GET", f"/api/loops/{slug}/snapshots/{version}")
+
+    def export(
+        self,
+        loop: str,
+        out: Path,
+        *,
+        version: str = "latest",
+        file_format: str = "parquet",
+        since: str | None = None,
+        progress: Callable[[int], object] | None = None,
+    ) -> dict[str, str]:
+        """Download a version to `out` (parquet, npz or jsonl); returns the response headers.
+
+        The file appears under its name only when complete; `progress` gets each chunk's size.
+        """
+        params = {"format": file_format} | ({"since": since} if since else {})
+        partial = out.with_name(out.name + ".part")
+        path = f"/api/loops/{loop}/snapshots/{version}/export"
+        try:
+            with self._http.stream("GET", path, params=params) as response:
+                if response.status_code >= 400:
+                    response.read()
+                    raise ApiError(response.status_code, _detail(response))
+                with partial.open("wb") as handle:
+                    for chunk in response.iter_bytes():
+                        handle.write(chunk)
+                        if progress:
+                            progress(len(chunk))
+                headers = dict(response.headers)
+            os.replace(partial, out)
+        finally:
+            partial.unlink(missing_ok=True)
+        return headers
+
+    def pull(
+        self,
+        loop: str,
+        version: str = "latest",
+        as_table: bool = False,
+        since: str | None = None,
+    ) -> dict[str, np.ndarray] | pa.Table:
+        """A version's rows as numpy arrays by column name (or a pyarrow Table).
+
+        Arrays: features (n, n_features) float32; expert_action (n,) int64 for a discrete loop
+        or (n, n_dims) float32; step_id, round, step, label_count (n,) int64; agreement (n,)
+        float64; source, learner_version, rollout (n,) str objects.
+        """
+        import pyarrow.parquet as pq
+
+        with tempfile.TemporaryDirectory() as folder:
+            target = Path(folder) / "rows.parquet"
+            self.export(loop, target, version=version, file_format="parquet", since=since)
+            table = pq.read_table(target, memory_map=False)
+        return table if as_table else table_arrays(table)
+
+
+def _detail(response: httpx.Response) -> str:
+    try:
+        return str(response.json().get("detail", response.text))
+    except ValueError:  # not JSON
+        return response.text
+
+
+def table_arrays(table: pa.Table) -> dict[str, np.ndarray]:
+    """Columns of an exported table as numpy arrays; fixed-size lists become 2-D arrays."""
+    import numpy as np
+    import pyarrow as pa
+
+    out: dict[str, np.ndarray] = {}
+    for name in table.column_names:
+        column = table.column(name).combine_chunks()
+        if pa.types.is_fixed_size_list(column.type):
+            width = column.type.list_size
+            values = column.flatten().to_numpy(zero_copy_only=False)
+            out[name] = values.reshape(len(column), width)
+        else:
+            out[name] = np.asarray(column.to_numpy(zero_copy_only=False))
+    return out

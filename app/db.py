@@ -61,6 +61,20 @@ def make_session_factory(engine: Engine) -> sessionmaker[Session]:
     return sessionmaker(bind=engine, expire_on_commit=False)
 
 
+def make_writer_session_factory(engine: Engine) -> sessionmaker[Session]:
+    """Sessions for work that writes: on SQLite every transaction begins IMMEDIATE.
+
+    A deferred SQLite transaction that reads, and then writes after another connection has
+    committed, fails at once with "database is locked" (its snapshot is stale), whatever the
+    busy timeout. Taking the write lock at BEGIN makes such read-then-write work wait its turn
+    instead. Other backends ignore the option.
+    """
+    if engine.dialect.name != "sqlite":
+        return make_session_factory(engine)
+    immediate = engine.execution_options(**{SQLITE_BEGIN_IMMEDIATE: True})
+    return sessionmaker(bind=immediate, expire_on_commit=False)
+
+
 def session_scope(factory: sessionmaker[Session]) -> Iterator[Session]:
     """Yield a session, closing it afterwards (used by the request dependency)."""
     session = factory()

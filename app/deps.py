@@ -23,8 +23,12 @@ SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
 
 
 def get_session(request: Request) -> Iterator[Session]:
-    """A store session for one request."""
-    session = request.app.state.session_factory()
+    """A store session for one request; requests that may write take SQLite's write lock at BEGIN."""
+    writes = request.method not in SAFE_METHODS
+    factory = (
+        request.app.state.writer_session_factory if writes else request.app.state.session_factory
+    )
+    session = factory()
     try:
         yield session
     finally:

@@ -13,7 +13,7 @@ from fastapi.staticfiles import StaticFiles
 from sqlalchemy.exc import InterfaceError, OperationalError
 
 from app.config import Settings, get_settings
-from app.db import make_engine, make_session_factory
+from app.db import make_engine, make_session_factory, make_writer_session_factory
 from app.errors import ExpertloopError, Unauthenticated
 from app.jobs.runner import JobThread
 from app.models import import_all_tables
@@ -72,6 +72,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.engine = engine
     app.state.session_factory = make_session_factory(engine)
+    app.state.writer_session_factory = make_writer_session_factory(engine)
     app.add_exception_handler(ExpertloopError, _domain_error)
     app.add_exception_handler(RequestValidationError, _validation_error)
     app.add_exception_handler(OperationalError, _store_unreachable)
@@ -84,6 +85,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     from app.queue.router import router as queue_router
     from app.reports.router import router as reports_router
     from app.sampler.router import router as sampler_router
+    from app.snapshots.router import router as snapshots_router
     from app.system.router import router as system_router
 
     import_all_tables()  # every table known before the first query, whatever the route
@@ -95,6 +97,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         jobs_router,
         sampler_router,
         queue_router,
+        snapshots_router,
         reports_router,
     ):
         app.include_router(router)

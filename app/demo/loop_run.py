@@ -33,6 +33,7 @@ class RoundRow:
 
     round: int
     labels_used: int
+    audit_count: int
     audit_n: int
     audit_disagreement: float | None
     audit_lower: float | None
@@ -86,8 +87,18 @@ def _train(client: Client, slug: str, kind: str, seed: int) -> learner.Ensemble:
     return learner.fit(rows["features"], rows["expert_action"], kind, np.random.default_rng(seed))
 
 
-def _evaluate(policy: Callable[..., Any], kind: str, seed: int) -> dict[str, float]:
-    return sim.rollout(policy, EVALUATION_ROLLOUTS, seed, kind=kind, with_scene=False).measures
+@dataclass(frozen=True)
+class RunSize:
+    """How much simulation a run does; tests use a smaller one than the demo."""
+
+    demonstration_rollouts: int = DEMONSTRATION_ROLLOUTS
+    rollouts_per_round: int = ROLLOUTS_PER_ROUND
+    evaluation_rollouts: int = EVALUATION_ROLLOUTS
+    with_scene: bool = True
+
+
+def _evaluate(policy: Callable[..., Any], kind: str, seed: int, size: RunSize) -> dict[str, float]:
+    return sim.rollout(policy, size.evaluation_rollouts, seed, kind=kind, with_scene=False).measures
 
 
 def run(
@@ -100,6 +111,8 @@ def run(
     selection: str,
     seed: int,
     slug: str | None = None,
+    audit_fraction: float | None = None,
+    size: RunSize = RunSize(),
     report: Callable[[RoundRow], None] = lambda _: None,
 ) -> list[RoundRow]:
     """Run round 0 and `rounds` DAgger rounds; return one row per round (round 0 = demonstrations only)."""
@@ -109,20 +122,31 @@ def run(
     spec = scenario.loop_spec(kind)
     spec["slug"] = slug or f"demo-{kind}-{selection}-s{seed}"
     # uniform selection: the whole budget is the seeded uniform audit sample
-    spec["settings"] = {"audit_fraction": 1.0} if selection == "uniform" else {}
+    if selection == "uniform":
+        spec["settings"] = {"audit_fraction": 1.0}
+    elif audit_fraction is not None:
+        spec["settings"] = {"audit_fraction": audit_fraction}
     admin.create_loop(spec)
     slug = spec["slug"]
     eval_seed = seed + 10_000  # the same evaluation worlds for every round
     rows: list[RoundRow] = []
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
-        demos = sim.rollout(None, DEMONSTRATION_ROLLOUTS, seed, kind=kind, key_prefix="demo")
+        demos = sim.rollout(
+            None,
+            size.demonstration_rollouts,
+            seed,
+            kind=kind,
+            key_prefix="demo",
+            with_scene=size.with_scene,
+        )
         _upload(admin, slug, 0, demos, folder)
         admin.create_snapshot(slug, up_to_round=0)
         policy = _train(admin, slug, kind, seed)
-        measures = _evaluate(policy, kind, eval_seed)
+        measures = _evaluate(policy, kind, eval_seed, size)
         rows.append(
             RoundRow(
+                0,
                 0,
                 0,
                 0,
@@ -141,11 +165,12 @@ def run(
             admin.open_round(slug, f"demo-learner-{number}")
             visited = sim.rollout(
                 policy,
-                ROLLOUTS_PER_ROUND,
+                size.rollouts_per_round,
                 seed + 100 * number,
                 kind=kind,
                 takeover=True,
                 key_prefix=f"r{number}",
+                with_scene=size.with_scene,
             )
             _upload(admin, slug, number, visited, folder)
             started = admin.request(
@@ -158,12 +183,13 @@ def run(
             round_report = admin.request("GET", f"/api/loops/{slug}/rounds/{number}/report")
             admin.create_snapshot(slug, up_to_round=number)
             policy = _train(admin, slug, kind, seed + number)
-            measures = _evaluate(policy, kind, eval_seed)
+            measures = _evaluate(policy, kind, eval_seed, size)
             audit = round_report["audit"]["disagreement"]
             rows.append(
                 RoundRow(
                     round=number,
                     labels_used=labels_used,
+                    audit_count=audit["count"],
                     audit_n=audit["n"],
                     audit_disagreement=audit["rate"],
                     audit_lower=audit["lower"],
@@ -180,12 +206,12 @@ def run(
 
 def format_row(row: RoundRow) -> str:
     """One table line; an audit rate from too few labels is shown, but marked."""
-    if row.audit_disagreement is None:
+    if row.round == 0:
         audit = "-"
-    else:
+    elif row.audit_quoted and row.audit_disagreement is not None:
         audit = f"{row.audit_disagreement:.2f} [{row.audit_lower:.2f}, {row.audit_upper:.2f}] n={row.audit_n}"
-        if not row.audit_quoted:
-            audit += " (too few audit labels)"
+    else:  # the service withholds a rate from too few labels; show the counts only
+        audit = f"{row.audit_count}/{row.audit_n} (too few audit labels)"
     shift = "-" if row.shift_mmd2 is None else f"{row.shift_mmd2:.4f}"
     return (
         f"{row.round:>5} {row.labels_used:>7} {audit:>46} {shift:>9} "

@@ -56,5 +56,5 @@ def write_plot(rows: Sequence[_Row], path: Path, *, title: str) -> None:
     height = 560
     path.write_text(
         f'<svg xmlns="http://www.w3.org/2000/svg" width="560" height="{height}">'
-        f'<svg y="0">{conflicts}</svg><svg y="280">{audit}</svg></svg>\n'
+        f'<g>{conflicts}</g><g transform="translate(0, 280)">{audit}</g></svg>\n'
     )

@@ -1,16 +1,13 @@
-"""Submitting a label: checked against the loop's action space, idempotent on the client's
-submission id, and optionally copied to the steps just before (span labels)."""
+"""Submitting a label: checked first (app.queue.answers), idempotent on the client's submission
+id, and optionally copied to the steps just before (span labels)."""
 
 from __future__ import annotations
 
-import math
-import re
 from dataclasses import dataclass
 from datetime import datetime
 from functools import cache
 from typing import Any
 
-import numpy as np
 from sqlalchemy import (
     Delete,
     Select,
@@ -29,19 +26,14 @@ from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from app.errors import Conflict, InvalidInput
-from app.ingest.encode import FLOAT32_LE
 from app.ingest.models import Step
 from app.ingest.validate import ActionSpec
 from app.loops.models import Loop
-from app.loops.schemas import LoopSettings
+from app.queue.answers import check_answer, check_request
 from app.queue.locking import write_transaction
-from app.queue.models import ANSWER_ACTION, ANSWER_UNSURE, ITEM_DONE, ITEM_OPEN, Label, Lease
+from app.queue.models import ITEM_DONE, ITEM_OPEN, Label, Lease
 from app.queue.models import QueueItem as Item
 from app.queue.rules import lock_item, loop_settings
-
-# Room is left in the 64-character column for the ".N" suffix of span labels.
-SUBMISSION_ID = re.compile(r"^[A-Za-z0-9_-]{8,48}$")
-MAX_SECONDS_SPENT = 86_400.0
 
 
 @dataclass(frozen=True)
@@ -51,83 +43,6 @@ class Submitted:
     label: Label
     span_labels: int
     repeated: bool
-
-
-def check_answer(spec: ActionSpec, *, answer: str, action: Any) -> tuple[int | None, bytes | None]:
-    """Validate an answer against the action space; returns (discrete index, continuous bytes).
-
-    Raises InvalidInput naming the field: an index out of range, a vector of the wrong length,
-    a value that is not finite or lies outside its dimension's bounds.
-    """
-    if answer == ANSWER_UNSURE:
-        if action is not None:
-            raise InvalidInput("action: leave it empty when the answer is unsure")
-        return None, None
-    if answer != ANSWER_ACTION:
-        raise InvalidInput(f"answer: expected 'action' or 'unsure', got {answer!r}")
-    if action is None:
-        raise InvalidInput("action: required when the answer is an action")
-    if spec.kind == "discrete":
-        names = ", ".join(f"{i} {n}" for i, n in enumerate(spec.action_names))
-        if isinstance(action, bool) or not isinstance(action, int):
-            raise InvalidInput(f"action: a discrete action is an index ({names}); got {action!r}")
-        if not 0 <= action < len(spec.action_names):
-            raise InvalidInput(f"action: index {action} is out of range ({names})")
-        return action, None
-    if not isinstance(action, list | tuple) or any(
-        isinstance(v, bool) or not isinstance(v, int | float) for v in action
-    ):
-        raise InvalidInput(f"action: a continuous action is a list of numbers; got {action!r}")
-    if len(action) != spec.action_width:
-        raise InvalidInput(
-            f"action: expected {spec.action_width} values ({', '.join(spec.action_names)}), "
-            f"got {len(action)}"
-        )
-    values = np.asarray(action, dtype=np.float64)
-    for i, value in enumerate(values.tolist()):
-        name, unit = spec.action_names[i], spec.units[i]
-        if not math.isfinite(value):
-            raise InvalidInput(f"action[{i}] ({name}): must be a finite number")
-        if not spec.low[i] <= value <= spec.high[i]:
-            raise InvalidInput(
-                f"action[{i}] ({name}): {value:g} is outside its bounds "
-                f"{spec.low[i]:g} to {spec.high[i]:g} {unit}".rstrip()
-            )
-    return None, values.astype(FLOAT32_LE).tobytes()
-
-
-def stored_action(label: Label) -> int | list[float] | None:
-    """A label's action as the API shows it: an index, a vector, or None (unsure)."""
-    if label.action_vec is not None:
-        return np.frombuffer(label.action_vec, dtype=FLOAT32_LE).tolist()
-    return label.action
-
-
-def _check_request(
-    settings: LoopSettings,
-    *,
-    submission_id: str,
-    answer: str,
-    span_steps: int,
-    seconds_spent: float | None,
-) -> None:
-    if not isinstance(submission_id, str) or not SUBMISSION_ID.match(submission_id):
-        raise InvalidInput("submission_id: 8 to 48 letters, digits, '-' or '_' (one per answer)")
-    if span_steps < 0:
-        raise InvalidInput("span_steps: must be 0 or more")
-    if span_steps > 0:
-        if not settings.span_labels:
-            raise InvalidInput("span_steps: span labels are off for this loop (span_labels)")
-        if answer != ANSWER_ACTION:
-            raise InvalidInput("span_steps: only an action can be applied to earlier steps")
-        if span_steps > settings.span_max_steps:
-            raise InvalidInput(
-                f"span_steps: at most {settings.span_max_steps} (span_max_steps), got {span_steps}"
-            )
-    if seconds_spent is not None and not (
-        math.isfinite(seconds_spent) and 0 <= seconds_spent <= MAX_SECONDS_SPENT
-    ):
-        raise InvalidInput(f"seconds_spent: between 0 and {MAX_SECONDS_SPENT:g}")
 
 
 def submit(
@@ -151,7 +66,7 @@ def submit(
     stored for that many steps just before (within the context window), flagged as span labels.
     """
     settings = loop_settings(loop)
-    _check_request(
+    check_request(
         settings,
         submission_id=submission_id,
         answer=answer,

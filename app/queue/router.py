@@ -10,8 +10,8 @@ from app.deps import AdminDep, AnnotatorDep, SessionDep
 from app.loops import service as loops_service
 from app.models import utcnow
 from app.queue import service
+from app.queue.answers import stored_action
 from app.queue.bench import bench_item
-from app.queue.labels import stored_action
 from app.queue.schemas import (
     ClaimRead,
     LabelCreate,

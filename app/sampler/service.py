@@ -11,12 +11,13 @@ import numpy as np
 from sqlalchemy import delete, exists, func, insert, select
 from sqlalchemy.orm import Session
 
+import app.queue.service as queue_service
 from app.errors import Conflict, InvalidInput, NotFound
 from app.ingest.models import Rollout, Step
 from app.jobs import service as jobs_service
 from app.jobs.models import Job
 from app.loops.models import Loop, Round
-from app.queue import service as queue_service
+from app.queue.locking import write_transaction
 from app.queue.models import Label, QueueItem
 from app.sampler.models import SelectedState, Selection
 from app.sampler.rank import Ranking, RankParams
@@ -104,55 +105,56 @@ def store_ranking(
     user_id: int | None,
 ) -> Selection:
     """Replace the round's selection and queue with this ranking, in one transaction."""
-    if _round_has_labels(session, rnd):
-        raise Conflict(f"round {rnd.number} already has labels; its queue is kept as it is")
-    session.execute(delete(QueueItem).where(QueueItem.round_id == rnd.id))
-    session.execute(delete(Selection).where(Selection.round_id == rnd.id))
-    selection = Selection(
-        round_id=rnd.id,
-        job_id=job_id,
-        budget=params.budget,
-        seed=params.seed,
-        params={**asdict(params), "notes": ranking.notes},
-        uncertainty_method=None
-        if ranking.uncertainty_method == "novelty only"
-        else ranking.uncertainty_method,
-        n_candidates=len(ranking.step_id),
-        n_training=n_training,
-        candidate_scores=_pack_scores(ranking),
-        created_by=user_id,
-    )
-    session.add(selection)
-    session.flush()
-    chosen = ranking.chosen
-    uncertainty = _nan_to_none(ranking.uncertainty[chosen])
-    novelty = _nan_to_none(ranking.novelty[chosen])
-    rows = [
-        {
-            "selection_id": selection.id,
-            "step_id": int(ranking.step_id[i]),
-            "rank": int(rank),
-            "reason": str(reason),
-            "uncertainty": u,
-            "novelty": 0.0 if n is None else n,
-            "uncertainty_pct": None if u is None else float(ranking.uncertainty_pct[i]),
-            "novelty_pct": float(ranking.novelty_pct[i]),
-            "boost": float(ranking.boost[i]),
-            "score": float(ranking.score[i]),
-        }
-        for i, rank, reason, u, n in zip(
-            chosen.tolist(),
-            ranking.ranks.tolist(),
-            ranking.reasons.tolist(),
-            uncertainty,
-            novelty,
-            strict=True,
+    # SQLite: take the write lock first, so the checks below cannot go stale before the writes
+    with write_transaction(session):
+        if _round_has_labels(session, rnd):
+            raise Conflict(f"round {rnd.number} already has labels; its queue is kept as it is")
+        session.execute(delete(QueueItem).where(QueueItem.round_id == rnd.id))
+        session.execute(delete(Selection).where(Selection.round_id == rnd.id))
+        selection = Selection(
+            round_id=rnd.id,
+            job_id=job_id,
+            budget=params.budget,
+            seed=params.seed,
+            params={**asdict(params), "notes": ranking.notes},
+            uncertainty_method=None
+            if ranking.uncertainty_method == "novelty only"
+            else ranking.uncertainty_method,
+            n_candidates=len(ranking.step_id),
+            n_training=n_training,
+            candidate_scores=_pack_scores(ranking),
+            created_by=user_id,
         )
-    ]
-    if rows:
-        session.execute(insert(SelectedState), rows)
-    queue_service.enqueue_selection(session, rnd=rnd, selection=selection, loop=loop)
-    session.commit()
+        session.add(selection)
+        session.flush()
+        chosen = ranking.chosen
+        uncertainty = _nan_to_none(ranking.uncertainty[chosen])
+        novelty = _nan_to_none(ranking.novelty[chosen])
+        rows = [
+            {
+                "selection_id": selection.id,
+                "step_id": int(ranking.step_id[i]),
+                "rank": int(rank),
+                "reason": str(reason),
+                "uncertainty": u,
+                "novelty": 0.0 if n is None else n,
+                "uncertainty_pct": None if u is None else float(ranking.uncertainty_pct[i]),
+                "novelty_pct": float(ranking.novelty_pct[i]),
+                "boost": float(ranking.boost[i]),
+                "score": float(ranking.score[i]),
+            }
+            for i, rank, reason, u, n in zip(
+                chosen.tolist(),
+                ranking.ranks.tolist(),
+                ranking.reasons.tolist(),
+                uncertainty,
+                novelty,
+                strict=True,
+            )
+        ]
+        if rows:
+            session.execute(insert(SelectedState), rows)
+        queue_service.enqueue_selection(session, rnd=rnd, selection=selection, loop=loop)
     return selection
 
 

@@ -11,21 +11,47 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 
 import numpy as np
-from sqlalchemy import Select, func, select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from app.ingest.encode import FLOAT32_LE
-from app.ingest.models import CONTROL_EXPERT, Rollout, Step
+from app.ingest.models import Rollout, Step
 from app.loops.models import Loop, Round
 from app.queue.models import ANSWER_UNSURE, Label
+from app.snapshots import rows
+from app.snapshots.batches import (
+    SOURCE_DEMONSTRATION,
+    SOURCE_RELABEL,
+    SOURCE_TAKEOVER,
+    SOURCES,
+    RowBatch,
+    concat,
+    merge_sorted,
+)
 from app.snapshots.consensus import continuous_consensus, discrete_consensus
 
-SOURCE_DEMONSTRATION = "demonstration"
-SOURCE_TAKEOVER = "takeover"
-SOURCE_RELABEL = "relabel"
-SOURCES = (SOURCE_DEMONSTRATION, SOURCE_TAKEOVER, SOURCE_RELABEL)
+__all__ = [
+    "SOURCES",
+    "SOURCE_DEMONSTRATION",
+    "SOURCE_RELABEL",
+    "SOURCE_TAKEOVER",
+    "Cutoff",
+    "Members",
+    "Relabels",
+    "action_width",
+    "continuous_tolerance",
+    "current_cutoff",
+    "is_discrete",
+    "iter_batches",
+    "iter_step_rows",
+    "members",
+    "relabels",
+    "training_features",
+]
 # default tolerance of a continuous disagreement, as a fraction of each dimension's range
 DEFAULT_TOLERANCE_FRACTION = 0.1
+# rows per page read from the store while streaming the training set
+DEFAULT_BATCH = 8192
 
 
 @dataclass(frozen=True)
@@ -144,53 +170,73 @@ def relabels(session: Session, *, loop: Loop, cutoff: Cutoff) -> Relabels:
     )
 
 
-def _expert_steps(loop: Loop, cutoff: Cutoff) -> Select:  # type: ignore[type-arg]
-    return (
-        select(Step.id, Step.expert_action, Step.expert_action_vec, Round.number)
-        .join(Round, Round.id == Step.round_id)
-        .where(
-            Round.loop_id == loop.id,
-            Round.number <= cutoff.up_to_round,
-            Step.control == CONTROL_EXPERT,
-            Step.id <= cutoff.max_step_id,
-        )
-        .order_by(Step.id)
-    )
-
-
 def members(session: Session, *, loop: Loop, cutoff: Cutoff) -> Members:
     """The training set's rows (without features), sorted by step id."""
-    width = action_width(loop)
-    expert = session.execute(_expert_steps(loop, cutoff)).all()
-    expert_ids = np.array([r[0] for r in expert], dtype=np.int64)
-    expert_source = np.array(
-        [SOURCES.index(SOURCE_DEMONSTRATION if r[3] == 0 else SOURCE_TAKEOVER) for r in expert],
-        dtype=np.int8,
-    )
-    expert_action: np.ndarray
-    if is_discrete(loop):
-        expert_action = np.array([r[1] for r in expert], dtype=np.int64)
-    else:
-        blob = b"".join(r[2] for r in expert)
-        expert_action = np.frombuffer(blob, dtype=FLOAT32_LE).reshape(len(expert), width)
-    found = relabels(session, loop=loop, cutoff=cutoff)
-    # a label on an expert-driven step cannot happen (they are never queued); keep expert rows
-    keep = found.resolved & ~np.isin(found.step_id, expert_ids)
-    step_id = np.concatenate([expert_ids, found.step_id[keep]])
-    order = np.argsort(step_id, kind="stable")
-    dtype = np.int64 if is_discrete(loop) else np.float32
-    action = np.concatenate([expert_action.astype(dtype), found.action[keep].astype(dtype)])
+    parts = list(iter_batches(session, loop=loop, cutoff=cutoff, with_features=False))
+    if not parts:
+        dtype = np.int64 if is_discrete(loop) else np.float32
+        shape = (0,) if is_discrete(loop) else (0, action_width(loop))
+        return Members(
+            step_id=np.empty(0, np.int64),
+            source=np.empty(0, np.int8),
+            action=np.empty(shape, dtype),
+            label_count=np.empty(0, np.int64),
+            agreement=np.empty(0, np.float64),
+        )
+    rows = concat(parts)
     return Members(
-        step_id=step_id[order],
-        source=np.concatenate(
-            [expert_source, np.full(int(keep.sum()), SOURCES.index(SOURCE_RELABEL), np.int8)]
-        )[order],
-        action=action[order],
-        label_count=np.concatenate([np.ones(len(expert_ids), np.int64), found.label_count[keep]])[
-            order
-        ],
-        agreement=np.concatenate([np.ones(len(expert_ids)), found.agreement[keep]])[order],
+        step_id=rows.step_id,
+        source=rows.source,
+        action=rows.action,
+        label_count=rows.label_count,
+        agreement=rows.agreement,
     )
+
+
+def iter_batches(
+    session: Session,
+    *,
+    loop: Loop,
+    cutoff: Cutoff,
+    batch: int | None = None,
+    with_features: bool = True,
+) -> Iterator[RowBatch]:
+    """The training set's rows in step-id order, a bounded number of rows at a time.
+
+    Expert-driven steps (demonstrations in round 0, takeovers later) are read `batch` rows at a
+    time from one driver cursor per round; relabelled states (resolved consensus on a
+    learner-driven step) `batch` ids at a time; the sorted streams are merged. A yielded batch
+    holds at most (rounds + 1) x `batch` rows and usually about `batch`. Memory holds one page
+    per stream plus the consensus arrays, which grow with the number of labels, not of steps.
+    """
+    batch = DEFAULT_BATCH if batch is None else batch
+    if batch < 1:
+        raise ValueError(f"batch must be >= 1, got {batch}")
+    shape = rows.Shape(len(loop.features), is_discrete(loop), action_width(loop))
+    rounds = rows.RoundTable.of(session, loop.id)
+    found = relabels(session, loop=loop, cutoff=cutoff)
+    keep = found.resolved
+    expert = rows.expert_batches(
+        session,
+        shape=shape,
+        rounds=rounds,
+        up_to_round=cutoff.up_to_round,
+        max_step_id=cutoff.max_step_id,
+        batch=batch,
+        with_features=with_features,
+    )
+    relabelled = rows.relabel_batches(
+        session,
+        shape=shape,
+        rounds=rounds,
+        step_ids=found.step_id[keep],
+        action=found.action[keep],
+        label_count=found.label_count[keep],
+        agreement=found.agreement[keep],
+        batch=batch,
+        with_features=with_features,
+    )
+    return merge_sorted(expert, relabelled)
 
 
 StepRow = tuple[int, bytes, int, str, int, str | None]
@@ -224,12 +270,9 @@ def training_features(
     session: Session, *, loop: Loop, cutoff: Cutoff
 ) -> tuple[np.ndarray, np.ndarray]:
     """Step ids (n,) and float32 features (n, n_features) of the training set."""
-    rows = members(session, loop=loop, cutoff=cutoff)
-    width = len(loop.features)
-    features = np.empty((len(rows), width), dtype=np.float32)
-    at = 0
-    for batch in iter_step_rows(session, step_ids=rows.step_id):
-        blob = b"".join(r[1] for r in batch)
-        features[at : at + len(batch)] = np.frombuffer(blob, dtype=FLOAT32_LE).reshape(-1, width)
-        at += len(batch)
-    return rows.step_id, features
+    parts = list(iter_batches(session, loop=loop, cutoff=cutoff))
+    if not parts:
+        return np.empty(0, np.int64), np.empty((0, len(loop.features)), np.float32)
+    ids = np.concatenate([p.step_id for p in parts])
+    features = np.concatenate([p.features for p in parts if p.features is not None])
+    return ids, features.astype(np.float32, copy=False)

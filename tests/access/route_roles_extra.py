@@ -22,4 +22,9 @@ EXTRA_ROUTE_ROLES: dict[tuple[str, str], set[str]] = {
     ("GET", "/api/loops/{slug}/report"): READERS,
     ("GET", "/api/loops/{slug}/report.csv"): READERS,
     ("GET", "/loops/{slug}"): READERS,
+    # snapshots and export
+    ("POST", "/api/loops/{slug}/snapshots"): {"trainer"},
+    ("GET", "/api/loops/{slug}/snapshots"): {"trainer"},
+    ("GET", "/api/loops/{slug}/snapshots/{version}"): {"trainer"},
+    ("GET", "/api/loops/{slug}/snapshots/{version}/export"): {"trainer"},
 }

@@ -11,6 +11,7 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import httpx
+import pytest
 from sqlalchemy import select
 
 from app.auth.models import User
@@ -89,6 +90,7 @@ def annotate(base: str, headers: dict[str, str], record: Record, start: threadin
             record.labels.append((item_id, stored.json()["id"]))
 
 
+@pytest.mark.slow  # about 10 s: two server processes start, then 32 clients run
 def test_32_annotators_at_once(make_loop, make_user, settings, app):
     make_loop(
         DISCRETE_SPEC,
@@ -100,7 +102,8 @@ def test_32_annotators_at_once(make_loop, make_user, settings, app):
     headers = {name: make_user("annotator", name=name) for name in users}
     records = [Record(user=name) for name in users]
     start = threading.Barrier(N_CLIENTS)
-    with live_server(settings.resolved_database_url, settings.data_dir) as base:
+    # two server processes: claims also compete across processes (row locks, BEGIN IMMEDIATE)
+    with live_server(settings.resolved_database_url, settings.data_dir, workers=2) as base:
         threads = [
             threading.Thread(target=annotate, args=(base, headers[r.user], r, start))
             for r in records

@@ -1,0 +1,383 @@
+"""Streaming writers of training-set rows: Apache Parquet, NumPy .npz and JSON Lines.
+
+Each writer takes an iterator of RowBatch and yields the file's bytes a piece at a time, so a
+response can stream any number of rows in bounded memory:
+
+- Parquet: one row group per batch, written by pyarrow's ParquetWriter into a sink that hands
+  over its bytes after every row group; the footer follows the last batch.
+- .npz: a zip of .npy members, one per column. A zip holds its members one after another, so the
+  single pass over the rows spools each column to a temporary file first (bounded memory, disk
+  proportional to the rows); the members are then copied out in chunks. Text columns are spooled
+  as int32 codes into a small table of distinct values, so their fixed string width is known when
+  the member is written.
+- JSON Lines: one object per row. Floats are written as the exact decimal value of the stored
+  float32 (e.g. 0.10000000149011612), so casting back to float32 returns the stored bits.
+
+Columns, in this order, in every format:
+
+=================  ===========================================================================
+``step_id``        int64, the state's id in the store (identifies rows across versions)
+``features``       float32 per feature, in the loop's feature order
+``expert_action``  discrete: int64 index into the loop's action list (names in the manifest);
+                   continuous: float32 per action dimension
+``round``          int64 round number of the step
+``source``         "demonstration", "takeover" or "relabel"
+``learner_version`` learner version of the step's round ("" in .npz when none)
+``rollout``        rollout key
+``step``           int64 step index within the rollout
+``label_count``    int64 answers behind the action (1 for expert-driven steps)
+``agreement``      float64 consensus agreement (1.0 for expert-driven steps)
+=================  ===========================================================================
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import tempfile
+import zipfile
+from collections.abc import Iterable, Iterator
+from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass
+from pathlib import Path
+from typing import IO, Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from app.snapshots.batches import RowBatch
+from app.snapshots.training_set import SOURCES
+
+EXPORT_FORMATS = ("parquet", "npz", "jsonl")
+MEDIA_TYPES = {
+    "parquet": "application/vnd.apache.parquet",
+    "npz": "application/octet-stream",
+    "jsonl": "application/x-ndjson",
+}
+COLUMNS = (
+    "step_id",
+    "features",
+    "expert_action",
+    "round",
+    "source",
+    "learner_version",
+    "rollout",
+    "step",
+    "label_count",
+    "agreement",
+)
+PARQUET_COMPRESSION = "snappy"
+# Dictionary encoding pays only for the text columns: on float vectors the writer would fill a
+# dictionary page, give up and fall back, costing time and bytes.
+PARQUET_DICTIONARY_COLUMNS = ["source", "learner_version", "rollout"]
+METADATA_KEY = "expertloop"
+# Exports allocate through the C library's allocator: pyarrow's default pool keeps freed pages
+# for reuse, which leaves a server's resident memory some 40 MB higher after each export.
+_MEMORY_POOL = pa.system_memory_pool()
+# zip members carry a fixed time stamp so that re-exports are byte-identical
+_ZIP_TIME = (1980, 1, 1, 0, 0, 0)
+_COPY_BYTES = 4 * 1024 * 1024
+
+
+@dataclass(frozen=True)
+class Layout:
+    """The shape of one loop's rows: feature count and action space."""
+
+    n_features: int
+    discrete: bool
+    action_width: int
+
+
+class _Sink(io.RawIOBase):
+    """A write-only file that keeps what was written until `take` hands it over."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self._parts: list[bytes] = []
+
+    def writable(self) -> bool:
+        return True
+
+    def write(self, data: Any) -> int:
+        chunk = bytes(data)
+        self._parts.append(chunk)
+        return len(chunk)
+
+    def take(self) -> bytes:
+        parts, self._parts = self._parts, []
+        return b"".join(parts)
+
+
+def arrow_schema(layout: Layout, metadata: dict[str, Any] | None = None) -> pa.Schema:
+    """Arrow schema of the export columns; `metadata` is stored as JSON under "expertloop"."""
+    action = pa.int64() if layout.discrete else pa.list_(pa.float32(), layout.action_width)
+    schema = pa.schema(
+        [
+            ("step_id", pa.int64()),
+            ("features", pa.list_(pa.float32(), layout.n_features)),
+            ("expert_action", action),
+            ("round", pa.int64()),
+            ("source", pa.string()),
+            ("learner_version", pa.string()),
+            ("rollout", pa.string()),
+            ("step", pa.int64()),
+            ("label_count", pa.int64()),
+            ("agreement", pa.float64()),
+        ]
+    )
+    if metadata is not None:
+        schema = schema.with_metadata({METADATA_KEY: json.dumps(metadata, sort_keys=True)})
+    return schema
+
+
+# Arrays are built from numpy buffers: pa.array() on numpy input would import pandas, which
+# costs a server about 50 MB of memory for nothing.
+def _numeric(values: np.ndarray, dtype: str) -> pa.Array:
+    data = np.ascontiguousarray(values, dtype=dtype)
+    arrow_type = pa.from_numpy_dtype(data.dtype)
+    return pa.Array.from_buffers(arrow_type, len(data), [None, pa.py_buffer(data)])
+
+
+def _fixed_list(values: np.ndarray, width: int) -> pa.Array:
+    flat = _numeric(values.reshape(-1), "<f4")
+    return pa.FixedSizeListArray.from_arrays(flat, width)
+
+
+def _named(codes: np.ndarray, names: list[str | None]) -> pa.Array:
+    """Strings from small int codes and their table, without a Python loop over rows."""
+    encoded = [b"" if name is None else name.encode("utf-8") for name in names]
+    offsets = np.zeros(len(encoded) + 1, dtype=np.int32)
+    offsets[1:] = np.cumsum([len(e) for e in encoded])
+    present = np.array([name is not None for name in names], dtype=bool)
+    validity = None if present.all() else pa.py_buffer(np.packbits(present, bitorder="little"))
+    table = pa.Array.from_buffers(
+        pa.string(),
+        len(names),
+        [validity, pa.py_buffer(offsets), pa.py_buffer(b"".join(encoded))],
+    )
+    return pc.take(table, _numeric(codes, "<i8"), memory_pool=_MEMORY_POOL)
+
+
+def to_record_batch(batch: RowBatch, layout: Layout, schema: pa.Schema) -> pa.RecordBatch:
+    """The export columns of a batch as an Arrow record batch."""
+    if batch.features is None:
+        raise ValueError("an export needs the features of every row")
+    rollouts, rollout_code = np.unique(batch.rollout_id, return_inverse=True)
+    rounds, round_code = np.unique(batch.round, return_inverse=True)
+    action = (
+        _numeric(batch.action, "<i8")
+        if layout.discrete
+        else _fixed_list(batch.action, layout.action_width)
+    )
+    columns = [
+        _numeric(batch.step_id, "<i8"),
+        _fixed_list(batch.features, layout.n_features),
+        action,
+        _numeric(batch.round, "<i8"),
+        _named(batch.source, list(SOURCES)),
+        _named(round_code, [batch.learner_versions.get(r) for r in rounds.tolist()]),
+        _named(rollout_code, [batch.rollout_keys[i] for i in rollouts.tolist()]),
+        _numeric(batch.step_index, "<i8"),
+        _numeric(batch.label_count, "<i8"),
+        _numeric(batch.agreement, "<f8"),
+    ]
+    return pa.RecordBatch.from_arrays(columns, schema=schema)
+
+
+def parquet_chunks(
+    batches: Iterable[RowBatch], layout: Layout, metadata: dict[str, Any]
+) -> Iterator[bytes]:
+    """A Parquet file, one row group per batch, handed over after each row group.
+
+    Encoding runs in a helper thread while the next batch is read from the store (pyarrow
+    releases the GIL), so reading and writing overlap on two cores. At most one batch is being
+    encoded while the next is read.
+    """
+    schema = arrow_schema(layout, metadata)
+    sink = _Sink()
+    writer = pq.ParquetWriter(
+        sink,
+        schema,
+        compression=PARQUET_COMPRESSION,
+        use_dictionary=PARQUET_DICTIONARY_COLUMNS,
+        memory_pool=_MEMORY_POOL,
+    )
+
+    def encode(batch: RowBatch) -> bytes:
+        writer.write_batch(to_record_batch(batch, layout, schema))
+        return sink.take()  # one chunk per row group: each chunk costs a trip through the server
+
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="parquet") as encoder:
+        pending: Future[bytes] | None = None
+        try:
+            for batch in batches:
+                if not len(batch):
+                    continue
+                following = encoder.submit(encode, batch)
+                if pending is not None:
+                    yield pending.result()
+                pending = following
+            if pending is not None:
+                yield pending.result()
+                pending = None
+        finally:
+            if pending is not None:  # stopped early: let the encoder finish, drop its bytes
+                pending.exception()
+    # no footer unless every batch arrived: a reader then sees a broken file, not a short one
+    writer.close()
+    yield sink.take()
+
+
+def jsonl_chunks(batches: Iterable[RowBatch], layout: Layout) -> Iterator[bytes]:
+    """JSON Lines, one object per row with the export columns, a batch of lines at a time."""
+    for batch in batches:
+        if not len(batch):
+            continue
+        assert batch.features is not None
+        features = batch.features.astype(np.float64).tolist()
+        actions = batch.action.astype(np.int64 if layout.discrete else np.float64).tolist()
+        sources = np.asarray(SOURCES, dtype=object)[batch.source].tolist()
+        columns = zip(
+            batch.step_id.tolist(),
+            features,
+            actions,
+            batch.round.tolist(),
+            sources,
+            batch.learner_version().tolist(),
+            batch.rollout().tolist(),
+            batch.step_index.tolist(),
+            batch.label_count.tolist(),
+            batch.agreement.tolist(),
+            strict=True,
+        )
+        lines = [json.dumps(dict(zip(COLUMNS, row, strict=True))) for row in columns]
+        yield ("\n".join(lines) + "\n").encode("utf-8")
+
+
+class _SpooledColumn:
+    """One fixed-dtype column written to a temporary file as raw .npy body bytes."""
+
+    def __init__(self, dtype: str, width: int | None, spool_dir: Path | None) -> None:
+        self.dtype = np.dtype(dtype)
+        self.width = width
+        self.file: IO[bytes] = tempfile.TemporaryFile(dir=spool_dir)
+
+    def add(self, values: np.ndarray) -> None:
+        self.file.write(np.ascontiguousarray(values, dtype=self.dtype).tobytes())
+
+    def shape(self, rows: int) -> tuple[int, ...]:
+        return (rows,) if self.width is None else (rows, self.width)
+
+
+class _SpooledText:
+    """A text column spooled as int32 codes into a table of its distinct values."""
+
+    def __init__(self, spool_dir: Path | None) -> None:
+        self.codes = _SpooledColumn("<i4", None, spool_dir)
+        self.table: dict[str, int] = {}
+
+    def add(self, codes: np.ndarray, names: list[str | None]) -> None:
+        """Add rows given as codes into `names` (None is written as "")."""
+        to_global = np.array(
+            [self.table.setdefault(name or "", len(self.table)) for name in names], dtype=np.int32
+        )
+        self.codes.add(to_global[codes])
+
+    def names(self) -> np.ndarray:
+        width = max([1, *(len(v) for v in self.table)])
+        return np.array(list(self.table), dtype=f"<U{width}")
+
+
+def _npy_header(dtype: np.dtype[Any], shape: tuple[int, ...]) -> bytes:
+    out = io.BytesIO()
+    header = {"descr": np.lib.format.dtype_to_descr(dtype), "fortran_order": False, "shape": shape}
+    np.lib.format.write_array_header_1_0(out, header)
+    return out.getvalue()
+
+
+def npz_chunks(
+    batches: Iterable[RowBatch],
+    layout: Layout,
+    metadata: dict[str, Any],
+    spool_dir: Path | None = None,
+) -> Iterator[bytes]:
+    """A .npz archive of one .npy member per column, plus "manifest" (a 0-d JSON string)."""
+    action_dtype = "<i8" if layout.discrete else "<f4"
+    fixed = {
+        "step_id": _SpooledColumn("<i8", None, spool_dir),
+        "features": _SpooledColumn("<f4", layout.n_features, spool_dir),
+        "expert_action": _SpooledColumn(
+            action_dtype, None if layout.discrete else layout.action_width, spool_dir
+        ),
+        "round": _SpooledColumn("<i8", None, spool_dir),
+        "step": _SpooledColumn("<i8", None, spool_dir),
+        "label_count": _SpooledColumn("<i8", None, spool_dir),
+        "agreement": _SpooledColumn("<f8", None, spool_dir),
+    }
+    text = {name: _SpooledText(spool_dir) for name in ("source", "learner_version", "rollout")}
+    rows = 0
+    try:
+        for batch in batches:
+            if not len(batch):
+                continue
+            assert batch.features is not None
+            fixed["step_id"].add(batch.step_id)
+            fixed["features"].add(batch.features)
+            fixed["expert_action"].add(batch.action)
+            fixed["round"].add(batch.round)
+            fixed["step"].add(batch.step_index)
+            fixed["label_count"].add(batch.label_count)
+            fixed["agreement"].add(batch.agreement)
+            text["source"].add(batch.source, list(SOURCES))
+            rounds, round_code = np.unique(batch.round, return_inverse=True)
+            versions = [batch.learner_versions.get(r) for r in rounds.tolist()]
+            text["learner_version"].add(round_code, versions)
+            rollouts, rollout_code = np.unique(batch.rollout_id, return_inverse=True)
+            text["rollout"].add(rollout_code, [batch.rollout_keys[i] for i in rollouts.tolist()])
+            rows += len(batch)
+        yield from _zip_members(fixed, text, rows, metadata)
+    finally:
+        for column in [*fixed.values(), *(t.codes for t in text.values())]:
+            column.file.close()
+
+
+def _zip_members(
+    fixed: dict[str, _SpooledColumn],
+    text: dict[str, _SpooledText],
+    rows: int,
+    metadata: dict[str, Any],
+) -> Iterator[bytes]:
+    sink = _Sink()
+    with zipfile.ZipFile(sink, mode="w", compression=zipfile.ZIP_STORED) as archive:
+        for name in COLUMNS:
+            info = zipfile.ZipInfo(f"{name}.npy", date_time=_ZIP_TIME)
+            if name in fixed:
+                column = fixed[name]
+                header = _npy_header(column.dtype, column.shape(rows))
+                info.file_size = len(header) + column.file.tell()
+                with archive.open(info, mode="w") as member:
+                    member.write(header)
+                    column.file.seek(0)
+                    while chunk := column.file.read(_COPY_BYTES):
+                        member.write(chunk)
+                        yield sink.take()
+            else:
+                names = text[name].names()
+                header = _npy_header(names.dtype, (rows,))
+                info.file_size = len(header) + rows * names.dtype.itemsize
+                codes = text[name].codes.file
+                rows_per_chunk = max(1, _COPY_BYTES // names.dtype.itemsize)
+                with archive.open(info, mode="w") as member:
+                    member.write(header)
+                    codes.seek(0)
+                    while chunk := codes.read(4 * rows_per_chunk):
+                        member.write(names[np.frombuffer(chunk, dtype="<i4")].tobytes())
+                        yield sink.take()
+            yield sink.take()
+        manifest = np.array(json.dumps(metadata, sort_keys=True))
+        info = zipfile.ZipInfo("manifest.npy", date_time=_ZIP_TIME)
+        with archive.open(info, mode="w") as member:
+            member.write(_npy_header(manifest.dtype, ()) + manifest.tobytes())
+    yield sink.take()

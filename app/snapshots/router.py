@@ -1,0 +1,86 @@
+"""HTTP routes for snapshots: create a version, list and read them, stream an export (trainer)."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Query, Response, status
+from fastapi.responses import StreamingResponse
+
+from app.deps import SessionDep, SettingsDep, TrainerDep
+from app.loops import service as loops_service
+from app.snapshots import service
+from app.snapshots.export import MEDIA_TYPES
+from app.snapshots.schemas import (
+    ExportFormat,
+    SnapshotCreate,
+    SnapshotCreated,
+    SnapshotDetail,
+    SnapshotList,
+    SnapshotRead,
+)
+
+router = APIRouter(prefix="/api/loops", tags=["snapshots"])
+
+
+@router.post(
+    "/{slug}/snapshots", response_model=SnapshotCreated, status_code=status.HTTP_201_CREATED
+)
+def create_snapshot(
+    slug: str, body: SnapshotCreate, response: Response, session: SessionDep, caller: TrainerDep
+) -> SnapshotCreated:
+    """Make the next immutable version up to a round; 200 with the existing one if identical."""
+    loop = loops_service.get_loop(session, slug=slug)
+    snapshot, created = service.create_snapshot(
+        session, loop=loop, up_to_round=body.up_to_round, user_id=caller.user_id
+    )
+    if not created:
+        response.status_code = status.HTTP_200_OK
+    return SnapshotCreated.made(snapshot, created=created)
+
+
+@router.get("/{slug}/snapshots", response_model=SnapshotList)
+def list_snapshots(slug: str, session: SessionDep, _: TrainerDep) -> SnapshotList:
+    """A loop's snapshots, newest first."""
+    loop = loops_service.get_loop(session, slug=slug)
+    items = [SnapshotRead.of(s) for s in service.list_snapshots(session, loop=loop)]
+    return SnapshotList(items=items, total=len(items))
+
+
+@router.get("/{slug}/snapshots/{version}", response_model=SnapshotDetail)
+def read_snapshot(slug: str, version: str, session: SessionDep, _: TrainerDep) -> SnapshotDetail:
+    """One snapshot ("vN" or "latest") with its manifest."""
+    loop = loops_service.get_loop(session, slug=slug)
+    return SnapshotDetail.of(service.get_snapshot(session, loop=loop, version=version))
+
+
+@router.get("/{slug}/snapshots/{version}/export")
+def export_snapshot(
+    slug: str,
+    version: str,
+    session: SessionDep,
+    settings: SettingsDep,
+    _: TrainerDep,
+    format: ExportFormat = Query("parquet", description="parquet, npz or jsonl"),
+    since: str | None = Query(
+        None, description="An earlier version (vN): only rows not identical in it."
+    ),
+) -> StreamingResponse:
+    """Stream a snapshot's rows as Parquet, .npz or JSON Lines."""
+    loop = loops_service.get_loop(session, slug=slug)
+    snapshot, older = service.resolve_export(session, loop=loop, version=version, since=since)
+    chunks = service.export_chunks(
+        session,
+        loop=loop,
+        snapshot=snapshot,
+        since=older,
+        file_format=format,
+        spool_dir=settings.data_dir / "exports",
+    )
+    filename = service.export_filename(loop, snapshot, older, format)
+    headers = {
+        "Content-Disposition": f'attachment; filename="{filename}"',
+        "X-Expertloop-Version": f"v{snapshot.version}",
+        "X-Expertloop-Content-Sha256": snapshot.content_sha256,
+    }
+    if older is None:
+        headers["X-Expertloop-Rows"] = str(snapshot.row_count)
+    return StreamingResponse(chunks, media_type=MEDIA_TYPES[format], headers=headers)

@@ -1,0 +1,339 @@
+"""Store access for snapshots: create immutable versions, find them, stream their rows.
+
+A snapshot stores only its cut-off (round, largest step id, largest label id), its manifest and
+the content hash: steps and labels are never changed, so its rows are rebuilt from the cut-off on
+every export, and every full export re-checks them against the hash.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterator
+from datetime import UTC
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from sqlalchemy import func, select, text
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
+
+from app.auth.models import User
+from app.errors import Conflict, InvalidInput, NotFound
+from app.loops import service as loops_service
+from app.loops.models import Loop, Round
+from app.models import utcnow
+from app.safety import SAFETY_CAUTION
+from app.snapshots import export
+from app.snapshots import training_set as ts
+from app.snapshots.batches import RowBatch, rows_not_in
+from app.snapshots.content_hash import HASH_SCHEME, ContentHasher
+from app.snapshots.models import Snapshot
+
+LATEST = "latest"
+_VERSION = re.compile(r"^v([1-9][0-9]{0,8})$")
+
+
+class SnapshotChanged(RuntimeError):
+    """A snapshot's rows no longer hash to its manifest: the store was altered behind our back."""
+
+
+def layout_of(loop: Loop) -> export.Layout:
+    """Feature count and action space of a loop's rows."""
+    return export.Layout(
+        n_features=len(loop.features),
+        discrete=ts.is_discrete(loop),
+        action_width=ts.action_width(loop),
+    )
+
+
+def cutoff_of(snapshot: Snapshot) -> ts.Cutoff:
+    """The cut-off that pins a snapshot's rows."""
+    return ts.Cutoff(snapshot.up_to_round, snapshot.max_step_id, snapshot.max_label_id)
+
+
+def _hasher(loop: Loop) -> ContentHasher:
+    layout = layout_of(loop)
+    return ContentHasher(
+        n_features=layout.n_features, discrete=layout.discrete, action_width=layout.action_width
+    )
+
+
+def _settle_writers(session: Session) -> None:
+    """Wait for uploads and labels in flight, so no row can later appear below the cut-off.
+
+    PostgreSQL hands out ids when a row is inserted, not when it is committed: a slow upload may
+    commit step 100 after step 200 was visible. A SHARE lock waits for every transaction that
+    inserted into these tables to finish; rows inserted afterwards get larger ids. SQLite has a
+    single writer that takes ids above every committed row, so it needs no lock.
+    """
+    if session.get_bind().dialect.name == "postgresql":
+        session.execute(text("LOCK TABLE steps, labels IN SHARE MODE"))
+
+
+class _Tally:
+    """Row counts per (round, source) while the rows stream by."""
+
+    def __init__(self) -> None:
+        self.counts: dict[tuple[int, int], int] = {}
+
+    def add(self, batch: RowBatch) -> None:
+        pairs, counts = np.unique(
+            np.stack([batch.round, batch.source.astype(np.int64)], axis=1),
+            axis=0,
+            return_counts=True,
+        )
+        for (number, source), count in zip(pairs.tolist(), counts.tolist(), strict=True):
+            self.counts[(number, source)] = self.counts.get((number, source), 0) + count
+
+
+def create_snapshot(
+    session: Session, *, loop: Loop, up_to_round: int | None, user_id: int | None
+) -> tuple[Snapshot, bool]:
+    """Make the next version of the training set up to a round, or return an identical one.
+
+    Returns the snapshot and whether it was created (False: the newest version with the same
+    round and content hash already existed).
+    """
+    if up_to_round is None:
+        up_to_round = int(
+            session.scalar(select(func.max(Round.number)).where(Round.loop_id == loop.id)) or 0
+        )
+    loops_service.get_round(session, loop=loop, number=up_to_round)  # NotFound names the round
+    _settle_writers(session)
+    cutoff = ts.current_cutoff(session, loop=loop, up_to_round=up_to_round)
+    session.commit()  # release the lock; the cut-off is now fixed
+
+    hasher, tally = _hasher(loop), _Tally()
+    for batch in ts.iter_batches(session, loop=loop, cutoff=cutoff):
+        hasher.update(batch)
+        tally.add(batch)
+    if hasher.rows == 0:
+        raise InvalidInput(
+            f"nothing to snapshot: loop '{loop.slug}' has no demonstrations, takeovers or "
+            f"resolved relabels up to round {up_to_round}"
+        )
+    content = hasher.hexdigest()
+    existing = _identical(session, loop=loop, up_to_round=up_to_round, content=content)
+    if existing is not None:
+        return existing, False
+
+    version = int(
+        session.scalar(select(func.max(Snapshot.version)).where(Snapshot.loop_id == loop.id)) or 0
+    )
+    created_at = utcnow()
+    manifest = build_manifest(
+        session,
+        loop=loop,
+        version=version + 1,
+        cutoff=cutoff,
+        counts=tally.counts,
+        content=content,
+        created_at_iso=created_at.astimezone(UTC).isoformat(),
+        user_id=user_id,
+    )
+    snapshot = Snapshot(
+        loop_id=loop.id,
+        version=version + 1,
+        up_to_round=up_to_round,
+        max_step_id=cutoff.max_step_id,
+        max_label_id=cutoff.max_label_id,
+        row_count=hasher.rows,
+        content_sha256=content,
+        manifest=manifest,
+        created_at=created_at,
+        created_by=user_id,
+    )
+    session.add(snapshot)
+    try:
+        session.commit()
+    except IntegrityError as exc:  # another request took this version number first
+        session.rollback()
+        existing = _identical(session, loop=loop, up_to_round=up_to_round, content=content)
+        if existing is not None:
+            return existing, False
+        raise Conflict(
+            f"another snapshot of '{loop.slug}' was created at the same moment; try again"
+        ) from exc
+    return snapshot, True
+
+
+def _identical(session: Session, *, loop: Loop, up_to_round: int, content: str) -> Snapshot | None:
+    return session.scalar(
+        select(Snapshot)
+        .where(
+            Snapshot.loop_id == loop.id,
+            Snapshot.up_to_round == up_to_round,
+            Snapshot.content_sha256 == content,
+        )
+        .order_by(Snapshot.version.desc())
+        .limit(1)
+    )
+
+
+def build_manifest(
+    session: Session,
+    *,
+    loop: Loop,
+    version: int,
+    cutoff: ts.Cutoff,
+    counts: dict[tuple[int, int], int],
+    content: str,
+    created_at_iso: str,
+    user_id: int | None,
+) -> dict[str, Any]:
+    """What a version holds and how it was made, stored with it and shipped in every export."""
+    per_round: dict[str, int] = {}
+    per_source = dict.fromkeys(ts.SOURCES, 0)
+    detail = []
+    for (number, source), count in sorted(counts.items()):
+        per_round[str(number)] = per_round.get(str(number), 0) + count
+        per_source[ts.SOURCES[source]] += count
+        detail.append({"round": number, "source": ts.SOURCES[source], "rows": count})
+    consensus = ts.relabels(session, loop=loop, cutoff=cutoff)
+    unresolved = consensus.step_id[~consensus.resolved]
+    rounds = session.execute(
+        select(Round.number, Round.learner_version)
+        .where(Round.loop_id == loop.id, Round.number <= cutoff.up_to_round)
+        .order_by(Round.number)
+    ).all()
+    user = session.get(User, user_id) if user_id is not None else None
+    return {
+        "loop": loop.slug,
+        "version": f"v{version}",
+        "up_to_round": cutoff.up_to_round,
+        "cutoff": {"max_step_id": cutoff.max_step_id, "max_label_id": cutoff.max_label_id},
+        "row_count": int(sum(counts.values())),
+        "rows_per_round": per_round,
+        "rows_per_source": per_source,
+        "rows_per_round_and_source": detail,
+        "labelled_states": len(consensus.step_id),
+        "unresolved_states": {
+            "count": len(unresolved),
+            "step_ids": unresolved.tolist(),
+            "note": "labelled states without a consensus (a tie, or only unsure answers); "
+            "they are left out, never guessed",
+        },
+        "state_schema": {"features": loop.features},
+        "action_space": loop.action_space,
+        "learner_versions": {str(n): v for n, v in rounds},
+        "columns": list(export.COLUMNS),
+        "content_sha256": content,
+        "content_hash_scheme": HASH_SCHEME,
+        "created_at": created_at_iso,
+        "created_by": user.name if user else None,
+        "safety_caution": SAFETY_CAUTION,
+    }
+
+
+def list_snapshots(session: Session, *, loop: Loop) -> list[Snapshot]:
+    """A loop's snapshots, newest version first."""
+    return list(
+        session.scalars(
+            select(Snapshot).where(Snapshot.loop_id == loop.id).order_by(Snapshot.version.desc())
+        )
+    )
+
+
+def get_snapshot(session: Session, *, loop: Loop, version: str) -> Snapshot:
+    """Snapshot "vN" or "latest" of a loop, or NotFound / InvalidInput naming the problem."""
+    query = select(Snapshot).where(Snapshot.loop_id == loop.id)
+    if version == LATEST:
+        found = session.scalar(query.order_by(Snapshot.version.desc()).limit(1))
+        if found is None:
+            raise NotFound(
+                f"loop '{loop.slug}' has no snapshots yet; "
+                f"create one with POST /api/loops/{loop.slug}/snapshots"
+            )
+        return found
+    match = _VERSION.match(version)
+    if match is None:
+        raise InvalidInput(
+            f"version must be 'latest' or 'v' and a number (v1, v2, ...), got '{version}'"
+        )
+    found = session.scalar(query.where(Snapshot.version == int(match.group(1))))
+    if found is None:
+        raise NotFound(f"loop '{loop.slug}' has no snapshot {version}")
+    return found
+
+
+def resolve_export(
+    session: Session, *, loop: Loop, version: str, since: str | None
+) -> tuple[Snapshot, Snapshot | None]:
+    """The snapshot to export and the earlier one its rows are compared with, if any."""
+    snapshot = get_snapshot(session, loop=loop, version=version)
+    if since is None:
+        return snapshot, None
+    older = get_snapshot(session, loop=loop, version=since)
+    if older.version > snapshot.version:
+        raise InvalidInput(
+            f"since=v{older.version} is newer than v{snapshot.version}: since names the version "
+            "you already have, which must be the same or earlier"
+        )
+    return snapshot, older
+
+
+def snapshot_batches(
+    session: Session, *, loop: Loop, snapshot: Snapshot, since: Snapshot | None = None
+) -> Iterator[RowBatch]:
+    """A snapshot's rows in step-id order, checked against its content hash as they stream.
+
+    With `since`, only rows that have no identical row in that earlier version: new states, and
+    relabelled states whose consensus (action, label count or agreement) changed. Raises
+    SnapshotChanged after the last row if the rows no longer match the hash.
+    """
+    rows = _verified(
+        ts.iter_batches(session, loop=loop, cutoff=cutoff_of(snapshot)), loop, snapshot
+    )
+    if since is None:
+        return rows
+    older = ts.iter_batches(session, loop=loop, cutoff=cutoff_of(since), with_features=False)
+    return rows_not_in(rows, older)
+
+
+def _verified(batches: Iterator[RowBatch], loop: Loop, snapshot: Snapshot) -> Iterator[RowBatch]:
+    hasher = _hasher(loop)
+    for batch in batches:
+        hasher.update(batch)
+        yield batch
+    found = hasher.hexdigest()
+    if found != snapshot.content_sha256:
+        raise SnapshotChanged(
+            f"snapshot v{snapshot.version} of '{loop.slug}' now hashes to {found}, not "
+            f"{snapshot.content_sha256}: steps or labels were altered in the store"
+        )
+
+
+def export_chunks(
+    session: Session,
+    *,
+    loop: Loop,
+    snapshot: Snapshot,
+    since: Snapshot | None,
+    file_format: str,
+    spool_dir: Path | None = None,
+) -> Iterator[bytes]:
+    """The bytes of an export file, a piece at a time."""
+    batches = snapshot_batches(session, loop=loop, snapshot=snapshot, since=since)
+    layout = layout_of(loop)
+    metadata = {
+        "manifest": snapshot.manifest,
+        "since": None if since is None else f"v{since.version}",
+    }
+    if file_format == "parquet":
+        return export.parquet_chunks(batches, layout, metadata)
+    if file_format == "npz":
+        if spool_dir is not None:
+            spool_dir.mkdir(parents=True, exist_ok=True)
+        return export.npz_chunks(batches, layout, metadata, spool_dir)
+    if file_format == "jsonl":
+        return export.jsonl_chunks(batches, layout)
+    raise InvalidInput(f"format must be one of {list(export.EXPORT_FORMATS)}, got '{file_format}'")
+
+
+def export_filename(
+    loop: Loop, snapshot: Snapshot, since: Snapshot | None, file_format: str
+) -> str:
+    """A download name such as tow-tractor-v3.parquet or tow-tractor-v3-since-v1.parquet."""
+    tail = "" if since is None else f"-since-v{since.version}"
+    return f"{loop.slug}-v{snapshot.version}{tail}.{file_format}"

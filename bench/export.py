@@ -1,0 +1,327 @@
+"""Benchmark: streaming a snapshot as Parquet through the API vs pyarrow writing it from memory.
+
+For each row count, a fresh store gets a loop with 64 features (default) and that many training
+rows inserted in bulk (app.ingest.bulk.insert_steps): 90% round-0 demonstrations, 8% round-1
+takeovers and 2% round-1 learner steps with one label each (relabels; --relabel-share). A uvicorn server runs in
+a subprocess; the benchmark creates a snapshot, downloads its Parquet export to a file, and
+reads the server's peak resident memory (VmHWM in /proc/<pid>/status). The baseline, in the same
+run, is pyarrow writing the very same table (read back from the export) from memory to a file
+with the same writer options (compression, dictionary columns), run between the exports; the
+best of --repeat runs of each is kept, since other work on the machine skews single runs. The
+server's peak memory covers the snapshot creation and every export.
+
+    python bench/export.py                          # 100k and 1M rows on SQLite
+    python bench/export.py --rows 100000 --database-url postgresql+psycopg://u@host/scratch
+
+A PostgreSQL database given here has its public schema DROPPED: name a scratch database.
+Targets: export at least 0.5x pyarrow's speed; server peak under 300 MB, not growing with rows.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import httpx
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+from sqlalchemy import insert, text
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+from app.auth import service as auth_service  # noqa: E402
+from app.db import make_engine, make_session_factory  # noqa: E402
+from app.ingest.bulk import STEP_COLUMNS, insert_steps  # noqa: E402
+from app.ingest.encode import rows_to_bytes  # noqa: E402
+from app.ingest.models import Rollout, Upload  # noqa: E402
+from app.loops import service as loops_service  # noqa: E402
+from app.loops.schemas import LoopCreate  # noqa: E402
+from app.migrations_state import upgrade  # noqa: E402
+from app.queue.models import Label  # noqa: E402
+from app.snapshots.export import PARQUET_COMPRESSION, PARQUET_DICTIONARY_COLUMNS  # noqa: E402
+
+STEPS_PER_ROLLOUT = 1000
+SLUG = "bench-export"
+
+
+def prepare_store(
+    url: str, n_rows: int, n_features: int, rng: np.random.Generator, relabel_share: float = 0.02
+) -> str:
+    """Migrate a fresh store, fill it, and return a trainer's API token."""
+    if url.startswith("postgresql"):
+        engine = make_engine(url)
+        with engine.begin() as conn:
+            conn.execute(text("DROP SCHEMA public CASCADE"))
+            conn.execute(text("CREATE SCHEMA public"))
+        engine.dispose()
+    upgrade(url)
+    engine = make_engine(url)
+    factory = make_session_factory(engine)
+    with factory() as session:
+        spec = LoopCreate.model_validate(
+            {
+                "slug": SLUG,
+                "title": "Export benchmark (invented data)",
+                "features": [{"name": f"f{i}"} for i in range(n_features)],
+                "action_space": {"kind": "discrete", "actions": ["proceed", "creep", "hold"]},
+            }
+        )
+        loop = loops_service.create_loop(session, spec=spec, user_id=None)
+        round_0 = loops_service.get_round(session, loop=loop, number=0)
+        round_1 = loops_service.open_round(
+            session, loop=loop, learner_version="bench-1", user_id=None
+        )
+        trainer = auth_service.create_user(session, name="bench-trainer", roles=["trainer"])
+        token = auth_service.issue_token(session, user=trainer)
+        labeller = auth_service.create_user(session, name="bench-labeller", roles=["annotator"])
+        n_round_1 = n_rows // 10
+        for rnd, count in ((round_0, n_rows - n_round_1), (round_1, n_round_1)):
+            # round 1 is a tenth of the rows: its learner-driven steps get one label each
+            learner_share = min(1.0, relabel_share * 10) if rnd.number else 0.0
+            _insert_round(
+                session, loop.id, rnd.id, rnd.number, count, n_features, rng, learner_share
+            )
+        session.commit()
+        learner = [
+            r[0]
+            for r in session.execute(
+                text("SELECT id FROM steps WHERE round_id = :r AND control = 0 ORDER BY id"),
+                {"r": round_1.id},
+            )
+        ]
+        if not learner:
+            return token
+        session.execute(
+            insert(Label),
+            [
+                {
+                    "step_id": step_id,
+                    "round_id": round_1.id,
+                    "user_id": labeller.id,
+                    "submission_id": f"bench-{step_id}",
+                    "answer": "action",
+                    "action": int(i % 3),
+                }
+                for i, step_id in enumerate(learner)
+            ],
+        )
+        session.commit()
+    engine.dispose()
+    return token
+
+
+def _insert_round(
+    session, loop_id, round_id, number, count, n_features, rng, learner_share
+) -> None:  # type: ignore[no-untyped-def]
+    upload = Upload(
+        round_id=round_id,
+        file_sha256=f"{number:064d}",
+        filename="bench",
+        file_format="parquet",
+        n_rollouts=0,
+        n_steps=count,
+    )
+    session.add(upload)
+    session.flush()
+    n_rollouts = -(-count // STEPS_PER_ROLLOUT)
+    rollout_ids = [
+        r[0]
+        for r in session.execute(
+            insert(Rollout).returning(Rollout.id),
+            [
+                {
+                    "loop_id": loop_id,
+                    "round_id": round_id,
+                    "upload_id": upload.id,
+                    "key": f"bench-r{number}-{k:06d}",
+                    "n_steps": min(STEPS_PER_ROLLOUT, count - k * STEPS_PER_ROLLOUT),
+                    "content_sha256": f"{k:064d}",
+                }
+                for k in range(n_rollouts)
+            ],
+        )
+    ]
+    index = np.arange(count)
+    # round 0: every step a demonstration; round 1: takeovers and learner-driven steps
+    expert = (index % 1000) >= round(1000 * learner_share)
+    columns: dict[str, object] = dict.fromkeys(STEP_COLUMNS)
+    columns |= {
+        "rollout_id": np.asarray(rollout_ids)[index // STEPS_PER_ROLLOUT],
+        "round_id": [round_id] * count,
+        "step_index": index % STEPS_PER_ROLLOUT,
+        "time_s": (index % STEPS_PER_ROLLOUT) * 0.1,
+        "control": expert.astype(np.int64),
+        "features": rows_to_bytes(rng.normal(size=(count, n_features)).astype(np.float32)),
+        "expert_action": [int(a) if e else None for a, e in zip(index % 3, expert, strict=True)],
+    }
+    insert_steps(session.connection(), columns, count)  # type: ignore[arg-type]
+
+
+def _download(api: httpx.Client, target: Path) -> float:
+    """Seconds to stream the v1 Parquet export into a file."""
+    started = time.perf_counter()
+    with (
+        api.stream("GET", f"/api/loops/{SLUG}/snapshots/v1/export") as response,
+        target.open("wb") as handle,
+    ):
+        response.raise_for_status()
+        for chunk in response.iter_raw():
+            handle.write(chunk)
+    return time.perf_counter() - started
+
+
+def _pyarrow_write(table: pa.Table, target: Path) -> float:
+    """Seconds for pyarrow to write the table from memory with the export's writer options."""
+    started = time.perf_counter()
+    pq.write_table(
+        table, target, compression=PARQUET_COMPRESSION, use_dictionary=PARQUET_DICTIONARY_COLUMNS
+    )
+    return time.perf_counter() - started
+
+
+def _free_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+def peak_rss_mb(pid: int) -> float:
+    """Peak resident memory of a process (VmHWM), in MB."""
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024
+    raise RuntimeError("no VmHWM in /proc status")
+
+
+def run_once(
+    url: str, n_rows: int, n_features: int, workdir: Path, relabel_share: float, repeat: int
+) -> dict[str, float]:
+    rng = np.random.default_rng(n_rows)
+    load = os.getloadavg()[0]  # other work on the machine skews every figure
+    started = time.perf_counter()
+    token = prepare_store(url, n_rows, n_features, rng, relabel_share)
+    fill_s = time.perf_counter() - started
+    port = _free_port()
+    env = os.environ | {
+        "EXPERTLOOP_DATABASE_URL": url,
+        "EXPERTLOOP_DATA_DIR": str(workdir / "data"),
+    }
+    server = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "uvicorn",
+            "app.asgi:app",
+            "--port",
+            str(port),
+            "--log-level",
+            "warning",
+        ],
+        cwd=ROOT,
+        env=env,
+    )
+    try:
+        base = f"http://127.0.0.1:{port}"
+        for _ in range(200):
+            try:
+                if httpx.get(f"{base}/healthz").status_code == 200:
+                    break
+            except httpx.TransportError:
+                time.sleep(0.1)
+        idle_mb = peak_rss_mb(server.pid)
+        headers = {"Authorization": f"Bearer {token}"}
+        timeout = httpx.Timeout(600.0)
+        with httpx.Client(base_url=base, headers=headers, timeout=timeout) as api:
+            started = time.perf_counter()
+            made = api.post(f"/api/loops/{SLUG}/snapshots", json={})
+            create_s = time.perf_counter() - started
+            made.raise_for_status()
+            assert made.json()["row_count"] == n_rows, made.json()["row_count"]
+            target = workdir / "export.parquet"
+            export_times, pyarrow_times = [], []
+            for _ in range(repeat):
+                export_times.append(_download(api, target))
+                # the baseline runs between exports, under the same load on the machine
+                table = pq.read_table(target)
+                assert table.num_rows == n_rows
+                pyarrow_times.append(_pyarrow_write(table, workdir / "baseline.parquet"))
+                del table
+        server_mb = peak_rss_mb(server.pid)
+    finally:
+        server.terminate()
+        server.wait(timeout=30)
+    export_s, pyarrow_s = min(export_times), min(pyarrow_times)
+    return {
+        "rows": n_rows,
+        "fill_s": fill_s,
+        "create_s": create_s,
+        "export_s": export_s,
+        "pyarrow_s": pyarrow_s,
+        "ratio": pyarrow_s / export_s,
+        "idle_mb": idle_mb,
+        "peak_mb": server_mb,
+        "file_mb": target.stat().st_size / 1e6,
+        "load": load,
+    }
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--rows", type=int, nargs="+", default=[100_000, 1_000_000])
+    parser.add_argument("--features", type=int, default=64)
+    parser.add_argument(
+        "--repeat", type=int, default=3, help="exports (and baseline writes) per size; best kept"
+    )
+    parser.add_argument(
+        "--relabel-share",
+        type=float,
+        default=0.02,
+        help="share of rows that are relabelled states (one label each), at most 0.1",
+    )
+    parser.add_argument(
+        "--database-url",
+        default=None,
+        help="scratch database (its schema is dropped); default: a fresh SQLite file per run",
+    )
+    args = parser.parse_args()
+    results = []
+    for n_rows in args.rows:
+        with tempfile.TemporaryDirectory(prefix="bench-export-") as folder:
+            workdir = Path(folder)
+            url = args.database_url or f"sqlite:///{workdir / 'store.db'}"
+            result = run_once(url, n_rows, args.features, workdir, args.relabel_share, args.repeat)
+            results.append(result)
+            print(
+                f"{n_rows:>9} rows x {args.features} features: store filled in "
+                f"{result['fill_s']:.1f} s; snapshot created (hash pass) in "
+                f"{result['create_s']:.2f} s",
+                flush=True,
+            )
+    backend = "PostgreSQL" if (args.database_url or "").startswith("postgresql") else "SQLite"
+    print(
+        f"\nstore: {backend}; Parquet compression: {PARQUET_COMPRESSION}; relabelled share "
+        f"{args.relabel_share:.0%}; {os.cpu_count()} CPUs"
+    )
+    print(
+        f"{'rows':>9}  {'export s':>9}  {'rows/s':>10}  {'pyarrow s':>9}  {'speed vs pyarrow':>16}"
+        f"  {'server idle MB':>14}  {'server peak MB':>14}  {'file MB':>8}  {'load avg':>8}"
+    )
+    for r in results:
+        print(
+            f"{r['rows']:>9}  {r['export_s']:>9.2f}  {r['rows'] / r['export_s']:>10.0f}  "
+            f"{r['pyarrow_s']:>9.2f}  {r['ratio']:>15.2f}x  {r['idle_mb']:>14.0f}  "
+            f"{r['peak_mb']:>14.0f}  {r['file_mb']:>8.0f}  {r['load']:>8.1f}"
+        )
+    print("targets: speed >= 0.5x pyarrow; server peak < 300 MB and not growing with rows")
+
+
+if __name__ == "__main__":
+    main()
