@@ -65,31 +65,51 @@ def serve(
     import uvicorn
 
     from app.migrations_state import upgrade
+    from app.system.logs import configure_logging, logging_config
 
-    upgrade(get_settings().resolved_database_url)
+    settings = get_settings()
+    configure_logging(settings.log_format)
+    upgrade(settings.resolved_database_url)
     if demo:
         from app.demo.setup import prepare_demo
 
         typer.echo(prepare_demo(host=host, port=port))
-    uvicorn.run("app.asgi:app", host=host, port=port, workers=workers, log_level="info")
+    # uvicorn applies the dictionary in each server process (also with --workers > 1)
+    uvicorn.run(
+        "app.asgi:app",
+        host=host,
+        port=port,
+        workers=workers,
+        log_level="info",
+        log_config=logging_config(settings.log_format),
+    )
 
 
 @cli.command()
 def worker() -> None:
     """Run background jobs (ranking, snapshots) until interrupted; for team deployments."""
+    import logging
     import signal
     import threading
 
     from app.db import make_engine, make_session_factory
-    from app.jobs.runner import run_until_stopped
+    from app.jobs.runner import run_until_stopped, worker_name
+    from app.system.logs import configure_logging
 
     settings = get_settings()
+    configure_logging(settings.log_format)
+    log = logging.getLogger("expertloop.worker")
     factory = make_session_factory(make_engine(settings.resolved_database_url))
     stop = threading.Event()
     for sig in (signal.SIGINT, signal.SIGTERM):
         signal.signal(sig, lambda *_: stop.set())
-    typer.echo("worker running; Ctrl-C to stop")
+    log.info(
+        "worker %s running (job lease %g s); Ctrl-C to stop",
+        worker_name(),
+        settings.job_lease_seconds,
+    )
     run_until_stopped(factory, settings, stop)
+    log.info("worker stopped")
 
 
 @loops_cli.command("create")

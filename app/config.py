@@ -32,6 +32,17 @@ class Settings(BaseSettings):
         description="'thread': background jobs run inside the server; 'worker': only in "
         "`expertloop worker` processes; 'off': not at all (tests that drive jobs by hand).",
     )
+    job_lease_seconds: float = Field(
+        default=30.0,
+        ge=3.0,
+        description="How long a worker holds a job without a heartbeat before another worker may "
+        "take it over (heartbeats come every third of it, at most every 5 s).",
+    )
+    log_format: Literal["text", "json"] = Field(
+        default="text",
+        description="'text': readable lines; 'json': one JSON object per line, for log collectors "
+        "(`serve` and `worker`).",
+    )
     session_hours: float = Field(default=12.0, description="Browser session lifetime.")
 
     @property

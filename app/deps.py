@@ -8,6 +8,7 @@ from dataclasses import dataclass
 from typing import Annotated
 
 from fastapi import Depends, Request
+from sqlalchemy.exc import InterfaceError, OperationalError
 from sqlalchemy.orm import Session
 
 from app.auth import service as auth_service
@@ -31,7 +32,15 @@ def get_session(request: Request) -> Iterator[Session]:
     try:
         yield session
     finally:
-        session.close()
+        try:
+            session.close()
+        except (OperationalError, InterfaceError) as exc:
+            # The store went away during the request, so closing (a ROLLBACK) failed on a dead
+            # connection, which SQLAlchemy has already dropped from the pool. This runs after
+            # the answer was sent: raising here would cut the client's connection instead of
+            # leaving it the answer it got (or the 503 for the error the request itself met).
+            if not exc.connection_invalidated:
+                raise
 
 
 def get_app_settings(request: Request) -> Settings:

@@ -28,6 +28,11 @@ log = logging.getLogger("expertloop.jobs")
 HEARTBEAT_SECONDS = 5.0
 
 
+def heartbeat_interval(lease_seconds: float) -> float:
+    """Seconds between heartbeats: three chances to renew within one lease, at most every 5 s."""
+    return min(HEARTBEAT_SECONDS, lease_seconds / 3.0)
+
+
 class JobLost(RuntimeError):
     """Another worker took the job over (this one stopped renewing its lease in time)."""
 
@@ -45,12 +50,17 @@ class JobContext:
     def progress(self, fraction: float, *, force: bool = False) -> None:
         """Report progress; renews the lease at most every few seconds (or now, if forced)."""
         now = time.monotonic()
-        if not force and now - self._last_beat < HEARTBEAT_SECONDS:
+        lease = self.settings.job_lease_seconds
+        if not force and now - self._last_beat < heartbeat_interval(lease):
             return
         self._last_beat = now
         with self.session_factory() as session:
             held = service.heartbeat(
-                session, job_id=self.job.id, worker=self.worker, progress=fraction
+                session,
+                job_id=self.job.id,
+                worker=self.worker,
+                progress=fraction,
+                lease_seconds=lease,
             )
         if not held:
             raise JobLost(f"job {self.job.id} was taken over by another worker")
@@ -83,7 +93,7 @@ def run_one(session_factory: sessionmaker[Session], settings: Settings, worker: 
     """Claim and run one job; False when there was nothing to do."""
     load_handlers()
     with session_factory() as session:
-        job = service.claim(session, worker=worker)
+        job = service.claim(session, worker=worker, lease_seconds=settings.job_lease_seconds)
     if job is None:
         return False
     context = JobContext(job=job, session_factory=session_factory, settings=settings, worker=worker)
