@@ -21,6 +21,7 @@ from app.queue.schemas import (
     RoundQueueRead,
     SkipRead,
 )
+from app.system.metrics import CLAIM_SECONDS
 from app.templating import templates
 
 router = APIRouter(tags=["queue"])
@@ -32,7 +33,8 @@ QUEUE = "/api/loops/{slug}/queue"
 def claim(slug: str, session: SessionDep, caller: AnnotatorDep) -> ClaimRead:
     """Lease the next state to label, or get back the one already held (annotator)."""
     loop = loops_service.get_loop(session, slug=slug)
-    claimed = service.claim_next(session, loop=loop, user_id=caller.user_id, now=utcnow())
+    with CLAIM_SECONDS.time():
+        claimed = service.claim_next(session, loop=loop, user_id=caller.user_id, now=utcnow())
     if claimed is None:
         return ClaimRead(item=None)
     return ClaimRead(item=bench_item(session, loop=loop, claim=claimed))
