@@ -7,27 +7,13 @@ from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from app.ingest.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
+
 NAME_PATTERN = r"^[a-z][a-z0-9_]{0,62}$"
 SLUG_PATTERN = r"^[a-z0-9][a-z0-9-]{1,62}$"
 
-# Column names of the rollout file contract; a feature may not shadow one of them.
-RESERVED_COLUMN_NAMES = frozenset(
-    {
-        "rollout",
-        "step",
-        "time_s",
-        "features",
-        "control",
-        "learner_action",
-        "learner_probs",
-        "learner_ensemble",
-        "learner_std",
-        "expert_action",
-        "robot",
-        "scene",
-        "image",
-    }
-)
+# A feature may not shadow a column name of the rollout file contract.
+RESERVED_COLUMN_NAMES = frozenset((*REQUIRED_COLUMNS, *OPTIONAL_COLUMNS))
 
 
 class FeatureSpec(BaseModel):
