@@ -172,6 +172,7 @@ def _enqueue(
 def claim_next(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Claim | None:
     """Lease the next item for an annotator (or renew the one they hold); None when none is left.
 
+    Items are offered round by round (oldest first), in queue position within a round.
     PostgreSQL: the candidate row is locked with FOR UPDATE SKIP LOCKED, and the lease is taken
     only if the item still has room when judged again in the INSERT, because a row unlocked by a
     claim that committed meanwhile was judged on the older snapshot. SQLite: the whole claim runs
