@@ -10,6 +10,12 @@ from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.orm import Session, sessionmaker
 
 SQLITE_BUSY_TIMEOUT_MS = 30_000
+# No cap on pooled connections (beyond pool_size they are closed on return). A request holds its
+# connection until its response is sent, and the sign-in dependency checks one out on the event
+# loop: with a capped pool, more concurrent requests than the cap blocked the loop that must run
+# the teardowns that free connections, and the worker froze until the pool timeout (seen with 32
+# annotators). The database's own connection limit is the cap; it fails fast instead.
+POOL_OVERFLOW = -1
 
 
 def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
@@ -41,19 +47,16 @@ def make_engine(url: str) -> Engine:
         path = url.split("///", 1)[-1]
         if path and path != ":memory:":
             Path(path).parent.mkdir(parents=True, exist_ok=True)
-        # No cap on connections to a local file: requests hold theirs until the response is
-        # sent, and a capped pool let 32 concurrent annotators wait on one another until the
-        # pool timeout (the sign-in check checks out a connection on the event loop).
         engine = create_engine(
             url,
             connect_args={"check_same_thread": False, "timeout": 30},
             pool_size=20,
-            max_overflow=-1,
+            max_overflow=POOL_OVERFLOW,
         )
         event.listen(engine, "connect", _sqlite_pragmas)
         event.listen(engine, "begin", _sqlite_begin)
         return engine
-    return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=20)
+    return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=POOL_OVERFLOW)
 
 
 def make_session_factory(engine: Engine) -> sessionmaker[Session]:

@@ -144,7 +144,8 @@ def submit(
                     ],
                 )
             done = item.labels_done + 1 >= item.labels_needed
-            session.execute(_count_label(), params)
+            # only :item_id: an UPDATE reads other keys named like columns as values to SET
+            session.execute(_count_label(), {"item_id": item.id})
             if done and item.labels_needed > 1:  # lapsed leases of others may be left
                 session.execute(delete(Lease).where(Lease.item_id == item.id))
             return Submitted(label=label, span_labels=len(earlier), repeated=False)

@@ -92,12 +92,17 @@ def room_for() -> list[ColumnElement[bool]]:
 
 @cache
 def candidate_query(postgres: bool) -> Select[Any]:
-    """The first item in queue order with room for :user_id in loop :loop_id at :now; on
-    PostgreSQL locked, skipping rows other claims hold."""
+    """The first item of round :round_id in queue order with room for :user_id at :now; on
+    PostgreSQL locked, skipping rows other claims hold.
+
+    One round at a time: with `round_id = :round_id ORDER BY position` the scan walks the index
+    in queue order and stops at the first fit; over several rounds at once it read every open
+    item before sorting.
+    """
     query = (
         select(QueueItem)
-        .where(QueueItem.round_id.in_(rounds_of()), *room_for())
-        .order_by(QueueItem.round_id, QueueItem.position)
+        .where(QueueItem.round_id == bindparam("round_id"), *room_for())
+        .order_by(QueueItem.position)
         .limit(1)
         .execution_options(populate_existing=True)
     )
@@ -105,19 +110,17 @@ def candidate_query(postgres: bool) -> Select[Any]:
 
 
 @cache
-def held_lease_query() -> Select[int, int]:
-    """The live lease (id, item id) :user_id holds on an open item of loop :loop_id at :now."""
+def live_leases_query() -> Select[int, int, str, int]:
+    """The live leases of :user_id at :now, oldest first, with their items' status and round.
+
+    Driven by the leases' user index: an annotator holds one or two leases, a queue thousands
+    of items.
+    """
     return (
-        select(Lease.id, Lease.item_id)
+        select(Lease.id, Lease.item_id, QueueItem.status, QueueItem.round_id)
         .join(QueueItem, QueueItem.id == Lease.item_id)
-        .where(
-            Lease.user_id == bindparam("user_id"),
-            Lease.expires_at > bindparam("now"),
-            QueueItem.status == ITEM_OPEN,
-            QueueItem.round_id.in_(rounds_of()),
-        )
+        .where(Lease.user_id == bindparam("user_id"), Lease.expires_at > bindparam("now"))
         .order_by(Lease.claimed_at, Lease.id)
-        .limit(1)
     )
 
 

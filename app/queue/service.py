@@ -15,6 +15,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
+from typing import Any
 
 import numpy as np
 from sqlalchemy import delete, func, insert, or_, select, update
@@ -30,7 +31,7 @@ from app.queue.models import ITEM_OPEN, Label, Lease, QueueItem, Skip
 from app.queue.progress import Progress, RoundQueue, progress, round_queue
 from app.queue.rules import (
     candidate_query,
-    held_lease_query,
+    live_leases_query,
     lock_item,
     loop_settings,
     take_lease,
@@ -171,6 +172,7 @@ def _enqueue(
 def claim_next(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Claim | None:
     """Lease the next item for an annotator (or renew the one they hold); None when none is left.
 
+    Items are offered round by round (oldest first), in queue position within a round.
     PostgreSQL: the candidate row is locked with FOR UPDATE SKIP LOCKED, and the lease is taken
     only if the item still has room when judged again in the INSERT, because a row unlocked by a
     claim that committed meanwhile was judged on the older snapshot. SQLite: the whole claim runs
@@ -178,30 +180,37 @@ def claim_next(session: Session, *, loop: Loop, user_id: int, now: datetime) -> 
     """
     expires_at = now + timedelta(seconds=loop_settings(loop).lease_seconds)
     postgres = is_postgresql(session)
-    params = {"loop_id": loop.id, "user_id": user_id, "now": now}
+    params: dict[str, Any] = {"user_id": user_id, "now": now}
     with write_transaction(session):
         if postgres:  # one claim at a time per annotator, so a double click takes one lease
             session.execute(
                 select(User.id).where(User.id == user_id).with_for_update(key_share=True)
             )
-        held = session.execute(held_lease_query(), params).first()
-        if held is not None:
-            session.execute(update(Lease).where(Lease.id == held.id).values(expires_at=expires_at))
-            item = lock_item(session, loop=loop, item_id=held.item_id, lock=False)
-            return Claim(item=item, expires_at=expires_at)
-        passed: list[int] = []
-        while True:
-            query = candidate_query(postgres)
-            if passed:
-                query = query.where(QueueItem.id.not_in(passed))
-            candidate = session.scalars(query, params).first()
-            if candidate is None:
-                return None
-            if take_lease(
-                session, item_id=candidate.id, user_id=user_id, now=now, expires_at=expires_at
-            ):
-                return Claim(item=candidate, expires_at=expires_at)
-            passed.append(candidate.id)  # judged on a stale snapshot (PostgreSQL): next one
+        round_ids = list(
+            session.scalars(select(Round.id).where(Round.loop_id == loop.id).order_by(Round.number))
+        )
+        for held in session.execute(live_leases_query(), params):
+            if held.status == ITEM_OPEN and held.round_id in round_ids:
+                session.execute(
+                    update(Lease).where(Lease.id == held.id).values(expires_at=expires_at)
+                )
+                item = lock_item(session, loop=loop, item_id=held.item_id, lock=False)
+                return Claim(item=item, expires_at=expires_at)
+        for round_id in round_ids:
+            passed: list[int] = []
+            while True:
+                query = candidate_query(postgres)
+                if passed:
+                    query = query.where(QueueItem.id.not_in(passed))
+                candidate = session.scalars(query, {**params, "round_id": round_id}).first()
+                if candidate is None:
+                    break
+                if take_lease(
+                    session, item_id=candidate.id, user_id=user_id, now=now, expires_at=expires_at
+                ):
+                    return Claim(item=candidate, expires_at=expires_at)
+                passed.append(candidate.id)  # judged on a stale snapshot (PostgreSQL): next one
+        return None
 
 
 def renew(session: Session, *, loop: Loop, item_id: int, user_id: int, now: datetime) -> datetime:

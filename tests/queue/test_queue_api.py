@@ -261,3 +261,16 @@ def test_the_bench_page_for_a_continuous_loop_shows_units_and_bounds(
         "speed_cmd in m/s, typed",
         "curvature in 1/m, typed",
     ]
+
+
+def test_the_span_field_appears_only_when_the_loop_allows_span_labels(make_loop, client, make_user):
+    make_loop(DISCRETE_SPEC, settings={"span_labels": True, "span_max_steps": 6}, queue=1)
+    client.cookies.set(SESSION_COOKIE, browser_session(client, make_user))
+    page = _Page()
+    page.feed(client.get("/loops/aisle-crossing/bench").text)
+    (field,) = page.all("input", id="span-steps")
+    assert (field["min"], field["max"]) == ("0", "6")
+    make_loop({**DISCRETE_SPEC, "slug": "no-spans"}, queue=1)
+    plain = _Page()
+    plain.feed(client.get("/loops/no-spans/bench").text)
+    assert plain.all("input", id="span-steps") == []
