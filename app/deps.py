@@ -10,6 +10,7 @@ from typing import Annotated
 from fastapi import Depends, Request
 from sqlalchemy.exc import InterfaceError, OperationalError
 from sqlalchemy.orm import Session
+from starlette.concurrency import run_in_threadpool
 
 from app.auth import service as auth_service
 from app.auth.models import User
@@ -75,7 +76,10 @@ class Roles:
         self.roles = frozenset(roles) | {"admin"}
 
     async def __call__(self, request: Request, session: SessionDep) -> Caller:
-        caller = await _identify(request, session)
+        sent_csrf = await _sent_csrf(request)
+        # The store lookups are blocking: run them off the event loop, which must stay free to
+        # finish other requests (and so hand back their pooled connections).
+        caller = await run_in_threadpool(_identify, request, session, sent_csrf)
         if caller is None:
             raise Unauthenticated("sign in or send a valid API token (Authorization: Bearer ...)")
         if not self.roles & set(caller.user.roles):
@@ -84,7 +88,31 @@ class Roles:
         return caller
 
 
-async def _identify(request: Request, session: Session) -> Caller | None:
+async def _sent_csrf(request: Request) -> str | None:
+    """The CSRF token a state-changing page request carries, in its header or its form."""
+    cookie_auth = SESSION_COOKIE in request.cookies and not request.headers.get("authorization")
+    if request.method in SAFE_METHODS or not cookie_auth:
+        return None
+    sent = request.headers.get(CSRF_HEADER)
+    if sent is None and request.headers.get("content-type", "").startswith(
+        ("application/x-www-form-urlencoded", "multipart/form-data")
+    ):
+        form = await request.form()
+        value = form.get(CSRF_FIELD)
+        sent = value if isinstance(value, str) else None
+    return sent
+
+
+def _identify(request: Request, session: Session, sent_csrf: str | None) -> Caller | None:
+    try:
+        return _lookup(request, session, sent_csrf)
+    finally:
+        # End the read: a SQLite read transaction left open would go stale before the route's
+        # writes, and it would hold the write lock taken by a writer session's BEGIN IMMEDIATE.
+        session.commit()
+
+
+def _lookup(request: Request, session: Session, sent_csrf: str | None) -> Caller | None:
     header = request.headers.get("authorization", "")
     if header:
         scheme, _, token = header.partition(" ")
@@ -100,14 +128,7 @@ async def _identify(request: Request, session: Session) -> Caller | None:
         return None
     user, live = found
     if request.method not in SAFE_METHODS:
-        sent = request.headers.get(CSRF_HEADER)
-        if sent is None and request.headers.get("content-type", "").startswith(
-            ("application/x-www-form-urlencoded", "multipart/form-data")
-        ):
-            form = await request.form()
-            value = form.get(CSRF_FIELD)
-            sent = value if isinstance(value, str) else None
-        if not sent or not hmac.compare_digest(sent, live.csrf_token):
+        if not sent_csrf or not hmac.compare_digest(sent_csrf, live.csrf_token):
             raise Forbidden("missing or wrong CSRF token; reload the page and try again")
     return Caller(user=user, csrf_token=live.csrf_token)
 
