@@ -50,7 +50,18 @@ def get_app_settings(request: Request) -> Settings:
     return settings
 
 
+def get_writer_session(request: Request) -> Iterator[Session]:
+    """A session whose transactions take SQLite's write lock at BEGIN: for routes whose service
+    reads and then writes in one transaction (see app.db.make_writer_session_factory)."""
+    session = request.app.state.writer_session_factory()
+    try:
+        yield session
+    finally:
+        session.close()
+
+
 SessionDep = Annotated[Session, Depends(get_session)]
+WriterSessionDep = Annotated[Session, Depends(get_writer_session)]
 SettingsDep = Annotated[Settings, Depends(get_app_settings)]
 
 
@@ -75,11 +86,12 @@ class Roles:
     def __init__(self, *roles: str) -> None:
         self.roles = frozenset(roles) | {"admin"}
 
-    async def __call__(self, request: Request, session: SessionDep) -> Caller:
+    async def __call__(self, request: Request) -> Caller:
         sent_csrf = await _sent_csrf(request)
         # The store lookups are blocking: run them off the event loop, which must stay free to
-        # finish other requests (and so hand back their pooled connections).
-        caller = await run_in_threadpool(_identify, request, session, sent_csrf)
+        # finish other requests (and so hand back their pooled connections). They use a short
+        # read session of their own, so the route's session starts its transactions afresh.
+        caller = await run_in_threadpool(_identify, request, sent_csrf)
         if caller is None:
             raise Unauthenticated("sign in or send a valid API token (Authorization: Bearer ...)")
         if not self.roles & set(caller.user.roles):
@@ -103,13 +115,9 @@ async def _sent_csrf(request: Request) -> str | None:
     return sent
 
 
-def _identify(request: Request, session: Session, sent_csrf: str | None) -> Caller | None:
-    try:
+def _identify(request: Request, sent_csrf: str | None) -> Caller | None:
+    with request.app.state.session_factory() as session:
         return _lookup(request, session, sent_csrf)
-    finally:
-        # End the read: a SQLite read transaction left open would go stale before the route's
-        # writes, and it would hold the write lock taken by a writer session's BEGIN IMMEDIATE.
-        session.commit()
 
 
 def _lookup(request: Request, session: Session, sent_csrf: str | None) -> Caller | None:

@@ -8,7 +8,15 @@ from fastapi import APIRouter, Depends, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from app.auth import service
-from app.deps import SESSION_COOKIE, Caller, ReaderDep, Roles, SessionDep, SettingsDep
+from app.deps import (
+    SESSION_COOKIE,
+    Caller,
+    ReaderDep,
+    Roles,
+    SessionDep,
+    SettingsDep,
+    WriterSessionDep,
+)
 from app.loops import service as loops_service
 from app.templating import templates
 
@@ -33,7 +41,7 @@ def login_page(request: Request, next: str = "/") -> Response:
 @router.post("/login")
 def login(
     request: Request,
-    session: SessionDep,
+    session: WriterSessionDep,
     settings: SettingsDep,
     name: Annotated[str, Form()],
     password: Annotated[str, Form()],
@@ -63,7 +71,7 @@ def login(
 
 
 @router.post("/logout")
-def logout(request: Request, session: SessionDep, _: ReaderDep) -> Response:
+def logout(request: Request, session: WriterSessionDep, _: ReaderDep) -> Response:
     """End the browser session (any signed-in role; the form carries the CSRF token)."""
     cookie = request.cookies.get(SESSION_COOKIE)
     if cookie:

@@ -9,7 +9,7 @@ from fastapi import APIRouter, Query, UploadFile, status
 from fastapi.responses import FileResponse
 from starlette.concurrency import run_in_threadpool
 
-from app.deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep
+from app.deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep, WriterSessionDep
 from app.errors import NotFound
 from app.ingest import reads, service
 from app.ingest.schemas import RolloutList, StateContext, StepList, UploadRead
@@ -35,7 +35,7 @@ async def upload_rollouts(
     slug: str,
     number: int,
     file: UploadFile,
-    session: SessionDep,
+    session: WriterSessionDep,
     settings: SettingsDep,
     caller: UploaderDep,
 ) -> UploadRead:

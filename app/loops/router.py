@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from fastapi import APIRouter, status
 
-from app.deps import AdminDep, ReaderDep, SessionDep
+from app.deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
 from app.loops import service
 from app.loops.schemas import LoopCreate, LoopList, LoopRead, RoundList, RoundOpen, RoundRead
 
@@ -12,7 +12,7 @@ router = APIRouter(prefix="/api/loops", tags=["loops"])
 
 
 @router.post("", response_model=LoopRead, status_code=status.HTTP_201_CREATED)
-def create_loop(spec: LoopCreate, session: SessionDep, caller: AdminDep) -> LoopRead:
+def create_loop(spec: LoopCreate, session: WriterSessionDep, caller: AdminDep) -> LoopRead:
     """Create a loop from its spec (admin)."""
     loop = service.create_loop(session, spec=spec, user_id=caller.user_id)
     return LoopRead.model_validate(loop)
@@ -40,7 +40,9 @@ def list_rounds(slug: str, session: SessionDep, _: ReaderDep) -> RoundList:
 
 
 @router.post("/{slug}/rounds", response_model=RoundRead, status_code=status.HTTP_201_CREATED)
-def open_round(slug: str, body: RoundOpen, session: SessionDep, caller: AdminDep) -> RoundRead:
+def open_round(
+    slug: str, body: RoundOpen, session: WriterSessionDep, caller: AdminDep
+) -> RoundRead:
     """Open the next round for rollouts of a learner version (admin)."""
     loop = service.get_loop(session, slug=slug)
     new = service.open_round(
@@ -50,7 +52,7 @@ def open_round(slug: str, body: RoundOpen, session: SessionDep, caller: AdminDep
 
 
 @router.post("/{slug}/rounds/{number}/close", response_model=RoundRead)
-def close_round(slug: str, number: int, session: SessionDep, _: AdminDep) -> RoundRead:
+def close_round(slug: str, number: int, session: WriterSessionDep, _: AdminDep) -> RoundRead:
     """Close a round: it takes no more uploads (admin)."""
     loop = service.get_loop(session, slug=slug)
     service.close_round(session, loop=loop, number=number)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from fastapi import APIRouter, Query, status
 
-from app.deps import AdminDep, ReaderDep, SessionDep
+from app.deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
 from app.jobs.schemas import JobRead
 from app.loops import service as loops_service
 from app.sampler import service
@@ -15,7 +15,7 @@ router = APIRouter(prefix="/api/loops/{slug}/rounds/{number}", tags=["sampler"])
 
 @router.post("/ranking", response_model=RankingStarted, status_code=status.HTTP_202_ACCEPTED)
 def start_ranking(
-    slug: str, number: int, body: RankingRequest, session: SessionDep, caller: AdminDep
+    slug: str, number: int, body: RankingRequest, session: WriterSessionDep, caller: AdminDep
 ) -> RankingStarted:
     """Rank the round's states in the background and fill its queue (admin); follow the job."""
     loop = loops_service.get_loop(session, slug=slug)

@@ -5,7 +5,7 @@ from __future__ import annotations
 from fastapi import APIRouter, Query, Response, status
 from fastapi.responses import StreamingResponse
 
-from app.deps import SessionDep, SettingsDep, TrainerDep
+from app.deps import SessionDep, SettingsDep, TrainerDep, WriterSessionDep
 from app.loops import service as loops_service
 from app.snapshots import service
 from app.snapshots.export import MEDIA_TYPES
@@ -25,7 +25,11 @@ router = APIRouter(prefix="/api/loops", tags=["snapshots"])
     "/{slug}/snapshots", response_model=SnapshotCreated, status_code=status.HTTP_201_CREATED
 )
 def create_snapshot(
-    slug: str, body: SnapshotCreate, response: Response, session: SessionDep, caller: TrainerDep
+    slug: str,
+    body: SnapshotCreate,
+    response: Response,
+    session: WriterSessionDep,
+    caller: TrainerDep,
 ) -> SnapshotCreated:
     """Make the next immutable version up to a round; 200 with the existing one if identical."""
     loop = loops_service.get_loop(session, slug=slug)
