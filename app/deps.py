@@ -9,7 +9,7 @@ from typing import Annotated
 
 from fastapi import Depends, Request
 from sqlalchemy.exc import InterfaceError, OperationalError
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, sessionmaker
 from starlette.concurrency import run_in_threadpool
 
 from app.auth import service as auth_service
@@ -23,12 +23,7 @@ CSRF_FIELD = "csrf_token"
 SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
 
 
-def get_session(request: Request) -> Iterator[Session]:
-    """A store session for one request; requests that may write take SQLite's write lock at BEGIN."""
-    writes = request.method not in SAFE_METHODS
-    factory = (
-        request.app.state.writer_session_factory if writes else request.app.state.session_factory
-    )
+def _session_for_request(factory: sessionmaker[Session]) -> Iterator[Session]:
     session = factory()
     try:
         yield session
@@ -44,6 +39,12 @@ def get_session(request: Request) -> Iterator[Session]:
                 raise
 
 
+def get_session(request: Request) -> Iterator[Session]:
+    """A store session for one request: for reads, and for services that open their own write
+    transactions (`write_transaction`)."""
+    yield from _session_for_request(request.app.state.session_factory)
+
+
 def get_app_settings(request: Request) -> Settings:
     """The settings the running app was created with (tests pass their own)."""
     settings: Settings = request.app.state.settings
@@ -53,11 +54,7 @@ def get_app_settings(request: Request) -> Settings:
 def get_writer_session(request: Request) -> Iterator[Session]:
     """A session whose transactions take SQLite's write lock at BEGIN: for routes whose service
     reads and then writes in one transaction (see app.db.make_writer_session_factory)."""
-    session = request.app.state.writer_session_factory()
-    try:
-        yield session
-    finally:
-        session.close()
+    yield from _session_for_request(request.app.state.writer_session_factory)
 
 
 SessionDep = Annotated[Session, Depends(get_session)]
