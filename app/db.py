@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import threading
+import weakref
 from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -32,7 +35,7 @@ def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
 
 # Execution option asking for BEGIN IMMEDIATE on SQLite: the transaction takes the write lock
 # at its start, so reads inside it cannot go stale before its writes (queue claims rely on it).
-# Other backends ignore it; app/queue/locking.py shows the use.
+# Other backends ignore it; write_transaction below shows the use.
 SQLITE_BEGIN_IMMEDIATE = "expertloop_sqlite_begin_immediate"
 
 
@@ -85,3 +88,54 @@ def session_scope(factory: sessionmaker[Session]) -> Iterator[Session]:
         yield session
     finally:
         session.close()
+
+
+# One lock per SQLite engine. SQLite has one writer at a time anyway; waiting on this lock hands
+# the turn over at once, whereas SQLite's own busy handler sleeps in growing steps (up to 100 ms)
+# and lets 32 waiting writers convoy. BEGIN IMMEDIATE still guards against other processes.
+_sqlite_writers: weakref.WeakKeyDictionary[Engine, threading.Lock] = weakref.WeakKeyDictionary()
+_registry_lock = threading.Lock()
+
+
+def is_postgresql(session: Session) -> bool:
+    """Whether the session's store is PostgreSQL (claims then lock rows and skip locked ones)."""
+    return session.get_bind().dialect.name == "postgresql"
+
+
+def _writer_lock(session: Session) -> threading.Lock | None:
+    bind = session.get_bind()
+    if bind.dialect.name != "sqlite":
+        return None
+    engine = bind if isinstance(bind, Engine) else bind.engine
+    with _registry_lock:
+        return _sqlite_writers.setdefault(engine, threading.Lock())
+
+
+@contextmanager
+def write_transaction(session: Session) -> Iterator[None]:
+    """Run the block in a transaction that is committed at its end and rolled back on error.
+
+    SQLite: the caller's open transaction is committed first, because a read transaction begun
+    earlier (for instance by the sign-in check) could not take the write lock later; the block
+    then starts with BEGIN IMMEDIATE, which takes the write lock up front. PostgreSQL: the block
+    continues the session's transaction (READ COMMITTED reads afresh in every statement) and
+    locks the rows it decides on with SELECT ... FOR UPDATE.
+    """
+    lock = _writer_lock(session)
+    if lock is None:
+        try:
+            yield
+            session.commit()
+        except BaseException:
+            session.rollback()
+            raise
+        return
+    session.commit()
+    with lock:
+        session.connection(execution_options={SQLITE_BEGIN_IMMEDIATE: True})
+        try:
+            yield
+            session.commit()
+        except BaseException:
+            session.rollback()
+            raise

@@ -15,6 +15,7 @@ from sqlalchemy.exc import InterfaceError, OperationalError
 from app.config import Settings, get_settings
 from app.db import make_engine, make_session_factory, make_writer_session_factory
 from app.errors import ExpertloopError, Unauthenticated
+from app.ingest.spool import sweep_stale
 from app.jobs.runner import JobThread
 from app.models import import_all_tables
 from app.templating import STATIC_DIR
@@ -59,6 +60,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        sweep_stale(settings.upload_dir)
         runner = None
         if settings.job_mode == "thread":
             runner = JobThread(app.state.session_factory, settings)

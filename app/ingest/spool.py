@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import tempfile
+import time
 from collections.abc import AsyncIterator
 from pathlib import Path
 
@@ -34,3 +35,26 @@ async def spool(chunks: AsyncIterator[bytes], folder: Path, limit: int) -> tuple
         path.unlink(missing_ok=True)
         raise
     return path, digest.hexdigest()
+
+
+STALE_SPOOL_SECONDS = 24 * 3600
+
+
+def sweep_stale(folder: Path, *, older_than_s: float = STALE_SPOOL_SECONDS) -> int:
+    """Delete spooled uploads left by a process that died mid-upload; returns how many.
+
+    Only files untouched for a day go: an upload in flight in another process writes its file
+    continuously, so it is never that old.
+    """
+    if not folder.exists():
+        return 0
+    cutoff = time.time() - older_than_s
+    removed = 0
+    for path in folder.glob("upload-*"):
+        try:
+            if path.stat().st_mtime < cutoff:
+                path.unlink()
+                removed += 1
+        except FileNotFoundError:  # another process swept it first
+            continue
+    return removed

@@ -26,10 +26,10 @@ from sqlalchemy import (
 from sqlalchemy.orm import Session
 from sqlalchemy.sql.dml import ReturningInsert
 
+from app.db import is_postgresql
 from app.errors import NotFound
 from app.loops.models import Loop, Round
 from app.loops.schemas import LoopSettings
-from app.queue.locking import is_postgresql
 from app.queue.models import ITEM_OPEN, Label, Lease, QueueItem, Skip
 
 

@@ -22,11 +22,11 @@ from sqlalchemy import delete, func, insert, or_, select, update
 from sqlalchemy.orm import Session
 
 from app.auth.models import User
+from app.db import is_postgresql, write_transaction
 from app.errors import Conflict, InvalidInput
 from app.ingest.models import Step
 from app.loops.models import Loop, Round
 from app.queue.labels import Submitted, submit
-from app.queue.locking import is_postgresql, write_transaction
 from app.queue.models import ITEM_OPEN, Label, Lease, QueueItem, Skip
 from app.queue.progress import Progress, RoundQueue, progress, round_queue
 from app.queue.rules import (

@@ -12,12 +12,12 @@ from sqlalchemy import delete, exists, func, insert, select
 from sqlalchemy.orm import Session
 
 import app.queue.service as queue_service
+from app.db import write_transaction
 from app.errors import Conflict, InvalidInput, NotFound
 from app.ingest.models import Rollout, Step
 from app.jobs import service as jobs_service
 from app.jobs.models import Job
 from app.loops.models import Loop, Round
-from app.queue.locking import write_transaction
 from app.queue.models import Label, QueueItem
 from app.sampler.models import SelectedState, Selection
 from app.sampler.rank import Ranking, RankParams

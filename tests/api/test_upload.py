@@ -389,3 +389,20 @@ def test_continuous_action_exactly_at_a_bound_is_accepted(client, admin, uploade
         client, uploader, parquet_bytes(rows), url="/api/loops/aisle-speed/rounds/{n}/rollouts", n=0
     )
     assert response.status_code == 201, response.text
+
+
+def test_stale_spooled_uploads_are_swept_at_start(settings):
+    import os
+    import time
+
+    from app.ingest.spool import sweep_stale
+
+    settings.upload_dir.mkdir(parents=True)
+    stale = settings.upload_dir / "upload-left-by-a-dead-process"
+    fresh = settings.upload_dir / "upload-in-flight"
+    stale.write_bytes(b"x")
+    fresh.write_bytes(b"y")
+    day_ago = time.time() - 2 * 24 * 3600
+    os.utime(stale, (day_ago, day_ago))
+    assert sweep_stale(settings.upload_dir) == 1
+    assert not stale.exists() and fresh.exists()
