@@ -1,7 +1,7 @@
 """Queue benchmark: annotator clients doing claim + submit against a live server on loopback.
 
-    python -m bench.queue                      # SQLite in a temporary folder, 1 server worker
-    python -m bench.queue --postgres postgresql+psycopg://postgres@127.0.0.1:5432/DBNAME
+    python bench/queue_claims.py                      # SQLite in a temporary folder, 1 server worker
+    python bench/queue_claims.py --postgres postgresql+psycopg://postgres@127.0.0.1:5432/DBNAME
                                                # PostgreSQL, 2 workers; DBNAME IS EMPTIED
 
 Two phases with the same 32 clients. "paced": each annotator looks at a state for a while
@@ -16,35 +16,28 @@ cheapest authenticated request. Run from the repository root.
 
 from __future__ import annotations
 
+import argparse
+import hashlib
 import os
+import random
+import socket
+import subprocess
 import sys
+import tempfile
+import threading
+import time
+import uuid
+from collections import Counter
+from pathlib import Path
+from typing import Any
 
-# `python bench/queue.py` would put bench/ first on sys.path, where this file would shadow the
-# standard library's `queue` module; run with the repository root instead.
-_here = os.path.dirname(os.path.abspath(__file__))
-sys.path[:] = [p for p in sys.path if os.path.abspath(p or ".") != _here]
-sys.path.insert(0, os.path.dirname(_here))
+import httpx
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+from sqlalchemy import func, select, text
 
-import argparse  # noqa: E402
-import hashlib  # noqa: E402
-import random  # noqa: E402
-import socket  # noqa: E402
-import subprocess  # noqa: E402
-import tempfile  # noqa: E402
-import threading  # noqa: E402
-import time  # noqa: E402
-import uuid  # noqa: E402
-from collections import Counter  # noqa: E402
-from pathlib import Path  # noqa: E402
-from typing import Any  # noqa: E402
-
-import httpx  # noqa: E402
-import numpy as np  # noqa: E402
-import pyarrow as pa  # noqa: E402
-import pyarrow.parquet as pq  # noqa: E402
-from sqlalchemy import func, select, text  # noqa: E402
-
-ROOT = Path(_here).parent
+ROOT = Path(__file__).resolve().parent.parent
 
 
 def rollout_file(path: Path, n_rollouts: int, steps: int, seed: int = 0) -> None:
