@@ -108,8 +108,14 @@ def crossing_rows(steps: int = 40) -> dict[str, list[Any]]:
 
 @pytest.fixture
 def browser():
+    from pathlib import Path
+
     from playwright.sync_api import sync_playwright
 
+    if not Path(CHROMIUM).exists():
+        pytest.fail(
+            f"browser tests drive Debian's Chromium at {CHROMIUM}: apt-get install chromium"
+        )
     with sync_playwright() as playwright:
         launched = playwright.chromium.launch(
             executable_path=CHROMIUM, args=CHROMIUM_ARGS, headless=True
