@@ -77,7 +77,8 @@ class Caller:
 class Roles:
     """Dependency that admits callers holding any of `roles` (admin is always admitted).
 
-    Every route declares one; tests walk the OpenAPI routes and find it by this type.
+    Every route declares one; tests/access/test_role_matrix.py checks each route against its
+    declared roles.
     """
 
     def __init__(self, *roles: str) -> None:

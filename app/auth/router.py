@@ -4,15 +4,13 @@ from __future__ import annotations
 
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Depends, Form, Request
+from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from app.auth import service
 from app.deps import (
     SESSION_COOKIE,
-    Caller,
     ReaderDep,
-    Roles,
     SessionDep,
     SettingsDep,
     WriterSessionDep,
@@ -21,8 +19,6 @@ from app.loops import service as loops_service
 from app.templating import templates
 
 router = APIRouter(tags=["access"])
-
-PageCaller = Annotated[Caller, Depends(Roles("uploader", "annotator", "trainer"))]
 
 
 def _safe_next(target: str) -> str:
@@ -82,7 +78,7 @@ def logout(request: Request, session: WriterSessionDep, _: ReaderDep) -> Respons
 
 
 @router.get("/", response_class=HTMLResponse)
-def home(request: Request, session: SessionDep, caller: PageCaller) -> Response:
+def home(request: Request, session: SessionDep, caller: ReaderDep) -> Response:
     """The list of loops (any signed-in role)."""
     loops = loops_service.list_loops(session)
     return templates.TemplateResponse(request, "home.html", {"loops": loops, "caller": caller})

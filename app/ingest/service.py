@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-from sqlalchemy import func, insert, select
+from sqlalchemy import insert, select
 from sqlalchemy.orm import Session
 
 from app.errors import Conflict
@@ -15,7 +15,7 @@ from app.ingest import bulk
 from app.ingest.columns import Vectors
 from app.ingest.encode import rows_to_bytes
 from app.ingest.formats import detect_format, read_table
-from app.ingest.models import Rollout, Step, Upload
+from app.ingest.models import Rollout, Upload
 from app.ingest.validate import ActionSpec, StepBatch, validate
 from app.loops.models import Loop, Round
 
@@ -273,11 +273,4 @@ def _outcome_of(session: Session, upload: Upload, *, duplicate_file: bool) -> Up
         duplicate_file=duplicate_file,
         n_steps=int(sum(n for _, n in rows)),
         rollouts=[{"key": k, "steps": n} for k, n in rows],
-    )
-
-
-def count_round_steps(session: Session, *, round_id: int) -> int:
-    """How many steps a round holds."""
-    return int(
-        session.scalar(select(func.count()).select_from(Step).where(Step.round_id == round_id)) or 0
     )

@@ -15,7 +15,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from app.ingest.encode import FLOAT32_LE
-from app.ingest.models import Rollout, Step
+from app.ingest.models import Step
 from app.loops.models import Loop, Round
 from app.queue.models import ANSWER_UNSURE, Label
 from app.snapshots import rows
@@ -43,7 +43,6 @@ __all__ = [
     "current_cutoff",
     "is_discrete",
     "iter_batches",
-    "iter_step_rows",
     "members",
     "relabels",
     "training_features",
@@ -237,33 +236,6 @@ def iter_batches(
         with_features=with_features,
     )
     return merge_sorted(expert, relabelled)
-
-
-StepRow = tuple[int, bytes, int, str, int, str | None]
-
-
-def iter_step_rows(
-    session: Session, *, step_ids: np.ndarray, batch: int = 10_000
-) -> Iterator[list[StepRow]]:
-    """Rows (id, features, round number, rollout key, step index, learner version) of the given
-    sorted step ids, a batch at a time in id order, so callers can stream in bounded memory."""
-    for start in range(0, len(step_ids), batch):
-        chunk = step_ids[start : start + batch]
-        rows = session.execute(
-            select(
-                Step.id,
-                Step.features,
-                Round.number,
-                Rollout.key,
-                Step.step_index,
-                Round.learner_version,
-            )
-            .join(Round, Round.id == Step.round_id)
-            .join(Rollout, Rollout.id == Step.rollout_id)
-            .where(Step.id.in_(chunk.tolist()))
-            .order_by(Step.id)
-        ).all()
-        yield [(r[0], r[1], r[2], r[3], r[4], r[5]) for r in rows]
 
 
 def training_features(
