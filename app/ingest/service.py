@@ -198,21 +198,24 @@ def step_columns(
     round_id: int,
     blob_dir: Path,
 ) -> dict[str, bulk.Column]:
-    """The steps table's columns for the selected rows of a batch."""
+    """The steps table's columns for the selected rows of a batch (`rows`: a boolean mask)."""
     n = int(rows.sum())
+    # Every row is new in the usual upload: a full slice takes views where the boolean mask
+    # would copy each column (some 0.6 s at a million steps of 64 features).
+    pick: np.ndarray | slice = slice(None) if n == len(rows) else rows
 
     def vectors(value: Vectors | None) -> list[bytes | None] | None:
-        if value is None or not value.present[rows].any():
+        if value is None or not value.present[pick].any():
             return None
-        blobs: list[bytes | None] = list(rows_to_bytes(value.values[rows]))
-        for i in np.flatnonzero(~value.present[rows]):
+        blobs: list[bytes | None] = list(rows_to_bytes(value.values[pick]))
+        for i in np.flatnonzero(~value.present[pick]):
             blobs[i] = None
         return blobs
 
     def discrete(value: np.ndarray | Vectors | None) -> list[int | None] | None:
         if value is None or isinstance(value, Vectors):
             return None
-        index = value[rows]
+        index = value[pick]
         out: list[int | None] = index.tolist()
         for i in np.flatnonzero(index < 0):
             out[i] = None
@@ -223,12 +226,12 @@ def step_columns(
 
     ensemble = vectors(batch.learner_ensemble)
     return {
-        "rollout_id": rollout_id_of[batch.rollout_index[rows]],
+        "rollout_id": rollout_id_of[batch.rollout_index[pick]],
         "round_id": [round_id] * n,
-        "step_index": batch.step[rows],
-        "time_s": batch.time_s[rows],
-        "control": batch.control[rows].astype(np.int64),
-        "features": rows_to_bytes(batch.features[rows]),
+        "step_index": batch.step[pick],
+        "time_s": batch.time_s[pick],
+        "control": batch.control[pick].astype(np.int64),
+        "features": rows_to_bytes(batch.features[pick]),
         "learner_action": discrete(batch.learner_action),
         "learner_action_vec": continuous(batch.learner_action),
         "expert_action": discrete(batch.expert_action),
@@ -239,8 +242,8 @@ def step_columns(
         if ensemble is None
         else [batch.ensemble_size if b is not None else None for b in ensemble],
         "learner_std": vectors(batch.learner_std),
-        "scene": None if batch.scene is None else list(batch.scene[rows]),
-        "image_sha256": None if batch.image is None else store_images(batch.image[rows], blob_dir),
+        "scene": None if batch.scene is None else list(batch.scene[pick]),
+        "image_sha256": None if batch.image is None else store_images(batch.image[pick], blob_dir),
     }
 
 
