@@ -82,6 +82,8 @@ class Label(Base):
     __table_args__ = (
         Index("ix_labels_round_id_id", "round_id", "id"),
         Index("ix_labels_step_id", "step_id"),
+        # an annotator's labels of the day (progress, pace) without reading every label
+        Index("ix_labels_user_id_created_at", "user_id", "created_at"),
     )
 
     id: Mapped[int] = mapped_column(BigInteger().with_variant(Integer, "sqlite"), primary_key=True)
