@@ -58,6 +58,11 @@ class Settings(BaseSettings):
         return self.data_dir / "blobs"
 
     @property
+    def snapshot_dir(self) -> Path:
+        """Where each snapshot version's Parquet export is kept (a cache, rebuilt when missing)."""
+        return self.data_dir / "snapshots"
+
+    @property
     def upload_dir(self) -> Path:
         """Where uploads are spooled while they are validated."""
         return self.data_dir / "uploads"

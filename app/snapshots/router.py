@@ -29,13 +29,20 @@ def create_snapshot(
     body: SnapshotCreate,
     response: Response,
     session: WriterSessionDep,
+    reader: SessionDep,
+    settings: SettingsDep,
     caller: TrainerDep,
 ) -> SnapshotCreated:
-    """Make the next immutable version up to a round; 200 with the existing one if identical."""
+    """Make the next immutable version up to a round; 200 with the existing one if identical.
+
+    The version's Parquet export is written to its file before the answer, so that the first
+    pull is served from the file too.
+    """
     loop = loops_service.get_loop(session, slug=slug)
     snapshot, created = service.create_snapshot(
-        session, loop=loop, up_to_round=body.up_to_round, user_id=caller.user_id
+        session, loop=loop, up_to_round=body.up_to_round, user_id=caller.user_id, reader=reader
     )
+    service.store_parquet(reader, loop=loop, snapshot=snapshot, files_dir=settings.snapshot_dir)
     if not created:
         response.status_code = status.HTTP_200_OK
     return SnapshotCreated.made(snapshot, created=created)
@@ -71,13 +78,14 @@ def export_snapshot(
     """Stream a snapshot's rows as Parquet, .npz or JSON Lines."""
     loop = loops_service.get_loop(session, slug=slug)
     snapshot, older = service.resolve_export(session, loop=loop, version=version, since=since)
-    chunks = service.export_chunks(
+    exported = service.export_chunks(
         session,
         loop=loop,
         snapshot=snapshot,
         since=older,
         file_format=format,
         spool_dir=settings.data_dir / "exports",
+        files_dir=settings.snapshot_dir,
     )
     filename = service.export_filename(loop, snapshot, older, format)
     headers = {
@@ -87,4 +95,6 @@ def export_snapshot(
     }
     if older is None:
         headers["X-Expertloop-Rows"] = str(snapshot.row_count)
-    return StreamingResponse(chunks, media_type=MEDIA_TYPES[format], headers=headers)
+    if exported.size is not None:
+        headers["Content-Length"] = str(exported.size)
+    return StreamingResponse(exported.chunks, media_type=MEDIA_TYPES[format], headers=headers)

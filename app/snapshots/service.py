@@ -1,14 +1,17 @@
 """Store access for snapshots: create immutable versions, find them, stream their rows.
 
 A snapshot stores only its cut-off (round, largest step id, largest label id), its manifest and
-the content hash: steps and labels are never changed, so its rows are rebuilt from the cut-off on
-every export, and every full export re-checks them against the hash.
+the content hash: steps and labels are never changed, so its rows can be rebuilt from the cut-off
+at any time, and every export rebuilt from the store re-checks them against the hash. The full
+Parquet export, the one training jobs pull again and again, is also kept as a file per version
+(app.snapshots.files), written when the version is made.
 """
 
 from __future__ import annotations
 
 import re
 from collections.abc import Iterator
+from dataclasses import dataclass
 from datetime import UTC
 from pathlib import Path
 from typing import Any
@@ -24,7 +27,7 @@ from app.loops import service as loops_service
 from app.loops.models import Loop, Round
 from app.models import utcnow
 from app.safety import SAFETY_CAUTION
-from app.snapshots import export
+from app.snapshots import export, files
 from app.snapshots import training_set as ts
 from app.snapshots.batches import RowBatch, rows_not_in
 from app.snapshots.content_hash import HASH_SCHEME, ContentHasher
@@ -88,12 +91,19 @@ class _Tally:
 
 
 def create_snapshot(
-    session: Session, *, loop: Loop, up_to_round: int | None, user_id: int | None
+    session: Session,
+    *,
+    loop: Loop,
+    up_to_round: int | None,
+    user_id: int | None,
+    reader: Session | None = None,
 ) -> tuple[Snapshot, bool]:
     """Make the next version of the training set up to a round, or return an identical one.
 
     Returns the snapshot and whether it was created (False: the newest version with the same
-    round and content hash already existed).
+    round and content hash already existed). The pass over the rows runs on `reader` when given:
+    a writer session on SQLite would hold the write lock (BEGIN IMMEDIATE) for the whole pass,
+    stalling uploads and labels; the cut-off pins the rows, so a separate read is safe.
     """
     if up_to_round is None:
         up_to_round = int(
@@ -105,9 +115,12 @@ def create_snapshot(
     session.commit()  # release the lock; the cut-off is now fixed
 
     hasher, tally = _hasher(loop), _Tally()
-    for batch in ts.iter_batches(session, loop=loop, cutoff=cutoff):
+    rows_from = reader if reader is not None else session
+    for batch in ts.iter_batches(rows_from, loop=loop, cutoff=cutoff):
         hasher.update(batch)
         tally.add(batch)
+    if reader is not None:
+        reader.commit()  # end the read transaction: SQLite's WAL cannot be reset under it
     if hasher.rows == 0:
         raise InvalidInput(
             f"nothing to snapshot: loop '{loop.slug}' has no demonstrations, takeovers or "
@@ -304,6 +317,14 @@ def _verified(batches: Iterator[RowBatch], loop: Loop, snapshot: Snapshot) -> It
         )
 
 
+@dataclass(frozen=True)
+class ExportBytes:
+    """An export's bytes as they stream, and their total when known beforehand (stored file)."""
+
+    chunks: Iterator[bytes]
+    size: int | None = None
+
+
 def export_chunks(
     session: Session,
     *,
@@ -312,8 +333,46 @@ def export_chunks(
     since: Snapshot | None,
     file_format: str,
     spool_dir: Path | None = None,
+    files_dir: Path | None = None,
+) -> ExportBytes:
+    """The bytes of an export file, a piece at a time.
+
+    A full Parquet export with `files_dir` is served from the version's stored file, and read
+    from the store (and stored on the way) when the file is missing; see app.snapshots.files.
+    """
+    if file_format == "parquet" and since is None and files_dir is not None:
+        path = files.parquet_path(files_dir, snapshot)
+        found = files.stored(path)
+        if found is not None:
+            size, digest = found
+            return ExportBytes(files.read_chunks(path, digest), size)
+        from_store = _chunks_from_store(session, loop, snapshot, None, "parquet")
+        return ExportBytes(files.write_through(from_store, path))
+    return ExportBytes(_chunks_from_store(session, loop, snapshot, since, file_format, spool_dir))
+
+
+def store_parquet(session: Session, *, loop: Loop, snapshot: Snapshot, files_dir: Path) -> bool:
+    """Write the version's full Parquet export to its file unless it is there; whether it is.
+
+    Read on `session`; give a read session (a writer session on SQLite would hold the write
+    lock while every row is read).
+    """
+    path = files.parquet_path(files_dir, snapshot)
+    if files.stored(path) is not None:
+        return True
+    stored = files.store(_chunks_from_store(session, loop, snapshot, None, "parquet"), path)
+    session.commit()  # end the read transaction
+    return stored
+
+
+def _chunks_from_store(
+    session: Session,
+    loop: Loop,
+    snapshot: Snapshot,
+    since: Snapshot | None,
+    file_format: str,
+    spool_dir: Path | None = None,
 ) -> Iterator[bytes]:
-    """The bytes of an export file, a piece at a time."""
     batches = snapshot_batches(session, loop=loop, snapshot=snapshot, since=since)
     layout = layout_of(loop)
     metadata = {

@@ -1,0 +1,146 @@
+"""The stored Parquet file of each version: written at creation, served byte for byte, checked.
+
+A full Parquet export must be the same bytes whether it is read from the version's stored file or
+rebuilt from the store; a damaged file must never complete a download; a folder that refuses the
+file must not stop exports.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+from pathlib import Path
+
+import pyarrow.parquet as pq
+import pytest
+from sqlalchemy import text
+
+from app.snapshots import files
+from app.snapshots.files import StoredFileDamaged
+from app.snapshots.models import Snapshot
+from app.snapshots.service import SnapshotChanged
+from tests.snapshots.conftest import BASE
+
+EXPORT = f"{BASE}/snapshots/v1/export"
+
+
+def _create(client, headers) -> dict:
+    made = client.post(f"{BASE}/snapshots", json={}, headers=headers)
+    assert made.status_code == 201, made.text
+    return made.json()
+
+
+def _stored(settings) -> list[Path]:
+    return sorted(settings.snapshot_dir.rglob(f"*{files.SUFFIX}"))
+
+
+def _leftovers(settings) -> list[Path]:
+    return sorted(p for p in settings.snapshot_dir.rglob("*") if p.name.endswith(".part"))
+
+
+def test_creation_stores_the_export_and_the_file_equals_a_rebuild(
+    client, settings, discrete_loop, trainer
+):
+    snapshot = _create(client, trainer)
+    [path] = _stored(settings)
+    assert path.name.startswith("v1-")
+    from_file = client.get(EXPORT, headers=trainer)
+    assert from_file.status_code == 200
+    assert from_file.headers["content-length"] == str(path.stat().st_size)
+    assert from_file.content == path.read_bytes()
+    # the hash beside the file is the file's own SHA-256
+    assert files.stored(path) == (
+        path.stat().st_size,
+        hashlib.sha256(path.read_bytes()).hexdigest(),
+    )
+
+    files.discard(path)
+    rebuilt = client.get(EXPORT, headers=trainer)
+    assert rebuilt.status_code == 200 and "content-length" not in rebuilt.headers
+    assert rebuilt.content == from_file.content  # the store gives the very same bytes
+    assert _stored(settings) == [path]  # and the rebuild stored the file again on its way
+    assert pq.read_table(io.BytesIO(rebuilt.content)).num_rows == snapshot["row_count"]
+    assert _leftovers(settings) == []
+
+
+def test_a_damaged_file_never_completes_a_download_and_is_rebuilt(
+    client, settings, discrete_loop, trainer
+):
+    _create(client, trainer)
+    [path] = _stored(settings)
+    good = path.read_bytes()
+    damaged = bytearray(good)
+    damaged[len(damaged) // 2] ^= 0xFF  # same size, one byte flipped
+    path.write_bytes(bytes(damaged))
+    with pytest.raises(StoredFileDamaged, match="no longer matches"):
+        client.get(EXPORT, headers=trainer)
+    assert not path.exists()
+    again = client.get(EXPORT, headers=trainer)
+    assert again.status_code == 200 and again.content == good
+    assert path.read_bytes() == good
+
+
+def test_a_tampered_store_cannot_change_a_stored_version_and_cuts_off_a_rebuild(
+    client, settings, engine, discrete_loop, trainer
+):
+    _create(client, trainer)
+    [path] = _stored(settings)
+    good = path.read_bytes()
+    with engine.begin() as conn:
+        conn.execute(text("UPDATE steps SET features = :f WHERE id = 1"), {"f": b"\x00" * 12})
+    assert client.get(EXPORT, headers=trainer).content == good  # the version as it was made
+    files.discard(path)
+    with pytest.raises(SnapshotChanged, match="v1"):
+        client.get(EXPORT, headers=trainer)
+    assert _stored(settings) == [] and _leftovers(settings) == []  # nothing wrong was stored
+
+
+def test_a_folder_that_refuses_the_file_does_not_stop_exports(
+    client, settings, discrete_loop, trainer, caplog
+):
+    settings.data_dir.mkdir(parents=True, exist_ok=True)
+    settings.snapshot_dir.write_text("not a folder")  # mkdir of loop-N below it must fail
+    snapshot = _create(client, trainer)
+    assert "cannot store the export file" in caplog.text
+    for _ in range(2):
+        got = client.get(EXPORT, headers=trainer)
+        assert got.status_code == 200
+        assert pq.read_table(io.BytesIO(got.content)).num_rows == snapshot["row_count"]
+
+
+def test_the_file_name_follows_the_manifest(tmp_path):
+    """A store recreated under the same data folder cannot be served another store's file."""
+    first = Snapshot(loop_id=1, version=1, manifest={"content_sha256": "a", "created_at": "1"})
+    remade = Snapshot(loop_id=1, version=1, manifest={"content_sha256": "a", "created_at": "2"})
+    assert files.parquet_path(tmp_path, first) != files.parquet_path(tmp_path, remade)
+    assert files.parquet_path(tmp_path, first) == files.parquet_path(tmp_path, first)
+
+
+def test_an_abandoned_stream_stores_nothing(tmp_path):
+    target = tmp_path / "loop-1" / "v1-x.parquet"
+    stream = files.write_through(iter([b"a" * 10, b"b" * 10, b"c" * 10]), target)
+    assert next(stream) == b"a" * 10
+    stream.close()  # the client went away
+    assert list((tmp_path / "loop-1").iterdir()) == []
+    assert files.store(iter([b"a", b"b"]), target)
+    assert target.read_bytes() == b"ab"
+    assert list(files.read_chunks(target, hashlib.sha256(b"ab").hexdigest())) == [b"ab"]
+
+
+def test_the_last_piece_waits_for_the_hash(tmp_path, monkeypatch):
+    monkeypatch.setattr(files, "READ_BYTES", 4)
+    target = tmp_path / "v1-x.parquet"
+    content = bytes(range(10))
+    assert files.store(iter([content]), target)
+    assert list(files.read_chunks(target, hashlib.sha256(content).hexdigest())) == [
+        content[0:4],
+        content[4:8],
+        content[8:10],
+    ]
+    target.write_bytes(content[:9] + b"\xff")  # the footer's last byte changed
+    sent = []
+    with pytest.raises(StoredFileDamaged):
+        for piece in files.read_chunks(target, hashlib.sha256(content).hexdigest()):
+            sent.append(piece)
+    assert b"".join(sent) == content[:8]  # the damaged last piece never left
+    assert files.stored(target) is None and not target.exists()
