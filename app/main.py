@@ -18,6 +18,7 @@ from app.errors import ExpertloopError, Unauthenticated
 from app.ingest.spool import sweep_stale
 from app.jobs.runner import JobThread
 from app.models import import_all_tables
+from app.snapshots.files import SPOOL_SUFFIX
 from app.templating import STATIC_DIR
 
 
@@ -61,6 +62,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         sweep_stale(settings.upload_dir)
+        sweep_stale(settings.snapshot_dir, pattern=f"loop-*/*{SPOOL_SUFFIX}")
         runner = None
         if settings.job_mode == "thread":
             runner = JobThread(app.state.session_factory, settings)

@@ -40,17 +40,20 @@ async def spool(chunks: AsyncIterator[bytes], folder: Path, limit: int) -> tuple
 STALE_SPOOL_SECONDS = 24 * 3600
 
 
-def sweep_stale(folder: Path, *, older_than_s: float = STALE_SPOOL_SECONDS) -> int:
-    """Delete spooled uploads left by a process that died mid-upload; returns how many.
+def sweep_stale(
+    folder: Path, *, pattern: str = "upload-*", older_than_s: float = STALE_SPOOL_SECONDS
+) -> int:
+    """Delete spooled files (`pattern` under `folder`) left by a process that died while writing
+    them, such as uploads; returns how many.
 
-    Only files untouched for a day go: an upload in flight in another process writes its file
+    Only files untouched for a day go: a file in flight in another process is written
     continuously, so it is never that old.
     """
     if not folder.exists():
         return 0
     cutoff = time.time() - older_than_s
     removed = 0
-    for path in folder.glob("upload-*"):
+    for path in folder.glob(pattern):
         try:
             if path.stat().st_mtime < cutoff:
                 path.unlink()

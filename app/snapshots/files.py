@@ -33,6 +33,7 @@ log = logging.getLogger(__name__)
 READ_BYTES = 4 * 1024 * 1024
 SUFFIX = ".parquet"
 HASH_SUFFIX = ".sha256"
+SPOOL_SUFFIX = ".part"  # a file being written; servers sweep day-old ones left by a crash
 
 
 class StoredFileDamaged(RuntimeError):
@@ -124,7 +125,7 @@ def _open_spool(path: Path) -> IO[bytes] | None:
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         return tempfile.NamedTemporaryFile(  # noqa: SIM115 - closed by write_through
-            dir=path.parent, prefix=path.name + ".", suffix=".part", delete=False
+            dir=path.parent, prefix=path.name + ".", suffix=SPOOL_SUFFIX, delete=False
         )
     except OSError as exc:
         log.warning("cannot store the export file %s: %s", path, exc)

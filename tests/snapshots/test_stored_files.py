@@ -35,7 +35,7 @@ def _stored(settings) -> list[Path]:
 
 
 def _leftovers(settings) -> list[Path]:
-    return sorted(p for p in settings.snapshot_dir.rglob("*") if p.name.endswith(".part"))
+    return sorted(settings.snapshot_dir.rglob(f"*{files.SPOOL_SUFFIX}"))
 
 
 def test_creation_stores_the_export_and_the_file_equals_a_rebuild(
@@ -144,3 +144,24 @@ def test_the_last_piece_waits_for_the_hash(tmp_path, monkeypatch):
             sent.append(piece)
     assert b"".join(sent) == content[:8]  # the damaged last piece never left
     assert files.stored(target) is None and not target.exists()
+
+
+def test_a_starting_server_sweeps_day_old_spools_of_a_crashed_writer(app, settings):
+    import os
+    import time
+
+    from fastapi.testclient import TestClient
+
+    folder = settings.snapshot_dir / "loop-1"
+    folder.mkdir(parents=True)
+    stale = folder / f"v1-x.parquet.abc{files.SPOOL_SUFFIX}"
+    fresh = folder / f"v1-x.parquet.def{files.SPOOL_SUFFIX}"
+    kept = folder / "v1-x.parquet"
+    for path in (stale, fresh, kept):
+        path.write_bytes(b"x")
+    day_ago = time.time() - 2 * 24 * 3600
+    os.utime(stale, (day_ago, day_ago))
+    os.utime(kept, (day_ago, day_ago))
+    with TestClient(app):
+        pass
+    assert not stale.exists() and fresh.exists() and kept.exists()
