@@ -23,8 +23,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import socket
-import subprocess
 import sys
 import tempfile
 import time
@@ -49,6 +47,7 @@ from app.loops.schemas import LoopCreate  # noqa: E402
 from app.migrations_state import upgrade  # noqa: E402
 from app.queue.models import Label  # noqa: E402
 from app.snapshots.export import PARQUET_COMPRESSION, PARQUET_DICTIONARY_COLUMNS  # noqa: E402
+from app.system.server_process import server_process  # noqa: E402
 
 STEPS_PER_ROLLOUT = 1000
 SLUG = "bench-export"
@@ -189,12 +188,6 @@ def _pyarrow_write(table: pa.Table, target: Path) -> float:
     return time.perf_counter() - started
 
 
-def _free_port() -> int:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
-
-
 def peak_rss_mb(pid: int) -> float:
     """Peak resident memory of a process (VmHWM), in MB."""
     for line in Path(f"/proc/{pid}/status").read_text().splitlines():
@@ -211,37 +204,11 @@ def run_once(
     started = time.perf_counter()
     token = prepare_store(url, n_rows, n_features, rng, relabel_share)
     fill_s = time.perf_counter() - started
-    port = _free_port()
-    env = os.environ | {
-        "EXPERTLOOP_DATABASE_URL": url,
-        "EXPERTLOOP_DATA_DIR": str(workdir / "data"),
-    }
-    server = subprocess.Popen(
-        [
-            sys.executable,
-            "-m",
-            "uvicorn",
-            "app.asgi:app",
-            "--port",
-            str(port),
-            "--log-level",
-            "warning",
-        ],
-        cwd=ROOT,
-        env=env,
-    )
-    try:
-        base = f"http://127.0.0.1:{port}"
-        for _ in range(200):
-            try:
-                if httpx.get(f"{base}/healthz").status_code == 200:
-                    break
-            except httpx.TransportError:
-                time.sleep(0.1)
+    with server_process(url, workdir / "data") as server:
         idle_mb = peak_rss_mb(server.pid)
         headers = {"Authorization": f"Bearer {token}"}
         timeout = httpx.Timeout(600.0)
-        with httpx.Client(base_url=base, headers=headers, timeout=timeout) as api:
+        with httpx.Client(base_url=server.url, headers=headers, timeout=timeout) as api:
             started = time.perf_counter()
             made = api.post(f"/api/loops/{SLUG}/snapshots", json={})
             create_s = time.perf_counter() - started
@@ -265,9 +232,6 @@ def run_once(
                 rebuild_times.append(_download(api, target))
                 assert stored[0].exists()
         server_mb = peak_rss_mb(server.pid)
-    finally:
-        server.terminate()
-        server.wait(timeout=30)
     export_s, pyarrow_s, rebuild_s = min(export_times), min(pyarrow_times), min(rebuild_times)
     return {
         "rows": n_rows,

@@ -11,7 +11,7 @@ ceiling; there, latency is mostly waiting in line (32 clients / throughput, by L
 Prints p50/p99 round-trip latency of claims and submits, throughput in labels per second, and
 the count of double assignments. Baseline, measured in the same run with the same clients:
 `GET /api/me` (sign-in check and one query), so the ratio shows what the queue adds to the
-cheapest authenticated request. Run from the repository root.
+cheapest authenticated request.
 """
 
 from __future__ import annotations
@@ -20,8 +20,6 @@ import argparse
 import hashlib
 import os
 import random
-import socket
-import subprocess
 import sys
 import tempfile
 import threading
@@ -38,6 +36,9 @@ import pyarrow.parquet as pq
 from sqlalchemy import func, select, text
 
 ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+from app.system.server_process import server_process  # noqa: E402
 
 
 def rollout_file(path: Path, n_rollouts: int, steps: int, seed: int = 0) -> None:
@@ -115,47 +116,6 @@ def prepare(url: str, data_dir: Path, n_items: int, n_clients: int) -> list[str]
             tokens.append(auth_service.issue_token(session, user=user))
     engine.dispose()
     return tokens
-
-
-def start_server(url: str, data_dir: Path, workers: int) -> tuple[subprocess.Popen[bytes], str]:
-    with socket.socket() as sock:
-        sock.bind(("127.0.0.1", 0))
-        port = sock.getsockname()[1]
-    env = {
-        **os.environ,
-        "EXPERTLOOP_DATABASE_URL": url,
-        "EXPERTLOOP_DATA_DIR": str(data_dir),
-        "PYTHONPATH": str(ROOT),
-    }
-    process = subprocess.Popen(
-        [
-            sys.executable,
-            "-m",
-            "uvicorn",
-            "app.asgi:app",
-            "--host",
-            "127.0.0.1",
-            "--port",
-            str(port),
-            "--workers",
-            str(workers),
-            "--log-level",
-            "warning",
-            "--no-access-log",
-        ],
-        cwd=ROOT,
-        env=env,
-    )
-    base = f"http://127.0.0.1:{port}"
-    deadline = time.monotonic() + 60
-    while time.monotonic() < deadline:
-        try:
-            if httpx.get(base + "/healthz", timeout=1).status_code == 200:
-                return process, base
-        except httpx.TransportError:
-            time.sleep(0.1)
-    process.kill()
-    raise SystemExit("the server did not start")
 
 
 def run_clients(base: str, tokens: list[str], work: Any) -> tuple[float, list[list[Any]]]:
@@ -283,8 +243,8 @@ def main() -> None:
         url = args.postgres or f"sqlite:///{data_dir / 'bench.db'}"
         workers = args.workers or (2 if args.postgres else 1)
         tokens = prepare(url, data_dir, args.items, args.clients)
-        process, base = start_server(url, data_dir, workers)
-        try:
+        with server_process(url, data_dir, workers=workers) as server:
+            base = server.url
             _, base_rows = run_clients(base, tokens, baseline)
             paced_wall, paced = run_clients(
                 base,
@@ -298,9 +258,6 @@ def main() -> None:
                 tokens,
                 lambda c, out, i: claim_and_submit(c, out, think=0.0, quota=None, seed=1000 + i),
             )
-        finally:
-            process.terminate()
-            process.wait(timeout=30)
         doubles = double_assignments(url, paced + flat, k=1)
     me = [x for r in base_rows for x in r]
     backend = "PostgreSQL" if args.postgres else "SQLite"

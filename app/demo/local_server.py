@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import socket
 import threading
 import time
 from collections.abc import Iterator
@@ -15,6 +14,7 @@ from app.auth import service as auth_service
 from app.config import Settings
 from app.main import create_app
 from app.migrations_state import upgrade
+from app.system.server_process import free_port
 
 
 @dataclass
@@ -22,13 +22,6 @@ class LocalServer:
     url: str
     admin_token: str
     annotator_token: str
-
-
-def free_port() -> int:
-    """A loopback port nobody listens on right now."""
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        return int(probe.getsockname()[1])
 
 
 @contextmanager

@@ -18,8 +18,8 @@ import pytest
 from sqlalchemy import select
 
 from app.queue.models import Label, Lease, QueueItem, Skip
+from app.system.server_process import ROOT, server_process
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC
-from tests.live_server import ROOT, live_server
 from tests.queue.conftest import user_id
 
 pytestmark = pytest.mark.browser
@@ -158,7 +158,12 @@ def test_label_by_keyboard_skip_and_unsure(make_loop, make_user, settings, app, 
     slug = make_loop(DISCRETE_SPEC, columns=crossing_rows(), queue=6, start=20)
     make_user("annotator", name="ann", password=PASSWORD)
     requests: list[str] = []
-    with live_server(settings.resolved_database_url, settings.data_dir) as base:
+    with server_process(
+        settings.resolved_database_url,
+        settings.data_dir,
+        log_path=settings.data_dir.parent / "server.log",
+    ) as server:
+        base = server.url
         page = browser.new_page(viewport={"width": 1440, "height": 1000})
         page.on("request", lambda request: requests.append(request.url))
         sign_in_and_open_bench(page, base, slug)
@@ -210,7 +215,12 @@ def test_label_by_keyboard_skip_and_unsure(make_loop, make_user, settings, app, 
 def test_continuous_action_with_the_slider(make_loop, make_user, settings, app, browser):
     slug = make_loop(CONTINUOUS_SPEC, queue=2, start=5)
     make_user("annotator", name="ann", password=PASSWORD)
-    with live_server(settings.resolved_database_url, settings.data_dir) as base:
+    with server_process(
+        settings.resolved_database_url,
+        settings.data_dir,
+        log_path=settings.data_dir.parent / "server.log",
+    ) as server:
+        base = server.url
         page = browser.new_page(viewport={"width": 1440, "height": 900})
         sign_in_and_open_bench(page, base, slug)
         page.keyboard.press("Enter")  # nothing set yet: refused on the page, nothing sent

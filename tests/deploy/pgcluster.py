@@ -10,7 +10,6 @@ from __future__ import annotations
 import os
 import pwd
 import shutil
-import socket
 import subprocess
 import tempfile
 import time
@@ -19,6 +18,8 @@ from pathlib import Path
 
 import psycopg
 import pytest
+
+from app.system.server_process import free_port
 
 PG_VERSIONS = ("17", "16", "15", "14")
 
@@ -33,13 +34,6 @@ def pg_bin_dir() -> Path:
     if found is None:
         raise RuntimeError("PostgreSQL server binaries (pg_ctl, initdb) are not installed")
     return Path(found).resolve().parent
-
-
-def free_port() -> int:
-    """A loopback TCP port nobody listens on right now."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
 
 
 class PgCluster:

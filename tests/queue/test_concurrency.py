@@ -16,8 +16,8 @@ from sqlalchemy import select
 
 from app.auth.models import User
 from app.queue.models import ITEM_DONE, Label, Lease, QueueItem, Skip
+from app.system.server_process import server_process
 from tests.helpers import DISCRETE_SPEC, discrete_rows
-from tests.live_server import live_server
 
 N_CLIENTS = 32
 K = 2
@@ -103,7 +103,13 @@ def test_32_annotators_at_once(make_loop, make_user, settings, app):
     records = [Record(user=name) for name in users]
     start = threading.Barrier(N_CLIENTS)
     # two server processes: claims also compete across processes (row locks, BEGIN IMMEDIATE)
-    with live_server(settings.resolved_database_url, settings.data_dir, workers=2) as base:
+    with server_process(
+        settings.resolved_database_url,
+        settings.data_dir,
+        workers=2,
+        log_path=settings.data_dir.parent / "server.log",
+    ) as server:
+        base = server.url
         threads = [
             threading.Thread(target=annotate, args=(base, headers[r.user], r, start))
             for r in records

@@ -1,0 +1,95 @@
+"""expertloop in a uvicorn subprocess on a free loopback port, for tests and benchmarks.
+
+A real server process, as deployed: its own event loop, thread pool and database connections,
+and with `workers` > 1 several processes competing for the same store.
+"""
+
+from __future__ import annotations
+
+import os
+import socket
+import subprocess
+import sys
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+import httpx
+
+# the checkout this module belongs to: the subprocess runs its `app`, not an installed copy
+ROOT = Path(__file__).resolve().parents[2]
+START_SECONDS = 60
+
+
+@dataclass(frozen=True)
+class ServerProcess:
+    url: str
+    pid: int
+
+
+def free_port() -> int:
+    """A port free on 127.0.0.1 right now (the server binds it a moment later)."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+@contextmanager
+def server_process(
+    database_url: str, data_dir: Path, *, workers: int = 1, log_path: Path | None = None
+) -> Iterator[ServerProcess]:
+    """Run the app with uvicorn until the block ends; the server's output goes to `log_path`
+    (default: this process's own output)."""
+    port = free_port()
+    data_dir.mkdir(parents=True, exist_ok=True)
+    env = {
+        **os.environ,
+        "EXPERTLOOP_DATABASE_URL": database_url,
+        "EXPERTLOOP_DATA_DIR": str(data_dir),
+        "PYTHONPATH": os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")])),
+    }
+    command = [
+        *(sys.executable, "-m", "uvicorn", "app.asgi:app"),
+        *("--host", "127.0.0.1", "--port", str(port), "--workers", str(workers)),
+        *("--log-level", "warning", "--no-access-log"),
+    ]
+    sink = log_path.open("wb") if log_path is not None else None
+    try:
+        process = subprocess.Popen(command, cwd=ROOT, env=env, stdout=sink, stderr=sink)
+        try:
+            url = f"http://127.0.0.1:{port}"
+            _wait_until_healthy(process, url, log_path)
+            yield ServerProcess(url=url, pid=process.pid)
+        finally:
+            process.terminate()
+            try:
+                process.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                process.kill()
+                process.wait()
+    finally:
+        if sink is not None:
+            sink.close()
+
+
+def _wait_until_healthy(process: subprocess.Popen[bytes], url: str, log_path: Path | None) -> None:
+    deadline = time.monotonic() + START_SECONDS
+    while True:
+        if process.poll() is not None:
+            raise RuntimeError(f"the server exited at start{_tail(log_path)}")
+        try:
+            if httpx.get(url + "/healthz", timeout=1).status_code == 200:
+                return
+        except httpx.TransportError:
+            pass
+        if time.monotonic() > deadline:
+            raise RuntimeError(
+                f"the server did not start within {START_SECONDS} s{_tail(log_path)}"
+            )
+        time.sleep(0.1)
+
+
+def _tail(log_path: Path | None) -> str:
+    return "" if log_path is None else ": " + log_path.read_text(errors="replace")[-2000:]
