@@ -13,7 +13,7 @@ from sqlalchemy.orm import Session
 from app.loops.models import Loop, Round
 from app.queue.models import ANSWER_UNSURE, ITEM_DONE, ITEM_OPEN, Label, Lease, QueueItem, Skip
 from app.queue.rules import answered_by, rounds_of
-from app.reports.stats import labels_per_hour
+from app.reports.pace import labels_per_hour
 
 
 @dataclass(frozen=True)

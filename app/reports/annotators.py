@@ -9,8 +9,9 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from app.reports import stats
+from app.reports import agreement, rates
 from app.reports.compute import ActionKind, LabelArrays, json_number, present
+from app.reports.pace import labels_per_hour
 from app.reports.schemas import (
     AgreementRead,
     AlphaRead,
@@ -82,7 +83,7 @@ def agreement_read(labels: LabelArrays, kind: ActionKind) -> AgreementRead:
         reliability[votes.annotator, votes.unit] = votes.action
         if n_annotators == 2:
             cohen = json_number(
-                stats.cohen_kappa(
+                agreement.cohen_kappa(
                     reliability[0].astype(np.int64),
                     reliability[1].astype(np.int64),
                     kind.n_actions,
@@ -92,12 +93,12 @@ def agreement_read(labels: LabelArrays, kind: ActionKind) -> AgreementRead:
             table = np.bincount(
                 votes.unit * kind.n_actions + votes.action, minlength=n_states * kind.n_actions
             ).reshape(n_states, kind.n_actions)
-            fleiss = json_number(stats.fleiss_kappa(table))
+            fleiss = json_number(agreement.fleiss_kappa(table))
         alphas = [
             AlphaRead(
                 dimension=None,
                 level="nominal",
-                alpha=json_number(stats.krippendorff_alpha(reliability, "nominal")),
+                alpha=json_number(agreement.krippendorff_alpha(reliability, "nominal")),
             )
         ]
     else:
@@ -105,7 +106,7 @@ def agreement_read(labels: LabelArrays, kind: ActionKind) -> AgreementRead:
         for d, name in enumerate(kind.dimension_names):
             reliability = np.full((n_annotators, n_states), np.nan)
             reliability[votes.annotator, votes.unit] = votes.action[:, d]
-            alpha = stats.krippendorff_alpha(reliability, "interval")
+            alpha = agreement.krippendorff_alpha(reliability, "interval")
             alphas.append(AlphaRead(dimension=name, level="interval", alpha=json_number(alpha)))
     return AgreementRead(
         n_states=n_states,
@@ -132,7 +133,7 @@ def annotators_read(
         within = np.all(np.abs(votes.action - target[votes.unit]) <= kind.tolerance, axis=1)
         action = within.astype(np.int64)
         target = np.where(present(target), 1, -1)
-    found = stats.agreement_with_consensus(
+    found = agreement.agreement_with_consensus(
         votes.annotators[votes.annotator], votes.unit, action, target
     )
     by_user = {
@@ -144,7 +145,7 @@ def annotators_read(
     rows = []
     for user in np.unique(labels.annotator).tolist():
         mine = labels.annotator == user
-        pace = stats.labels_per_hour(labels.created_s[mine])
+        pace = labels_per_hour(labels.created_s[mine])
         compared, agreeing, fraction = by_user.get(user, (0, 0, float("nan")))
         rows.append(
             AnnotatorRead(
@@ -161,7 +162,7 @@ def annotators_read(
 
 def pace_read(labels: LabelArrays) -> PaceRead:
     """Labels per active person-hour over all the round's answers (unsure ones included)."""
-    pace = stats.labels_per_hour(labels.created_s, labels.annotator)
+    pace = labels_per_hour(labels.created_s, labels.annotator)
     return PaceRead(
         labels=pace.n_labels,
         timed_labels=pace.timed_labels,
@@ -181,7 +182,7 @@ def shown_hidden_read(labels: LabelArrays, kind: ActionKind) -> ShownHiddenRead:
         agree = np.asarray(action == learner)
     else:
         agree = np.all(np.abs(action - learner) <= kind.tolerance, axis=1)
-    found = stats.shown_vs_hidden_effect(agree.astype(bool), labels.learner_shown[keep])
+    found = rates.shown_vs_hidden_effect(agree.astype(bool), labels.learner_shown[keep])
     note = None
     if found.n_shown == 0 or found.n_hidden == 0:
         note = (

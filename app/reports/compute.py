@@ -11,7 +11,7 @@ Conventions (shared with ``service``)
 - The expert's answer on a state is the consensus of its labels (majority vote, or the
   per-dimension median for continuous actions), as in the training set.
 - A continuous learner action agrees with the expert when every dimension lies within the
-  loop's tolerance of the consensus (``stats.continuous_disagreement``).
+  loop's tolerance of the consensus (``rates.continuous_disagreement``).
 """
 
 from __future__ import annotations
@@ -21,7 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from app.reports import stats
+from app.reports import rates, shift
 from app.reports.schemas import (
     FeatureShiftRead,
     RateRead,
@@ -98,9 +98,9 @@ def json_number(value: float) -> float | None:
 # --- learner versus expert ------------------------------------------------------------------
 
 
-def rate_read(found: stats.Disagreement, minimum: int, what: str) -> RateRead:
+def rate_read(found: rates.Disagreement, minimum: int, what: str) -> RateRead:
     """Quote a disagreement only from at least ``minimum`` compared states (see MIN_AUDIT_LABELS)."""
-    quoted = stats.audit_sufficient(found.n, minimum)
+    quoted = rates.audit_sufficient(found.n, minimum)
     mae = found.mean_absolute_error
     note = None
     if not quoted:
@@ -126,8 +126,8 @@ def continuous_disagreement_by_change(
     expert_action: np.ndarray,
     previous_learner_action: np.ndarray,
     tolerance: np.ndarray,
-) -> stats.DisagreementByChange:
-    """Continuous counterpart of ``stats.disagreement_by_change``.
+) -> rates.DisagreementByChange:
+    """Continuous counterpart of ``rates.disagreement_by_change``.
 
     A state is "changed" when the expert's action differs from the learner's previous action
     by more than the tolerance in some dimension. States with a ``nan`` row in the expert or
@@ -146,11 +146,11 @@ def continuous_disagreement_by_change(
     )
     parts = []
     for group in (keep & change, keep & ~change):
-        found = stats.continuous_disagreement(
+        found = rates.continuous_disagreement(
             learner_action[group], expert_action[group], tolerance
         )
         parts.append(
-            stats.Disagreement(
+            rates.Disagreement(
                 found.count,
                 found.n,
                 excluded,
@@ -160,7 +160,7 @@ def continuous_disagreement_by_change(
                 found.mean_absolute_error,
             )
         )
-    return stats.DisagreementByChange(changed=parts[0], unchanged=parts[1])
+    return rates.DisagreementByChange(changed=parts[0], unchanged=parts[1])
 
 
 def sample_read(reason: str, arrays: SampleArrays, kind: ActionKind, minimum: int) -> SampleRead:
@@ -174,11 +174,11 @@ def sample_read(reason: str, arrays: SampleArrays, kind: ActionKind, minimum: in
     what = "audit labels" if reason == "audit" else "labels in the ranked sample"
     if kind.discrete:
         expert[missing_learner] = -1
-        overall = stats.disagreement(learner, expert)
-        split = stats.disagreement_by_change(learner, expert, previous)
+        overall = rates.disagreement(learner, expert)
+        split = rates.disagreement_by_change(learner, expert, previous)
     else:
         expert[missing_learner] = np.nan
-        overall = stats.continuous_disagreement(learner, expert, kind.tolerance)
+        overall = rates.continuous_disagreement(learner, expert, kind.tolerance)
         split = continuous_disagreement_by_change(learner, expert, previous, kind.tolerance)
     return SampleRead(
         reason="audit" if reason == "audit" else "ranked",
@@ -244,7 +244,7 @@ def shift_read(
     centre, scale = x.mean(axis=0), x.std(axis=0)
     scale[scale == 0] = 1.0
     try:
-        test = stats.mmd_permutation_test(
+        test = shift.mmd_permutation_test(
             (x - centre) / scale,
             (y - centre) / scale,
             n_permutations,
@@ -254,7 +254,7 @@ def shift_read(
     except ValueError as exc:  # every state identical: the median heuristic has no scale
         return empty(f"no shift statistic: {exc}")
     units = dict(zip(feature_names, feature_units, strict=True))
-    shifts = stats.standardised_mean_difference(x, y, feature_names)[:MOST_SHIFTED]
+    shifts = shift.standardised_mean_difference(x, y, feature_names)[:MOST_SHIFTED]
     return ShiftRead(
         n_training=n_training,
         n_round=n_round,

@@ -37,7 +37,7 @@ from app.ingest.models import CONTROL_LEARNER, Rollout, Step
 from app.loops import service as loops_service
 from app.loops.models import Loop, Round
 from app.queue.models import ANSWER_UNSURE, Label
-from app.reports import annotators, compute, stats
+from app.reports import annotators, compute, rates
 from app.reports.schemas import CountsRead, RoundReport
 from app.sampler.models import REASON_AUDIT, SelectedState, Selection
 from app.snapshots import training_set as ts
@@ -187,7 +187,7 @@ def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundR
             reason,
             compute.SampleArrays(learner[mask], expert[mask], before[mask]),
             kind,
-            stats.MIN_AUDIT_LABELS,
+            rates.MIN_AUDIT_LABELS,
         )
         for reason, mask in (("audit", is_audit), ("ranked", ~is_audit))
     }
@@ -202,7 +202,7 @@ def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundR
         learner_version=rnd.learner_version,
         status=rnd.status,
         action_kind="discrete" if kind.discrete else "continuous",
-        min_audit_labels=stats.MIN_AUDIT_LABELS,
+        min_audit_labels=rates.MIN_AUDIT_LABELS,
         counts=CountsRead(
             **counts,
             expert_states=counts["states"] - counts["learner_states"],

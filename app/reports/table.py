@@ -6,7 +6,7 @@ import csv
 import io
 
 from app.loops.models import Loop
-from app.reports import stats
+from app.reports import rates
 from app.reports.schemas import LoopReport, RoundReport, RoundReportRow
 
 
@@ -59,7 +59,7 @@ def loop_table(loop: Loop, reports: list[RoundReport]) -> LoopReport:
         loop=loop.slug,
         title=loop.title,
         action_kind="discrete" if loop.action_space["kind"] == "discrete" else "continuous",
-        min_audit_labels=stats.MIN_AUDIT_LABELS,
+        min_audit_labels=rates.MIN_AUDIT_LABELS,
         items=rows,
         total=len(rows),
     )

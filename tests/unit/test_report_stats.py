@@ -15,25 +15,29 @@ from sklearn.metrics import cohen_kappa_score, mean_absolute_error
 from sklearn.metrics.pairwise import rbf_kernel
 from statsmodels.stats.proportion import confint_proportions_2indep, proportion_confint
 
-from app.reports.stats import (
-    MIN_AUDIT_LABELS,
+from app.reports.agreement import (
     agreement_with_consensus,
-    audit_sufficient,
     cohen_kappa,
+    fleiss_kappa,
+    krippendorff_alpha,
+)
+from app.reports.pace import labels_per_hour
+from app.reports.rates import (
+    MIN_AUDIT_LABELS,
+    audit_sufficient,
     continuous_disagreement,
     disagreement,
     disagreement_by_change,
-    fleiss_kappa,
-    krippendorff_alpha,
-    labels_per_hour,
+    shown_vs_hidden_effect,
+    wilson_interval,
+)
+from app.reports.shift import (
     median_heuristic,
     mmd2_biased,
     mmd2_unbiased,
     mmd_permutation_test,
     rbf_kernel_matrix,
-    shown_vs_hidden_effect,
     standardised_mean_difference,
-    wilson_interval,
 )
 
 # --- Wilson interval -------------------------------------------------------------------------
