@@ -8,6 +8,7 @@ bench/rank.py measures recall and speed on our side.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -16,6 +17,7 @@ from numpy.typing import ArrayLike, NDArray
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
+Progress = Callable[[float], None]
 
 DEFAULT_EXACT_THRESHOLD = 50_000
 DEFAULT_NPROBE = 16
@@ -26,6 +28,9 @@ _BLOCK_BYTES = 64 * 2**20
 # and keeps training time small at 1M states.
 _TRAIN_POINTS_PER_LIST = 64
 _TRANSFORM_CHUNK = 65_536
+# Approximate search: vectors per faiss add or search call, so progress (and with it the ranking
+# job's lease) is reported every few seconds even at millions of states.
+_FAISS_CHUNK = 65_536
 # Exact search: reference rows per block, and groups per neighbour sought (_block_top_k).
 _REFERENCE_BLOCK = 32_768
 _GROUPS_PER_NEIGHBOUR = 64
@@ -125,7 +130,11 @@ def _block_top_k(d2: FloatArray, k: int, n_groups: int) -> tuple[FloatArray, Int
 
 
 def exact_knn_distances(
-    queries: ArrayLike, reference: ArrayLike, k: int, chunk: int | None = None
+    queries: ArrayLike,
+    reference: ArrayLike,
+    k: int,
+    chunk: int | None = None,
+    progress: Progress | None = None,
 ) -> tuple[FloatArray, IntArray]:
     """Exact k nearest reference points for each query (Euclidean), chunked numpy.
 
@@ -145,6 +154,8 @@ def exact_knn_distances(
     chunk : int, optional
         Queries per tile. Default: as many as keep one tile of the distance matrix within
         64 MiB (at least 1).
+    progress : callable, optional
+        Called with the fraction of queries done after each chunk of queries.
 
     Returns
     -------
@@ -210,6 +221,8 @@ def exact_knn_distances(
         q_sq = np.einsum("ij,ij->i", qb, qb)
         distances[start : start + nb] = np.sqrt(np.maximum(best_val + q_sq[:, None], 0.0))
         indices[start : start + nb] = best_col
+        if progress is not None:
+            progress((start + nb) / q.shape[0])
     return distances, indices
 
 
@@ -219,6 +232,7 @@ def build_ivf_index(
     rng: np.random.Generator,
     nlist: int | None = None,
     nprobe: int = DEFAULT_NPROBE,
+    progress: Progress | None = None,
 ) -> Any:
     """Build a faiss IVF-Flat index (exact distances within the probed lists).
 
@@ -232,6 +246,8 @@ def build_ivf_index(
         Number of inverted lists; default ``round(sqrt(n_reference))``.
     nprobe : int
         Lists searched per query.
+    progress : callable, optional
+        Called with the fraction of reference vectors added, after each chunk.
 
     Returns
     -------
@@ -255,7 +271,10 @@ def build_ivf_index(
     # Silence faiss's "fewer than 39 points per centroid" warning for tiny sets.
     index.cp.min_points_per_centroid = 1
     index.train(sample)
-    index.add(r)
+    for start in range(0, n_ref, _FAISS_CHUNK):
+        index.add(r[start : start + _FAISS_CHUNK])
+        if progress is not None:
+            progress(min(start + _FAISS_CHUNK, n_ref) / n_ref)
     index.nprobe = min(nprobe, nlist)
     return index
 
@@ -268,6 +287,7 @@ def approximate_knn_distances(
     rng: np.random.Generator,
     nlist: int | None = None,
     nprobe: int = DEFAULT_NPROBE,
+    progress: Progress | None = None,
 ) -> tuple[FloatArray, IntArray]:
     """Approximate k nearest reference points with a faiss IVF-Flat index.
 
@@ -284,6 +304,8 @@ def approximate_knn_distances(
         See :func:`build_ivf_index`.
     nlist, nprobe : int
         See :func:`build_ivf_index`.
+    progress : callable, optional
+        Called with the fraction done: building the index counts as the first third.
 
     Returns
     -------
@@ -294,8 +316,16 @@ def approximate_knn_distances(
     r = _as_features(reference, "reference")
     if not 1 <= k <= r.shape[0]:
         raise ValueError(f"k must be between 1 and {r.shape[0]} (reference size), got {k}")
-    index = build_ivf_index(r, rng=rng, nlist=nlist, nprobe=nprobe)
-    d2, idx = index.search(q, k)
+    report = progress if progress is not None else (lambda _: None)
+    index = build_ivf_index(
+        r, rng=rng, nlist=nlist, nprobe=nprobe, progress=lambda f: report(f / 3)
+    )
+    d2 = np.empty((q.shape[0], k), dtype=np.float32)
+    idx = np.empty((q.shape[0], k), dtype=np.int64)
+    for start in range(0, q.shape[0], _FAISS_CHUNK):
+        stop = min(start + _FAISS_CHUNK, q.shape[0])
+        d2[start:stop], idx[start:stop] = index.search(q[start:stop], k)
+        report(1 / 3 + 2 / 3 * stop / q.shape[0])
     distances = np.sqrt(np.maximum(d2.astype(np.float64), 0.0))
     indices = idx.astype(np.int64)
     short = np.flatnonzero((indices < 0).any(axis=1))
@@ -331,6 +361,7 @@ def novelty(
     k: int = 10,
     exact_threshold: int = DEFAULT_EXACT_THRESHOLD,
     rng: np.random.Generator | None = None,
+    progress: Progress | None = None,
 ) -> FloatArray:
     """Mean distance from each candidate to its k nearest training states.
 
@@ -349,6 +380,9 @@ def novelty(
     rng : numpy.random.Generator, optional
         Seeds the approximate index; default ``numpy.random.default_rng(0)`` so results are
         reproducible. Unused on the exact path.
+    progress : callable, optional
+        Called with the fraction of the search done, every few seconds at most: a long search
+        keeps reporting (a background job renews its lease on progress).
 
     Returns
     -------
@@ -369,7 +403,7 @@ def novelty(
     standardiser = Standardiser.fit(train)
     if train.shape[0] <= exact_threshold:
         dist, _ = exact_knn_distances(
-            standardiser.transform(cand), standardiser.transform(train), k
+            standardiser.transform(cand), standardiser.transform(train), k, progress=progress
         )
     else:
         dist, _ = approximate_knn_distances(
@@ -377,5 +411,6 @@ def novelty(
             standardiser.transform(train, np.float32),
             k,
             rng=rng if rng is not None else np.random.default_rng(0),
+            progress=progress,
         )
     return np.asarray(dist.mean(axis=1), dtype=np.float64)

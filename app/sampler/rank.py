@@ -132,6 +132,7 @@ def rank_round(
             k=params.novelty_k,
             exact_threshold=DEFAULT_EXACT_THRESHOLD if pairs <= EXACT_PAIR_BUDGET else 0,
             rng=np.random.default_rng(params.seed),
+            progress=lambda f: progress(0.2 + 0.6 * f),
         )
     else:
         novel = np.full(len(candidates), np.nan)

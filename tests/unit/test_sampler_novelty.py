@@ -185,3 +185,23 @@ def test_approximate_falls_back_to_exact_when_lists_are_short():
     ref_dist, _ = nv.exact_knn_distances(queries, reference, 5)
     assert np.all(idx >= 0)
     assert_allclose(dist, ref_dist, atol=1e-5)
+
+
+@pytest.mark.parametrize("exact_threshold", [100_000, 1_000], ids=["exact", "approximate"])
+def test_novelty_reports_progress_in_chunks_without_changing_the_result(
+    monkeypatch, exact_threshold
+):
+    """A long search must keep reporting (the ranking job renews its lease on progress)."""
+    monkeypatch.setattr(nv, "_FAISS_CHUNK", 700)  # several add and search calls
+    monkeypatch.setattr(nv, "_BLOCK_BYTES", 8 * 3_072 * 300)  # exact: tiles of ~300 queries
+    rng = np.random.default_rng(8)
+    training = clustered(rng, 3_000, dim=8)
+    candidates = clustered(rng, 2_000, dim=8)
+    seen: list[float] = []
+    reported = nv.novelty(
+        candidates, training, k=5, exact_threshold=exact_threshold, progress=seen.append
+    )
+    silent = nv.novelty(candidates, training, k=5, exact_threshold=exact_threshold)
+    assert_array_equal(reported, silent)
+    assert len(seen) >= 4 and seen == sorted(seen)
+    assert 0 < seen[0] < 1 and seen[-1] == pytest.approx(1.0)
