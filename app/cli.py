@@ -379,6 +379,7 @@ def export(
                 file_format=file_format,
                 since=since,
                 progress=lambda n: bar.update(n),
+                size=lambda total: setattr(bar, "total", total),
             )
         except ApiError as exc:
             bar.close()

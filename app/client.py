@@ -138,10 +138,13 @@ class Client:
         file_format: str = "parquet",
         since: str | None = None,
         progress: Callable[[int], object] | None = None,
+        size: Callable[[int], object] | None = None,
     ) -> dict[str, str]:
         """Download a version to `out` (parquet, npz or jsonl); returns the response headers.
 
-        The file appears under its name only when complete; `progress` gets each chunk's size.
+        The file appears under its name only when complete; `progress` gets each chunk's size,
+        and `size` the whole file's, once, when the server knows it beforehand (a version's
+        stored Parquet file).
         """
         params = {"format": file_format} | ({"since": since} if since else {})
         partial = out.with_name(out.name + ".part")
@@ -151,6 +154,8 @@ class Client:
                 if response.status_code >= 400:
                     response.read()
                     raise ApiError(response.status_code, _detail(response))
+                if size and "content-length" in response.headers:
+                    size(int(response.headers["content-length"]))
                 with partial.open("wb") as handle:
                     for chunk in response.iter_bytes():
                         handle.write(chunk)

@@ -19,7 +19,7 @@ from app.snapshots import files
 from app.snapshots.files import StoredFileDamaged
 from app.snapshots.models import Snapshot
 from app.snapshots.service import SnapshotChanged
-from tests.snapshots.conftest import BASE
+from tests.snapshots.conftest import BASE, SLUG
 
 EXPORT = f"{BASE}/snapshots/v1/export"
 
@@ -165,3 +165,23 @@ def test_a_starting_server_sweeps_day_old_spools_of_a_crashed_writer(app, settin
     with TestClient(app):
         pass
     assert not stale.exists() and fresh.exists() and kept.exists()
+
+
+def test_the_client_learns_the_size_of_a_stored_file_before_the_bytes(
+    client, settings, discrete_loop, trainer, tmp_path
+):
+    from app.client import Client
+
+    _create(client, trainer)
+    [path] = _stored(settings)
+    token = trainer["Authorization"].split(" ", 1)[1]
+    sizes: list[int] = []
+    received: list[int] = []
+    with Client("http://testserver", token, transport=client._transport) as api:
+        api.export(
+            SLUG, tmp_path / "a.parquet", size=sizes.append, progress=lambda n: received.append(n)
+        )
+        files.discard(path)  # rebuilt from the store: the size is not known beforehand
+        api.export(SLUG, tmp_path / "b.parquet", size=sizes.append)
+    assert sizes == [path.stat().st_size] and sum(received) == sizes[0]
+    assert (tmp_path / "a.parquet").read_bytes() == (tmp_path / "b.parquet").read_bytes()
