@@ -9,12 +9,16 @@ from __future__ import annotations
 
 import hashlib
 import io
+import os
+import time
 from pathlib import Path
 
 import pyarrow.parquet as pq
 import pytest
+from fastapi.testclient import TestClient
 from sqlalchemy import text
 
+from app.client import Client
 from app.snapshots import files
 from app.snapshots.files import StoredFileDamaged
 from app.snapshots.models import Snapshot
@@ -147,11 +151,6 @@ def test_the_last_piece_waits_for_the_hash(tmp_path, monkeypatch):
 
 
 def test_a_starting_server_sweeps_day_old_spools_of_a_crashed_writer(app, settings):
-    import os
-    import time
-
-    from fastapi.testclient import TestClient
-
     folder = settings.snapshot_dir / "loop-1"
     folder.mkdir(parents=True)
     stale = folder / f"v1-x.parquet.abc{files.SPOOL_SUFFIX}"
@@ -170,8 +169,6 @@ def test_a_starting_server_sweeps_day_old_spools_of_a_crashed_writer(app, settin
 def test_the_client_learns_the_size_of_a_stored_file_before_the_bytes(
     client, settings, discrete_loop, trainer, tmp_path
 ):
-    from app.client import Client
-
     _create(client, trainer)
     [path] = _stored(settings)
     token = trainer["Authorization"].split(" ", 1)[1]
