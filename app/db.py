@@ -5,7 +5,7 @@ from __future__ import annotations
 import threading
 import weakref
 from collections.abc import Iterator
-from contextlib import contextmanager
+from contextlib import ExitStack, contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -122,17 +122,11 @@ def write_transaction(session: Session) -> Iterator[None]:
     locks the rows it decides on with SELECT ... FOR UPDATE.
     """
     lock = _writer_lock(session)
-    if lock is None:
-        try:
-            yield
+    with ExitStack() as held:
+        if lock is not None:
             session.commit()
-        except BaseException:
-            session.rollback()
-            raise
-        return
-    session.commit()
-    with lock:
-        session.connection(execution_options={SQLITE_BEGIN_IMMEDIATE: True})
+            held.enter_context(lock)
+            session.connection(execution_options={SQLITE_BEGIN_IMMEDIATE: True})
         try:
             yield
             session.commit()
