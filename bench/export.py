@@ -44,7 +44,7 @@ from app.ingest.encode import rows_to_bytes  # noqa: E402
 from app.ingest.models import Rollout, Upload  # noqa: E402
 from app.loops import service as loops_service  # noqa: E402
 from app.loops.schemas import LoopCreate  # noqa: E402
-from app.migrations_state import upgrade  # noqa: E402
+from app.migrations_state import upgrade_empty  # noqa: E402
 from app.queue.models import Label  # noqa: E402
 from app.snapshots.export import PARQUET_COMPRESSION, PARQUET_DICTIONARY_COLUMNS  # noqa: E402
 from app.system.server_process import server_process  # noqa: E402
@@ -57,13 +57,7 @@ def prepare_store(
     url: str, n_rows: int, n_features: int, rng: np.random.Generator, relabel_share: float = 0.02
 ) -> str:
     """Migrate a fresh store, fill it, and return a trainer's API token."""
-    if url.startswith("postgresql"):
-        engine = make_engine(url)
-        with engine.begin() as conn:
-            conn.execute(text("DROP SCHEMA public CASCADE"))
-            conn.execute(text("CREATE SCHEMA public"))
-        engine.dispose()
-    upgrade(url)
+    upgrade_empty(url)
     engine = make_engine(url)
     factory = make_session_factory(engine)
     with factory() as session:

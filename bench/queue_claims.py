@@ -33,7 +33,7 @@ import httpx
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
-from sqlalchemy import func, select, text
+from sqlalchemy import func, select
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
@@ -67,16 +67,10 @@ def prepare(url: str, data_dir: Path, n_items: int, n_clients: int) -> list[str]
     from app.ingest import service as ingest_service
     from app.loops import service as loops_service
     from app.loops.schemas import LoopCreate
-    from app.migrations_state import upgrade
+    from app.migrations_state import upgrade_empty
     from app.queue import service as queue_service
 
-    if url.startswith("postgresql"):
-        engine = make_engine(url)
-        with engine.begin() as conn:
-            conn.execute(text("DROP SCHEMA public CASCADE"))
-            conn.execute(text("CREATE SCHEMA public"))
-        engine.dispose()
-    upgrade(url)
+    upgrade_empty(url)
     engine = make_engine(url)
     with make_session_factory(engine)() as session:
         spec = LoopCreate.model_validate(

@@ -19,7 +19,7 @@ from sqlalchemy import Engine, inspect, text
 from app.config import Settings
 from app.db import make_engine
 from app.main import create_app
-from app.migrations_state import upgrade
+from app.migrations_state import upgrade, upgrade_empty
 
 PG_URL = os.environ.get("EXPERTLOOP_TEST_DATABASE_URL")
 
@@ -34,12 +34,7 @@ def pytest_report_header() -> str:
 def migrated_template(tmp_path_factory: pytest.TempPathFactory) -> str:
     """Migrate once: a SQLite template file, or the PostgreSQL test database from scratch."""
     if PG_URL:
-        engine = make_engine(PG_URL)
-        with engine.begin() as conn:
-            conn.execute(text("DROP SCHEMA public CASCADE"))
-            conn.execute(text("CREATE SCHEMA public"))
-        engine.dispose()
-        upgrade(PG_URL)
+        upgrade_empty(PG_URL)
         return PG_URL
     path = tmp_path_factory.mktemp("template") / "template.db"
     url = f"sqlite:///{path}"
