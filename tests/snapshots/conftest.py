@@ -44,6 +44,19 @@ def upload(client, headers, slug: str, number: int, columns: dict[str, list[Any]
     assert response.status_code == 201, response.text
 
 
+# a later round-1 rollout: one learner-driven step, then a takeover
+LATE_ROLLOUT: dict[str, list[Any]] = {
+    "rollout": ["late"] * 2,
+    "step": [0, 1],
+    "time_s": [0.0, 0.1],
+    "features": [[1.0, 2.0, 3.0], [1.5, 2.5, 3.5]],
+    "control": ["learner", "expert"],
+    "learner_action": ["proceed", None],
+    "learner_probs": [[0.5, 0.25, 0.25], None],
+    "expert_action": [None, "creep"],
+}
+
+
 def build_discrete(client, admin, uploader) -> None:
     """Round 0: 2 demonstrations x 3 steps; round 1 ("pol-1"): 2 rollouts x 5 steps, one
     takeover; round 2 ("pol-2") opened, empty."""

@@ -26,7 +26,15 @@ from app.cli import cli
 from app.client import ApiError, Client
 from app.snapshots import training_set as ts
 from app.snapshots.service import SnapshotChanged
-from tests.snapshots.conftest import BASE, SLUG, Labeller, build_continuous, read_parquet
+from tests.snapshots.conftest import (
+    BASE,
+    LATE_ROLLOUT,
+    SLUG,
+    Labeller,
+    build_continuous,
+    read_parquet,
+    upload,
+)
 from tests.snapshots.reference import as_tuples, reference_hash, reference_rows
 
 FORMATS = ("parquet", "npz", "jsonl")
@@ -170,22 +178,10 @@ def test_continuous_loop_median_consensus_in_every_format(
 
 
 def _second_version(client, labeller, trainer, uploader, steps) -> dict[str, Any]:
-    from tests.snapshots.conftest import upload
-
     labeller.add(SLUG, steps[1], [None, None, 0])  # tie resolved: a new relabel
     labeller.add(SLUG, steps[6], [None, 2, 2])  # proceed -> hold: consensus changed
     labeller.add(SLUG, steps[0], [None, None, 2])  # creep 2 vs hold 2: leaves the set
-    more = {
-        "rollout": ["late"] * 2,
-        "step": [0, 1],
-        "time_s": [0.0, 0.1],
-        "features": [[1.0, 2.0, 3.0], [1.5, 2.5, 3.5]],
-        "control": ["learner", "expert"],
-        "learner_action": ["proceed", None],
-        "learner_probs": [[0.5, 0.25, 0.25], None],
-        "expert_action": [None, "creep"],
-    }
-    upload(client, uploader, SLUG, 1, more)
+    upload(client, uploader, SLUG, 1, LATE_ROLLOUT)
     return _snapshot(client, trainer, up_to_round=1)
 
 

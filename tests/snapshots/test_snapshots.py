@@ -18,7 +18,15 @@ from app.main import create_app
 from app.migrations_state import upgrade
 from app.safety import SAFETY_CAUTION
 from tests.conftest import store_contents
-from tests.snapshots.conftest import BASE, SLUG, Labeller, build_discrete, read_parquet, upload
+from tests.snapshots.conftest import (
+    BASE,
+    LATE_ROLLOUT,
+    SLUG,
+    Labeller,
+    build_discrete,
+    read_parquet,
+    upload,
+)
 from tests.snapshots.reference import as_tuples, loop_row, reference_hash, reference_rows
 
 
@@ -143,17 +151,7 @@ def test_version_is_immutable_after_more_labels_and_uploads(
     # more labels on round 1, another rollout with a takeover in round 1, and a round 2
     labeller.add(SLUG, steps[1], [None, None, 0])
     labeller.add(SLUG, steps[5], [2])
-    more = {
-        "rollout": ["late"] * 2,
-        "step": [0, 1],
-        "time_s": [0.0, 0.1],
-        "features": [[1.0, 2.0, 3.0], [1.5, 2.5, 3.5]],
-        "control": ["learner", "expert"],
-        "learner_action": ["proceed", None],
-        "learner_probs": [[0.5, 0.25, 0.25], None],
-        "expert_action": [None, "creep"],
-    }
-    upload(client, uploader, SLUG, 1, more)
+    upload(client, uploader, SLUG, 1, LATE_ROLLOUT)
     client.post(f"{BASE}/rounds", json={"learner_version": "pol-2"}, headers=admin)
     for fmt, content in before.items():
         assert hashlib.sha256(_export(client, trainer, format=fmt)).digest() == (
