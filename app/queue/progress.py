@@ -1,4 +1,8 @@
-"""How far the queue has come: an annotator's progress and pace, and a round's queue counts."""
+"""How far the queue has come: an annotator's progress and pace, and a round's queue counts.
+
+The two dataclasses are also the API's answers (FastAPI serialises dataclasses): one list of
+fields, not a copy in the schemas.
+"""
 
 from __future__ import annotations
 
@@ -37,6 +41,7 @@ class Progress:
 class RoundQueue:
     """Counts of a round's queue, for admins."""
 
+    round: int
     items: int
     open: int
     done: int
@@ -131,6 +136,7 @@ def round_queue(session: Session, *, rnd: Round, now: datetime) -> RoundQueue:
         .where(of_round)
     )
     return RoundQueue(
+        round=rnd.number,
         items=int(items[0]),
         open=int(items[1]),
         done=int(items[2]),

@@ -17,8 +17,6 @@ from app.queue.schemas import (
     LabelCreate,
     LabelRead,
     LeaseRead,
-    ProgressRead,
-    RoundQueueRead,
     SkipRead,
 )
 from app.system.metrics import CLAIM_SECONDS
@@ -106,21 +104,19 @@ def submit(
     )
 
 
-@router.get(QUEUE + "/progress", response_model=ProgressRead)
-def progress(slug: str, session: SessionDep, caller: AnnotatorDep) -> ProgressRead:
+@router.get(QUEUE + "/progress", response_model=service.Progress)
+def progress(slug: str, session: SessionDep, caller: AnnotatorDep) -> service.Progress:
     """Labelled today, left in the queue, and expected time left at today's pace (annotator)."""
     loop = loops_service.get_loop(session, slug=slug)
-    found = service.progress(session, loop=loop, user_id=caller.user_id, now=utcnow())
-    return ProgressRead(**found.__dict__)
+    return service.progress(session, loop=loop, user_id=caller.user_id, now=utcnow())
 
 
-@router.get("/api/loops/{slug}/rounds/{number}/queue", response_model=RoundQueueRead)
-def round_queue(slug: str, number: int, session: SessionDep, _: AdminDep) -> RoundQueueRead:
+@router.get("/api/loops/{slug}/rounds/{number}/queue", response_model=service.RoundQueue)
+def round_queue(slug: str, number: int, session: SessionDep, _: AdminDep) -> service.RoundQueue:
     """Counts of a round's queue: items, labels, live leases, skips (admin)."""
     loop = loops_service.get_loop(session, slug=slug)
     rnd = loops_service.get_round(session, loop=loop, number=number)
-    counts = service.round_queue(session, rnd=rnd, now=utcnow())
-    return RoundQueueRead(round=number, **counts.__dict__)
+    return service.round_queue(session, rnd=rnd, now=utcnow())
 
 
 @router.get("/loops/{slug}/bench", response_class=HTMLResponse)

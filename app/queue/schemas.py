@@ -76,25 +76,3 @@ class LabelRead(BaseModel):
     seconds_spent: float | None
     created_at: datetime
     repeated: bool
-
-
-class ProgressRead(BaseModel):
-    labelled_today: int
-    left_for_you: int
-    labels_missing: int
-    seconds_per_label: float | None
-    expected_seconds_left: float | None
-
-
-class RoundQueueRead(BaseModel):
-    round: int
-    items: int
-    open: int
-    done: int
-    labels_needed: int
-    labels: int
-    unsure: int
-    span_labels: int
-    live_leases: int
-    skips: int
-    learner_shown_items: int
