@@ -96,14 +96,15 @@ def create_snapshot(
     loop: Loop,
     up_to_round: int | None,
     user_id: int | None,
-    reader: Session | None = None,
+    reader: Session,
 ) -> tuple[Snapshot, bool]:
     """Make the next version of the training set up to a round, or return an identical one.
 
     Returns the snapshot and whether it was created (False: the newest version with the same
-    round and content hash already existed). The pass over the rows runs on `reader` when given:
-    a writer session on SQLite would hold the write lock (BEGIN IMMEDIATE) for the whole pass,
-    stalling uploads and labels; the cut-off pins the rows, so a separate read is safe.
+    round and content hash already existed). The pass over the rows runs on `reader`, a plain
+    read session: a writer session on SQLite would hold the write lock (BEGIN IMMEDIATE) for the
+    whole pass, stalling uploads and labels; the cut-off pins the rows, so a separate read is
+    safe.
     """
     if up_to_round is None:
         up_to_round = int(
@@ -115,12 +116,10 @@ def create_snapshot(
     session.commit()  # release the lock; the cut-off is now fixed
 
     hasher, tally = _hasher(loop), _Tally()
-    rows_from = reader if reader is not None else session
-    for batch in ts.iter_batches(rows_from, loop=loop, cutoff=cutoff):
+    for batch in ts.iter_batches(reader, loop=loop, cutoff=cutoff):
         hasher.update(batch)
         tally.add(batch)
-    if reader is not None:
-        reader.commit()  # end the read transaction: SQLite's WAL cannot be reset under it
+    reader.commit()  # end the read transaction: SQLite's WAL cannot be reset under it
     if hasher.rows == 0:
         raise InvalidInput(
             f"nothing to snapshot: loop '{loop.slug}' has no demonstrations, takeovers or "
@@ -332,15 +331,16 @@ def export_chunks(
     snapshot: Snapshot,
     since: Snapshot | None,
     file_format: str,
-    spool_dir: Path | None = None,
-    files_dir: Path | None = None,
+    spool_dir: Path,
+    files_dir: Path,
 ) -> ExportBytes:
     """The bytes of an export file, a piece at a time.
 
-    A full Parquet export with `files_dir` is served from the version's stored file, and read
+    A full Parquet export is served from the version's stored file under `files_dir`, and read
     from the store (and stored on the way) when the file is missing; see app.snapshots.files.
+    .npz exports spool their columns under `spool_dir`.
     """
-    if file_format == "parquet" and since is None and files_dir is not None:
+    if file_format == "parquet" and since is None:
         path = files.parquet_path(files_dir, snapshot)
         found = files.stored(path)
         if found is not None:
@@ -382,7 +382,7 @@ def _chunks_from_store(
     if file_format == "parquet":
         return export.parquet_chunks(batches, layout, metadata)
     if file_format == "npz":
-        if spool_dir is not None:
+        if spool_dir is not None:  # else the system's temporary folder
             spool_dir.mkdir(parents=True, exist_ok=True)
         return export.npz_chunks(batches, layout, metadata, spool_dir)
     if file_format == "jsonl":
