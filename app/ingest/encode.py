@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
+from numpy.typing import DTypeLike
 
 FLOAT32_LE = np.dtype("<f4")
 
@@ -17,9 +20,27 @@ def rows_to_bytes(values: np.ndarray) -> list[bytes]:
     return blobs
 
 
-def bytes_to_rows(blobs: list[bytes], width: int) -> np.ndarray:
-    """Decode equal-length float32 blobs into an array of shape (n_rows, width)."""
-    if not blobs:
-        return np.empty((0, width), dtype=np.float32)
-    joined = b"".join(blobs)
-    return np.frombuffer(joined, dtype=FLOAT32_LE).reshape(len(blobs), width).astype(np.float32)
+def nullable_rows(
+    blobs: Sequence[bytes | None], shape: tuple[int, ...], *, fill: float, dtype: DTypeLike
+) -> tuple[np.ndarray, np.ndarray]:
+    """Decode float32 blobs, None where a row has no value, into an array (n, *shape).
+
+    Rows without a value hold `fill`. Returns the array and the mask of rows that had one.
+    """
+    present = np.array([b is not None for b in blobs], dtype=bool)
+    out = np.full((len(blobs), *shape), fill, dtype=dtype)
+    if present.any():
+        joined = b"".join(b for b in blobs if b is not None)
+        out[present] = np.frombuffer(joined, dtype=FLOAT32_LE).reshape(-1, *shape)
+    return out, present
+
+
+def stored_actions(
+    indexes: Sequence[int | None], vectors: Sequence[bytes | None], *, discrete: bool, width: int
+) -> np.ndarray:
+    """Actions as stored (an index, or float32 bytes of `width` values; None where absent) as
+    one array: int64 with -1 where absent, or float64 (n, width) with NaN where absent."""
+    if discrete:
+        return np.array([-1 if v is None else v for v in indexes], dtype=np.int64).reshape(-1)
+    rows, _ = nullable_rows(vectors, (width,), fill=np.nan, dtype=np.float64)
+    return rows

@@ -32,7 +32,7 @@ from sqlalchemy import and_, func, select
 from sqlalchemy.orm import Session, aliased
 
 from app.auth.models import User
-from app.ingest.encode import FLOAT32_LE
+from app.ingest.encode import FLOAT32_LE, stored_actions
 from app.ingest.models import CONTROL_LEARNER, Rollout, Step
 from app.loops import service as loops_service
 from app.loops.models import Loop, Round
@@ -63,17 +63,8 @@ def _chunks(ids: np.ndarray) -> list[list[int]]:
     return [ids[i : i + _CHUNK].tolist() for i in range(0, len(ids), _CHUNK)]
 
 
-def _actions(ints: list[Any], blobs: list[Any], kind: compute.ActionKind) -> np.ndarray:
-    """Stored actions (index or float32 bytes, ``None`` where absent) as one array."""
-    if kind.discrete:
-        return np.array([-1 if v is None else v for v in ints], dtype=np.int64).reshape(-1)
-    width = len(kind.dimension_names)
-    out = np.full((len(blobs), width), np.nan)
-    present = [i for i, b in enumerate(blobs) if b is not None]
-    if present:
-        joined = b"".join(blobs[i] for i in present)
-        out[present] = np.frombuffer(joined, dtype=FLOAT32_LE).reshape(len(present), width)
-    return out
+def _actions(indexes: list[Any], vectors: list[Any], kind: compute.ActionKind) -> np.ndarray:
+    return stored_actions(indexes, vectors, discrete=kind.discrete, width=len(kind.dimension_names))
 
 
 def _step_actions(

@@ -8,7 +8,7 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from app.ingest.encode import FLOAT32_LE
+from app.ingest.encode import FLOAT32_LE, nullable_rows
 from app.ingest.models import CONTROL_EXPERT, Step
 from app.loops.models import Loop, Round
 
@@ -41,13 +41,9 @@ class RoundSteps:
 def _matrix(
     blobs: list[bytes | None], shape: tuple[int, ...]
 ) -> tuple[np.ndarray | None, np.ndarray]:
-    present = np.array([b is not None for b in blobs], dtype=bool)
-    if not present.any():
-        return None, present
-    out = np.zeros((len(blobs), *shape), dtype=np.float32)
-    joined = b"".join(b for b in blobs if b is not None)
-    out[present] = np.frombuffer(joined, dtype=FLOAT32_LE).reshape(-1, *shape)
-    return out, present
+    """Learner outputs of each step (zeros where absent), or None when no step has any."""
+    rows, present = nullable_rows(blobs, shape, fill=0.0, dtype=np.float32)
+    return (rows if present.any() else None), present
 
 
 def load_round_steps(session: Session, *, loop: Loop, rnd: Round) -> RoundSteps:

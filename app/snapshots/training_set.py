@@ -14,7 +14,7 @@ import numpy as np
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from app.ingest.encode import FLOAT32_LE
+from app.ingest.encode import stored_actions
 from app.ingest.models import Step
 from app.loops.models import Loop, Round
 from app.queue.models import ANSWER_UNSURE, Label
@@ -142,19 +142,17 @@ def relabels(session: Session, *, loop: Loop, cutoff: Cutoff) -> Relabels:
     step_ids = np.array([r[0] for r in rows], dtype=np.int64)
     unique_steps, state_index = np.unique(step_ids, return_inverse=True)
     unsure = np.array([r[1] == ANSWER_UNSURE for r in rows], dtype=bool)
-    if is_discrete(loop):
-        actions = np.array([-1 if r[2] is None else r[2] for r in rows], dtype=np.int64)
-        actions[unsure] = -1
+    discrete = is_discrete(loop)
+    actions = stored_actions(
+        [r[2] for r in rows], [r[3] for r in rows], discrete=discrete, width=width
+    )
+    actions[unsure] = -1 if discrete else np.nan  # unsure answers do not vote
+    if discrete:
         found = discrete_consensus(state_index, actions, len(unique_steps), width)
         action = found.action
     else:
-        values = np.full((len(rows), width), np.nan)
-        voted = np.flatnonzero(~unsure)
-        if len(voted):
-            blob = b"".join(rows[i][3] or b"" for i in voted.tolist())
-            values[voted] = np.frombuffer(blob, dtype=FLOAT32_LE).reshape(len(voted), width)
         found_c = continuous_consensus(
-            state_index, values, unsure, len(unique_steps), continuous_tolerance(loop)
+            state_index, actions, unsure, len(unique_steps), continuous_tolerance(loop)
         )
         return Relabels(
             unique_steps,
