@@ -11,6 +11,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from app.errors import NotFound
+from app.ingest.encode import FLOAT32_LE
 from app.ingest.models import CONTROL_EXPERT, Rollout, Step
 from app.ingest.schemas import RolloutRead, StepRead
 from app.ingest.validate import ActionSpec
@@ -114,7 +115,9 @@ def decode_steps(rows: Sequence[Any], spec: ActionSpec) -> list[StepRead]:
     if not rows:
         return []
     width = len(spec.feature_names)
-    features = np.frombuffer(b"".join(r[5] for r in rows), dtype="<f4").reshape(len(rows), width)
+    features = np.frombuffer(b"".join(r[5] for r in rows), dtype=FLOAT32_LE).reshape(
+        len(rows), width
+    )
     out = []
     r: Any
     for r, feats in zip(rows, features.tolist(), strict=True):
@@ -142,7 +145,7 @@ def decode_steps(rows: Sequence[Any], spec: ActionSpec) -> list[StepRead]:
 
 
 def _vector(blob: bytes | None) -> list[float] | None:
-    return None if blob is None else np.frombuffer(blob, dtype="<f4").tolist()
+    return None if blob is None else np.frombuffer(blob, dtype=FLOAT32_LE).tolist()
 
 
 def _action(index: int | None, blob: bytes | None, spec: ActionSpec) -> str | list[float] | None:
