@@ -205,7 +205,8 @@ def main() -> None:
     print(f"  top-1% overlap: {main_row.overlap:.3f} (target >= 0.90)")
     print(f"  Spearman: {main_row.spearman:.4f} (target >= 0.98)")
 
-    # Build cost matters as the training set grows (DESIGN.md section 6).
+    # Build cost matters as the training set grows
+    # (docs/references.md, "Approximate nearest-neighbour search").
     standardised = nv.Standardiser.fit(training).transform(training, np.float32)
     t0 = time.perf_counter()
     nv.build_ivf_index(standardised, rng=np.random.default_rng(args.seed))

@@ -17,7 +17,7 @@ from app.reports.rates import FloatArray
 
 def _squared_distances(a: FloatArray, b: FloatArray) -> FloatArray:
     # Expansion |a|^2 + |b|^2 - 2ab in float64; callers centre the data first because the
-    # expansion cancels badly far from the origin (REFERENCES.md section 9).
+    # expansion cancels badly far from the origin (docs/references.md, "kNN novelty").
     d2 = (a * a).sum(1)[:, None] + (b * b).sum(1)[None, :] - 2.0 * (a @ b.T)
     return np.maximum(d2, 0.0)
 

@@ -1,11 +1,12 @@
 """Novelty: distance from candidate states to the training set in standardised feature space.
 
 Exact search (chunked numpy, float64) for small training sets; an approximate faiss IVF-Flat
-index above a size threshold. DESIGN.md section 6 measured IVF (nlist about sqrt(N),
-nprobe 16) at recall@10 0.997 with sub-second builds at 100k, while HNSW needed minutes to build;
-bench/rank.py measures recall and speed on our side. We use twice as many lists (2 sqrt(N)):
-at 1M training states and 200k queries the search took 24 s instead of 38 s with the same
-recall@10 (0.9996); 4 sqrt(N) lost recall and spent the saving on k-means.
+index above a size threshold. We measured IVF (nlist about sqrt(N), nprobe 16) at recall@10
+0.997 with sub-second builds at 100k, while HNSW needed minutes to build
+(docs/references.md, "Approximate nearest-neighbour search"); bench/rank.py measures recall
+and speed on our side. We use twice as many lists (2 sqrt(N)): at 1M training states and 200k
+queries the search took 24 s instead of 38 s with the same recall@10 (0.9996); 4 sqrt(N) lost
+recall and spent the saving on k-means.
 """
 
 from __future__ import annotations
@@ -143,10 +144,10 @@ def exact_knn_distances(
 
     Both sets are centred on the reference mean and converted to float64 before the
     expansion ``|q|^2 + |r|^2 - 2 q.r``: in float32 without centring, offsets such as
-    ``0.01 x + 1000`` cancel catastrophically (REFERENCES.md section 9). Squared distances are
-    clamped at 0 before the square root. Work is tiled over query chunks and reference blocks
-    of at most 32768 rows, so memory stays bounded (about 64 MiB per tile by default) whatever
-    the sizes. Tied distances go to the smaller reference index.
+    ``0.01 x + 1000`` cancel catastrophically (docs/references.md, "kNN novelty"). Squared
+    distances are clamped at 0 before the square root. Work is tiled over query chunks and
+    reference blocks of at most 32768 rows, so memory stays bounded (about 64 MiB per tile by
+    default) whatever the sizes. Tied distances go to the smaller reference index.
 
     Parameters
     ----------

@@ -1,6 +1,6 @@
 """Choose which candidate states go to the annotators under a label budget.
 
-Rules (DESIGN.md section 6):
+Rules (the README's "Ranking a round (the sampler)"; docs/references.md, "Selection rules"):
 
 1. A uniform random *audit* sample is drawn first, ``round_half_up(audit_fraction * budget)``
    states from all candidates, so the learner's on-policy error can be estimated without bias.

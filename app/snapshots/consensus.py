@@ -10,7 +10,7 @@ Conventions shared by both functions:
   come out unresolved, so the result always has one entry per state.
 - An "unsure" answer is an answer but not a vote: it counts in ``label_count`` and never in
   ``vote_count``. A state whose answers are all unsure is unresolved.
-- Unresolved states are reported, never guessed (DESIGN.md section 8).
+- Unresolved states are reported, never guessed (docs/references.md, "Consensus").
 """
 
 from __future__ import annotations
@@ -184,8 +184,8 @@ def continuous_consensus(
 ) -> ContinuousConsensus:
     """Per-dimension median of the votes on each state, with its spread and agreement.
 
-    The median is the robust centre of DESIGN.md section 8: one careless label cannot move it
-    past the other votes.
+    The median is the robust centre (docs/references.md, "Consensus"): one careless label cannot
+    move it past the other votes.
 
     Parameters
     ----------

@@ -70,7 +70,8 @@ def test_disagreement_and_its_split_match_statsmodels_wilson(app, world):
 
 
 def _direct_unbiased_mmd2(x, y, bandwidth):
-    # Gretton et al. 2012, Lemma 6 (REFERENCES.md section 8), with sklearn's rbf_kernel and
+    # Gretton et al. 2012, Lemma 6 (docs/references.md, "Squared MMD with an RBF kernel"), with
+    # sklearn's rbf_kernel and
     # gamma = 1 / (2 l^2); the within-sample sums leave out i == j.
     kxx = rbf_kernel(x, x, gamma=1 / (2 * bandwidth**2))
     kyy = rbf_kernel(y, y, gamma=1 / (2 * bandwidth**2))
@@ -90,7 +91,8 @@ def test_shift_matches_direct_mmd_and_cohens_d(app, client, admin, uploader, mak
     # standardised with the training set's mean and (population) standard deviation
     centre, scale = x.mean(axis=0), x.std(axis=0)
     xs, ys = (x - centre) / scale, (y - centre) / scale
-    # median heuristic: median of scipy pdist over the pooled sample (REFERENCES.md section 8)
+    # median of scipy pdist over the pooled sample
+    # (docs/references.md, "Median heuristic bandwidth")
     bandwidth = np.median(pdist(np.vstack([xs, ys])))
     assert (shift.n_training, shift.n_round) == (60, 200)
     assert (shift.n_training_sample, shift.n_round_sample) == (60, 200)  # under the cap
@@ -129,7 +131,8 @@ def test_annotator_agreement_matches_reference_libraries(app, world):
     agreement = _report(app, world.slug).agreement
     names, states, matrix = _multi_vote_matrix(world)
     assert (agreement.n_states, agreement.n_annotators) == (len(states), len(names))
-    # krippendorff package, nominal level, coders x units (REFERENCES.md section 6 layout)
+    # krippendorff package, nominal level, coders x units
+    # (docs/references.md, "Krippendorff's alpha")
     expected_alpha = krippendorff.alpha(reliability_data=matrix, level_of_measurement="nominal")
     assert_allclose(agreement.krippendorff[0].alpha, expected_alpha, rtol=1e-9)
     assert agreement.krippendorff[0].level == "nominal"
@@ -250,6 +253,7 @@ def test_shift_on_a_seeded_subsample_of_a_large_round(app, client, admin, upload
     x = demos.reshape(-1, 3).astype(np.float64)
     centre, scale = x.mean(axis=0), x.std(axis=0)
     xs, ys = (x - centre) / scale, (y - centre) / scale
-    bandwidth = np.median(pdist(np.vstack([xs, ys])))  # scipy pdist, REFERENCES.md section 8
+    # docs/references.md, "Median heuristic bandwidth"
+    bandwidth = np.median(pdist(np.vstack([xs, ys])))
     assert_allclose(shift.bandwidth, bandwidth, rtol=1e-9)
     assert_allclose(shift.mmd2, _direct_unbiased_mmd2(xs, ys, bandwidth), rtol=1e-7)

@@ -27,8 +27,8 @@ def test_majority_tie_unsure_and_empty_states_by_hand() -> None:
 
 
 def test_unsure_answers_do_not_vote() -> None:
-    # Two unsure answers must not outvote one real vote (DESIGN.md section 7: unsure is an
-    # answer, not an action).
+    # Two unsure answers must not outvote one real vote (docs/references.md, "Consensus":
+    # unsure is an answer, not a vote).
     with_unsure = discrete_consensus([0, 0, 0], [-1, -1, 2], n_states=1, n_actions=3)
     without = discrete_consensus([0], [2], n_states=1, n_actions=3)
     assert with_unsure.action[0] == without.action[0] == 2

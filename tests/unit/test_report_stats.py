@@ -1,6 +1,6 @@
-"""Round-report statistics checked against REFERENCES.md values and reference libraries.
+"""Round-report statistics checked against published values and reference libraries.
 
-The source of each expected value is named beside its check.
+The source of each expected value is named beside its check, as a section of docs/references.md.
 """
 
 import krippendorff
@@ -44,8 +44,9 @@ from app.reports.shift import (
 
 
 def test_wilson_matches_references_table() -> None:
-    # REFERENCES.md section 7: statsmodels proportion_confint(method='wilson') values for
-    # Newcombe's 1998 cases (the cases and their 4-dp limits are from memory).
+    # docs/references.md, "Wilson score interval": statsmodels
+    # proportion_confint(method='wilson') for Newcombe's 1998 cases (the cases and their 4-dp
+    # limits are from memory).
     k = np.array([81, 15, 0, 1, 20])
     n = np.array([263, 148, 20, 29, 20])
     lower, upper = wilson_interval(k, n)
@@ -116,8 +117,9 @@ def test_continuous_disagreement_tolerance_and_mae() -> None:
 
 
 def test_disagreement_by_change_exposes_a_copy_previous_policy() -> None:
-    # DESIGN.md section 9: a policy that copies its previous action is right wherever the
-    # expert keeps the action and wrong wherever the expert changes it.
+    # docs/references.md, "Disagreement rates and mean absolute error": a policy that copies its
+    # previous action is right wherever the expert keeps it and wrong wherever the expert
+    # changes it.
     rng = np.random.default_rng(5)
     previous = rng.integers(0, 3, 200)
     expert = np.where(rng.random(200) < 0.2, (previous + 1) % 3, previous)
@@ -144,7 +146,8 @@ def test_disagreement_by_change_exposes_a_copy_previous_policy() -> None:
 
 
 def test_mmd_small_exact_example() -> None:
-    # REFERENCES.md section 8 (Gretton et al. 2012): X=[[0],[1]], Y=[[2],[3]], l=1.
+    # docs/references.md, "Squared MMD with an RBF kernel" (Gretton et al. 2012): X=[[0],[1]],
+    # Y=[[2],[3]], l=1.
     assert mmd2_unbiased([[0.0], [1.0]], [[2.0], [3.0]], 1.0) == pytest.approx(
         0.7689062080632163, rel=1e-14
     )
@@ -154,7 +157,8 @@ def test_mmd_small_exact_example() -> None:
 
 
 def test_kernel_matrix_matches_sklearn_rbf_kernel() -> None:
-    # sklearn rbf_kernel with gamma = 1 / (2 l^2) (REFERENCES.md section 8).
+    # sklearn rbf_kernel with gamma = 1 / (2 l^2)
+    # (docs/references.md, "Squared MMD with an RBF kernel").
     rng = np.random.default_rng(0)
     a, b = rng.normal(size=(30, 4)) + 3.0, rng.normal(size=(20, 4))
     for bandwidth in (0.5, 1.7):
@@ -163,8 +167,9 @@ def test_kernel_matrix_matches_sklearn_rbf_kernel() -> None:
 
 
 def test_mmd_matches_slow_reference_from_sklearn_kernel() -> None:
-    # Slow, obvious reference: Gretton et al. 2012 Lemma 6 written out with sklearn's
-    # rbf_kernel and explicit off-diagonal masks; far from the origin to exercise centring.
+    # Slow, obvious reference: Gretton et al. 2012 Lemma 6 written out with sklearn's rbf_kernel
+    # and explicit off-diagonal masks; far from the origin to exercise centring
+    # (docs/references.md, "Squared MMD with an RBF kernel").
     rng = np.random.default_rng(1)
     x = rng.normal(size=(25, 3)) + 500.0
     y = rng.normal(size=(18, 3)) * 1.3 + 500.2
@@ -183,7 +188,8 @@ def test_mmd_matches_slow_reference_from_sklearn_kernel() -> None:
 
 
 def test_mmd_monte_carlo_matches_gaussian_closed_form() -> None:
-    # REFERENCES.md section 8 closed form, d=3, mu2=(1,0,0), s1=1, s2=1.5, l=1:
+    # docs/references.md, "Squared MMD with an RBF kernel", closed form, d=3, mu2=(1,0,0), s1=1,
+    # s2=1.5, l=1:
     # MMD^2 = 0.0670444096650469; E[biased] = MMD^2 + (1 - E k_xx)/m + (1 - E k_yy)/n with
     # E k_xx = 0.19245008972987523 and E k_yy = 0.07752753322022198 (derived there).
     rng = np.random.default_rng(12345)
@@ -205,8 +211,8 @@ def test_mmd_monte_carlo_matches_gaussian_closed_form() -> None:
 
 
 def test_median_heuristic_convention() -> None:
-    # REFERENCES.md section 8: median(pdist([0,1,2,3])) = 1.5 (not 1.0 with the diagonal,
-    # not 1.5811 from squared distances).
+    # docs/references.md, "Median heuristic bandwidth": median(pdist([0,1,2,3])) = 1.5 (not 1.0
+    # with the diagonal, not 1.5811 from squared distances).
     assert median_heuristic([[0.0], [1.0], [2.0], [3.0]]) == 1.5
     # scipy.spatial.distance.pdist as the reference on random data.
     z = np.random.default_rng(2).normal(size=(41, 5))
@@ -225,7 +231,7 @@ def test_median_heuristic_with_mostly_duplicate_points() -> None:
 def test_permutation_test_matches_a_slow_loop_on_the_same_random_stream() -> None:
     # Slow reference: the documented use of rng (subsample X, then Y, then one
     # rng.permutation per permutation), mmd2_unbiased on each split, and
-    # p = (1 + #{perm >= observed}) / (1 + n_perm) (common practice, Phipson & Smyth 2010).
+    # p = (1 + #{perm >= observed}) / (1 + n_perm) (docs/references.md, "Permutation p-value").
     data_rng = np.random.default_rng(3)
     x = data_rng.normal(size=(60, 2))
     y = data_rng.normal(size=(45, 2)) + 0.3
@@ -272,7 +278,8 @@ def test_permutation_test_calibration_and_power() -> None:
 
 
 def test_smd_matches_scipy_t_statistic_and_sorts_by_size() -> None:
-    # Reference: Cohen's d with pooled std equals the equal-variance t statistic times
+    # docs/references.md, "Standardised mean difference": Cohen's d with pooled std equals the
+    # equal-variance t statistic times
     # sqrt(1/m + 1/n) (scipy.stats.ttest_ind, equal_var=True).
     rng = np.random.default_rng(4)
     x = rng.normal(size=(80, 4))
@@ -305,10 +312,10 @@ def _pairs_from_table(table: list[list[int]]) -> tuple[np.ndarray, np.ndarray]:
 
 
 def test_cohen_kappa_published_and_weighted_values() -> None:
-    # REFERENCES.md section 4: the 50-item 2x2 example (Wikipedia, from memory) gives 0.4.
+    # docs/references.md, "Cohen's kappa": the 50-item 2x2 example (Wikipedia, from memory): 0.4.
     a, b = _pairs_from_table([[20, 5], [10, 15]])
     assert cohen_kappa(a, b, 2) == pytest.approx(0.4, rel=1e-12)
-    # REFERENCES.md section 4, constructed table, exact fractions (sklearn/statsmodels agree).
+    # same section, constructed table, exact fractions (sklearn/statsmodels agree).
     a, b = _pairs_from_table([[10, 4, 1], [3, 12, 5], [1, 2, 12]])
     assert cohen_kappa(a, b, 3) == pytest.approx(43 / 83, rel=1e-12)
     assert cohen_kappa(a, b, 3, weights="linear") == pytest.approx(62 / 107, rel=1e-12)
@@ -316,7 +323,7 @@ def test_cohen_kappa_published_and_weighted_values() -> None:
 
 
 def test_cohen_kappa_weights_use_category_indices() -> None:
-    # REFERENCES.md section 4 pitfall: with categories 1..4 (3 unused) sklearn gives
+    # docs/references.md, "Cohen's kappa": with categories 1..4 (3 unused) sklearn gives
     # 0.6190476190476191 (linear) and 0.6666666666666667 (quadratic) when labels=[1,2,3,4].
     x = [1, 2, 4, 4, 2, 1, 4, 2]
     y = [1, 2, 4, 2, 2, 1, 4, 4]
@@ -344,14 +351,14 @@ FLEISS_TABLE = [
 
 
 def test_fleiss_kappa_published_example() -> None:
-    # REFERENCES.md section 5: Wikipedia worked example (from memory), exact 4211/20059,
+    # docs/references.md, "Fleiss' kappa": Wikipedia worked example (from memory), 4211/20059,
     # statsmodels fleiss_kappa prints 0.20993070442195522.
     assert fleiss_kappa(FLEISS_TABLE) == pytest.approx(4211 / 20059, rel=1e-12)
     assert fleiss_kappa(FLEISS_TABLE) == pytest.approx(0.20993070442195522, rel=1e-12)
 
 
 def test_fleiss_kappa_matches_statsmodels() -> None:
-    # REFERENCES.md section 5: Fleiss 1971 diagnoses data (30 x 6 raters, shipped in
+    # docs/references.md, "Fleiss' kappa": Fleiss 1971 diagnoses data (30 x 6 raters, shipped in
     # statsmodels' tests) -> 0.43024452006014074; R irr gives 0.4302445.
     table, _ = inter_rater.aggregate_raters(statsmodels_inter_rater_tests.diagnoses)
     assert fleiss_kappa(table) == pytest.approx(0.43024452006014074, rel=1e-12)
@@ -375,21 +382,22 @@ KRIPPENDORFF_DATA = np.array(
 
 
 def test_krippendorff_alpha_published_values() -> None:
-    # REFERENCES.md section 6: Krippendorff 2011 example; published 0.743 (nominal) and
+    # docs/references.md, "Krippendorff's alpha": Krippendorff 2011; published 0.743 (nominal) and
     # 0.849 (interval) from memory, exact 113/152 and 951/1120 by an independent Fraction
     # implementation.
     nominal = krippendorff_alpha(KRIPPENDORFF_DATA, "nominal")
     interval = krippendorff_alpha(KRIPPENDORFF_DATA, "interval")
     assert round(nominal, 3) == 0.743 and nominal == pytest.approx(113 / 152, rel=1e-12)
     assert round(interval, 3) == 0.849 and interval == pytest.approx(951 / 1120, rel=1e-12)
-    # REFERENCES.md section 6 pitfall: the transposed layout gives -0.05485893416927867.
+    # same section: the transposed layout gives -0.05485893416927867.
     transposed = krippendorff_alpha(KRIPPENDORFF_DATA.T, "nominal")
     assert transposed == pytest.approx(-0.05485893416927867, rel=1e-12)
 
 
 def test_krippendorff_alpha_matches_the_krippendorff_package() -> None:
     # krippendorff 0.9 alpha(level_of_measurement=...) as the reference, all four levels;
-    # ordinal 0.8153875037548814 and ratio 0.7974027747116121 per REFERENCES.md section 6.
+    # ordinal 0.8153875037548814 and ratio 0.7974027747116121
+    # (docs/references.md, "Krippendorff's alpha").
     for level in ("nominal", "ordinal", "interval", "ratio"):
         expected = krippendorff.alpha(
             reliability_data=KRIPPENDORFF_DATA, level_of_measurement=level
@@ -438,8 +446,9 @@ def test_labels_per_hour_by_definition() -> None:
 
 
 def test_shown_vs_hidden_effect_newcombe_interval() -> None:
-    # Newcombe 1998, method 10, example 56/70 vs 48/80: (0.0524, 0.3339) from memory (not in
-    # REFERENCES.md); statsmodels confint_proportions_2indep(method='newcomb') as reference.
+    # docs/references.md, "Newcombe interval for a difference of proportions": Newcombe 1998,
+    # method 10, example 56/70 vs 48/80: (0.0524, 0.3339) from memory; statsmodels
+    # confint_proportions_2indep(method='newcomb') as reference.
     agree = np.array([True] * 56 + [False] * 14 + [True] * 48 + [False] * 32)
     shown = np.array([True] * 70 + [False] * 80)
     effect = shown_vs_hidden_effect(agree, shown)

@@ -1,4 +1,4 @@
-"""kNN novelty checked against scikit-learn and REFERENCES.md section 9."""
+"""kNN novelty checked against scikit-learn (docs/references.md, "kNN novelty")."""
 
 import numpy as np
 import pytest
@@ -9,7 +9,7 @@ from app.sampler import novelty as nv
 
 
 def references_data():
-    # REFERENCES.md section 9: rng=default_rng(2024); R (5000, 16) first, then Q (1000, 16)
+    # docs/references.md, "kNN novelty": rng=default_rng(2024); R (5000, 16), then Q (1000, 16)
     rng = np.random.default_rng(2024)
     reference = rng.standard_normal((5000, 16))
     queries = rng.standard_normal((1000, 16))
@@ -30,14 +30,14 @@ def clustered(rng, n, dim=32, n_clusters=30, latent=6):
 def test_exact_matches_sklearn_brute_on_references_data(chunk):
     queries, reference = references_data()
     dist, idx = nv.exact_knn_distances(queries, reference, 5, chunk=chunk)
-    # reference: sklearn NearestNeighbors(algorithm="brute"); REFERENCES.md §9 reports
-    # max |delta d| 2.2e-15 for a float64 chunked search with identical indices
+    # reference: sklearn NearestNeighbors(algorithm="brute"); docs/references.md, "kNN novelty"
+    # reports max |delta d| 2.2e-15 for a float64 chunked search with identical indices
     ref_dist, ref_idx = (
         NearestNeighbors(n_neighbors=5, algorithm="brute").fit(reference).kneighbors(queries)
     )
     assert np.max(np.abs(dist - ref_dist)) < 1e-13
     assert_array_equal(idx, ref_idx)
-    # REFERENCES.md §9: mean 5-NN distance of the first 3 queries
+    # docs/references.md, "kNN novelty": mean 5-NN distance of the first 3 queries
     assert_allclose(dist[:3].mean(axis=1), [2.5163197, 2.59158513, 2.60205255], atol=5e-9)
 
 
@@ -67,8 +67,8 @@ def test_exact_ties_go_to_smaller_index():
 
 
 def test_exact_survives_cancellation():
-    # REFERENCES.md §9 cancellation test: R' = 0.01 R + 1000, true 1-NN distance about 0.027,
-    # reference kd_tree in float64
+    # docs/references.md, "kNN novelty", cancellation: R' = 0.01 R + 1000, true 1-NN distance
+    # about 0.027, reference kd_tree in float64
     queries, reference = references_data()
     r_shift, q_shift = 0.01 * reference + 1000, 0.01 * queries + 1000
     ref_dist, ref_idx = (
@@ -76,11 +76,11 @@ def test_exact_survives_cancellation():
     )
     assert ref_dist.mean() == pytest.approx(0.027, abs=1e-3)
     dist, idx = nv.exact_knn_distances(q_shift, r_shift, 1)
-    # REFERENCES.md: float64 uncentred expansion errs by 2.7e-7; centring first removes it
+    # same section: the float64 uncentred expansion errs by 2.7e-7; centring first removes it
     assert np.max(np.abs(dist - ref_dist)) < 1e-9
     assert_array_equal(idx, ref_idx)
     # The check can fail: the naive float32 expansion on the same data is badly wrong
-    # (REFERENCES.md: max error 0.046, every 1-NN index wrong).
+    # (same section: max error 0.046, every 1-NN index wrong).
     r32, q32 = r_shift.astype(np.float32), q_shift.astype(np.float32)
     naive = (q32**2).sum(1)[:, None] + (r32**2).sum(1)[None, :] - 2 * q32 @ r32.T
     naive_dist = np.sqrt(np.maximum(naive.min(axis=1), 0))
@@ -100,7 +100,8 @@ def test_novelty_equals_standardised_sklearn_mean_distance():
 
 
 def test_novelty_invariant_to_feature_scaling():
-    # STYLE.md invariance: scaling a feature by a constant does not change standardised novelty
+    # invariance (docs/references.md, "kNN novelty": standardised features): scaling a feature
+    # by a constant does not change novelty
     rng = np.random.default_rng(8)
     training = rng.standard_normal((500, 5))
     candidates = rng.standard_normal((100, 5)) * 1.5
@@ -143,7 +144,8 @@ def test_recall_at_k_by_hand():
 
 
 def test_approximate_recall_on_clustered_data():
-    # DESIGN.md §6 reports IVF recall@10 0.997 on clustered data; we require >= 0.95.
+    # docs/references.md, "Approximate nearest-neighbour search": IVF recall@10 0.997 on
+    # clustered data; we require >= 0.95.
     # Measured here: 0.974 (20k training states, 2k queries, 32 features; 0.981 with sqrt(N) lists).
     rng = np.random.default_rng(5)
     training = clustered(rng, 20_000)

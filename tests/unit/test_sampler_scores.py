@@ -1,4 +1,4 @@
-"""Uncertainty scores checked against REFERENCES.md sections 1-3 and scipy."""
+"""Uncertainty scores checked against published values and scipy (sources: docs/references.md)."""
 
 import numpy as np
 import pytest
@@ -8,22 +8,22 @@ from scipy.stats import rankdata
 
 from app.sampler import scores
 
-# REFERENCES.md section 3 table (Settles 2009 definitions, from memory; values hand-checkable).
+# docs/references.md, "Least confidence and margin" (Settles 2009, from memory; hand-checkable).
 TABLE_P = np.array([[0.7, 0.2, 0.1], [0.5, 0.25, 0.25], [0.4, 0.4, 0.2]])
 TABLE_LC = [0.30000000000000004, 0.5, 0.6]
 TABLE_MARGIN = [0.49999999999999994, 0.25, 0.0]
 TABLE_H = [0.8018185525433373, 1.0397207708399179, 1.0549201679861442]
 
-# REFERENCES.md section 2 constructed ensemble (reference: scipy).
+# docs/references.md, "BALD mutual information": constructed ensemble (reference: scipy).
 BALD_P = np.array([[0.7, 0.2, 0.1], [0.1, 0.8, 0.1], [0.3, 0.3, 0.4]])
 
 
 def test_entropy_reference_values():
-    # REFERENCES.md section 1 (Shannon 1948; values from scipy.stats.entropy)
+    # docs/references.md, "Shannon entropy" (Shannon 1948; values from scipy.stats.entropy)
     assert scores.entropy([[0.5, 0.5]])[0] == pytest.approx(0.6931471805599453, abs=1e-15)
     assert scores.entropy([[1 / 7] * 7])[0] == pytest.approx(1.945910149055314, abs=1e-15)
     assert_allclose(scores.entropy(TABLE_P), TABLE_H, rtol=0, atol=1e-15)
-    # REFERENCES.md section 1: rows need axis=1 in scipy -> [1.03972077, 1.09861229]
+    # docs/references.md, "Shannon entropy": rows need axis=1 in scipy -> [1.0397, 1.0986]
     assert_allclose(
         scores.entropy([[0.5, 0.25, 0.25], [1 / 3] * 3]), [1.03972077, 1.09861229], atol=1e-8
     )
@@ -32,7 +32,8 @@ def test_entropy_reference_values():
 def test_entropy_matches_scipy_and_is_safe_for_zeros():
     rng = np.random.default_rng(7)
     p = rng.dirichlet(np.full(5, 0.3), size=200)
-    p[:20, 0] = 0.0  # exact zeros: the naive formula would give nan (REFERENCES.md section 1)
+    # exact zeros: the naive formula would give nan (docs/references.md, "Shannon entropy")
+    p[:20, 0] = 0.0
     p /= p.sum(axis=1, keepdims=True)
     # reference: scipy.stats.entropy along axis=1
     assert_allclose(scores.entropy(p), scipy.stats.entropy(p, axis=1), rtol=1e-12)
@@ -51,7 +52,7 @@ def test_probability_rows_not_summing_to_one_are_refused():
 
 
 def test_least_confidence_and_margin_table():
-    # REFERENCES.md section 3 table (Settles 2009 section 3.1, from memory)
+    # docs/references.md, "Least confidence and margin" (Settles 2009 section 3.1, from memory)
     assert_allclose(scores.least_confidence(TABLE_P), TABLE_LC, rtol=0, atol=1e-15)
     assert_allclose(scores.margin(TABLE_P), TABLE_MARGIN, rtol=0, atol=1e-15)
     assert_allclose(
@@ -60,7 +61,7 @@ def test_least_confidence_and_margin_table():
 
 
 def test_scores_disagree_on_references_example():
-    # REFERENCES.md section 3: A=[0.5,0.5,0], B=[0.4,0.3,0.3]
+    # docs/references.md, "Least confidence and margin": A=[0.5,0.5,0], B=[0.4,0.3,0.3]
     ab = np.array([[0.5, 0.5, 0.0], [0.4, 0.3, 0.3]])
     lc = scores.least_confidence(ab)
     assert_allclose(lc, [0.5, 0.6], atol=1e-15)
@@ -76,7 +77,7 @@ def test_scores_disagree_on_references_example():
 
 
 def test_bald_worked_example():
-    # REFERENCES.md section 2 (Houlsby et al. 2011; constructed example checked with scipy)
+    # docs/references.md, "BALD mutual information" (Houlsby et al. 2011; checked with scipy)
     got = scores.bald(BALD_P[None])[0]
     assert got == pytest.approx(0.20888903704423, abs=1e-14)
     # KL form: mean_m KL(p_m || p_bar) with scipy.stats.entropy(p, q)
@@ -86,7 +87,7 @@ def test_bald_worked_example():
 
 
 def test_bald_extremes_and_random_against_kl_form():
-    # REFERENCES.md section 2: [1,0] vs [0,1] -> ln 2; identical members -> 0
+    # docs/references.md, "BALD mutual information": [1,0] vs [0,1] -> ln 2; identical -> 0
     extremes = scores.bald([[[1.0, 0.0], [0.0, 1.0]], [[0.5, 0.5], [0.5, 0.5]]])
     assert extremes[0] == pytest.approx(0.6931471805599453, abs=1e-15)
     assert extremes[1] == 0.0
@@ -98,14 +99,15 @@ def test_bald_extremes_and_random_against_kl_form():
         [np.mean([scipy.stats.entropy(p_m, p_bar[i]) for p_m in member[i]]) for i in range(50)]
     )
     assert_allclose(scores.bald(member), kl, rtol=1e-10, atol=1e-14)
-    # identical members: rounding can give tiny negatives, which are clipped (REFERENCES.md §2)
+    # identical members: rounding can give tiny negatives, which are clipped (same section)
     same = np.repeat(rng.dirichlet(np.ones(6), size=(100, 1)), 7, axis=1)
     assert np.all(scores.bald(same) >= 0.0)
     assert np.all(scores.bald(same) < 1e-12)
 
 
 def test_ensemble_action_variance_scaling():
-    # common practice: population variance over members, here divided by the squared range
+    # docs/references.md, "Ensemble variance and Gaussian spread": population variance over
+    # members, here divided by the squared range
     rng = np.random.default_rng(3)
     actions = rng.uniform(-1, 3, size=(40, 5, 2))
     low, high = np.array([-1.0, 0.0]), np.array([3.0, 3.0])
@@ -161,7 +163,7 @@ def test_uncertainty_dispatch_follows_the_data():
 
 
 def test_percentile_rank_matches_rankdata_average():
-    # reference: scipy.stats.rankdata(method="average") / n
+    # docs/references.md, "Percentile ranks": scipy.stats.rankdata(method="average") / n
     x = np.array([10.0, 20.0, 20.0, 30.0])
     assert_allclose(scores.percentile_rank(x), [0.25, 0.625, 0.625, 1.0])
     rng = np.random.default_rng(5)

@@ -1,7 +1,7 @@
 """Budgeted selection: audit sample, time gap, spread and takeover boost.
 
 No library implements these rules, so each fast path is compared with a slow, obvious
-reference written here (common practice), plus invariance properties (STYLE.md).
+reference written here, plus invariance properties (docs/references.md, "Selection rules").
 """
 
 import numpy as np
