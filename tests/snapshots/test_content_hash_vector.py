@@ -26,37 +26,38 @@ from app.snapshots.content_hash import HASH_SCHEME, ContentHasher
 # Round 0 has no learner version; round 1 was rolled out by learner "v1".
 N_FEATURES, DISCRETE, ACTION_WIDTH = 2, True, 3
 
-# The canonical byte stream of each part, little-endian throughout.
+# The canonical byte stream of each part, little-endian throughout, in hex (spaces between
+# fields are for reading; bytes.fromhex ignores them).
 CANONICAL = {
     # int64 per row: 1, 2, 7
-    "step_id": "0100000000000000" "0200000000000000" "0700000000000000",
+    "step_id": "0100000000000000 0200000000000000 0700000000000000",
     # float32 per value, row after row: 0.5 = 0x3f000000, -1.0 = 0xbf800000,
     # 0.25 = 0x3e800000, 2.0 = 0x40000000, 1.5 = 0x3fc00000, 0.0
-    "features": "0000003f" "000080bf" "0000803e" "00000040" "0000c03f" "00000000",
+    "features": "0000003f 000080bf 0000803e 00000040 0000c03f 00000000",
     # discrete: int64 action index per row: 2, 0, 1
-    "action": "0200000000000000" "0000000000000000" "0100000000000000",
+    "action": "0200000000000000 0000000000000000 0100000000000000",
     # int64 round per row: 0, 0, 1
-    "round": "0000000000000000" "0000000000000000" "0100000000000000",
+    "round": "0000000000000000 0000000000000000 0100000000000000",
     # uint8 source per row: 0 demonstration, 0 demonstration, 2 relabel
-    "source": "00" "00" "02",
+    "source": "00 00 02",
     # int64 step index per row: 0, 1, 3
-    "step": "0000000000000000" "0100000000000000" "0300000000000000",
+    "step": "0000000000000000 0100000000000000 0300000000000000",
     # int64 label count per row: 1, 1, 4
-    "label_count": "0100000000000000" "0100000000000000" "0400000000000000",
+    "label_count": "0100000000000000 0100000000000000 0400000000000000",
     # float64 agreement per row: 1.0 = 0x3ff0000000000000, 0.75 = 0x3fe8000000000000
-    "agreement": "000000000000f03f" "000000000000f03f" "000000000000e83f",
+    "agreement": "000000000000f03f 000000000000f03f 000000000000e83f",
     # per run of rows with one rollout: uint32 key length, UTF-8 key, uint64 rows in the run
     # "t07-0001" = 74 30 37 2d 30 30 30 31 (8 bytes), 2 rows; "t07-0002", 1 row
-    "rollout": "08000000" "7430372d30303031" "0200000000000000"
-    "08000000" "7430372d30303032" "0100000000000000",
+    "rollout": "08000000 7430372d30303031 0200000000000000 "
+    "08000000 7430372d30303032 0100000000000000",
     # per round with rows, in round order: int64 round, uint32 version length (0xffffffff for
     # none), UTF-8 version: round 0 without a version, round 1 "v1" = 76 31
-    "learner_version": "0000000000000000" "ffffffff" "0100000000000000" "02000000" "7631",
+    "learner_version": "0000000000000000 ffffffff 0100000000000000 02000000 7631",
 }
 
 # The header: the scheme name in UTF-8, int64 feature count 2, uint8 1 (discrete),
 # int64 action width 3.
-HEADER = b"expertloop-rows-1".hex() + "0200000000000000" "01" "0300000000000000"
+HEADER = b"expertloop-rows-1".hex() + "0200000000000000 01 0300000000000000"
 
 # SHA-256 over HEADER, then for each part in the order above its name in UTF-8 followed by the
 # 32-byte SHA-256 of its canonical bytes (computed once with hashlib by hand, as
