@@ -13,12 +13,18 @@ from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.orm import Session, sessionmaker
 
 SQLITE_BUSY_TIMEOUT_MS = 30_000
-# No cap on pooled connections (beyond pool_size they are closed on return). A request holds its
-# connection until its response is sent, and the sign-in dependency checks one out on the event
-# loop: with a capped pool, more concurrent requests than the cap blocked the loop that must run
-# the teardowns that free connections, and the worker froze until the pool timeout (seen with 32
-# annotators). The database's own connection limit is the cap; it fails fast instead.
-POOL_OVERFLOW = -1
+# SQLite: no cap on pooled connections to the local file (beyond the pool's size they are closed
+# on return); SQLite's own locks decide who writes.
+SQLITE_POOL_SIZE = 20
+SQLITE_POOL_OVERFLOW = -1
+# PostgreSQL: an app process opens at most POSTGRES_POOL_SIZE + POSTGRES_MAX_OVERFLOW connections
+# (the README's "Scaling" gives this bound for sizing max_connections). A request past the bound
+# waits up to POOL_TIMEOUT_S for a connection, then gets 503 with Retry-After. Waiting is safe
+# only off the event loop: every store access of a request (sign-in checks included) runs in the
+# thread pool, so the loop stays free to finish other requests and hand their connections back.
+POSTGRES_POOL_SIZE = 10
+POSTGRES_MAX_OVERFLOW = 20
+POOL_TIMEOUT_S = 30.0
 
 
 def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
@@ -53,13 +59,19 @@ def make_engine(url: str) -> Engine:
         engine = create_engine(
             url,
             connect_args={"check_same_thread": False, "timeout": 30},
-            pool_size=20,
-            max_overflow=POOL_OVERFLOW,
+            pool_size=SQLITE_POOL_SIZE,
+            max_overflow=SQLITE_POOL_OVERFLOW,
         )
         event.listen(engine, "connect", _sqlite_pragmas)
         event.listen(engine, "begin", _sqlite_begin)
         return engine
-    return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=POOL_OVERFLOW)
+    return create_engine(
+        url,
+        pool_pre_ping=True,
+        pool_size=POSTGRES_POOL_SIZE,
+        max_overflow=POSTGRES_MAX_OVERFLOW,
+        pool_timeout=POOL_TIMEOUT_S,
+    )
 
 
 def make_session_factory(engine: Engine) -> sessionmaker[Session]:

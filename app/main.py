@@ -11,6 +11,7 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse, RedirectResponse, Response
 from fastapi.staticfiles import StaticFiles
 from sqlalchemy.exc import InterfaceError, OperationalError
+from sqlalchemy.exc import TimeoutError as PoolTimeout
 
 from app.config import Settings, get_settings
 from app.db import make_engine, make_session_factory, make_writer_session_factory
@@ -39,6 +40,16 @@ async def _store_unreachable(request: Request, exc: Exception) -> Response:
     # Only connection-level failures land here; pool_pre_ping reconnects once the store is back.
     return JSONResponse(
         {"detail": "the database is unreachable right now; nothing was changed, try again shortly"},
+        status_code=503,
+        headers={"Retry-After": "2"},
+    )
+
+
+async def _store_busy(request: Request, exc: Exception) -> Response:
+    # No pooled connection came free within the pool timeout (app.db: at most pool size plus
+    # overflow connections per process on PostgreSQL).
+    return JSONResponse(
+        {"detail": "the service is busy: no database connection came free in time; try again"},
         status_code=503,
         headers={"Retry-After": "2"},
     )
@@ -81,6 +92,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.add_exception_handler(RequestValidationError, _validation_error)
     app.add_exception_handler(OperationalError, _store_unreachable)
     app.add_exception_handler(InterfaceError, _store_unreachable)
+    app.add_exception_handler(PoolTimeout, _store_busy)
 
     from app.auth.router import router as auth_router
     from app.ingest.router import router as ingest_router

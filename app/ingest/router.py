@@ -7,6 +7,7 @@ from pathlib import Path
 
 from fastapi import APIRouter, Query, UploadFile, status
 from fastapi.responses import FileResponse
+from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
 from app.deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep, WriterSessionDep
@@ -15,10 +16,20 @@ from app.ingest import reads, service
 from app.ingest.schemas import RolloutList, StateContext, StepList, UploadRead
 from app.ingest.spool import CHUNK_BYTES, spool
 from app.loops import service as loops_service
+from app.loops.models import Loop, Round
 
 router = APIRouter(prefix="/api", tags=["rollouts"])
 
 PAGE_MAX = 1000
+
+
+def _loop_and_round(session: Session, slug: str, number: int) -> tuple[Loop, Round]:
+    loop = loops_service.get_loop(session, slug=slug)
+    rnd = loops_service.get_round(session, loop=loop, number=number)
+    # End the lookups' transaction before the file arrives: it hands the connection back (and on
+    # SQLite the write lock) while a large upload is spooled. The objects stay readable.
+    session.commit()
+    return loop, rnd
 
 
 async def _chunks(upload: UploadFile) -> AsyncIterator[bytes]:
@@ -40,8 +51,9 @@ async def upload_rollouts(
     caller: UploaderDep,
 ) -> UploadRead:
     """Upload one rollout file (Parquet, .npz or JSON Lines) into a round (uploader)."""
-    loop = loops_service.get_loop(session, slug=slug)
-    rnd = loops_service.get_round(session, loop=loop, number=number)
+    # Store access runs off the event loop: a full connection pool makes it wait, and the loop
+    # must stay free meanwhile to finish the requests that hand connections back.
+    loop, rnd = await run_in_threadpool(_loop_and_round, session, slug, number)
     path, sha = await spool(_chunks(file), settings.upload_dir, settings.max_upload_bytes)
     try:
         outcome = await run_in_threadpool(
