@@ -26,6 +26,9 @@ cli.add_typer(loops_cli, name="loops")
 cli.add_typer(users_cli, name="users")
 cli.add_typer(tokens_cli, name="tokens")
 
+# Read by `users add --password` when set, so scripts need no prompt.
+NEW_PASSWORD_ENV = "EXPERTLOOP_NEW_PASSWORD"
+
 URL_OPTION = typer.Option(envvar="EXPERTLOOP_URL", help="Service URL.")
 TOKEN_OPTION = typer.Option(envvar="EXPERTLOOP_TOKEN", help="API token.")
 
@@ -155,7 +158,7 @@ def users_add(
 
     secret = None
     if password:
-        secret = os.environ.get("EXPERTLOOP_NEW_PASSWORD") or typer.prompt(
+        secret = os.environ.get(NEW_PASSWORD_ENV) or typer.prompt(
             "password", hide_input=True, confirmation_prompt=True
         )
     with _session() as session:

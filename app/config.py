@@ -21,8 +21,8 @@ class Settings(BaseSettings):
     )
     database_url: str | None = Field(
         default=None,
-        description="SQLAlchemy URL; empty means a SQLite file in the data folder. "
-        "PostgreSQL: postgresql+psycopg://user@host/db",
+        description="SQLAlchemy URL; by default (empty) SQLite in the data folder "
+        "(expertloop.db). PostgreSQL: postgresql+psycopg://user@host/db",
     )
     max_upload_bytes: int = Field(
         default=512 * 1024 * 1024, description="Largest rollout file accepted (413 above)."
