@@ -309,7 +309,13 @@ def demo_run(
 
     from app.client import Client
     from app.config import Settings
-    from app.demo import loop_run
+
+    try:
+        from app.demo import loop_run
+    except ModuleNotFoundError as exc:  # the demo learner's library comes with the demo extra
+        if exc.name != "sklearn":
+            raise
+        _fail("demo-run trains the demo learner with scikit-learn: pip install 'expertloop[demo]'")
     from app.demo.local_server import local_server
     from app.demo.plot import write_plot
 
