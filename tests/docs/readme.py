@@ -69,6 +69,17 @@ def code_blocks() -> list[CodeBlock]:
     return blocks
 
 
+def inline_code() -> list[str]:
+    """Every inline code span of the README (prose and tables)."""
+    return [
+        child.content
+        for token in _tokens()
+        if token.type == "inline"
+        for child in token.children or []
+        if child.type == "code_inline"
+    ]
+
+
 def tables_with_header(first_column: str) -> list[Table]:
     return [t for t in tables() if t.header and t.header[0] == first_column]
 
