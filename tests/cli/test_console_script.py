@@ -32,7 +32,7 @@ from app.migrations_state import upgrade_empty
 from tests.conftest import PG_URL
 from tests.docs.readme import code_blocks, inline_code
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
-from tests.packaging.test_dependencies import hide
+from tests.packaging.hidden import hide
 
 SCRIPT = Path(sys.executable).parent / "expertloop"
 REPOSITORY = Path(__file__).resolve().parents[2]

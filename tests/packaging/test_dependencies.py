@@ -21,6 +21,7 @@ from packaging.requirements import Requirement
 from packaging.utils import canonicalize_name
 
 from tests.docs.repository import REPOSITORY
+from tests.packaging.hidden import hide
 
 PYPROJECT = REPOSITORY / "pyproject.toml"
 APP = REPOSITORY / "app"
@@ -90,16 +91,6 @@ def import_every_module(hidden: Path | None) -> dict[str, str]:
         check=True,
     )
     return json.loads(done.stdout.strip().splitlines()[-1])  # type: ignore[no-any-return]
-
-
-def hide(tmp_path: Path, import_name: str) -> Path:
-    """A folder that, first on the path, makes `import_name` look uninstalled."""
-    package = tmp_path / "hidden" / import_name
-    package.mkdir(parents=True)
-    (package / "__init__.py").write_text(
-        f"raise ModuleNotFoundError('hidden by the test', name={import_name!r})\n"
-    )
-    return package.parent
 
 
 def test_every_third_party_import_is_declared() -> None:
