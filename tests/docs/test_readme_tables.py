@@ -126,13 +126,15 @@ def test_readme_connection_bound_is_the_pool_of_the_code() -> None:
     text = " ".join(README.read_text(encoding="utf-8").split())
     found = re.search(
         r"opens up to (\d+) connections \(a pool of (\d+) plus (\d+) overflow\).*?"
-        r"keep `max_connections` above (\d+) × app processes",
+        r"keep `max_connections` above (\d+) × app processes.*?"
+        r"finds all of its process's connections busy waits up to (\d+) s for one",
         text,
     )
-    assert found, "the README's connection bound sentence is gone"
-    total, size, overflow, per_process = map(int, found.groups())
+    assert found, "the README's connection bound sentences are gone"
+    total, size, overflow, per_process, wait_s = map(int, found.groups())
     assert (size, overflow) == (db.POSTGRES_POOL_SIZE, db.POSTGRES_MAX_OVERFLOW)
     assert total == per_process == size + overflow
+    assert wait_s == db.POOL_TIMEOUT_S
 
 
 @pytest.mark.parametrize(
