@@ -59,7 +59,7 @@ def test_every_citation_names_an_existing_section() -> None:
             if title not in titles:
                 missing.append(f"{path.relative_to(REPOSITORY)}: {title!r}")
     assert not missing, "citations of sections docs/references.md lacks:\n" + "\n".join(missing)
-    assert found >= 40  # code and tests do cite it: the scan really reads them
+    assert found >= 30  # code and tests do cite it: the scan really reads them
 
 
 def test_nothing_cites_notes_outside_the_repository() -> None:
