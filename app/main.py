@@ -10,7 +10,7 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse, RedirectResponse, Response
 from fastapi.staticfiles import StaticFiles
-from sqlalchemy.exc import InterfaceError, OperationalError
+from sqlalchemy.exc import DataError, InterfaceError, OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeout
 
 from app.config import Settings, get_settings
@@ -18,7 +18,11 @@ from app.db import make_engine, make_session_factory, make_writer_session_factor
 from app.errors import ExpertloopError, Unauthenticated
 from app.ingest.spool import sweep_stale
 from app.jobs.runner import JobThread
+from app.limits import shown
 from app.models import import_all_tables
+from app.openapi_errors import install as document_errors
+from app.request_guard import RefuseControlCharacters
+from app.security_headers import SecurityHeaders
 from app.snapshots.files import SPOOL_SUFFIX
 from app.templating import STATIC_DIR
 
@@ -58,11 +62,22 @@ async def _store_busy(request: Request, exc: Exception) -> Response:
 async def _validation_error(request: Request, exc: Exception) -> Response:
     assert isinstance(exc, RequestValidationError)
     problems = []
+    errors = []
     for err in exc.errors():
-        where = ".".join(str(p) for p in err.get("loc", ()) if p != "body")
-        problems.append(f"{where}: {err.get('msg')}" if where else str(err.get("msg")))
-    errors = [{"loc": list(e.get("loc", ())), "msg": str(e.get("msg"))} for e in exc.errors()]
+        loc = [p if isinstance(p, int) else shown(str(p)) for p in err.get("loc", ())]
+        msg = shown(str(err.get("msg")), 200)
+        where = ".".join(str(p) for p in loc if p != "body")
+        problems.append(f"{where}: {msg}" if where else msg)
+        errors.append({"loc": loc, "msg": msg})
     return JSONResponse({"detail": "; ".join(problems), "errors": errors}, status_code=422)
+
+
+async def _value_beyond_store(request: Request, exc: Exception) -> Response:
+    # A backstop: validation keeps integers within the columns' ranges and NUL out of text
+    # before any query; should a value slip through, the client still gets a 422, not a 500.
+    return JSONResponse(
+        {"detail": "a value in the request is outside what the store can hold"}, status_code=422
+    )
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
@@ -93,6 +108,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.add_exception_handler(OperationalError, _store_unreachable)
     app.add_exception_handler(InterfaceError, _store_unreachable)
     app.add_exception_handler(PoolTimeout, _store_busy)
+    app.add_exception_handler(DataError, _value_beyond_store)
+    app.add_exception_handler(OverflowError, _value_beyond_store)
 
     from app.auth.router import router as auth_router
     from app.ingest.router import router as ingest_router
@@ -105,7 +122,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     from app.system.router import router as system_router
 
     import_all_tables()  # every table known before the first query, whatever the route
-    for router in (
+    routers = (
         system_router,
         auth_router,
         loops_router,
@@ -115,9 +132,18 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         queue_router,
         snapshots_router,
         reports_router,
-    ):
+    )
+    for router in routers:
         app.include_router(router)
     app.mount("/static", StaticFiles(directory=str(STATIC_DIR)), name="static")
+    document_errors(
+        app,
+        routers,
+        extra={
+            "/login": {401, 403, 429},
+            "/api/loops/{slug}/rounds/{number}/rollouts": {413},
+        },
+    )
 
     @app.middleware("http")
     async def refuse_oversized(request: Request, call_next: Any) -> Response:
@@ -134,4 +160,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         response: Response = await call_next(request)
         return response
 
+    app.add_middleware(RefuseControlCharacters)
+    app.add_middleware(SecurityHeaders)  # outermost: every answer gets the headers
     return app

@@ -13,8 +13,10 @@ from starlette.concurrency import run_in_threadpool
 from app.deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep, WriterSessionDep
 from app.errors import NotFound
 from app.ingest import reads, service
+from app.ingest.images import HEAD_BYTES, image_media_type
 from app.ingest.schemas import RolloutList, StateContext, StepList, UploadRead
 from app.ingest.spool import CHUNK_BYTES, spool
+from app.limits import PageOffset, RoundNumber, StepId
 from app.loops import service as loops_service
 from app.loops.models import Loop, Round
 
@@ -44,7 +46,7 @@ async def _chunks(upload: UploadFile) -> AsyncIterator[bytes]:
 )
 async def upload_rollouts(
     slug: str,
-    number: int,
+    number: RoundNumber,
     file: UploadFile,
     session: WriterSessionDep,
     settings: SettingsDep,
@@ -81,10 +83,10 @@ async def upload_rollouts(
 @router.get("/loops/{slug}/rounds/{number}/rollouts", response_model=RolloutList)
 def list_rollouts(
     slug: str,
-    number: int,
+    number: RoundNumber,
     session: SessionDep,
     _: ReaderDep,
-    offset: int = Query(0, ge=0),
+    offset: PageOffset = 0,
     limit: int = Query(100, ge=1, le=PAGE_MAX),
 ) -> RolloutList:
     """A page of a round's rollouts."""
@@ -100,7 +102,7 @@ def list_steps(
     key: str,
     session: SessionDep,
     _: ReaderDep,
-    offset: int = Query(0, ge=0),
+    offset: PageOffset = 0,
     limit: int = Query(200, ge=1, le=PAGE_MAX),
 ) -> StepList:
     """A page of one rollout's steps."""
@@ -113,7 +115,7 @@ def list_steps(
 @router.get("/loops/{slug}/states/{step_id}", response_model=StateContext)
 def read_state(
     slug: str,
-    step_id: int,
+    step_id: StepId,
     session: SessionDep,
     _: ReaderDep,
     seconds: float | None = Query(None, gt=0, le=120),
@@ -135,4 +137,8 @@ def read_image(sha256: str, settings: SettingsDep, _: AnnotatorDep) -> FileRespo
     path: Path = settings.blob_dir / sha256[:2] / sha256
     if not path.exists():
         raise NotFound("no such image")
-    return FileResponse(path)
+    with path.open("rb") as fh:
+        media_type = image_media_type(fh.read(HEAD_BYTES))
+    # A blob stored before images were checked may be anything: offer it only as a download.
+    headers = {} if media_type else {"Content-Disposition": "attachment"}
+    return FileResponse(path, media_type=media_type or "application/octet-stream", headers=headers)

@@ -7,11 +7,12 @@ from fastapi import APIRouter
 from app.deps import ReaderDep, SessionDep
 from app.jobs import service
 from app.jobs.schemas import JobRead
+from app.limits import RowId
 
 router = APIRouter(prefix="/api/jobs", tags=["jobs"])
 
 
 @router.get("/{job_id}", response_model=JobRead)
-def read_job(job_id: int, session: SessionDep, _: ReaderDep) -> JobRead:
+def read_job(job_id: RowId, session: SessionDep, _: ReaderDep) -> JobRead:
     """A job's status and progress (queued, running with a fraction done, done, failed)."""
     return JobRead.model_validate(service.get_job(session, job_id=job_id))

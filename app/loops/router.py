@@ -5,6 +5,7 @@ from __future__ import annotations
 from fastapi import APIRouter, status
 
 from app.deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
+from app.limits import RoundNumber
 from app.loops import service
 from app.loops.schemas import LoopCreate, LoopList, LoopRead, RoundList, RoundOpen, RoundRead
 
@@ -52,13 +53,15 @@ def open_round(
 
 
 @router.post("/{slug}/rounds/{number}/close", response_model=RoundRead)
-def close_round(slug: str, number: int, session: WriterSessionDep, _: AdminDep) -> RoundRead:
+def close_round(
+    slug: str, number: RoundNumber, session: WriterSessionDep, _: AdminDep
+) -> RoundRead:
     """Close a round: it takes no more uploads (admin)."""
     loop = service.get_loop(session, slug=slug)
     service.close_round(session, loop=loop, number=number)
     return _summary(session, loop_slug=slug, number=number)
 
 
-def _summary(session: SessionDep, *, loop_slug: str, number: int) -> RoundRead:
+def _summary(session: SessionDep, *, loop_slug: str, number: RoundNumber) -> RoundRead:
     loop = service.get_loop(session, slug=loop_slug)
     return next(r for r in service.round_summaries(session, loop=loop) if r.number == number)

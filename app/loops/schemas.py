@@ -8,6 +8,7 @@ from typing import Annotated, Literal
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from app.ingest.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
+from app.limits import PlainText, RequestBody
 
 NAME_PATTERN = r"^[a-z][a-z0-9_]{0,62}$"
 SLUG_PATTERN = r"^[a-z0-9][a-z0-9-]{1,62}$"
@@ -16,12 +17,12 @@ SLUG_PATTERN = r"^[a-z0-9][a-z0-9-]{1,62}$"
 RESERVED_COLUMN_NAMES = frozenset((*REQUIRED_COLUMNS, *OPTIONAL_COLUMNS))
 
 
-class FeatureSpec(BaseModel):
+class FeatureSpec(RequestBody):
     name: str = Field(pattern=NAME_PATTERN)
-    unit: str = Field(default="", max_length=32)
+    unit: PlainText = Field(default="", max_length=32)
 
 
-class DiscreteActionSpace(BaseModel):
+class DiscreteActionSpace(RequestBody):
     kind: Literal["discrete"]
     actions: list[Annotated[str, Field(pattern=NAME_PATTERN)]] = Field(min_length=2, max_length=32)
 
@@ -33,11 +34,11 @@ class DiscreteActionSpace(BaseModel):
         return actions
 
 
-class ContinuousDimension(BaseModel):
+class ContinuousDimension(RequestBody):
     name: str = Field(pattern=NAME_PATTERN)
     low: float
     high: float
-    unit: str = Field(default="", max_length=32)
+    unit: PlainText = Field(default="", max_length=32)
 
     @model_validator(mode="after")
     def _ordered(self) -> ContinuousDimension:
@@ -46,7 +47,7 @@ class ContinuousDimension(BaseModel):
         return self
 
 
-class ContinuousActionSpace(BaseModel):
+class ContinuousActionSpace(RequestBody):
     kind: Literal["continuous"]
     dimensions: list[ContinuousDimension] = Field(min_length=1, max_length=16)
 
@@ -61,10 +62,8 @@ class ContinuousActionSpace(BaseModel):
 ActionSpace = Annotated[DiscreteActionSpace | ContinuousActionSpace, Field(discriminator="kind")]
 
 
-class LoopSettings(BaseModel):
+class LoopSettings(RequestBody):
     """Per-loop settings; every default here is documented in the README."""
-
-    model_config = ConfigDict(extra="forbid")
 
     labels_per_state: int = Field(default=1, ge=1, le=10)
     lease_seconds: int = Field(default=300, ge=10, le=86_400)
@@ -93,13 +92,11 @@ class LoopSettings(BaseModel):
         return self
 
 
-class LoopCreate(BaseModel):
+class LoopCreate(RequestBody):
     """A loop spec: what the CLI reads from a file and the API takes as JSON."""
 
-    model_config = ConfigDict(extra="forbid")
-
     slug: str = Field(pattern=SLUG_PATTERN)
-    title: str = Field(min_length=1, max_length=200)
+    title: PlainText = Field(min_length=1, max_length=200)
     features: list[FeatureSpec] = Field(min_length=1, max_length=4096)
     action_space: ActionSpace
     settings: LoopSettings = Field(default_factory=LoopSettings)
@@ -142,10 +139,8 @@ class LoopList(BaseModel):
     total: int
 
 
-class RoundOpen(BaseModel):
-    model_config = ConfigDict(extra="forbid")
-
-    learner_version: str = Field(min_length=1, max_length=200)
+class RoundOpen(RequestBody):
+    learner_version: PlainText = Field(min_length=1, max_length=200)
 
 
 class RoundRead(BaseModel):

@@ -7,6 +7,7 @@ from fastapi import APIRouter, Request, Response, status
 from fastapi.responses import HTMLResponse
 
 from app.deps import AdminDep, AnnotatorDep, SessionDep
+from app.limits import RoundNumber, RowId
 from app.loops import service as loops_service
 from app.models import utcnow
 from app.queue import service
@@ -39,7 +40,7 @@ def claim(slug: str, session: SessionDep, caller: AnnotatorDep) -> ClaimRead:
 
 
 @router.post(QUEUE + "/items/{item_id}/renew", response_model=LeaseRead)
-def renew(slug: str, item_id: int, session: SessionDep, caller: AnnotatorDep) -> LeaseRead:
+def renew(slug: str, item_id: RowId, session: SessionDep, caller: AnnotatorDep) -> LeaseRead:
     """Extend the lease on a held item while its annotator works (annotator)."""
     loop = loops_service.get_loop(session, slug=slug)
     expires_at = service.renew(
@@ -49,7 +50,7 @@ def renew(slug: str, item_id: int, session: SessionDep, caller: AnnotatorDep) ->
 
 
 @router.post(QUEUE + "/items/{item_id}/skip", response_model=SkipRead)
-def skip(slug: str, item_id: int, session: SessionDep, caller: AnnotatorDep) -> SkipRead:
+def skip(slug: str, item_id: RowId, session: SessionDep, caller: AnnotatorDep) -> SkipRead:
     """Pass on an item; it is not offered to this annotator again (annotator)."""
     loop = loops_service.get_loop(session, slug=slug)
     service.skip(session, loop=loop, item_id=item_id, user_id=caller.user_id, now=utcnow())
@@ -64,7 +65,7 @@ def skip(slug: str, item_id: int, session: SessionDep, caller: AnnotatorDep) -> 
 )
 def submit(
     slug: str,
-    item_id: int,
+    item_id: RowId,
     body: LabelCreate,
     response: Response,
     session: SessionDep,
@@ -112,7 +113,9 @@ def progress(slug: str, session: SessionDep, caller: AnnotatorDep) -> service.Pr
 
 
 @router.get("/api/loops/{slug}/rounds/{number}/queue", response_model=service.RoundQueue)
-def round_queue(slug: str, number: int, session: SessionDep, _: AdminDep) -> service.RoundQueue:
+def round_queue(
+    slug: str, number: RoundNumber, session: SessionDep, _: AdminDep
+) -> service.RoundQueue:
     """Counts of a round's queue: items, labels, live leases, skips (admin)."""
     loop = loops_service.get_loop(session, slug=slug)
     rnd = loops_service.get_round(session, loop=loop, number=number)

@@ -8,6 +8,7 @@ from fastapi import APIRouter, Depends, Request
 from fastapi.responses import HTMLResponse, Response
 
 from app.deps import ReaderDep, SessionDep
+from app.limits import RoundNumber
 from app.loops import service as loops_service
 from app.reports import page, service, table
 from app.reports.schemas import LoopReport, RoundReport
@@ -30,7 +31,7 @@ CacheDep = Annotated[service.ReportCache, Depends(get_report_cache)]
 
 @router.get("/api/loops/{slug}/rounds/{number}/report", response_model=RoundReport)
 def round_report(
-    slug: str, number: int, session: SessionDep, cache: CacheDep, _: ReaderDep
+    slug: str, number: RoundNumber, session: SessionDep, cache: CacheDep, _: ReaderDep
 ) -> RoundReport:
     """One round's report: disagreement, shift, agreement, pace (any signed-in role)."""
     loop = loops_service.get_loop(session, slug=slug)

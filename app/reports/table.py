@@ -69,12 +69,14 @@ def rows_csv(rows: list[RoundReportRow]) -> str:
     """CSV text with a header of the row's field names; empty cells for ``None``.
 
     Floats are written with ``repr`` precision so the file round-trips to the JSON values.
-    Text starting with ``= + - @`` gets a leading apostrophe so that a spreadsheet does not
-    run it as a formula (OWASP guidance on CSV injection).
+    Text that a spreadsheet could run as a formula gets a leading apostrophe (OWASP guidance on
+    CSV injection): text starting with ``= + - @``, a tab or a carriage return, or with one of
+    ``= + - @`` after leading white space.
     """
     sink = io.StringIO()
     names = list(RoundReportRow.model_fields)
-    writer = csv.writer(sink, lineterminator="\n")
+    # RFC 4180 line ends: the writer then quotes any cell holding a carriage return or newline.
+    writer = csv.writer(sink, lineterminator="\r\n")
     writer.writerow(names)
     for row in rows:
         values = row.model_dump()
@@ -82,9 +84,14 @@ def rows_csv(rows: list[RoundReportRow]) -> str:
     return sink.getvalue()
 
 
+FORMULA_LEADS = ("=", "+", "-", "@", "\t", "\r")
+
+
 def _cell(value: object) -> object:
     if value is None:
         return ""
-    if isinstance(value, str) and value.startswith(("=", "+", "-", "@")):
+    if isinstance(value, str) and (
+        value.startswith(FORMULA_LEADS) or value.lstrip().startswith(FORMULA_LEADS)
+    ):
         return "'" + value
     return value

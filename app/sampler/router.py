@@ -6,6 +6,7 @@ from fastapi import APIRouter, Query, status
 
 from app.deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
 from app.jobs.schemas import JobRead
+from app.limits import PageOffset, RoundNumber
 from app.loops import service as loops_service
 from app.sampler import service
 from app.sampler.schemas import RankingRequest, RankingStarted, SelectedStateRead, SelectionRead
@@ -15,7 +16,11 @@ router = APIRouter(prefix="/api/loops/{slug}/rounds/{number}", tags=["sampler"])
 
 @router.post("/ranking", response_model=RankingStarted, status_code=status.HTTP_202_ACCEPTED)
 def start_ranking(
-    slug: str, number: int, body: RankingRequest, session: WriterSessionDep, caller: AdminDep
+    slug: str,
+    number: RoundNumber,
+    body: RankingRequest,
+    session: WriterSessionDep,
+    caller: AdminDep,
 ) -> RankingStarted:
     """Rank the round's states in the background and fill its queue (admin); follow the job."""
     loop = loops_service.get_loop(session, slug=slug)
@@ -29,10 +34,10 @@ def start_ranking(
 @router.get("/selection", response_model=SelectionRead)
 def read_selection(
     slug: str,
-    number: int,
+    number: RoundNumber,
     session: SessionDep,
     _: ReaderDep,
-    offset: int = Query(0, ge=0),
+    offset: PageOffset = 0,
     limit: int = Query(200, ge=1, le=1000),
 ) -> SelectionRead:
     """The chosen states with their scores and the reason each was chosen (ranked or audit)."""

@@ -5,14 +5,13 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, Field
 
 from app.jobs.schemas import JobRead
+from app.limits import RequestBody
 
 
-class RankingRequest(BaseModel):
-    model_config = ConfigDict(extra="forbid")
-
+class RankingRequest(RequestBody):
     budget: int = Field(ge=1, le=1_000_000, description="Labels to ask for in this round.")
     seed: int | None = Field(
         default=None, ge=0, lt=2**63, description="Seed of the audit sample; random if omitted."

@@ -5,19 +5,19 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, Field
 
+from app.limits import INT32_MAX, RequestBody
 from app.snapshots.models import Snapshot
 
 ExportFormat = Literal["parquet", "npz", "jsonl"]
 
 
-class SnapshotCreate(BaseModel):
-    model_config = ConfigDict(extra="forbid")
-
+class SnapshotCreate(RequestBody):
     up_to_round: int | None = Field(
         default=None,
         ge=0,
+        le=INT32_MAX,
         description="Last round whose rows the version holds; default: the loop's newest round.",
     )
 

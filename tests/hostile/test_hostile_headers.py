@@ -1,0 +1,88 @@
+"""Security headers on every answer, no-store on private ones, the CSV formula guard and the
+one error shape the OpenAPI schema declares."""
+
+from __future__ import annotations
+
+import csv
+import io
+
+import pytest
+
+from app.reports.schemas import RoundReportRow
+from app.reports.table import rows_csv
+from app.security_headers import CONTENT_SECURITY_POLICY
+
+
+@pytest.mark.parametrize(
+    "path", ["/login", "/healthz", "/api/me", "/api/loops/nope", "/api/jobs/x", "/static/bench.js"]
+)
+def test_every_answer_carries_the_security_headers(client, admin, path):
+    response = client.get(path, headers=admin)
+    assert response.headers["x-content-type-options"] == "nosniff"
+    assert response.headers["content-security-policy"] == CONTENT_SECURITY_POLICY
+    assert "frame-ancestors 'none'" in CONTENT_SECURITY_POLICY
+    assert "'unsafe-inline'" not in CONTENT_SECURITY_POLICY
+    assert response.headers["referrer-policy"] == "same-origin"
+    cache = response.headers.get("cache-control", "")
+    assert ("no-store" in cache) == (not path.startswith("/static/"))
+
+
+def test_pages_need_no_inline_script_or_style(client, make_user, admin):
+    from html.parser import HTMLParser
+
+    from tests.helpers import DISCRETE_SPEC
+
+    assert client.post("/api/loops", json=DISCRETE_SPEC, headers=admin).status_code == 201
+    client.post("/api/loops/aisle-crossing/rounds", json={"learner_version": "v1"}, headers=admin)
+
+    class Inline(HTMLParser):
+        found: list[str] = []
+
+        def handle_starttag(self, tag, attrs):
+            names = dict(attrs)
+            if tag == "style" or "style" in names or any(n.startswith("on") for n in names):
+                self.found.append(tag)
+            if tag == "script" and "src" not in names and names.get("type") != "application/json":
+                self.found.append(tag)
+
+    make_user("annotator", name="ann", password="pw-123456")
+    signed = client.post("/login", data={"name": "ann", "password": "pw-123456"})
+    assert signed.status_code in (200, 303), signed.text[:300]
+    for page in ("/login", "/", "/loops/aisle-crossing", "/loops/aisle-crossing/bench"):
+        parser = Inline()
+        parser.found = []
+        parser.feed(client.get(page).text)
+        assert parser.found == [], (page, parser.found)
+
+
+@pytest.mark.parametrize(
+    "version",
+    ["=1+1", "+1", "-1", "@SUM(A1)", "\t=1", "\r=1", " =1", "  @x", "\n+1", " \t-2"],
+)
+def test_csv_guard_covers_every_formula_lead(version):
+    counts = {
+        name: 0
+        for name, field in RoundReportRow.model_fields.items()
+        if field.annotation in (int, "int")
+    }
+    row = RoundReportRow.model_validate(
+        {name: None for name in RoundReportRow.model_fields}
+        | counts
+        | {"round": 1, "learner_version": version, "status": "open"}
+    )
+    cells = next(r for r in csv.DictReader(io.StringIO(rows_csv([row]))) if r["round"] == "1")
+    assert cells["learner_version"] == "'" + version
+
+
+def test_validation_errors_match_the_declared_error_shape(client, admin):
+    schema = client.get("/openapi.json").json()
+    error = schema["components"]["schemas"]["ErrorRead"]
+    assert error["properties"]["detail"]["type"] == "string"
+    assert "HTTPValidationError" not in schema["components"]["schemas"]
+    job = schema["paths"]["/api/jobs/{job_id}"]["get"]["responses"]
+    for status in ("401", "403", "404", "422", "503"):
+        assert job[status]["content"]["application/json"]["schema"]["$ref"].endswith("ErrorRead")
+    upload = schema["paths"]["/api/loops/{slug}/rounds/{number}/rollouts"]["post"]["responses"]
+    assert "413" in upload and "409" in upload
+    answer = client.get("/api/jobs/abc", headers=admin).json()
+    assert isinstance(answer["detail"], str) and answer["errors"][0]["loc"] == ["path", "job_id"]
