@@ -44,6 +44,30 @@ class Settings(BaseSettings):
         "(`serve` and `worker`).",
     )
     session_hours: float = Field(default=12.0, description="Browser session lifetime.")
+    sign_in_failures_per_name: int = Field(
+        default=5,
+        ge=1,
+        description="Failed sign-ins allowed per user name within the window (429 beyond).",
+    )
+    sign_in_failures_per_address: int = Field(
+        default=20,
+        ge=1,
+        description="Failed sign-ins allowed per client address within the window (429 beyond).",
+    )
+    sign_in_window_seconds: float = Field(
+        default=900.0, gt=0, description="The window in which failed sign-ins are counted."
+    )
+    max_image_bytes: int = Field(
+        default=4 * 1024 * 1024, ge=1, description="Largest camera image accepted in a rollout."
+    )
+    max_scene_bytes: int = Field(
+        default=64 * 1024, ge=2, description="Largest scene description accepted (JSON text)."
+    )
+    max_array_bytes: int = Field(
+        default=1024 * 1024 * 1024,
+        ge=1,
+        description="Largest total size the arrays of one .npz upload may expand to.",
+    )
 
     @property
     def resolved_database_url(self) -> str:

@@ -13,6 +13,7 @@ from fastapi.staticfiles import StaticFiles
 from sqlalchemy.exc import DataError, InterfaceError, OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeout
 
+from app.auth.throttle import Limits, SignInThrottle
 from app.config import Settings, get_settings
 from app.db import make_engine, make_session_factory, make_writer_session_factory
 from app.errors import ExpertloopError, Unauthenticated
@@ -103,6 +104,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.engine = engine
     app.state.session_factory = make_session_factory(engine)
     app.state.writer_session_factory = make_writer_session_factory(engine)
+    app.state.sign_in_throttle = SignInThrottle(
+        Limits(
+            per_name=settings.sign_in_failures_per_name,
+            per_address=settings.sign_in_failures_per_address,
+            window_s=settings.sign_in_window_seconds,
+        )
+    )
     app.add_exception_handler(ExpertloopError, _domain_error)
     app.add_exception_handler(RequestValidationError, _validation_error)
     app.add_exception_handler(OperationalError, _store_unreachable)

@@ -99,6 +99,8 @@ def install(
                 operation = schema["paths"][route.path_format][method.lower()]
                 responses = operation.setdefault("responses", {})
                 for status in sorted(statuses):
+                    if status in route.responses:  # the route declares this one itself
+                        continue
                     responses[str(status)] = {
                         "description": WHY[status],
                         "content": {"application/json": {"schema": {"$ref": _REF}}},

@@ -89,3 +89,16 @@ def npz_bytes(arrays: dict[str, np.ndarray]) -> bytes:
     sink = io.BytesIO()
     np.savez(sink, **arrays)
     return sink.getvalue()
+
+
+def sign_in_form(client: Any, name: str, password: str, next_url: str | None = None) -> Any:
+    """Sign in as a browser does: fetch the form (its CSRF cookie and field), then post it."""
+    import re
+
+    page = client.get("/login")
+    token = re.search(r'name="csrf_token" value="([^"]+)"', page.text)
+    assert token, "the sign-in form carries a CSRF token"
+    data = {"name": name, "password": password, "csrf_token": token.group(1)}
+    if next_url is not None:
+        data["next"] = next_url
+    return client.post("/login", data=data, follow_redirects=False)

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import hmac
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
-from app.auth import service
+from app.auth import security, service
+from app.auth.throttle import SignInThrottle
 from app.deps import (
     SESSION_COOKIE,
     ReaderDep,
@@ -15,43 +17,87 @@ from app.deps import (
     SettingsDep,
     WriterSessionDep,
 )
+from app.limits import name_problem
 from app.loops import service as loops_service
 from app.templating import templates
 
 router = APIRouter(tags=["access"])
 
+# Sign-in CSRF: a pre-session token, set as a cookie with the form and sent back in it (double
+# submit). SameSite=Strict keeps another site's form from carrying the cookie, so it cannot sign
+# a visitor into the other site's account here.
+SIGN_IN_CSRF_COOKIE = "expertloop_signin_csrf"
+HTML: dict[str, Any] = {"content": {"text/html": {}}}
+
 
 def _safe_next(target: str) -> str:
     # only same-site paths, so the sign-in form cannot bounce a user to another site
-    return target if target.startswith("/") and not target.startswith("//") else "/"
+    # (browsers read "/\\" as "//"; control characters cannot go into a Location header)
+    same_site = target.startswith("/") and not target.startswith(("//", "/\\"))
+    return target if same_site and name_problem(target, max_chars=2000) is None else "/"
+
+
+def _form(
+    request: Request, next_url: str, error: str | None, status_code: int, **headers: str
+) -> Response:
+    token = security.new_csrf_token()
+    response = templates.TemplateResponse(
+        request,
+        "login.html",
+        {"next_url": _safe_next(next_url), "error": error, "caller": None, "csrf_token": token},
+        status_code=status_code,
+        headers=headers or None,
+    )
+    response.set_cookie(
+        SIGN_IN_CSRF_COOKIE,
+        token,
+        httponly=True,
+        samesite="strict",
+        secure=request.url.scheme == "https",
+        path="/login",
+    )
+    return response
 
 
 @router.get("/login", response_class=HTMLResponse)
 def login_page(request: Request, next: str = "/") -> Response:
     """The sign-in form (public)."""
-    return templates.TemplateResponse(
-        request, "login.html", {"next_url": _safe_next(next), "error": None, "caller": None}
-    )
+    return _form(request, next, None, 200)
 
 
-@router.post("/login")
+@router.post(
+    "/login",
+    responses={
+        303: {"description": "Signed in: on to `next`."},
+        401: {"description": "Name or password is wrong.", **HTML},
+        403: {"description": "The form's CSRF token is missing or wrong.", **HTML},
+        429: {"description": "Too many failed attempts; see Retry-After.", **HTML},
+    },
+)
 def login(
     request: Request,
-    session: WriterSessionDep,
+    session: SessionDep,
     settings: SettingsDep,
     name: Annotated[str, Form()],
     password: Annotated[str, Form()],
     next: Annotated[str, Form()] = "/",
+    csrf_token: Annotated[str, Form()] = "",
 ) -> Response:
     """Check name and password; set the session cookie (public)."""
+    expected = request.cookies.get(SIGN_IN_CSRF_COOKIE, "")
+    if not expected or not hmac.compare_digest(csrf_token.encode(), expected.encode()):
+        return _form(request, next, "The sign-in form had expired. Please sign in again.", 403)
+    throttle: SignInThrottle = request.app.state.sign_in_throttle
+    address = request.client.host if request.client else "unknown"
+    wait_s = throttle.retry_after_s(name=name, address=address)
+    if wait_s:
+        error = f"Too many failed sign-ins. Try again in {wait_s} seconds."
+        return _form(request, next, error, 429, **{"Retry-After": str(wait_s)})
     opened = service.sign_in(session, name=name, password=password, hours=settings.session_hours)
     if opened is None:
-        context: dict[str, Any] = {
-            "next_url": _safe_next(next),
-            "error": "Name or password is wrong.",
-            "caller": None,
-        }
-        return templates.TemplateResponse(request, "login.html", context, status_code=401)
+        throttle.failed(name=name, address=address)
+        return _form(request, next, "Name or password is wrong.", 401)
+    throttle.succeeded(name=name)
     session_id, _csrf = opened
     response = RedirectResponse(_safe_next(next), status_code=303)
     response.set_cookie(
@@ -63,6 +109,7 @@ def login(
         secure=request.url.scheme == "https",
         path="/",
     )
+    response.delete_cookie(SIGN_IN_CSRF_COOKIE, path="/login")
     return response
 
 

@@ -6,6 +6,7 @@ import base64
 import hashlib
 import hmac
 import secrets
+from functools import cache
 
 TOKEN_PREFIX = "el_"
 # scrypt cost: 2**15 takes ~50 ms and 32 MiB on our machines (OWASP's minimum is 2**17 with r=8
@@ -36,6 +37,13 @@ def hash_password(password: str, *, n: int = SCRYPT_N) -> str:
     return f"scrypt${n}${SCRYPT_R}${SCRYPT_P}${b64(salt).decode()}${b64(digest).decode()}"
 
 
+@cache
+def dummy_hash() -> str:
+    """A hash of a random password, checked when there is no real one to check against, so
+    that an unknown user costs the same work as a wrong password."""
+    return hash_password(secrets.token_urlsafe(16))
+
+
 def verify_password(password: str, stored: str | None) -> bool:
     """Constant-time check of a password against a stored hash."""
     if not stored:
@@ -47,7 +55,7 @@ def verify_password(password: str, stored: str | None) -> bool:
     if scheme != "scrypt":
         return False
     digest = hashlib.scrypt(
-        password.encode(),
+        password.encode("utf-8", "surrogatepass"),
         salt=base64.b64decode(salt_b64),
         n=int(n),
         r=int(r),

@@ -9,10 +9,15 @@ from sqlalchemy.orm import Session
 
 from app.auth import security
 from app.auth.models import ApiToken, BrowserSession, User
+from app.db import write_transaction
 from app.errors import Conflict, InvalidInput, NotFound
+from app.limits import name_problem
 from app.models import utcnow
 
 ROLES = ("admin", "uploader", "annotator", "trainer")
+USER_NAME_MAX_CHARS = 100
+# Longer passwords are refused as wrong, after the same work as any other wrong one.
+PASSWORD_MAX_CHARS = 1024
 
 
 def _aware(moment: datetime) -> datetime:
@@ -27,8 +32,9 @@ def create_user(
     unknown = sorted(set(roles) - set(ROLES))
     if unknown or not roles:
         raise InvalidInput(f"roles must be among {list(ROLES)}; got {roles}")
-    if not name or len(name) > 100:
-        raise InvalidInput("user name must be 1 to 100 characters")
+    problem = name_problem(name, max_chars=USER_NAME_MAX_CHARS)
+    if problem:
+        raise InvalidInput(f"the user name {problem}")
     if session.scalar(select(User.id).where(User.name == name)) is not None:
         raise Conflict(f"user '{name}' already exists")
     user = User(
@@ -99,25 +105,34 @@ def user_for_token(session: Session, *, token: str) -> User | None:
 
 
 def sign_in(session: Session, *, name: str, password: str, hours: float) -> tuple[str, str] | None:
-    """Check a password; on success open a browser session and return (session id, csrf)."""
-    user = session.scalar(select(User).where(User.name == name))
-    if (
-        user is None
-        or not user.active
-        or not security.verify_password(password, user.password_hash)
-    ):
+    """Check a password; on success open a browser session and return (session id, csrf).
+
+    The slow hash runs with no transaction open, so a stream of wrong passwords never holds
+    SQLite's write lock; an unknown name, a user without a password and a malformed attempt
+    each cost the same hash as a wrong password, so answer times do not tell names apart.
+    """
+    usable = (
+        name_problem(name, max_chars=USER_NAME_MAX_CHARS) is None
+        and len(password) <= PASSWORD_MAX_CHARS
+    )
+    user = session.scalar(select(User).where(User.name == name)) if usable else None
+    active = user if user is not None and user.active else None
+    user_id, stored = (active.id, active.password_hash) if active else (None, None)
+    session.rollback()  # end the read: nothing is held while hashing
+    matches = security.verify_password(password if usable else "", stored or security.dummy_hash())
+    if not (matches and stored and user_id is not None):
         return None
     session_id = security.new_session_id()
     csrf = security.new_csrf_token()
-    session.add(
-        BrowserSession(
-            user_id=user.id,
-            session_sha256=security.sha256_hex(session_id),
-            csrf_token=csrf,
-            expires_at=utcnow() + timedelta(hours=hours),
+    with write_transaction(session):
+        session.add(
+            BrowserSession(
+                user_id=user_id,
+                session_sha256=security.sha256_hex(session_id),
+                csrf_token=csrf,
+                expires_at=utcnow() + timedelta(hours=hours),
+            )
         )
-    )
-    session.commit()
     return session_id, csrf
 
 

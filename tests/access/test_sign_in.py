@@ -12,7 +12,7 @@ from app.auth.models import ApiToken, BrowserSession, User
 from app.deps import SESSION_COOKIE
 from app.models import utcnow
 from tests.conftest import store_contents
-from tests.helpers import DISCRETE_SPEC
+from tests.helpers import DISCRETE_SPEC, sign_in_form
 
 
 class _Inputs(HTMLParser):
@@ -37,9 +37,7 @@ def parse(html: str) -> _Inputs:
 
 
 def sign_in(client, name="ann", password="correct horse"):
-    return client.post(
-        "/login", data={"name": name, "password": password, "next": "/"}, follow_redirects=False
-    )
+    return sign_in_form(client, name, password, "/")
 
 
 def test_tokens_and_passwords_are_stored_only_as_hashes(app, make_user):
@@ -153,9 +151,5 @@ def test_script_in_titles_and_feature_names_renders_escaped(client, admin, make_
 
 def test_sign_in_redirect_stays_on_this_site(client, make_user):
     make_user("annotator", name="ann", password="correct horse")
-    response = client.post(
-        "/login",
-        data={"name": "ann", "password": "correct horse", "next": "//evil.example/"},
-        follow_redirects=False,
-    )
+    response = sign_in_form(client, "ann", "correct horse", "//evil.example/")
     assert response.headers["location"] == "/"

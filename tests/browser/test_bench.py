@@ -15,6 +15,7 @@ from typing import Any
 
 import numpy as np
 import pytest
+from playwright.sync_api import expect
 from sqlalchemy import select
 
 from app.queue.models import Label, Lease, QueueItem, Skip
@@ -146,11 +147,11 @@ def answer_and_wait(page: Any, keys: list[str]) -> int:
     before = current_item(page)
     for key in keys:
         page.keyboard.press(key)
-    page.wait_for_function(
-        "(before) => { const b = document.getElementById('bench');"
-        " return b.dataset.phase !== 'loading' && b.dataset.itemId !== String(before); }",
-        arg=before,
-    )
+    # Playwright's expect() polls from its own isolated script world: wait_for_function would
+    # evaluate a string in the page, which the page's Content-Security-Policy forbids.
+    bench = page.locator("#bench")
+    expect(bench).not_to_have_attribute("data-item-id", str(before))
+    expect(bench).not_to_have_attribute("data-phase", "loading")
     return before
 
 
@@ -166,9 +167,16 @@ def test_label_by_keyboard_skip_and_unsure(make_loop, make_user, settings, app, 
         base = server.url
         page = browser.new_page(viewport={"width": 1440, "height": 1000})
         page.on("request", lambda request: requests.append(request.url))
+        refusals: list[str] = []  # what the Content-Security-Policy blocked, if anything
+        page.on(
+            "console",
+            lambda message: (
+                refusals.append(message.text) if "Content Security Policy" in message.text else None
+            ),
+        )
         sign_in_and_open_bench(page, base, slug)
         assert page.is_hidden("#learner-box")  # hidden by default (show_learner_fraction 0)
-        page.wait_for_function("document.getElementById('p-left').textContent === '6 states'")
+        expect(page.locator("#p-left")).to_have_text("6 states")
         assert page.locator(".action[aria-pressed=true]").count() == 0
         page.keyboard.press("Tab")  # keyboard focus is visible
         outline = page.evaluate("getComputedStyle(document.activeElement).outlineStyle")
@@ -187,13 +195,14 @@ def test_label_by_keyboard_skip_and_unsure(make_loop, make_user, settings, app, 
         labelled.append(answer_and_wait(page, ["2", "Enter"]))
         skipped = answer_and_wait(page, ["s"])
         unsure = answer_and_wait(page, ["u", "Enter"])
-        page.wait_for_function("document.getElementById('p-today').textContent === '4'")
+        expect(page.locator("#p-today")).to_have_text("4")
         page.keyboard.press(",")
         page.keyboard.press(",")
         page.screenshot(path=str(ARTIFACTS / "bench-discrete-earlier-step.png"), full_page=True)
         still_held = current_item(page)
         page.close()
     assert all(url.startswith(base) for url in requests), "the page loaded something elsewhere"
+    assert refusals == []
     ann = user_id(app, "ann")
     with app.state.session_factory() as session:
         labels = session.scalars(select(Label).where(Label.user_id == ann).order_by(Label.id)).all()

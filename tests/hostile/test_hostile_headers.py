@@ -30,7 +30,7 @@ def test_every_answer_carries_the_security_headers(client, admin, path):
 def test_pages_need_no_inline_script_or_style(client, make_user, admin):
     from html.parser import HTMLParser
 
-    from tests.helpers import DISCRETE_SPEC
+    from tests.helpers import DISCRETE_SPEC, sign_in_form
 
     assert client.post("/api/loops", json=DISCRETE_SPEC, headers=admin).status_code == 201
     client.post("/api/loops/aisle-crossing/rounds", json={"learner_version": "v1"}, headers=admin)
@@ -46,7 +46,7 @@ def test_pages_need_no_inline_script_or_style(client, make_user, admin):
                 self.found.append(tag)
 
     make_user("annotator", name="ann", password="pw-123456")
-    signed = client.post("/login", data={"name": "ann", "password": "pw-123456"})
+    signed = sign_in_form(client, "ann", "pw-123456")
     assert signed.status_code in (200, 303), signed.text[:300]
     for page in ("/login", "/", "/loops/aisle-crossing", "/loops/aisle-crossing/bench"):
         parser = Inline()

@@ -10,7 +10,7 @@ import pytest
 
 from app.deps import SESSION_COOKIE
 from tests.conftest import store_contents
-from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC
+from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC, sign_in_form
 
 Q = "/api/loops/{slug}/queue"
 LEARNER_FIELDS = {"learner_action", "learner_probs", "learner_ensemble", "learner_std"}
@@ -207,9 +207,7 @@ class _Page(HTMLParser):
 
 def browser_session(client, make_user, name="pat"):
     make_user("annotator", name=name, password="a long passphrase")
-    response = client.post(
-        "/login", data={"name": name, "password": "a long passphrase"}, follow_redirects=False
-    )
+    response = sign_in_form(client, name, "a long passphrase")
     assert response.status_code == 303
     return response.cookies[SESSION_COOKIE]
 
