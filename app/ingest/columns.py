@@ -12,6 +12,11 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from app.errors import InvalidInput
+from app.limits import INT64_MAX, shown
+
+# float32 has a 24-bit significand: integers up to 2**24 in magnitude are exact, some beyond are
+# not (IEEE 754-2019, binary32); larger integer features are refused, not rounded silently.
+FLOAT32_EXACT_INTEGER = 2**24
 
 
 @dataclass
@@ -41,19 +46,37 @@ def null_mask(column: pa.ChunkedArray) -> np.ndarray:
 
 
 def integers(column: pa.ChunkedArray, name: str) -> np.ndarray:
-    """A non-null integer column as int64."""
+    """A non-null integer column as int64 (an unsigned value beyond int64 is refused, not
+    wrapped around)."""
     if not pa.types.is_integer(column.type):
-        raise InvalidInput(f"column {name}: expected integers, got {column.type}")
+        raise InvalidInput(f"column {name}: expected integers, got {shown(str(column.type))}")
     nulls = null_mask(column)
     if nulls.any():
         raise fail(_first(nulls), name, "value is missing")
-    return np.asarray(column.to_numpy(), dtype=np.int64)
+    values = column.to_numpy()
+    if values.dtype == np.uint64 and (values > INT64_MAX).any():
+        i = _first(values > INT64_MAX)
+        raise fail(i, name, f"{values[i]} is beyond the 64-bit integer range")
+    return np.asarray(values, dtype=np.int64)
+
+
+def check_exact_in_float32(values: np.ndarray, rows: np.ndarray, name: str) -> None:
+    """Refuse integer values that float32 cannot hold exactly; `rows` maps them to file rows."""
+    inexact = (values > FLOAT32_EXACT_INTEGER) | (values < -FLOAT32_EXACT_INTEGER)
+    if inexact.any():
+        i = _first(inexact)
+        raise fail(
+            int(rows[i]),
+            name,
+            f"the integer {int(values[i])} cannot be stored exactly as float32 "
+            f"(integers up to {FLOAT32_EXACT_INTEGER} in magnitude can); send it as a float",
+        )
 
 
 def floats(column: pa.ChunkedArray, name: str) -> np.ndarray:
     """A non-null, finite numeric column as float64."""
     if not (pa.types.is_floating(column.type) or pa.types.is_integer(column.type)):
-        raise InvalidInput(f"column {name}: expected numbers, got {column.type}")
+        raise InvalidInput(f"column {name}: expected numbers, got {shown(str(column.type))}")
     nulls = null_mask(column)
     if nulls.any():
         raise fail(_first(nulls), name, "value is missing")
@@ -69,7 +92,7 @@ def strings(column: pa.ChunkedArray, name: str, *, allow_null: bool) -> np.ndarr
     if not (pa.types.is_string(column.type) or pa.types.is_large_string(column.type)):
         if pa.types.is_null(column.type) and allow_null:
             return np.full(len(column), None, dtype=object)
-        raise InvalidInput(f"column {name}: expected text, got {column.type}")
+        raise InvalidInput(f"column {name}: expected text, got {shown(str(column.type))}")
     nulls = null_mask(column)
     if nulls.any() and not allow_null:
         raise fail(_first(nulls), name, "value is missing")
@@ -102,7 +125,9 @@ def float_vectors(
     if not _is_list(column.type) or not (
         pa.types.is_floating(column.type.value_type) or pa.types.is_integer(column.type.value_type)
     ):
-        raise InvalidInput(f"column {name}: expected a list of numbers, got {column.type}")
+        raise InvalidInput(
+            f"column {name}: expected a list of numbers, got {shown(str(column.type))}"
+        )
     combined = column.combine_chunks() if column.num_chunks != 1 else column.chunk(0)
     nulls = np.asarray(combined.is_null().to_numpy(zero_copy_only=False), dtype=bool)
     if nulls.any() and not allow_null:
@@ -126,9 +151,13 @@ def float_vectors(
     if flat.null_count:
         row = np.flatnonzero(present)[_first(null_mask(pa.chunked_array([flat]))) // width]
         raise fail(int(rows[row]), name, "a value inside the list is missing")
+    raw = flat.to_numpy(zero_copy_only=False)
+    if raw.dtype.kind in "iu":
+        row_of_value = np.repeat(rows[present], width)
+        check_exact_in_float32(raw, row_of_value, name)
     # Cast to float32 before the finiteness check: a float64 beyond float32's range becomes
     # infinite in storage, so it must be refused too.
-    dense = flat.to_numpy(zero_copy_only=False).astype(np.float32, copy=False).reshape(-1, width)
+    dense = raw.astype(np.float32, copy=False).reshape(-1, width)
     bad_rows = ~np.isfinite(dense).all(axis=1)
     if bad_rows.any():
         row = int(np.flatnonzero(present)[_first(bad_rows)])
@@ -143,7 +172,9 @@ def float_vectors(
 def float_matrices(column: pa.ChunkedArray, name: str, width: int) -> tuple[Vectors, int]:
     """A list-of-lists column (members x width) as float32 arrays; all rows share the member count."""
     if not _is_list(column.type) or not _is_list(column.type.value_type):
-        raise InvalidInput(f"column {name}: expected a list of lists of numbers, got {column.type}")
+        raise InvalidInput(
+            f"column {name}: expected a list of lists of numbers, got {shown(str(column.type))}"
+        )
     combined = column.combine_chunks() if column.num_chunks != 1 else column.chunk(0)
     nulls = np.asarray(combined.is_null().to_numpy(zero_copy_only=False), dtype=bool)
     present = ~nulls

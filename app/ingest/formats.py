@@ -1,22 +1,36 @@
 """Read a rollout file of any accepted format into one Arrow table with the contract's columns.
 
-Parquet is read by pyarrow; .npz by numpy (never unpickling); JSON Lines line by line so that
-errors can name the line. Everything after this module works on the Arrow table only.
+Parquet is read by pyarrow; .npz by numpy, each member's header checked before its array is
+decompressed (never unpickling); JSON Lines line by line so that errors can name the line. Everything after this module works on the Arrow table only.
 """
 
 from __future__ import annotations
 
 import base64
+import codecs
 import json
+import math
 import zipfile
+import zlib
+from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
+import numpy.lib.format as npformat
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from app.errors import InvalidInput
+from app.errors import InvalidInput, TooLarge
 from app.ingest.contract import FORMATS
+from app.limits import shown
+
+DEFAULT_MAX_ARRAY_BYTES = 1024 * 1024 * 1024
+NPZ_MAX_MEMBERS = 5000  # the contract's columns plus one per feature (at most 4096)
+NPY_MAX_HEADER_BYTES = 10_000  # numpy's own default bound on a .npy header
+# dtype kinds an .npz member may have: booleans, integers, floats, fixed-width text and bytes
+NPZ_KINDS = frozenset("biufUS")
+JSON_KIND_DEPTH = 4
 
 
 def detect_format(path: Path, filename: str) -> str:
@@ -36,45 +50,151 @@ def detect_format(path: Path, filename: str) -> str:
         return "npz"
     if head[:1] == b"{":
         return "jsonl"
-    raise InvalidInput(f"cannot tell the format of '{filename}'; use one of {list(FORMATS)}")
+    raise InvalidInput(f"cannot tell the format of '{shown(filename)}'; use one of {list(FORMATS)}")
 
 
-def read_table(path: Path, file_format: str) -> pa.Table:
-    """Read a rollout file into an Arrow table; an unreadable file raises InvalidInput."""
+def read_table(
+    path: Path, file_format: str, *, max_array_bytes: int = DEFAULT_MAX_ARRAY_BYTES
+) -> pa.Table:
+    """Read a rollout file into an Arrow table; an unreadable file raises InvalidInput.
+
+    `max_array_bytes` bounds what the file's arrays may expand to in memory (413 beyond); it is
+    checked from the file's own declarations before anything is decompressed.
+    """
     if path.stat().st_size == 0:
         raise InvalidInput("the file is empty")
     if file_format == "parquet":
-        table = _read_parquet(path)
+        table = _read_parquet(path, max_array_bytes)
     elif file_format == "npz":
-        table = _read_npz(path)
+        table = _read_npz(path, max_array_bytes)
     elif file_format == "jsonl":
         table = _read_jsonl(path)
     else:
-        raise InvalidInput(f"unknown format '{file_format}'; use one of {list(FORMATS)}")
+        raise InvalidInput(f"unknown format '{shown(file_format)}'; use one of {list(FORMATS)}")
     if table.num_rows == 0:
         raise InvalidInput("the file holds no rows")
     return table
 
 
-def _read_parquet(path: Path) -> pa.Table:
+def _too_large(what: str, declared: int, limit: int) -> TooLarge:
+    return TooLarge(
+        f"{what} would expand to {declared} bytes in memory; at most {limit} are accepted"
+    )
+
+
+def _read_parquet(path: Path, max_array_bytes: int) -> pa.Table:
+    # Messages never repeat pyarrow's: they hold the spool file's path and schema dumps. The
+    # file is read as one file (not as a dataset, which refuses repeated column names with a
+    # schema dump), and validation names a repeated column.
     try:
-        return pq.read_table(path, memory_map=True)
+        parquet = pq.ParquetFile(path, memory_map=True)
+        metadata = parquet.metadata
+        declared = _declared_parquet_bytes(metadata)
+        if declared > max_array_bytes:
+            raise _too_large("the Parquet file", declared, max_array_bytes)
+        groups, read_bytes = [], 0
+        for i in range(metadata.num_row_groups):
+            # Dictionary-encoded text can decode to far more than declared: count as we go.
+            groups.append(parquet.read_row_group(i))
+            read_bytes += groups[-1].nbytes
+            if read_bytes > max_array_bytes:
+                raise _too_large("the Parquet file", read_bytes, max_array_bytes)
+        return pa.concat_tables(groups) if groups else parquet.schema_arrow.empty_table()
     except (pa.ArrowException, OSError) as exc:
-        raise InvalidInput(f"not a readable Parquet file (truncated or damaged?): {exc}") from exc
+        raise InvalidInput("not a readable Parquet file (truncated or damaged?)") from exc
 
 
-def _read_npz(path: Path) -> pa.Table:
+# Bytes per value once decoded, by Parquet physical type; text counts its 4-byte offset at least.
+PARQUET_VALUE_BYTES = {"BOOLEAN": 1, "INT32": 4, "FLOAT": 4, "INT64": 8, "DOUBLE": 8, "INT96": 12}
+
+
+def _declared_parquet_bytes(metadata: pq.FileMetaData) -> int:
+    """What the file's columns declare they hold once decoded (encodings such as run lengths
+    make the stored size far smaller): the larger of the uncompressed size and values x width."""
+    total = 0
+    for i in range(metadata.num_row_groups):
+        group = metadata.row_group(i)
+        for j in range(group.num_columns):
+            chunk = group.column(j)
+            width = PARQUET_VALUE_BYTES.get(chunk.physical_type, 4)
+            total += max(chunk.total_uncompressed_size, chunk.num_values * width)
+    return total
+
+
+@dataclass(frozen=True)
+class NpyHeader:
+    """What a .npy member declares about its array, read before it is decompressed."""
+
+    name: str
+    shape: tuple[int, ...]
+    dtype: np.dtype[Any]
+
+    @property
+    def n_bytes(self) -> int:
+        return math.prod(self.shape) * self.dtype.itemsize
+
+
+def npz_headers(archive: zipfile.ZipFile) -> list[NpyHeader]:
+    """Each member's shape and dtype from its .npy header, refusing object, complex and
+    structured dtypes and more than three dimensions; no array data is read."""
+    members = archive.infolist()
+    if len(members) > NPZ_MAX_MEMBERS:
+        raise InvalidInput(f"the .npz file has {len(members)} members; at most {NPZ_MAX_MEMBERS}")
+    headers = []
+    for info in members:
+        name = info.filename.removesuffix(".npy")
+        if not info.filename.endswith(".npy"):
+            raise InvalidInput(f".npz member '{shown(info.filename)}' is not a .npy array")
+        with archive.open(info) as stream:
+            version = npformat.read_magic(stream)
+            if version == (1, 0):
+                shape, _, dtype = npformat.read_array_header_1_0(stream, NPY_MAX_HEADER_BYTES)
+            elif version == (2, 0):
+                shape, _, dtype = npformat.read_array_header_2_0(stream, NPY_MAX_HEADER_BYTES)
+            else:
+                raise InvalidInput(
+                    f".npz array '{shown(name)}': .npy version {version} is not read"
+                )
+        if dtype.kind not in NPZ_KINDS or dtype.names is not None or dtype.subdtype is not None:
+            raise InvalidInput(
+                f".npz array '{shown(name)}' has dtype {shown(str(dtype))}; accepted: booleans, "
+                "integers, floats and fixed-width text or bytes (no objects, complex numbers "
+                "or records)"
+            )
+        if not 1 <= len(shape) <= 3 or any(d < 0 for d in shape):
+            raise InvalidInput(
+                f".npz array '{shown(name)}' has shape {shape}; one to three dimensions accepted"
+            )
+        headers.append(NpyHeader(name, tuple(shape), dtype))
+    return headers
+
+
+def _read_npz(path: Path, max_array_bytes: int) -> pa.Table:
     try:
-        with np.load(path, allow_pickle=False) as archive:
-            arrays = {name: archive[name] for name in archive.files}
-    except (ValueError, OSError, zipfile.BadZipFile, EOFError) as exc:
-        # allow_pickle=False makes object arrays fail here, which is what we want
-        raise InvalidInput(f"not a readable .npz file: {exc}") from exc
-    if not arrays:
-        raise InvalidInput("the .npz file holds no arrays")
-    lengths = {name: len(a) if a.ndim else -1 for name, a in arrays.items()}
-    if len(set(lengths.values())) != 1:
-        raise InvalidInput(f".npz arrays must all have one row per step; lengths: {lengths}")
+        with zipfile.ZipFile(path) as archive:
+            headers = npz_headers(archive)
+            if not headers:
+                raise InvalidInput("the .npz file holds no arrays")
+            lengths = {h.name: h.shape[0] for h in headers}
+            if len(set(lengths.values())) != 1:
+                shown_lengths = shown(", ".join(f"{k}: {v}" for k, v in lengths.items()), 200)
+                raise InvalidInput(
+                    f".npz arrays must all have one row per step; lengths: {shown_lengths}"
+                )
+            declared = sum(h.n_bytes for h in headers)
+            if declared > max_array_bytes:
+                raise _too_large("the .npz file's arrays", declared, max_array_bytes)
+            arrays = {}
+            for header in headers:
+                with archive.open(header.name + ".npy") as stream:
+                    arrays[header.name] = npformat.read_array(
+                        stream, allow_pickle=False, max_header_size=NPY_MAX_HEADER_BYTES
+                    )
+    except (ValueError, OSError, zipfile.BadZipFile, EOFError, zlib.error) as exc:
+        # numpy's messages name internals (and advise unpickling): say what is wrong instead
+        raise InvalidInput(
+            "not a readable .npz file (truncated, damaged or not a zip of .npy)"
+        ) from exc
     columns = {}
     for name, array in arrays.items():
         columns[name] = _npz_column(name, array)
@@ -104,32 +224,99 @@ def _npz_column(name: str, array: np.ndarray) -> pa.Array:
             pa.array(np.ascontiguousarray(array).reshape(-1)), w
         )
         return pa.FixedSizeListArray.from_arrays(inner, m)
-    raise InvalidInput(f".npz array '{name}' has {array.ndim} dimensions; at most 3 are accepted")
+    raise InvalidInput(
+        f".npz array '{shown(name)}' has {array.ndim} dimensions; at most 3 are accepted"
+    )
 
 
 def _read_jsonl(path: Path) -> pa.Table:
-    rows = []
+    rows: list[dict[str, Any]] = []
+    line_of_row: list[int] = []
     with path.open("rb") as fh:
+        if fh.read(2) in (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE):
+            raise InvalidInput("line 1: the file is UTF-16 text; save it as UTF-8")
+        fh.seek(0)
         for line_number, raw in enumerate(fh, start=1):
-            if not raw.strip():
-                continue
-            try:
-                row = json.loads(raw)
-            except json.JSONDecodeError as exc:
-                raise InvalidInput(f"line {line_number}: not valid JSON ({exc.msg})") from exc
-            if not isinstance(row, dict):
-                raise InvalidInput(f"line {line_number}: each line must be a JSON object")
-            if "scene" in row and row["scene"] is not None and not isinstance(row["scene"], str):
-                row["scene"] = json.dumps(row["scene"], separators=(",", ":"), sort_keys=True)
-            if isinstance(row.get("image"), str):
-                try:
-                    row["image"] = base64.b64decode(row["image"], validate=True)
-                except ValueError as exc:
-                    raise InvalidInput(f"line {line_number}, column image: not base64") from exc
-            rows.append(row)
+            row = _jsonl_row(raw, line_number)
+            if row is not None:
+                rows.append(row)
+                line_of_row.append(line_number)
     if not rows:
         raise InvalidInput("the file holds no rows")
+    # Every column any line names, in order of first appearance: Table.from_pylist would take
+    # the first line's keys only and drop a column that line leaves out.
+    names = list(dict.fromkeys(name for row in rows for name in row))
     try:
-        return pa.Table.from_pylist(rows)
-    except (pa.ArrowException, TypeError) as exc:
-        raise InvalidInput(f"a column mixes types across lines: {exc}") from exc
+        return pa.Table.from_pydict({name: [row.get(name) for row in rows] for name in names})
+    except (pa.ArrowException, TypeError, OverflowError) as exc:
+        raise InvalidInput(_mixed_types(rows, line_of_row)) from exc
+
+
+def _jsonl_row(raw: bytes, line_number: int) -> dict[str, Any] | None:
+    """One line as a row, or None for a blank line; every refusal names the line."""
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InvalidInput(
+            f"line {line_number}: not UTF-8 text (byte {exc.start + 1} of the line)"
+        ) from exc
+    if line_number == 1:
+        text = text.removeprefix("\ufeff")  # a UTF-8 byte order mark, as some editors write
+    if not text.strip():
+        return None
+    try:
+        row = json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise InvalidInput(f"line {line_number}: not valid JSON ({exc.msg})") from exc
+    except RecursionError as exc:
+        raise InvalidInput(f"line {line_number}: JSON nested too deeply") from exc
+    except ValueError as exc:  # Python refuses integers of more than 4300 digits
+        raise InvalidInput(f"line {line_number}: a number has too many digits") from exc
+    if not isinstance(row, dict):
+        raise InvalidInput(f"line {line_number}: each line must be a JSON object")
+    if "scene" in row and row["scene"] is not None and not isinstance(row["scene"], str):
+        try:
+            row["scene"] = json.dumps(row["scene"], separators=(",", ":"), sort_keys=True)
+        except (RecursionError, ValueError) as exc:
+            raise InvalidInput(f"line {line_number}, column scene: nested too deeply") from exc
+    if isinstance(row.get("image"), str):
+        try:
+            row["image"] = base64.b64decode(row["image"], validate=True)
+        except ValueError as exc:
+            raise InvalidInput(f"line {line_number}, column image: not base64") from exc
+    return row
+
+
+def _kind(value: Any, depth: int = 0) -> str:
+    """A value's JSON kind, with the kinds inside lists ("list of number")."""
+    if isinstance(value, bool):
+        return "true/false"
+    if isinstance(value, int):
+        return "number" if -(2**63) <= value < 2**63 else "integer beyond 64 bits"
+    if isinstance(value, float):
+        return "number"
+    if isinstance(value, str):
+        return "text"
+    if isinstance(value, dict):
+        return "object"
+    if isinstance(value, list) and depth < JSON_KIND_DEPTH:
+        inner = sorted({_kind(v, depth + 1) for v in value if v is not None})
+        return "list" if not inner else "list of " + " and ".join(inner)
+    return "list"
+
+
+def _mixed_types(rows: list[dict[str, Any]], line_of_row: list[int]) -> str:
+    """Name the first line whose value does not fit its column (Arrow's message names none)."""
+    first: dict[str, tuple[str, int]] = {}
+    for row, line in zip(rows, line_of_row, strict=True):
+        for name, value in row.items():
+            if value is None:
+                continue
+            kind = _kind(value)
+            where = f"line {line}, column {shown(name)}"
+            if "beyond 64 bits" in kind:
+                return f"{where}: an integer beyond the 64-bit range"
+            seen = first.setdefault(name, (kind, line))
+            if kind != seen[0] and not (kind == "list" or seen[0] == "list"):
+                return f"{where}: {kind} where line {seen[1]} has {seen[0]}"
+    return "the lines do not form one table: a column mixes kinds of values across lines"

@@ -7,31 +7,21 @@ from pathlib import Path
 
 from fastapi import APIRouter, Query, UploadFile, status
 from fastapi.responses import FileResponse
-from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
-from app.deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep, WriterSessionDep
+from app.deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep
 from app.errors import NotFound
 from app.ingest import reads, service
 from app.ingest.images import HEAD_BYTES, image_media_type
+from app.ingest.limits import UploadLimits
 from app.ingest.schemas import RolloutList, StateContext, StepList, UploadRead
 from app.ingest.spool import CHUNK_BYTES, spool
 from app.limits import PageOffset, RoundNumber, StepId
 from app.loops import service as loops_service
-from app.loops.models import Loop, Round
 
 router = APIRouter(prefix="/api", tags=["rollouts"])
 
 PAGE_MAX = 1000
-
-
-def _loop_and_round(session: Session, slug: str, number: int) -> tuple[Loop, Round]:
-    loop = loops_service.get_loop(session, slug=slug)
-    rnd = loops_service.get_round(session, loop=loop, number=number)
-    # End the lookups' transaction before the file arrives: it hands the connection back (and on
-    # SQLite the write lock) while a large upload is spooled. The objects stay readable.
-    session.commit()
-    return loop, rnd
 
 
 async def _chunks(upload: UploadFile) -> AsyncIterator[bytes]:
@@ -48,14 +38,13 @@ async def upload_rollouts(
     slug: str,
     number: RoundNumber,
     file: UploadFile,
-    session: WriterSessionDep,
+    session: SessionDep,
     settings: SettingsDep,
     caller: UploaderDep,
 ) -> UploadRead:
     """Upload one rollout file (Parquet, .npz or JSON Lines) into a round (uploader)."""
-    # Store access runs off the event loop: a full connection pool makes it wait, and the loop
-    # must stay free meanwhile to finish the requests that hand connections back.
-    loop, rnd = await run_in_threadpool(_loop_and_round, session, slug, number)
+    # Store work runs in worker threads: the event loop must stay free for other requests.
+    loop, rnd = await run_in_threadpool(service.upload_target, session, slug=slug, number=number)
     path, sha = await spool(_chunks(file), settings.upload_dir, settings.max_upload_bytes)
     try:
         outcome = await run_in_threadpool(
@@ -68,6 +57,11 @@ async def upload_rollouts(
             file_sha256=sha,
             user_id=caller.user_id,
             blob_dir=settings.blob_dir,
+            limits=UploadLimits(
+                max_image_bytes=settings.max_image_bytes,
+                max_scene_bytes=settings.max_scene_bytes,
+                max_array_bytes=settings.max_array_bytes,
+            ),
         )
     finally:
         path.unlink(missing_ok=True)

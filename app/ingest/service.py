@@ -8,15 +8,20 @@ from pathlib import Path
 
 import numpy as np
 from sqlalchemy import insert, select
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
+from app.db import write_transaction
 from app.errors import Conflict
 from app.ingest import bulk
 from app.ingest.columns import Vectors
 from app.ingest.encode import rows_to_bytes
 from app.ingest.formats import detect_format, read_table
+from app.ingest.limits import UploadLimits
 from app.ingest.models import Rollout, Upload
-from app.ingest.validate import ActionSpec, StepBatch, validate
+from app.ingest.validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
+from app.limits import shown
+from app.loops import service as loops_service
 from app.loops.models import Loop, Round
 
 
@@ -36,6 +41,21 @@ def spec_of(loop: Loop) -> ActionSpec:
     return ActionSpec.from_loop(loop.features, loop.action_space)
 
 
+def upload_target(session: Session, *, slug: str, number: int) -> tuple[Loop, Round]:
+    """The loop and open round an upload goes to (404 unknown, 409 closed), read before the
+    file is received; the read transaction ends here, so nothing is held while it arrives."""
+    loop = loops_service.get_loop(session, slug=slug)
+    rnd = loops_service.get_round(session, loop=loop, number=number)
+    _require_open(loop, rnd)
+    session.commit()
+    return loop, rnd
+
+
+def _require_open(loop: Loop, rnd: Round) -> None:
+    if rnd.status == "closed":
+        raise Conflict(f"round {rnd.number} of '{loop.slug}' is closed and takes no uploads")
+
+
 def ingest_file(
     session: Session,
     *,
@@ -46,19 +66,68 @@ def ingest_file(
     file_sha256: str,
     user_id: int | None,
     blob_dir: Path,
+    limits: UploadLimits = DEFAULT_LIMITS,
 ) -> UploadOutcome:
-    """Validate a spooled rollout file and store it all-or-nothing."""
-    if rnd.status == "closed":
-        raise Conflict(f"round {rnd.number} of '{loop.slug}' is closed and takes no uploads")
-    earlier = session.scalar(
-        select(Upload).where(Upload.round_id == rnd.id, Upload.file_sha256 == file_sha256)
-    )
+    """Validate a spooled rollout file and store it all-or-nothing.
+
+    The file is read and validated with no transaction open, so on SQLite no other writer waits
+    for it; only storing takes the write lock. The same file sent twice at once is stored once:
+    on SQLite the second finds the first's upload under the write lock; on PostgreSQL the unique
+    constraint stops the second, which then answers as the repeat it is.
+    """
+    _require_open(loop, rnd)
+    earlier = _earlier_upload(session, rnd, file_sha256)
     if earlier is not None:
         return _outcome_of(session, earlier, duplicate_file=True)
+    session.commit()  # end the read: parsing below may take seconds
 
     file_format = detect_format(path, filename)
-    batch = validate(read_table(path, file_format), spec_of(loop), round_number=rnd.number)
+    table = read_table(path, file_format, max_array_bytes=limits.max_array_bytes)
+    batch = validate(table, spec_of(loop), round_number=rnd.number, limits=limits)
+    del table
     hashes = rollout_hashes(batch)
+    for attempt in range(2):
+        try:
+            with write_transaction(session):
+                earlier = _earlier_upload(session, rnd, file_sha256)
+                if earlier is not None:
+                    return _outcome_of(session, earlier, duplicate_file=True)
+                keep = _new_rollouts(session, loop, batch, hashes)
+                upload = _store(
+                    session,
+                    loop,
+                    rnd,
+                    batch,
+                    hashes,
+                    keep,
+                    filename,
+                    file_format,
+                    file_sha256,
+                    user_id,
+                    blob_dir,
+                )
+            break
+        except IntegrityError:
+            # PostgreSQL: another upload stored this file, or one of its rollouts, while this
+            # one was storing. Look again: the file is then a repeat, a rollout is skipped if
+            # identical and refused if not. SQLite never gets here (one writer at a time).
+            if attempt == 1:
+                raise
+    outcome = _outcome_of(session, upload, duplicate_file=False)
+    outcome.already_stored = [
+        k for k, kept in zip(batch.rollout_keys, keep, strict=True) if not kept
+    ]
+    return outcome
+
+
+def _earlier_upload(session: Session, rnd: Round, file_sha256: str) -> Upload | None:
+    return session.scalar(
+        select(Upload).where(Upload.round_id == rnd.id, Upload.file_sha256 == file_sha256)
+    )
+
+
+def _new_rollouts(session: Session, loop: Loop, batch: StepBatch, hashes: list[str]) -> np.ndarray:
+    """Which of the batch's rollouts are new; a stored key with other content is a conflict."""
     stored = dict(
         session.execute(
             select(Rollout.key, Rollout.content_sha256).where(
@@ -71,33 +140,10 @@ def ingest_file(
     ]
     if clash:
         raise Conflict(
-            f"rollout key '{clash[0]}' is already stored with different steps; "
+            f"rollout key '{shown(clash[0])}' is already stored with different steps; "
             "a rollout key names one run: give this run a new key"
         )
-    keep = np.array([k not in stored for k in batch.rollout_keys], dtype=bool)
-    try:
-        upload = _store(
-            session,
-            loop,
-            rnd,
-            batch,
-            hashes,
-            keep,
-            filename,
-            file_format,
-            file_sha256,
-            user_id,
-            blob_dir,
-        )
-        session.commit()
-    except Exception:
-        session.rollback()
-        raise
-    outcome = _outcome_of(session, upload, duplicate_file=False)
-    outcome.already_stored = [
-        k for k, kept in zip(batch.rollout_keys, keep, strict=True) if not kept
-    ]
-    return outcome
+    return np.array([k not in stored for k in batch.rollout_keys], dtype=bool)
 
 
 def rollout_hashes(batch: StepBatch) -> list[str]:

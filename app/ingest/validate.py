@@ -3,7 +3,6 @@
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass
 from typing import Any
 
@@ -13,10 +12,13 @@ import pyarrow.compute as pc
 
 from app.errors import InvalidInput
 from app.ingest import columns as col
+from app.ingest import limits as upload_limits
 from app.ingest.contract import CONTROL_VALUES, PROBABILITY_SUM_TOLERANCE, REQUIRED_COLUMNS
 from app.ingest.models import CONTROL_EXPERT, CONTROL_LEARNER
+from app.limits import shown
 
 NO_ACTION = -1
+DEFAULT_LIMITS = upload_limits.UploadLimits()
 
 
 @dataclass
@@ -93,21 +95,29 @@ class StepBatch:
         return [slice(int(a), int(b)) for a, b in zip(starts, stops, strict=True)]
 
 
-def validate(table: pa.Table, spec: ActionSpec, *, round_number: int) -> StepBatch:
+def validate(
+    table: pa.Table,
+    spec: ActionSpec,
+    *,
+    round_number: int,
+    limits: upload_limits.UploadLimits = DEFAULT_LIMITS,
+) -> StepBatch:
     """Check a rollout table against the loop spec; return its arrays sorted by (rollout, step)."""
+    repeated = sorted({n for n in table.column_names if table.column_names.count(n) > 1})
+    if repeated:
+        raise InvalidInput(f"column '{shown(repeated[0])}' appears more than once")
+    upload_limits.check_column_names(table.column_names, spec.feature_names)
     names = set(table.column_names)
     missing = [c for c in REQUIRED_COLUMNS if c not in names]
     if missing:
         raise InvalidInput(f"missing required column '{missing[0]}'")
 
     keys = col.strings(table["rollout"], "rollout", allow_null=False)
-    empty_key = keys == ""
-    if empty_key.any():
-        raise col.fail(int(np.flatnonzero(empty_key)[0]), "rollout", "the key is empty")
+    upload_limits.check_names(table["rollout"], "rollout", slash=False)
     step = col.integers(table["step"], "step")
-    if (step < 0).any():
-        raise col.fail(int(np.flatnonzero(step < 0)[0]), "step", "must be 0 or more")
+    upload_limits.check_steps(step)
     time_s = col.floats(table["time_s"], "time_s")
+    upload_limits.check_times(time_s)
     features = _features(table, spec)
     control = _control(table, round_number)
 
@@ -125,9 +135,18 @@ def validate(table: pa.Table, spec: ActionSpec, *, round_number: int) -> StepBat
     pick: np.ndarray | slice = slice(None) if _is_identity(order) else order
     _check_order(rollout_index[pick], step[pick], time_s[pick], order, rollout_keys)
 
-    robot_col = col.strings(table["robot"], "robot", allow_null=True) if "robot" in names else None
-    scene = _scenes(table)
+    robot_col = None
+    if "robot" in names:
+        robot_col = col.strings(table["robot"], "robot", allow_null=True)
+        upload_limits.check_names(table["robot"], "robot", slash=True)
+    scene = (
+        upload_limits.check_scenes(table["scene"], limits.max_scene_bytes)
+        if "scene" in names
+        else None
+    )
     image = _optional_bytes(table, "image")
+    if image is not None:
+        upload_limits.check_images(image, limits.max_image_bytes)
     return StepBatch(
         rollout_keys=[str(k) for k in rollout_keys],
         rollout_index=rollout_index[pick],
@@ -185,7 +204,10 @@ def _features(table: pa.Table, spec: ActionSpec) -> np.ndarray:
         raise InvalidInput(f"missing feature column '{absent[0]}'")
     out = np.empty((table.num_rows, width), dtype=np.float32)
     for j, name in enumerate(spec.feature_names):
-        out[:, j] = col.floats(table[name], name)
+        values = col.floats(table[name], name)
+        if pa.types.is_integer(table[name].type):
+            col.check_exact_in_float32(values, np.arange(len(values)), name)
+        out[:, j] = values
     return out
 
 
@@ -200,7 +222,7 @@ def _control(table: pa.Table, round_number: int) -> np.ndarray:
     known = np.isin(values, np.array([*CONTROL_VALUES, None], dtype=object))
     if not known.all():
         i = int(np.flatnonzero(~known)[0])
-        raise col.fail(i, "control", f"'{values[i]}' is not one of {list(CONTROL_VALUES)}")
+        raise col.fail(i, "control", f"'{shown(values[i])}' is not one of {list(CONTROL_VALUES)}")
     if round_number == 0 and (control != CONTROL_EXPERT).any():
         i = int(np.flatnonzero(control != CONTROL_EXPERT)[0])
         raise col.fail(i, "control", "round 0 holds demonstrations: every step is expert-driven")
@@ -244,7 +266,8 @@ def _action(table: pa.Table, name: str, spec: ActionSpec) -> np.ndarray | col.Ve
             raise col.fail(
                 i,
                 name,
-                f"unknown action '{column[i].as_py()}' (known: {', '.join(spec.action_names)})",
+                f"unknown action '{shown(column[i].as_py())}' "
+                f"(known: {', '.join(spec.action_names)})",
             )
         return np.asarray(found.fill_null(NO_ACTION).to_numpy(), dtype=np.int32)
     raise InvalidInput(f"column {name}: expected action names or indexes, got {column.type}")
@@ -339,7 +362,9 @@ def _check_order(
     if duplicate.any():
         i = int(np.flatnonzero(duplicate)[0]) + 1
         raise col.fail(
-            int(order[i]), "step", f"rollout '{keys[rollout_index[i]]}' has step {step[i]} twice"
+            int(order[i]),
+            "step",
+            f"rollout '{shown(keys[rollout_index[i]])}' has step {step[i]} twice",
         )
     backwards = same_rollout & (time_s[1:] <= time_s[:-1])
     if backwards.any():
@@ -347,26 +372,9 @@ def _check_order(
         raise col.fail(
             int(order[i]),
             "time_s",
-            f"rollout '{keys[rollout_index[i]]}' step {step[i]} has time {time_s[i]:g} s, "
+            f"rollout '{shown(keys[rollout_index[i]])}' step {step[i]} has time {time_s[i]:g} s, "
             f"not after step {step[i - 1]} at {time_s[i - 1]:g} s",
         )
-
-
-def _scenes(table: pa.Table) -> np.ndarray | None:
-    """Scene descriptions must be JSON objects; they are optional and small, so parse each."""
-    if "scene" not in table.column_names:
-        return None
-    scenes = col.strings(table["scene"], "scene", allow_null=True)
-    for i, text in enumerate(scenes):
-        if text is None:
-            continue
-        try:
-            parsed = json.loads(text)
-        except json.JSONDecodeError as exc:
-            raise col.fail(i, "scene", f"not valid JSON ({exc.msg})") from exc
-        if not isinstance(parsed, dict):
-            raise col.fail(i, "scene", "must be a JSON object")
-    return scenes
 
 
 def _optional_bytes(table: pa.Table, name: str) -> np.ndarray | None:
@@ -376,7 +384,7 @@ def _optional_bytes(table: pa.Table, name: str) -> np.ndarray | None:
     if not (pa.types.is_binary(column.type) or pa.types.is_large_binary(column.type)):
         if pa.types.is_null(column.type):
             return None
-        raise InvalidInput(f"column {name}: expected bytes, got {column.type}")
+        raise InvalidInput(f"column {name}: expected bytes, got {shown(str(column.type))}")
     return np.asarray(column.to_numpy(zero_copy_only=False), dtype=object)
 
 

@@ -131,7 +131,7 @@ def test_continuous_loop_upload_with_ensemble_and_std(client, admin, uploader):
         "expert_action": [None, None, [0.2, 0.0]],
         "scene": [json.dumps({"agents": [{"kind": "pedestrian", "x": 3, "y": 1, "heading": 0}]})]
         * 3,
-        "image": [b"\x89PNG fake", None, None],
+        "image": [b"\x89PNG\r\n\x1a\n fake", None, None],
     }
     url = "/api/loops/aisle-speed/rounds/{n}/rollouts"
     response = upload(client, uploader, parquet_bytes(rows), url=url)
@@ -143,7 +143,7 @@ def test_continuous_loop_upload_with_ensemble_and_std(client, admin, uploader):
     assert steps[0]["scene"]["agents"][0]["kind"] == "pedestrian"
     assert steps[2]["control"] == "expert" and steps[0]["expert_action"] is None
     image = client.get(f"/api/images/{steps[0]['image_sha256']}", headers=admin)
-    assert image.content == b"\x89PNG fake"
+    assert image.content == b"\x89PNG\r\n\x1a\n fake"
 
 
 def test_state_with_context(client, loop, uploader, admin):

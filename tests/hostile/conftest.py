@@ -31,6 +31,14 @@ def row_counts(engine: Engine) -> dict[str, int]:
 
 
 @pytest.fixture
+def settings(settings):
+    """The suite's settings with small upload limits, so the corpus stays small and quick."""
+    return settings.model_copy(
+        update={"max_image_bytes": 4096, "max_scene_bytes": 8192, "max_array_bytes": 8 << 20}
+    )
+
+
+@pytest.fixture
 def loops(client, admin) -> dict[str, str]:
     """A discrete and a continuous loop, each with round 1 open."""
     for spec in (DISCRETE_SPEC, CONTINUOUS_SPEC):
