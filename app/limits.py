@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import re
 import unicodedata
+from datetime import UTC, datetime
 from typing import Annotated
 
 from fastapi import Path, Query
@@ -87,3 +88,12 @@ class RequestBody(BaseModel):
     numbers only (JSON's non-standard Infinity and NaN are refused), no unknown fields."""
 
     model_config = ConfigDict(strict=True, allow_inf_nan=False, extra="forbid")
+
+
+def _as_utc(moment: datetime) -> datetime:
+    # SQLite hands stored timestamps back without a zone; everything we store is UTC.
+    return moment if moment.tzinfo else moment.replace(tzinfo=UTC)
+
+
+# A timestamp in an answer: always with its zone, whichever backend it was read from.
+UtcDatetime = Annotated[datetime, AfterValidator(_as_utc)]

@@ -33,6 +33,7 @@ class ErrorRead(BaseModel):
 
 
 WHY = {
+    400: "The body could not be parsed (not JSON, or not the declared form encoding).",
     401: "No valid credentials were sent.",
     403: "The credentials lack the role, or the CSRF token is missing or wrong.",
     404: "A named loop, round, rollout, state, job, version or image does not exist.",
@@ -45,21 +46,20 @@ WHY = {
 _REF = "#/components/schemas/ErrorRead"
 
 
+CHANGES = frozenset({"POST", "PUT", "PATCH", "DELETE"})
+
+
 def _statuses(route: APIRoute) -> set[int]:
     found = {503}
-    dependencies = route.dependant.dependencies
-    if any(isinstance(d.call, Roles) for d in _walk(dependencies)):
+    if any(isinstance(d.call, Roles) for d in _walk(route.dependant.dependencies)):
         found |= {401, 403}
     if route.dependant.path_params:
         found.add(404)
-    if route.dependant.path_params or route.dependant.query_params or route.body_field:
+    if route.dependant.path_params or route.dependant.query_params:
         found.add(422)
-    if route.body_field is not None or (route.methods or set()) & {
-        "POST",
-        "PUT",
-        "PATCH",
-        "DELETE",
-    }:
+    if route.body_field is not None:
+        found |= {400, 422}
+    if (route.methods or set()) & CHANGES:
         found |= {409, 422}
     return found
 

@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
-from datetime import datetime
 from typing import Any
 
 from pydantic import BaseModel
+
+from app.limits import UtcDatetime
 
 
 class UploadRead(BaseModel):
@@ -21,7 +22,7 @@ class RolloutRead(BaseModel):
     round: int
     robot: str | None
     steps: int
-    created_at: datetime
+    created_at: UtcDatetime
 
 
 class RolloutList(BaseModel):

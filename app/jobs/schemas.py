@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
-from datetime import datetime
 from typing import Any
 
 from pydantic import BaseModel, ConfigDict
+
+from app.limits import UtcDatetime
 
 
 class JobRead(BaseModel):
@@ -18,6 +19,6 @@ class JobRead(BaseModel):
     message: str | None
     result: dict[str, Any] | None
     attempts: int
-    created_at: datetime
-    started_at: datetime | None
-    finished_at: datetime | None
+    created_at: UtcDatetime
+    started_at: UtcDatetime | None
+    finished_at: UtcDatetime | None

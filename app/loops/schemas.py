@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-from datetime import datetime
 from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from app.ingest.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
-from app.limits import PlainText, RequestBody
+from app.limits import PlainText, RequestBody, UtcDatetime
 
 NAME_PATTERN = r"^[a-z][a-z0-9_]{0,62}$"
 SLUG_PATTERN = r"^[a-z0-9][a-z0-9-]{1,62}$"
@@ -131,7 +130,7 @@ class LoopRead(BaseModel):
     features: list[FeatureSpec]
     action_space: ActionSpace
     settings: LoopSettings
-    created_at: datetime
+    created_at: UtcDatetime
 
 
 class LoopList(BaseModel):
@@ -147,8 +146,8 @@ class RoundRead(BaseModel):
     number: int
     learner_version: str | None
     status: str
-    opened_at: datetime
-    closed_at: datetime | None
+    opened_at: UtcDatetime
+    closed_at: UtcDatetime | None
     rollouts: int
     steps: int
 

@@ -2,12 +2,11 @@
 
 from __future__ import annotations
 
-from datetime import datetime
 from typing import Any, Literal
 
 from pydantic import BaseModel, Field
 
-from app.limits import INT32_MAX, PlainText, RequestBody
+from app.limits import INT32_MAX, PlainText, RequestBody, UtcDatetime
 
 
 class BenchStep(BaseModel):
@@ -27,7 +26,7 @@ class BenchItem(BaseModel):
     """A claimed item: the state, the preceding steps, and the learner's action only if shown."""
 
     item_id: int
-    lease_expires_at: datetime
+    lease_expires_at: UtcDatetime
     lease_seconds: int
     state: BenchStep
     context: list[BenchStep]
@@ -45,7 +44,7 @@ class ClaimRead(BaseModel):
 
 class LeaseRead(BaseModel):
     item_id: int
-    lease_expires_at: datetime
+    lease_expires_at: UtcDatetime
 
 
 class SkipRead(BaseModel):
@@ -74,5 +73,5 @@ class LabelRead(BaseModel):
     learner_shown: bool
     span_labels: int
     seconds_spent: float | None
-    created_at: datetime
+    created_at: UtcDatetime
     repeated: bool

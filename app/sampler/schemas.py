@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-from datetime import datetime
 from typing import Any
 
 from pydantic import BaseModel, Field
 
 from app.jobs.schemas import JobRead
-from app.limits import RequestBody
+from app.limits import RequestBody, UtcDatetime
 
 
 class RankingRequest(RequestBody):
@@ -45,7 +44,7 @@ class SelectionRead(BaseModel):
     n_candidates: int
     n_training: int
     params: dict[str, Any]
-    created_at: datetime
+    created_at: UtcDatetime
     items: list[SelectedStateRead]
     total: int
     offset: int

@@ -22,7 +22,10 @@ router = APIRouter(prefix="/api/loops", tags=["snapshots"])
 
 
 @router.post(
-    "/{slug}/snapshots", response_model=SnapshotCreated, status_code=status.HTTP_201_CREATED
+    "/{slug}/snapshots",
+    response_model=SnapshotCreated,
+    status_code=status.HTTP_201_CREATED,
+    responses={200: {"model": SnapshotCreated, "description": "An identical version existed."}},
 )
 def create_snapshot(
     slug: str,

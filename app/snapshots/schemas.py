@@ -2,12 +2,11 @@
 
 from __future__ import annotations
 
-from datetime import datetime
 from typing import Any, Literal
 
 from pydantic import BaseModel, Field
 
-from app.limits import INT32_MAX, RequestBody
+from app.limits import INT32_MAX, RequestBody, UtcDatetime
 from app.snapshots.models import Snapshot
 
 ExportFormat = Literal["parquet", "npz", "jsonl"]
@@ -27,7 +26,7 @@ class SnapshotRead(BaseModel):
     up_to_round: int
     row_count: int
     content_sha256: str
-    created_at: datetime
+    created_at: UtcDatetime
     created_by: str | None
 
     @classmethod

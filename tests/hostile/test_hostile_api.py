@@ -143,3 +143,10 @@ def test_loop_specs_with_non_finite_or_loose_values_are_422(refused, client, adm
         422,
         names,
     )
+
+
+def test_timestamps_carry_their_zone_on_every_backend(client, loops, admin):
+    loop = client.get("/api/loops/aisle-crossing", headers=admin).json()
+    rounds = client.get("/api/loops/aisle-crossing/rounds", headers=admin).json()["items"]
+    for stamp in (loop["created_at"], rounds[-1]["opened_at"]):
+        assert stamp.endswith(("Z", "+00:00")), stamp
