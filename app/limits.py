@@ -28,7 +28,7 @@ SHOWN_MAX_CHARS = 80
 
 # Characters refused in names: C0 and C1 controls (NUL included), line and paragraph separators,
 # and the Unicode bidirectional controls that make text display in another order than it is
-# stored (Unicode Technical Standard #39 and the "Trojan Source" advisory, CVE-2021-42574).
+# stored (docs/references.md, "Hostile input").
 FORBIDDEN_CHARACTERS = (
     "\x00-\x1f\x7f-\x9f\u2028\u2029\u200e\u200f\u061c\u202a-\u202e\u2066-\u2069\ufeff"
 )

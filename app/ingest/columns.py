@@ -15,7 +15,7 @@ from app.errors import InvalidInput
 from app.limits import INT64_MAX, shown
 
 # float32 has a 24-bit significand: integers up to 2**24 in magnitude are exact, some beyond are
-# not (IEEE 754-2019, binary32); larger integer features are refused, not rounded silently.
+# not (docs/references.md, "Hostile input"); larger integers are refused, not rounded silently.
 FLOAT32_EXACT_INTEGER = 2**24
 
 

@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-# Magic numbers: PNG (ISO/IEC 15948, the 8-byte signature), JPEG (ISO/IEC 10918-1, start of image
-# followed by a marker), WebP (a RIFF container whose form type is "WEBP").
+# Magic numbers (docs/references.md, "Hostile input"): PNG's 8-byte signature, JPEG's start of
+# image followed by a marker, WebP's RIFF container whose form type is "WEBP".
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 JPEG_SIGNATURE = b"\xff\xd8\xff"
 IMAGE_TYPES = ("image/png", "image/jpeg", "image/webp")

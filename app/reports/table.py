@@ -69,8 +69,8 @@ def rows_csv(rows: list[RoundReportRow]) -> str:
     """CSV text with a header of the row's field names; empty cells for ``None``.
 
     Floats are written with ``repr`` precision so the file round-trips to the JSON values.
-    Text that a spreadsheet could run as a formula gets a leading apostrophe (OWASP guidance on
-    CSV injection): text starting with ``= + - @``, a tab or a carriage return, or with one of
+    Text that a spreadsheet could run as a formula gets a leading apostrophe (docs/references.md,
+    "Hostile input"): text starting with ``= + - @``, a tab or a carriage return, or with one of
     ``= + - @`` after leading white space.
     """
     sink = io.StringIO()

@@ -67,6 +67,7 @@ def deep(n: int) -> str:
     return "[" * n + "]" * n
 
 
+# Image signatures and the float32 bound: docs/references.md, "Hostile input".
 CASES: list[tuple[str, str, Callable[[], bytes], int, str]] = [
     # JSON Lines: encodings, nesting, numbers, kinds
     (

@@ -60,6 +60,7 @@ def test_pages_need_no_inline_script_or_style(client, make_user, admin):
     ["=1+1", "+1", "-1", "@SUM(A1)", "\t=1", "\r=1", " =1", "  @x", "\n+1", " \t-2"],
 )
 def test_csv_guard_covers_every_formula_lead(version):
+    # the leads: docs/references.md, "Hostile input" (OWASP's list, and after white space)
     counts = {
         name: 0
         for name, field in RoundReportRow.model_fields.items()

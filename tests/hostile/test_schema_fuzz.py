@@ -51,6 +51,7 @@ schema = schemathesis.pytest.from_fixture("api_schema")
     max_examples=EXAMPLES_PER_OPERATION,
     deadline=None,
     derandomize=True,
+    database=None,  # no .hypothesis folder in the checkout
     suppress_health_check=list(HealthCheck),
 )
 def test_api_answers_match_the_schema(case, admin, annotator):
