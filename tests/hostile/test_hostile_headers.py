@@ -87,3 +87,39 @@ def test_validation_errors_match_the_declared_error_shape(client, admin):
     assert "413" in upload and "409" in upload
     answer = client.get("/api/jobs/abc", headers=admin).json()
     assert isinstance(answer["detail"], str) and answer["errors"][0]["loc"] == ["path", "job_id"]
+
+
+def test_images_are_served_with_their_own_type_and_old_blobs_only_as_downloads(
+    client, settings, admin, make_user
+):
+    import base64
+    import hashlib
+    import json
+
+    from tests.helpers import DISCRETE_SPEC
+
+    assert client.post("/api/loops", json=DISCRETE_SPEC, headers=admin).status_code == 201
+    client.post("/api/loops/aisle-crossing/rounds", json={"learner_version": "v1"}, headers=admin)
+    uploader = make_user("uploader", name="fleet")
+    annotator = make_user("annotator", name="ann")
+    webp = b"RIFF\x10\x00\x00\x00WEBPVP8 " + b"\x00" * 16
+    row = {"rollout": "r0", "step": 0, "time_s": 0.0, "features": [1.0, 2.0, 3.0]}
+    row["image"] = base64.b64encode(webp).decode()
+    sent = client.post(
+        "/api/loops/aisle-crossing/rounds/1/rollouts",
+        files={"file": ("a.jsonl", json.dumps(row).encode())},
+        headers=uploader,
+    )
+    assert sent.status_code == 201, sent.text
+    image = client.get(f"/api/images/{hashlib.sha256(webp).hexdigest()}", headers=annotator)
+    assert image.headers["content-type"] == "image/webp"
+    assert image.headers["x-content-type-options"] == "nosniff"
+    # a blob stored before images were checked (here: HTML) is never offered as a page
+    html = b"<html><script>alert(1)</script></html>"
+    digest = hashlib.sha256(html).hexdigest()
+    (settings.blob_dir / digest[:2]).mkdir(parents=True, exist_ok=True)
+    (settings.blob_dir / digest[:2] / digest).write_bytes(html)
+    old = client.get(f"/api/images/{digest}", headers=annotator)
+    assert old.headers["content-type"] == "application/octet-stream"
+    assert old.headers["content-disposition"] == "attachment"
+    assert old.headers["x-content-type-options"] == "nosniff"
