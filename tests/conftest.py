@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import os
 import shutil
+import tempfile
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any
@@ -22,6 +23,11 @@ from app.main import create_app
 from app.migrations_state import upgrade, upgrade_empty
 
 PG_URL = os.environ.get("EXPERTLOOP_TEST_DATABASE_URL")
+# Hypothesis (under schemathesis) keeps caches in ./.hypothesis unless told otherwise: keep them
+# out of the checkout, whose every file tests/docs reads.
+os.environ.setdefault(
+    "HYPOTHESIS_STORAGE_DIRECTORY", os.path.join(tempfile.gettempdir(), "expertloop-hypothesis")
+)
 
 
 def pytest_report_header() -> str:
