@@ -7,6 +7,7 @@ from typing import Annotated, Literal
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from app.ingest.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
+from app.ingest.logs.mapping import LogMapping, check_against_loop
 from app.limits import PlainText, RequestBody, UtcDatetime
 
 NAME_PATTERN = r"^[a-z][a-z0-9_]{0,62}$"
@@ -99,6 +100,7 @@ class LoopCreate(RequestBody):
     features: list[FeatureSpec] = Field(min_length=1, max_length=4096)
     action_space: ActionSpace
     settings: LoopSettings = Field(default_factory=LoopSettings)
+    log_mapping: LogMapping | None = None
 
     @field_validator("features")
     @classmethod
@@ -119,6 +121,12 @@ class LoopCreate(RequestBody):
                 raise ValueError("settings.continuous_tolerance needs a continuous action space")
             if len(tol) != len(self.action_space.dimensions) or min(tol) <= 0:
                 raise ValueError("settings.continuous_tolerance: one positive value per dimension")
+        if self.log_mapping is not None:
+            check_against_loop(
+                self.log_mapping,
+                [f.model_dump() for f in self.features],
+                self.action_space.model_dump(),
+            )
         return self
 
 
@@ -130,6 +138,7 @@ class LoopRead(BaseModel):
     features: list[FeatureSpec]
     action_space: ActionSpace
     settings: LoopSettings
+    log_mapping: LogMapping | None = None
     created_at: UtcDatetime
 
 

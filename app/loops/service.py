@@ -25,6 +25,7 @@ def create_loop(session: Session, *, spec: LoopCreate, user_id: int | None) -> L
         features=[f.model_dump() for f in spec.features],
         action_space=spec.action_space.model_dump(),
         settings=spec.settings.model_dump(),
+        log_mapping=None if spec.log_mapping is None else spec.log_mapping.model_dump(),
         created_by=user_id,
     )
     session.add(loop)
