@@ -27,6 +27,10 @@ class Settings(BaseSettings):
     max_upload_bytes: int = Field(
         default=512 * 1024 * 1024, description="Largest rollout file accepted (413 above)."
     )
+    max_unpacked_bytes: int = Field(
+        default=4 * 1024**3,
+        description="Largest ROS 2 bag folder unpacked from a .zip or .tar upload (413 above).",
+    )
     job_mode: Literal["thread", "worker", "off"] = Field(
         default="thread",
         description="'thread': background jobs run inside the server; 'worker': only in "

@@ -35,9 +35,20 @@ def _first(mask: np.ndarray | np.bool_) -> int:
     return int(np.flatnonzero(mask)[0])
 
 
-def fail(row: int, column: str, message: str) -> InvalidInput:
+class CellError(InvalidInput):
+    """A refusal of one value: keeps the row and column so a reader of a file without rows
+    (a robot log) can name its own place instead (topic, field and time)."""
+
+    def __init__(self, row: int, column: str, reason: str) -> None:
+        super().__init__(f"row {row + 1}, column {column}: {reason}")
+        self.row = row
+        self.column = column
+        self.reason = reason
+
+
+def fail(row: int, column: str, message: str) -> CellError:
     """An InvalidInput naming a 0-based row index as the file's 1-based row."""
-    return InvalidInput(f"row {row + 1}, column {column}: {message}")
+    return CellError(row, column, message)
 
 
 def null_mask(column: pa.ChunkedArray) -> np.ndarray:

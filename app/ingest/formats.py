@@ -23,6 +23,7 @@ import pyarrow.parquet as pq
 
 from app.errors import InvalidInput, TooLarge
 from app.ingest.contract import FORMATS
+from app.ingest.logs.archive import BAG_FORMATS, bag_format
 from app.limits import shown
 
 DEFAULT_MAX_ARRAY_BYTES = 1024 * 1024 * 1024
@@ -35,6 +36,9 @@ JSON_KIND_DEPTH = 4
 
 def detect_format(path: Path, filename: str) -> str:
     """The file's format from its name, or from its first bytes when the name does not say."""
+    log_format = bag_format(path, filename)
+    if log_format is not None:
+        return log_format
     lower = filename.lower()
     if lower.endswith(".parquet") or lower.endswith(".pq"):
         return "parquet"
@@ -50,7 +54,10 @@ def detect_format(path: Path, filename: str) -> str:
         return "npz"
     if head[:1] == b"{":
         return "jsonl"
-    raise InvalidInput(f"cannot tell the format of '{shown(filename)}'; use one of {list(FORMATS)}")
+    raise InvalidInput(
+        f"cannot tell the format of '{shown(filename)}'; use one of {list(FORMATS)} "
+        f"or a robot log ({', '.join(BAG_FORMATS)})"
+    )
 
 
 def read_table(

@@ -42,7 +42,8 @@ async def upload_rollouts(
     settings: SettingsDep,
     caller: UploaderDep,
 ) -> UploadRead:
-    """Upload one rollout file (Parquet, .npz or JSON Lines) into a round (uploader)."""
+    """Upload one rollout file (Parquet, .npz or JSON Lines) or robot log (ROS bag) into a
+    round (uploader)."""
     # Store work runs in worker threads: the event loop must stay free for other requests.
     loop, rnd = await run_in_threadpool(service.upload_target, session, slug=slug, number=number)
     path, sha = await spool(_chunks(file), settings.upload_dir, settings.max_upload_bytes)
@@ -62,6 +63,7 @@ async def upload_rollouts(
                 max_scene_bytes=settings.max_scene_bytes,
                 max_array_bytes=settings.max_array_bytes,
             ),
+            max_unpacked_bytes=settings.max_unpacked_bytes,
         )
     finally:
         path.unlink(missing_ok=True)

@@ -18,6 +18,8 @@ from app.ingest.columns import Vectors
 from app.ingest.encode import rows_to_bytes
 from app.ingest.formats import detect_format, read_table
 from app.ingest.limits import UploadLimits
+from app.ingest.logs.archive import BAG_FORMATS, DEFAULT_MAX_UNPACKED_BYTES
+from app.ingest.logs.service import loop_mapping, validate_log
 from app.ingest.models import Rollout, Upload
 from app.ingest.validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
 from app.limits import shown
@@ -67,8 +69,9 @@ def ingest_file(
     user_id: int | None,
     blob_dir: Path,
     limits: UploadLimits = DEFAULT_LIMITS,
+    max_unpacked_bytes: int = DEFAULT_MAX_UNPACKED_BYTES,
 ) -> UploadOutcome:
-    """Validate a spooled rollout file and store it all-or-nothing.
+    """Validate a spooled rollout file or robot log and store it all-or-nothing.
 
     The file is read and validated with no transaction open, so on SQLite no other writer waits
     for it; only storing takes the write lock. The same file sent twice at once is stored once:
@@ -82,9 +85,22 @@ def ingest_file(
     session.commit()  # end the read: parsing below may take seconds
 
     file_format = detect_format(path, filename)
-    table = read_table(path, file_format, max_array_bytes=limits.max_array_bytes)
-    batch = validate(table, spec_of(loop), round_number=rnd.number, limits=limits)
-    del table
+    if file_format in BAG_FORMATS:
+        batch = validate_log(
+            path,
+            file_format=file_format,
+            filename=filename,
+            mapping=loop_mapping(loop.slug, loop.log_mapping),
+            spec=spec_of(loop),
+            round_number=rnd.number,
+            spool_dir=path.parent,
+            max_unpacked_bytes=max_unpacked_bytes,
+            limits=limits,
+        )
+    else:
+        table = read_table(path, file_format, max_array_bytes=limits.max_array_bytes)
+        batch = validate(table, spec_of(loop), round_number=rnd.number, limits=limits)
+        del table
     hashes = rollout_hashes(batch)
     for attempt in range(2):
         try:

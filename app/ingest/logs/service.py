@@ -1,0 +1,95 @@
+"""A robot log upload as a validated StepBatch: unpack, read through the loop's log mapping,
+and validate with the rules every rollout file meets, naming topic, field and time."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from app.errors import InvalidInput
+from app.ingest.columns import CellError
+from app.ingest.logs.archive import bag_path, log_stem
+from app.ingest.logs.mapping import LogMapping
+from app.ingest.logs.reader import describe_time, open_bag
+from app.ingest.limits import UploadLimits
+from app.ingest.logs.steps import MappedLog, map_log
+from app.ingest.validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
+
+
+def loop_mapping(slug: str, log_mapping: dict[str, Any] | None) -> LogMapping:
+    """The loop's log mapping, or a refusal saying the loop has none."""
+    if not log_mapping:
+        raise InvalidInput(
+            f"loop '{slug}' has no log mapping, so it cannot read robot logs; give the loop a "
+            "`log_mapping` (README, 'Robot logs') or upload Parquet, .npz or JSON Lines"
+        )
+    return LogMapping.model_validate(log_mapping)
+
+
+def default_control(round_number: int) -> str:
+    """Who drove where the mapping names no mode topic: the expert in round 0, else the learner."""
+    return "expert" if round_number == 0 else "learner"
+
+
+def validate_log(
+    path: Path,
+    *,
+    file_format: str,
+    filename: str,
+    mapping: LogMapping,
+    spec: ActionSpec,
+    round_number: int,
+    spool_dir: Path,
+    max_unpacked_bytes: int,
+    limits: UploadLimits = DEFAULT_LIMITS,
+) -> StepBatch:
+    """Read a bag through the mapping and validate it like any rollout file."""
+    with (
+        bag_path(path, file_format, spool_dir, max_unpacked_bytes) as bag_file,
+        open_bag(bag_file) as bag,
+    ):
+        mapped = map_log(
+            bag,
+            mapping,
+            stem=log_stem(filename),
+            default_control=default_control(round_number),
+        )
+    return check_mapped(mapped, spec, round_number=round_number, limits=limits)
+
+
+def check_mapped(
+    mapped: MappedLog,
+    spec: ActionSpec,
+    *,
+    round_number: int,
+    limits: UploadLimits = DEFAULT_LIMITS,
+) -> StepBatch:
+    """Validate a mapped log with the rules of every rollout file, naming the log's places."""
+    if mapped.table is None:
+        dropped = "; ".join(f"{n} steps without {s}" for s, n in mapped.dropped.items())
+        short = mapped.short_segments
+        raise InvalidInput(
+            f"the log maps to no steps ({mapped.grid_steps} on the grid"
+            + (f", dropped: {dropped}" if dropped else "")
+            + (f", {short} segments shorter than min_steps" if short else "")
+            + ")"
+        )
+    try:
+        return validate(mapped.table, spec, round_number=round_number, limits=limits)
+    except CellError as exc:
+        raise InvalidInput(_place(exc, mapped)) from exc
+    except InvalidInput as exc:
+        raise InvalidInput(f"robot log: {exc.message}") from exc
+
+
+def _place(error: CellError, mapped: MappedLog) -> str:
+    """A row refusal restated as the log's topic, field and time."""
+    source = mapped.column_sources.get(error.column, error.column)
+    # a continuous action's refusal starts with its dimension: name that dimension's source
+    dimension = error.reason.split(" = ", 1)[0]
+    source = mapped.column_sources.get(f"{error.column}:{dimension}", source)
+    when = describe_time(int(mapped.row_time_ns[error.row]), mapped.start_ns)
+    return (
+        f"{source}, at {when}, rollout '{mapped.row_key[error.row]}': "
+        f"{error.column}: {error.reason}"
+    )

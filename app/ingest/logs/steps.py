@@ -1,0 +1,438 @@
+"""From a bag's mapped topics to the rollout file contract's columns: the step grid, each
+source resampled onto it, missing values dropped or refused, rollouts split, images taken.
+
+The result is the same Arrow table the Parquet, .npz and JSON Lines readers give, so validation
+and storage are the ones every upload goes through.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+
+from app.errors import InvalidInput
+from app.ingest.logs import resample
+from app.ingest.logs.images import frame_bytes
+from app.ingest.logs.mapping import (
+    ContinuousActionSource,
+    DiscreteActionSource,
+    FieldSource,
+    LogMapping,
+)
+from app.ingest.logs.reader import NS, Bag, TopicSeries, describe_time
+
+MAX_STEPS = 20_000_000  # a bag mapped to more steps than this is refused (bounded memory)
+
+
+@dataclass
+class MappedLog:
+    """A bag as contract columns, with where each row and column came from (for messages)."""
+
+    table: pa.Table | None
+    row_time_ns: np.ndarray
+    row_key: list[str]
+    column_sources: dict[str, str]
+    start_ns: int
+    grid_steps: int = 0
+    dropped: dict[str, int] = field(default_factory=dict)
+    absent: dict[str, int] = field(default_factory=dict)
+    short_segments: int = 0
+
+
+@dataclass
+class _Resampled:
+    values: np.ndarray  # (grid, ...) float64, or object for text
+    fresh: np.ndarray  # (grid,) bool: a value no older than the max age
+    age_ns: np.ndarray
+
+
+def map_log(
+    bag: Bag, mapping: LogMapping, *, stem: str, default_control: str, take_images: bool = True
+) -> MappedLog:
+    """Read the bag through the mapping into contract columns (rows in rollout, step order)."""
+    series = bag.stream(mapping, image_topic=mapping.image.topic if mapping.image else None)
+    kept_index = {topic: _checked_times(s, bag.start_ns) for topic, s in series.items()}
+    sources = mapping.value_sources()
+    required_topics = {s.topic for n, s in sources.items() if n.startswith("feature:")}
+    if mapping.control is not None:
+        required_topics.add(mapping.control.topic)
+    grid = _grid(series, kept_index, required_topics, mapping.step_rate_hz)
+    out = MappedLog(None, np.zeros(0, np.int64), [], _column_sources(mapping), bag.start_ns)
+    out.grid_steps = len(grid)
+
+    def resampled(name: str, source: FieldSource, *, numeric: bool) -> _Resampled:
+        s = series[source.topic]
+        times = s.times_ns()[kept_index[source.topic]]
+        raw = s.values_of(name)[kept_index[source.topic]]
+        rule = mapping.rule(source.topic)
+        return _resample(times, raw, grid, rule.resample if numeric else "hold", rule.max_age_s)
+
+    keep = np.ones(len(grid), dtype=bool)
+
+    def require(name: str, source: FieldSource, fresh: np.ndarray, where: np.ndarray) -> None:
+        missing = where & ~fresh & keep
+        if not missing.any():
+            return
+        if mapping.on_missing == "refuse":
+            i = int(np.flatnonzero(missing)[0])
+            raise InvalidInput(
+                f"{source.describe()}: no value within {mapping.rule(source.topic).max_age_s:g} s "
+                f"of the step at {describe_time(int(grid[i]), bag.start_ns)} "
+                "(the mapping refuses steps with missing values)"
+            )
+        out.dropped[source.describe()] = int(missing.sum())
+        keep[missing] = False
+
+    features = np.empty((len(grid), len(mapping.features)), dtype=np.float64)
+    everywhere = np.ones(len(grid), dtype=bool)
+    for j, (name, source) in enumerate(mapping.features.items()):
+        r = resampled(f"feature:{name}", source, numeric=True)
+        require(f"feature:{name}", source, r.fresh, everywhere)
+        features[:, j] = r.values * source.scale
+
+    control = np.full(len(grid), default_control, dtype=object)
+    if mapping.control is not None:
+        r = resampled("control", mapping.control, numeric=False)
+        require("control", mapping.control, r.fresh, everywhere)
+        control = _lookup(r.values, keep, mapping.control, grid, bag.start_ns, "control")
+    is_expert = control == "expert"
+
+    actions: dict[str, Any] = {}
+    for name, on_steps in (("learner_action", ~is_expert), ("expert_action", is_expert)):
+        source = getattr(mapping, name)
+        if source is not None:
+            actions[name] = _action(name, source, resampled, require, on_steps, keep, grid, bag)
+
+    optional: dict[str, tuple[np.ndarray, np.ndarray]] = {}
+    for name in ("learner_probs", "learner_ensemble", "learner_std"):
+        source = getattr(mapping, name)
+        if source is not None:
+            r = resampled(name, source, numeric=True)
+            out.absent[source.describe()] = int((~r.fresh & keep).sum())
+            if r.fresh.any():  # a topic without a single fresh value gives no column
+                optional[name] = (_stack(r.values, r.fresh, source, name), r.fresh)
+
+    scene = None
+    if mapping.scene is not None:
+        s = series[mapping.scene.topic]
+        index = kept_index[mapping.scene.topic]
+        r = _resample(
+            s.times_ns()[index],
+            s.values_of("scene")[index],
+            grid,
+            "hold",
+            mapping.scene.max_age_s,
+        )
+        scene = r.values.copy()
+        scene[~r.fresh] = None
+        out.absent[f"topic {mapping.scene.topic} (scene)"] = int((~r.fresh & keep).sum())
+
+    rows = np.flatnonzero(keep)
+    bounds = _segments(rows, control, grid, mapping)
+    segments = [seg for seg in bounds if len(seg) >= mapping.rollouts.min_steps]
+    out.short_segments = len(bounds) - len(segments)
+    if not segments:
+        return out
+    order = np.concatenate(segments)
+    first_rows = [seg[0] for seg in segments]
+    step = np.concatenate([seg - seg[0] for seg in segments])
+    # steps count grid periods from the rollout's first step, so dropped steps leave gaps
+    width = max(3, len(str(len(bounds))))
+    keys = (
+        [stem]
+        if mapping.rollouts.split == "bag"
+        else [
+            f"{stem}-{k + 1:0{width}d}"
+            for k, seg in enumerate(bounds)
+            if len(seg) >= mapping.rollouts.min_steps
+        ]
+    )
+    row_key = [key for key, seg in zip(keys, segments, strict=True) for _ in range(len(seg))]
+    start_of_row = np.concatenate(
+        [
+            np.full(len(seg), grid[first], dtype=np.int64)
+            for seg, first in zip(segments, first_rows, strict=True)
+        ]
+    )
+    columns: dict[str, pa.Array] = {
+        "rollout": pa.array(row_key, type=pa.string()),
+        "step": pa.array(step.astype(np.int64)),
+        "time_s": pa.array((grid[order] - start_of_row) / NS),
+        "features": _fixed(features[order]),
+    }
+    _check_finite(features[order], mapping, grid[order], bag.start_ns)
+    if mapping.control is not None:
+        columns["control"] = pa.array(control[order].tolist(), type=pa.string())
+    for name, value in actions.items():
+        columns[name] = _action_column(value, order)
+    for name, (values, fresh) in optional.items():
+        columns[name] = _fixed(values[order], present=fresh[order])
+    if scene is not None:
+        columns["scene"] = pa.array(scene[order].tolist(), type=pa.string())
+    if mapping.image is not None and take_images:
+        columns["image"] = _images(bag, mapping, series, grid[order], out)
+    out.table = pa.table(columns)
+    out.row_time_ns = grid[order]
+    out.row_key = row_key
+    return out
+
+
+def _checked_times(series: TopicSeries, start_ns: int) -> np.ndarray:
+    """Indexes of the messages used: stamps must not go back; of equal stamps the last counts."""
+    times = series.times_ns()
+    back = np.flatnonzero(np.diff(times) < 0)
+    if back.size:
+        i = int(back[0]) + 1
+        raise InvalidInput(
+            f"topic {series.topic}, field {series.stamp_field}: message {i + 1} at "
+            f"{describe_time(int(times[i]), start_ns)} is earlier than the message before it at "
+            f"{describe_time(int(times[i - 1]), start_ns)}; stamps must not go back in time"
+        )
+    return resample.last_of_equal_times(times)
+
+
+def _grid(
+    series: dict[str, TopicSeries],
+    kept_index: dict[str, np.ndarray],
+    required: set[str],
+    rate_hz: float,
+) -> np.ndarray:
+    """Step times: every 1/rate from when all required topics have spoken to the last message
+    of any of them (values gone stale on the way are found by their age, not here)."""
+    for topic in sorted(required):
+        if len(kept_index[topic]) == 0:
+            raise InvalidInput(f"topic {topic}: the bag holds no messages on it")
+    begin = max(int(series[t].times_ns()[kept_index[t][0]]) for t in required)
+    end = max(int(series[t].times_ns()[kept_index[t][-1]]) for t in required)
+    period = round(NS / rate_hz)
+    n = (end - begin) // period + 1
+    if n > MAX_STEPS:
+        raise InvalidInput(
+            f"the bag maps to {n} steps at {rate_hz:g} Hz, more than {MAX_STEPS} in one upload; "
+            "split the bag"
+        )
+    return begin + np.arange(n, dtype=np.int64) * period
+
+
+def _resample(
+    times: np.ndarray, raw: np.ndarray, grid: np.ndarray, how: str, max_age_s: float | None
+) -> _Resampled:
+    max_age_ns = int(round((max_age_s or 0.0) * NS))
+    if len(times) == 0:
+        empty = np.zeros(len(grid), dtype=bool)
+        return _Resampled(
+            np.full(len(grid), None, dtype=object), empty, np.zeros(len(grid), np.int64)
+        )
+    numeric = how == "linear"
+    values = _array(raw, numeric)
+    if numeric:
+        out, age = resample.linear(times, values, grid)
+    else:
+        index, age = resample.hold(times, grid)
+        out = values[np.maximum(index, 0)]
+    return _Resampled(out, age <= max_age_ns, age)
+
+
+def _array(raw: np.ndarray, numeric: bool) -> np.ndarray:
+    """A source's values for resampling: lists of numbers stacked into (n, width) float64;
+    numbers as float64; anything else as objects."""
+    if raw.dtype != object or len(raw) == 0:
+        return raw
+    if isinstance(raw[0], np.ndarray):
+        if len({len(v) for v in raw}) != 1:
+            return raw  # lengths change between messages: refused when stacked
+        return np.stack(list(raw)).astype(np.float64)
+    if numeric:
+        try:
+            return raw.astype(np.float64)
+        except (TypeError, ValueError):
+            pass
+    return raw
+
+
+def _raw_key(value: Any) -> str:
+    """A raw mode or action value as the text a mapping's `values` use: 2 -> "2", True -> "true"."""
+    if isinstance(value, (bool, np.bool_)):
+        return "true" if value else "false"
+    if isinstance(value, (int, float, np.number)) and float(value).is_integer():
+        return str(int(value))
+    return str(value)
+
+
+def _lookup(
+    values: np.ndarray,
+    keep: np.ndarray,
+    source: Any,
+    grid: np.ndarray,
+    start_ns: int,
+    what: str,
+) -> np.ndarray:
+    """Raw values at the kept steps through the mapping's `values` table."""
+    out = np.full(len(values), None, dtype=object)
+    table: dict[str, str] = source.values
+    for i in np.flatnonzero(keep):
+        key = _raw_key(values[i])
+        if key not in table:
+            raise InvalidInput(
+                f"{source.describe()}: value '{key}' at {describe_time(int(grid[i]), start_ns)} "
+                f"is not in the mapping's {what} values ({', '.join(table)})"
+            )
+        out[i] = table[key]
+    return out
+
+
+def _action(name, source, resampled, require, on_steps, keep, grid, bag):  # type: ignore[no-untyped-def]
+    """A discrete action (names or indexes per step) or a continuous one ((grid, dims), fresh)."""
+    if isinstance(source, ContinuousActionSource):
+        parts, fresh = [], np.ones(len(grid), dtype=bool)
+        for dim, dim_source in source.dimensions.items():
+            r = resampled(f"{name}:{dim}", dim_source, numeric=True)
+            require(f"{name}:{dim}", dim_source, r.fresh, on_steps)
+            parts.append(np.where(r.fresh, r.values, 0.0).astype(np.float64))
+            fresh &= r.fresh
+        return np.stack(parts, axis=1), fresh
+    assert isinstance(source, DiscreteActionSource)
+    r = resampled(name, source, numeric=False)
+    require(name, source, r.fresh, on_steps)
+    usable = keep & r.fresh
+    if source.values:
+        values = _lookup(r.values, usable, source, grid, bag.start_ns, "action")
+    else:
+        values = np.full(len(grid), None, dtype=object)
+        for i in np.flatnonzero(usable):
+            raw = r.values[i]
+            if isinstance(raw, str):
+                values[i] = raw
+            elif float(raw).is_integer():
+                values[i] = int(raw)
+            else:
+                raise InvalidInput(
+                    f"{source.describe()}: value {raw} at "
+                    f"{describe_time(int(grid[i]), bag.start_ns)} is neither an action index nor a "
+                    "name (map raw values with `values`)"
+                )
+    return values, usable
+
+
+def _action_column(value: tuple[np.ndarray, np.ndarray], order: np.ndarray) -> pa.Array:
+    values, fresh = value
+    if values.ndim == 2:
+        return _fixed(values[order], present=fresh[order])
+    picked = [v if f else None for v, f in zip(values[order].tolist(), fresh[order], strict=True)]
+    return pa.array(picked)
+
+
+def _stack(values: np.ndarray, fresh: np.ndarray, source: Any, name: str) -> np.ndarray:
+    """Per-step lists of numbers as a (grid, width) array (ensembles: (grid, members, width))."""
+    if values.dtype == object:
+        widths = sorted({len(v) for v in values if v is not None})
+        raise InvalidInput(
+            f"{source.describe()} ({name}): the list's length changes between messages ({widths})"
+        )
+    if name == "learner_ensemble":
+        members = source.members
+        if values.shape[1] % members:
+            raise InvalidInput(
+                f"{source.describe()} (learner_ensemble): {values.shape[1]} values do not split "
+                f"into {members} members"
+            )
+        return values.reshape(len(values), members, -1)
+    return values
+
+
+def _fixed(values: np.ndarray, present: np.ndarray | None = None) -> pa.Array:
+    """A (n, width) or (n, members, width) array as fixed-size list column (null where absent)."""
+    flat = pa.array(np.ascontiguousarray(values, dtype=np.float64).reshape(-1))
+    inner_width = values.shape[-1]
+    array: pa.Array = pa.FixedSizeListArray.from_arrays(flat, inner_width)
+    if values.ndim == 3:
+        array = pa.FixedSizeListArray.from_arrays(array, values.shape[1])
+    if present is not None and not present.all():
+        array = pa.FixedSizeListArray.from_arrays(
+            array.values, array.type.list_size, mask=pa.array(~present)
+        )
+    return array
+
+
+def _check_finite(
+    features: np.ndarray, mapping: LogMapping, times: np.ndarray, start_ns: int
+) -> None:
+    bad = ~np.isfinite(features)
+    if bad.any():
+        i, j = (int(v[0]) for v in np.nonzero(bad))
+        name = list(mapping.features)[j]
+        raise InvalidInput(
+            f"{mapping.features[name].describe()} (feature {name}): value {features[i, j]} at "
+            f"{describe_time(int(times[i]), start_ns)} is not finite"
+        )
+
+
+def _segments(
+    rows: np.ndarray, control: np.ndarray, grid: np.ndarray, mapping: LogMapping
+) -> list[np.ndarray]:
+    """Kept grid rows split into rollouts: the whole bag, or at mode changes and long gaps."""
+    if len(rows) == 0:
+        return []
+    split = mapping.rollouts
+    if split.split == "bag":
+        return [rows]
+    cut = np.zeros(len(rows) - 1, dtype=bool)
+    if split.on_mode_change and mapping.control is not None:
+        cut |= control[rows[1:]] != control[rows[:-1]]
+    if split.gap_s is not None:
+        cut |= (grid[rows[1:]] - grid[rows[:-1]]) > round(split.gap_s * NS)
+    return np.split(rows, np.flatnonzero(cut) + 1)
+
+
+def _images(
+    bag: Bag, mapping: LogMapping, series: dict[str, TopicSeries], times: np.ndarray, out: MappedLog
+) -> pa.Array:
+    """The nearest frame to each row within the image's max age, read in a second pass."""
+    assert mapping.image is not None
+    topic = mapping.image.topic
+    frame_times = series[topic].times_ns()
+    _checked_times(series[topic], bag.start_ns)
+    frames: list[bytes | None] = [None] * len(times)
+    if len(frame_times) == 0:
+        out.absent[f"topic {topic} (image)"] = len(times)
+        return pa.array(frames, type=pa.binary())
+    index, distance = resample.nearest(frame_times, times)
+    close = distance <= round(mapping.image.max_age_s * NS)
+    wanted: dict[int, list[int]] = {}
+    for close_row in np.flatnonzero(close):
+        wanted.setdefault(int(index[close_row]), []).append(int(close_row))
+    msgtype = series[topic].msgtype
+    for number, message in bag.frames(topic, wanted):
+        where = f"topic {topic} at {describe_time(int(frame_times[number]), bag.start_ns)}"
+        frame = frame_bytes(message, msgtype, where=where)
+        for row in wanted[number]:
+            frames[row] = frame
+    out.absent[f"topic {topic} (image)"] = int((~close).sum())
+    return pa.array(frames, type=pa.binary())
+
+
+def _column_sources(mapping: LogMapping) -> dict[str, str]:
+    """The mapping's source of each contract column, as refusals name it."""
+    out = {
+        "features": "features (" + "; ".join(s.describe() for s in mapping.features.values()) + ")"
+    }
+    for name in ("learner_action", "expert_action"):
+        source = getattr(mapping, name)
+        if isinstance(source, ContinuousActionSource):
+            out[name] = "; ".join(s.describe() for s in source.dimensions.values())
+            out |= {f"{name}:{d}": s.describe() for d, s in source.dimensions.items()}
+        elif source is not None:
+            out[name] = source.describe()
+        else:
+            out[name] = f"no {name} in the log mapping"
+    for name in ("learner_probs", "learner_ensemble", "learner_std", "control"):
+        source = getattr(mapping, name)
+        out[name] = source.describe() if source is not None else f"no {name} in the log mapping"
+    if mapping.scene is not None:
+        out["scene"] = f"topic {mapping.scene.topic}"
+    if mapping.image is not None:
+        out["image"] = f"topic {mapping.image.topic}"
+    return out
