@@ -21,10 +21,12 @@ db_cli = typer.Typer(help="Database schema.", no_args_is_help=True)
 loops_cli = typer.Typer(help="Loops (one per robot skill).", no_args_is_help=True)
 users_cli = typer.Typer(help="Users and roles.", no_args_is_help=True)
 tokens_cli = typer.Typer(help="API tokens.", no_args_is_help=True)
+logs_cli = typer.Typer(help="Robot logs (ROS bags).", no_args_is_help=True)
 cli.add_typer(db_cli, name="db")
 cli.add_typer(loops_cli, name="loops")
 cli.add_typer(users_cli, name="users")
 cli.add_typer(tokens_cli, name="tokens")
+cli.add_typer(logs_cli, name="logs")
 
 # Read by `users add --password` when set, so scripts need no prompt.
 NEW_PASSWORD_ENV = "EXPERTLOOP_NEW_PASSWORD"
@@ -225,7 +227,8 @@ def upload(
     url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
     token: Annotated[str, TOKEN_OPTION] = "",
 ) -> None:
-    """Upload a rollout file (Parquet, .npz or JSON Lines) with a progress bar."""
+    """Upload a rollout file (Parquet, .npz, JSON Lines) or robot log (.mcap, .bag, ROS 2 bag
+    folder as .zip or .tar) with a progress bar."""
     from tqdm import tqdm
 
     from app.client import ApiError, Client
@@ -246,6 +249,56 @@ def upload(
         " (this file was uploaded before; nothing new stored)" if result["duplicate_file"] else ""
     )
     typer.echo(f"stored {len(result['rollouts'])} rollouts, {result['steps']} steps{note}")
+
+
+@logs_cli.command("inspect")
+def logs_inspect(
+    file: Path,
+    loop: Annotated[
+        str | None, typer.Option(help="Loop slug: map the log with this loop's log mapping.")
+    ] = None,
+    spec: Annotated[
+        Path | None, typer.Option(help="A loop spec file with a log_mapping (instead of --loop).")
+    ] = None,
+    round_number: Annotated[int, typer.Option("--round", help="Round the log is for.")] = 1,
+    url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
+    token: Annotated[str, TOKEN_OPTION] = "",
+) -> None:
+    """Dry run: list a log's topics, rates and types, and what the loop's log mapping makes of
+    it (steps, rollouts, missing values), here on this machine, storing nothing."""
+    import tempfile
+
+    from app.client import ApiError, Client
+    from app.errors import ExpertloopError
+    from app.ingest.logs.inspect import inspect_log, report_lines
+
+    if not file.exists():
+        _fail(f"no such file: {file}")
+    loop_spec = None
+    if spec is not None:
+        try:
+            loop_spec = json.loads(spec.read_text())
+        except (OSError, json.JSONDecodeError) as exc:
+            _fail(f"cannot read {spec}: {exc}")
+    elif loop is not None:
+        with Client(url, token) as client:
+            try:
+                loop_spec = client.loop(loop)
+            except (ApiError, OSError) as exc:
+                _fail(f"cannot fetch loop '{loop}' from {url}: {exc}")
+    with tempfile.TemporaryDirectory() as spool:
+        try:
+            found = inspect_log(
+                file, loop=loop_spec, round_number=round_number, spool_dir=Path(spool)
+            )
+        except ExpertloopError as exc:
+            _fail(exc.message)
+            return
+        except ValidationError as exc:
+            _fail(f"the loop's log_mapping is not valid:\n{exc}")
+            return
+    for line in report_lines(found, loop_slug=loop):
+        typer.echo(line)
 
 
 @cli.command()

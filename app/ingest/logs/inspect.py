@@ -1,0 +1,126 @@
+"""The dry run of a robot log: its topics, rates and message types, and what a loop's log
+mapping would make of it (steps, rollouts, dropped steps, missing values), storing nothing."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from app.errors import ExpertloopError
+from app.ingest.logs.archive import DEFAULT_MAX_UNPACKED_BYTES, bag_format, bag_path, log_stem
+from app.ingest.logs.mapping import LogMapping
+from app.ingest.logs.reader import NS, open_bag
+from app.ingest.logs.service import check_mapped, default_control
+from app.ingest.logs.steps import map_log
+from app.ingest.validate import ActionSpec
+
+
+@dataclass
+class TopicSummary:
+    name: str
+    msgtype: str
+    messages: int
+    rate_hz: float | None  # messages per second between the first and last message
+
+
+@dataclass
+class Inspection:
+    """What the dry run found."""
+
+    file_format: str
+    duration_s: float
+    topics: list[TopicSummary]
+    grid_steps: int = 0
+    rollouts: dict[str, int] = field(default_factory=dict)
+    dropped: dict[str, int] = field(default_factory=dict)
+    absent: dict[str, int] = field(default_factory=dict)
+    short_segments: int = 0
+    verdict: str | None = None  # None: no mapping given
+
+
+def inspect_log(
+    path: Path,
+    *,
+    filename: str | None = None,
+    loop: dict[str, Any] | None = None,
+    round_number: int = 1,
+    spool_dir: Path,
+    max_unpacked_bytes: int = DEFAULT_MAX_UNPACKED_BYTES,
+) -> Inspection:
+    """Read a log (and, given a loop spec with a log mapping, map and validate it)."""
+    name = filename or path.name
+    file_format = bag_format(path, name)
+    if file_format is None:
+        raise ExpertloopError(f"'{name}' is not a robot log (.mcap, .db3, .bag, .zip or .tar)")
+    with bag_path(path, file_format, spool_dir, max_unpacked_bytes) as bag_file:
+        with open_bag(bag_file) as bag:
+            times = bag.log_times()
+            topics = [
+                TopicSummary(topic, msgtype, count, _rate(times[topic]))
+                for topic, (msgtype, count) in sorted(bag.topics().items())
+            ]
+            found = Inspection(file_format, bag.reader.duration / NS, topics)
+            mapping = (loop or {}).get("log_mapping")
+            if loop is None or not mapping:
+                return found
+            log_mapping = LogMapping.model_validate(mapping)
+            try:
+                mapped = map_log(
+                    bag,
+                    log_mapping,
+                    stem=log_stem(name),
+                    default_control=default_control(round_number),
+                    take_images=False,
+                )
+            except ExpertloopError as exc:
+                found.verdict = f"refused: {exc.message}"
+                return found
+        found.grid_steps = mapped.grid_steps
+        found.dropped, found.absent = mapped.dropped, mapped.absent
+        found.short_segments = mapped.short_segments
+        keys, counts = np.unique(np.asarray(mapped.row_key, dtype=object), return_counts=True)
+        found.rollouts = {str(k): int(c) for k, c in zip(keys, counts, strict=True)}
+        spec = ActionSpec.from_loop(loop["features"], loop["action_space"])
+        try:
+            check_mapped(mapped, spec, round_number=round_number)
+        except ExpertloopError as exc:
+            found.verdict = f"refused: {exc.message}"
+        else:
+            found.verdict = "accepted"
+    return found
+
+
+def _rate(times: np.ndarray) -> float | None:
+    if len(times) < 2 or times[-1] == times[0]:
+        return None
+    return float((len(times) - 1) / ((times[-1] - times[0]) / NS))
+
+
+def report_lines(found: Inspection, *, loop_slug: str | None) -> list[str]:
+    """The dry run as lines of text for the terminal."""
+    lines = [
+        f"{found.file_format}: {found.duration_s:.2f} s, "
+        f"{sum(t.messages for t in found.topics)} messages on {len(found.topics)} topics",
+        f"  {'topic':<32} {'messages':>9} {'rate Hz':>8}  type",
+    ]
+    for t in found.topics:
+        rate = "-" if t.rate_hz is None else f"{t.rate_hz:.2f}"
+        lines.append(f"  {t.name:<32} {t.messages:>9} {rate:>8}  {t.msgtype}")
+    if found.verdict is None:
+        lines.append("no log mapping given: pass --loop SLUG or --spec FILE to see the steps")
+        return lines
+    lines.append(f"log mapping of {loop_slug or 'the spec'}:")
+    lines.append(f"  step grid: {found.grid_steps} steps")
+    for key, count in found.rollouts.items():
+        lines.append(f"  rollout {key}: {count} steps")
+    for source, count in found.dropped.items():
+        lines.append(f"  dropped {count} steps: no fresh value from {source}")
+    if found.short_segments:
+        lines.append(f"  dropped {found.short_segments} segments shorter than min_steps")
+    for source, count in found.absent.items():
+        lines.append(f"  missing on {count} kept steps (stored as none): {source}")
+    lines.append(f"upload would be {found.verdict}")
+    return lines
