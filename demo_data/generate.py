@@ -14,7 +14,9 @@ from __future__ import annotations
 
 import argparse
 import json
+import shutil
 import sys
+import tempfile
 from pathlib import Path
 from typing import Any
 
@@ -23,8 +25,9 @@ import numpy as np
 # Run as a plain script from anywhere: make the repository's `app` package importable.
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from app.demo import expert, files, learner, sim  # noqa: E402
+from app.demo import bag, expert, files, learner, sim  # noqa: E402
 from app.demo import scenario as sc  # noqa: E402
+from app.ingest.logs.writer import storage_file  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 
@@ -84,6 +87,20 @@ def evaluate(
         labels = _stack_labels(labels, visited.columns["expert_action"][chosen])
 
 
+BAG_FILE = "tow_tractor_run.mcap"
+
+
+def write_run_bag(policy: Any, rng: np.random.Generator, target: Path) -> None:
+    """One more round-1 run of the learner, with a safety-driver takeover, recorded as the
+    invented ROS 2 bag (MCAP) of the demo's log path."""
+    runs = sim.rollout(policy, 4, rng, kind="discrete", takeover=True, key_prefix="bag")
+    # the first run with a takeover, so the bag shows the mode topic switching
+    taken_over = runs.columns["rollout"][runs.columns["control"] == "expert"]
+    key = str(taken_over[0] if len(taken_over) else runs.columns["rollout"][0])
+    with tempfile.TemporaryDirectory() as folder:
+        shutil.copyfile(storage_file(bag.write_demo_bag(runs, key, Path(folder))), target)
+
+
 def main(argv: list[str] | None = None) -> None:
     """Write the sample files; with --evaluate also print closed-loop measures."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
@@ -102,10 +119,13 @@ def main(argv: list[str] | None = None) -> None:
     out: Path = args.out
     out.mkdir(parents=True, exist_ok=True)
     kind = args.kind
-    streams = np.random.SeedSequence(args.seed).spawn(4)
+    streams = np.random.SeedSequence(args.seed).spawn(5)
 
     for spec_kind in sc.ACTION_KINDS:
-        spec = json.dumps(sc.loop_spec(spec_kind), indent=2) + "\n"
+        loop = sc.loop_spec(spec_kind)
+        if spec_kind == "discrete":  # the demo bag is recorded from the discrete learner
+            loop["log_mapping"] = bag.log_mapping()
+        spec = json.dumps(loop, indent=2) + "\n"
         (out / f"tow_tractor_{spec_kind}.json").write_text(spec, encoding="utf-8")
 
     round0 = sim.rollout(
@@ -134,10 +154,13 @@ def main(argv: list[str] | None = None) -> None:
     files.write_parquet(table1, out / "round1_rollouts.parquet")
     files.write_jsonl(table1.take(_example_rows(round1)), out / "example.jsonl")
 
+    if kind == "discrete":
+        write_run_bag(ens, np.random.default_rng(streams[4]), out / BAG_FILE)
+
     print(_measures("round 0 (expert drives)", round0))
     print(_measures("round 1 (learner+takeover)", round1))
     for name in sorted(
-        p.name for p in out.iterdir() if p.suffix in {".json", ".jsonl", ".parquet"}
+        p.name for p in out.iterdir() if p.suffix in {".json", ".jsonl", ".parquet", ".mcap"}
     ):
         print(f"  {name:<34} {(out / name).stat().st_size:>9,d} bytes")
     if args.evaluate:

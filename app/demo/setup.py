@@ -28,6 +28,7 @@ DEMO_DIR = Path(__file__).resolve().parent.parent.parent / "demo_data"
 DEMO_SPEC = DEMO_DIR / "tow_tractor_discrete.json"
 ROUND0_FILE = DEMO_DIR / "round0_demonstrations.parquet"
 ROUND1_FILE = DEMO_DIR / "round1_rollouts.parquet"
+BAG_FILE = DEMO_DIR / "tow_tractor_run.mcap"
 DEMO_BUDGET = 60
 DEMO_SEED = 2026
 # Demo accounts for a server on loopback; never use them on a shared machine.
@@ -57,6 +58,10 @@ def prepare_demo(*, host: str, port: int) -> str:
             loop = loops_service.get_loop(session, slug=spec.slug)
         except NotFound:
             loop = loops_service.create_loop(session, spec=spec, user_id=None)
+        if loop.log_mapping is None and spec.log_mapping is not None:
+            # a demo store made before the demo had its robot log
+            loop.log_mapping = spec.log_mapping.model_dump()
+            session.commit()
         rounds = {r.number: r for r in loops_service.round_summaries(session, loop=loop)}
         if rounds[0].steps == 0:
             _upload(session, loop, 0, ROUND0_FILE)
@@ -79,7 +84,13 @@ def prepare_demo(*, host: str, port: int) -> str:
         f"{DEMO_USERS['demo-annotator'][1]}\n"
         f"  loop page: {base}/loops/{spec.slug}         sign in as demo-admin / "
         f"{DEMO_USERS['demo-admin'][1]}\n"
-        "  (demo accounts for a loopback server only)"
+        "  (demo accounts for a loopback server only)\n"
+        f"  robot log: {BAG_FILE.relative_to(DEMO_DIR.parent)} (an invented ROS 2 bag); with a "
+        "token from `expertloop tokens issue demo-admin`:\n"
+        f"    expertloop logs inspect {BAG_FILE.relative_to(DEMO_DIR.parent)} --loop {spec.slug} "
+        f"--url {base} --token TOKEN\n"
+        f"    expertloop upload {BAG_FILE.relative_to(DEMO_DIR.parent)} --loop {spec.slug} "
+        f"--round 1 --url {base} --token TOKEN"
     )
 
 
