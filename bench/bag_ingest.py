@@ -1,0 +1,308 @@
+"""Robot-log ingest benchmark: uploading a bag through the service against merely reading it.
+
+    python bench/bag_ingest.py --messages 1000000               # ROS 2 MCAP, SQLite store
+    python bench/bag_ingest.py --messages 200000 --storage ros1
+
+Writes one bag (rosbags' writer) of N messages over 10 topics at 100 Hz each (an invented
+tow-tractor log: odometry, IMU, joint states, a range sensor, battery, mode, the policy's action
+and probabilities, a teleoperation action, a velocity command), then, each in a fresh process so
+peak memory is its own:
+- baseline: read every message with rosbags and decode it (AnyReader.messages + deserialize);
+- ingest: the service's upload path on the same file (read through the loop's log mapping at
+  10 Hz, validate, store in a fresh SQLite store).
+Prints messages per second of both, their ratio (target: ingest at least 0.5x the baseline) and
+each process's peak resident memory next to the bag's size.
+"""
+
+from __future__ import annotations
+
+import argparse
+import hashlib
+import json
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from app.ingest.logs.writer import Storage, storage_file, typestore_for, write_bag  # noqa: E402
+
+NS = 1_000_000_000
+RATE_HZ = 100
+TOPICS = {
+    "/odom": "nav_msgs/msg/Odometry",
+    "/imu": "sensor_msgs/msg/Imu",
+    "/joint_states": "sensor_msgs/msg/JointState",
+    "/range": "sensor_msgs/msg/Range",
+    "/battery": "sensor_msgs/msg/BatteryState",
+    "/mode": "std_msgs/msg/String",
+    "/policy/action": "std_msgs/msg/Int32",
+    "/policy/probs": "std_msgs/msg/Float32MultiArray",
+    "/teleop/action": "std_msgs/msg/Int32",
+    "/cmd_vel": "geometry_msgs/msg/Twist",
+}
+SPEC: dict[str, Any] = {
+    "slug": "bench-bag",
+    "title": "Bag ingest benchmark (invented)",
+    "features": [
+        {"name": "speed", "unit": "m/s"},
+        {"name": "aisle_x", "unit": "m"},
+        {"name": "yaw_rate", "unit": "rad/s"},
+        {"name": "wheel_speed", "unit": "rad/s"},
+        {"name": "range", "unit": "m"},
+        {"name": "voltage", "unit": "V"},
+        {"name": "speed_cmd", "unit": "m/s"},
+    ],
+    "action_space": {"kind": "discrete", "actions": ["proceed", "creep", "hold"]},
+    "log_mapping": {
+        "step_rate_hz": 10,
+        "max_age_s": 0.1,
+        "topics": {"/odom": {"resample": "linear"}},
+        "features": {
+            "speed": {"topic": "/odom", "field": "twist.twist.linear.x"},
+            "aisle_x": {"topic": "/odom", "field": "pose.pose.position.x"},
+            "yaw_rate": {"topic": "/imu", "field": "angular_velocity.z"},
+            "wheel_speed": {"topic": "/joint_states", "field": "velocity[1]"},
+            "range": {"topic": "/range", "field": "range"},
+            "voltage": {"topic": "/battery", "field": "voltage"},
+            "speed_cmd": {"topic": "/cmd_vel", "field": "linear.x"},
+        },
+        "learner_action": {"topic": "/policy/action", "field": "data"},
+        "learner_probs": {"topic": "/policy/probs", "field": "data"},
+        "expert_action": {"topic": "/teleop/action", "field": "data"},
+        "control": {
+            "topic": "/mode",
+            "field": "data",
+            "values": {"AUTO": "learner", "MANUAL": "expert"},
+        },
+    },
+}
+
+
+def messages(storage: Storage, n: int) -> Any:
+    """n messages, 10 topics in turn, each topic at 100 Hz (so n / 1000 seconds of log)."""
+    ts = typestore_for(storage)
+    T = ts.types
+    ros1 = storage == "ros1"
+    rng = np.random.default_rng(7)
+    vec = T["geometry_msgs/msg/Vector3"]
+    names = list(TOPICS)
+    start = 1_700_000_000 * NS
+    period = NS // RATE_HZ
+    for i in range(n):
+        topic = names[i % 10]
+        k = i // 10
+        t = start + k * period + (i % 10) * 1000
+        time_msg = T["builtin_interfaces/msg/Time"](sec=t // NS, nanosec=t % NS)
+        head = (
+            T["std_msgs/msg/Header"](seq=k, stamp=time_msg, frame_id="base")
+            if ros1
+            else T["std_msgs/msg/Header"](stamp=time_msg, frame_id="base")
+        )
+        value = float(rng.standard_normal())
+        if topic == "/odom":
+            pose = T["geometry_msgs/msg/PoseWithCovariance"](
+                pose=T["geometry_msgs/msg/Pose"](
+                    position=T["geometry_msgs/msg/Point"](x=k * 0.01, y=0.0, z=0.0),
+                    orientation=T["geometry_msgs/msg/Quaternion"](x=0.0, y=0.0, z=0.0, w=1.0),
+                ),
+                covariance=np.zeros(36),
+            )
+            twist = T["geometry_msgs/msg/TwistWithCovariance"](
+                twist=T["geometry_msgs/msg/Twist"](
+                    linear=vec(x=1 + value, y=0, z=0), angular=vec(x=0, y=0, z=0)
+                ),
+                covariance=np.zeros(36),
+            )
+            msg = T["nav_msgs/msg/Odometry"](
+                header=head, child_frame_id="base", pose=pose, twist=twist
+            )
+        elif topic == "/imu":
+            q = T["geometry_msgs/msg/Quaternion"](x=0.0, y=0.0, z=0.0, w=1.0)
+            msg = T["sensor_msgs/msg/Imu"](
+                header=head,
+                orientation=q,
+                orientation_covariance=np.zeros(9),
+                angular_velocity=vec(x=0, y=0, z=value),
+                angular_velocity_covariance=np.zeros(9),
+                linear_acceleration=vec(x=0, y=0, z=9.81),
+                linear_acceleration_covariance=np.zeros(9),
+            )
+        elif topic == "/joint_states":
+            msg = T["sensor_msgs/msg/JointState"](
+                header=head,
+                name=["left", "right"],
+                position=np.zeros(2),
+                velocity=np.array([value, -value]),
+                effort=np.zeros(2),
+            )
+        elif topic == "/range":
+            msg = T["sensor_msgs/msg/Range"](
+                header=head,
+                radiation_type=0,
+                field_of_view=0.1,
+                min_range=0.0,
+                max_range=20.0,
+                range=abs(value) * 5,
+            )
+        elif topic == "/battery":
+            msg = _battery(T, head, 48 + value, ros1)
+        elif topic == "/mode":
+            msg = T["std_msgs/msg/String"](data="MANUAL" if (k // 500) % 10 == 9 else "AUTO")
+        elif topic in ("/policy/action", "/teleop/action"):
+            msg = T["std_msgs/msg/Int32"](data=k % 3)
+        elif topic == "/policy/probs":
+            probs = np.array([0.2, 0.3, 0.5], dtype=np.float32)[np.roll(np.arange(3), k)]
+            layout = T["std_msgs/msg/MultiArrayLayout"](dim=[], data_offset=0)
+            msg = T["std_msgs/msg/Float32MultiArray"](layout=layout, data=probs)
+        else:
+            msg = T["geometry_msgs/msg/Twist"](
+                linear=vec(x=1.0, y=0, z=0), angular=vec(x=0, y=0, z=0)
+            )
+        yield topic, t, msg
+
+
+def _battery(T: Any, head: Any, voltage: float, ros1: bool) -> Any:
+    fields = dict(
+        header=head,
+        voltage=voltage,
+        current=0.0,
+        charge=0.0,
+        capacity=0.0,
+        design_capacity=0.0,
+        percentage=0.5,
+        power_supply_status=0,
+        power_supply_health=0,
+        power_supply_technology=0,
+        present=True,
+        cell_voltage=np.zeros(0, np.float32),
+        location="",
+        serial_number="",
+    )
+    if not ros1:
+        fields |= {"temperature": 20.0, "cell_temperature": np.zeros(0, np.float32)}
+    return T["sensor_msgs/msg/BatteryState"](**fields)
+
+
+def write(folder: Path, storage: Storage, n: int) -> Path:
+    ts = typestore_for(storage)
+    if storage == "ros1":
+        return write_bag(folder / "bench.bag", "ros1", TOPICS, messages(storage, n), ts)
+    bag = write_bag(folder / "bench", storage, TOPICS, messages(storage, n), ts)
+    return storage_file(bag)
+
+
+def phase_read(path: Path) -> dict[str, float]:
+    from rosbags.highlevel import AnyReader
+
+    from app.ingest.logs.reader import standard_types
+
+    began = time.perf_counter()
+    count = 0
+    with AnyReader([path], default_typestore=standard_types(path.suffix == ".bag")) as reader:
+        for connection, _, raw in reader.messages():
+            reader.deserialize(raw, connection.msgtype)
+            count += 1
+    return {"seconds": time.perf_counter() - began, "messages": count}
+
+
+def phase_ingest(path: Path, folder: Path) -> dict[str, float]:
+    from app.db import make_engine, make_session_factory
+    from app.ingest import service
+    from app.loops import service as loops_service
+    from app.loops.schemas import LoopCreate
+    from app.migrations_state import upgrade
+
+    url = f"sqlite:///{folder / 'store.db'}"
+    upgrade(url)
+    factory = make_session_factory(make_engine(url))
+    with factory() as session:
+        loop = loops_service.create_loop(
+            session, spec=LoopCreate.model_validate(SPEC), user_id=None
+        )
+        rnd = loops_service.open_round(session, loop=loop, learner_version="v1", user_id=None)
+        digest = hashlib.sha256(path.read_bytes()).hexdigest()
+        began = time.perf_counter()
+        outcome = service.ingest_file(
+            session,
+            loop=loop,
+            rnd=rnd,
+            path=path,
+            filename=path.name,
+            file_sha256=digest,
+            user_id=None,
+            blob_dir=folder / "blobs",
+        )
+        seconds = time.perf_counter() - began
+    return {"seconds": seconds, "steps": outcome.n_steps, "rollouts": len(outcome.rollouts)}
+
+
+def run_phase(phase: str, path: Path, folder: Path) -> dict[str, float]:
+    done = subprocess.run(
+        [sys.executable, __file__, "--phase", phase, "--bag", str(path), "--folder", str(folder)],
+        check=True,
+        capture_output=True,
+        text=True,
+    )
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--messages", type=int, default=1_000_000)
+    parser.add_argument("--storage", choices=["mcap", "sqlite3", "ros1"], default="mcap")
+    parser.add_argument("--repeat", type=int, default=1)
+    parser.add_argument(
+        "--keep", type=Path, help="write the bag into this folder and reuse it on later runs"
+    )
+    parser.add_argument("--phase", choices=["read", "ingest"], help=argparse.SUPPRESS)
+    parser.add_argument("--bag", type=Path, help=argparse.SUPPRESS)
+    parser.add_argument("--folder", type=Path, help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.phase:
+        result = (
+            phase_read(args.bag) if args.phase == "read" else phase_ingest(args.bag, args.folder)
+        )
+        result["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+        print(json.dumps(result))
+        return
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        began = time.perf_counter()
+        bag_folder = args.keep / f"{args.storage}-{args.messages}" if args.keep else folder
+        found = sorted(bag_folder.glob("bench*")) if args.keep else []
+        if found and found[0].is_file():
+            path = found[0]
+        elif found:
+            path = storage_file(found[0])
+        else:
+            bag_folder.mkdir(parents=True, exist_ok=True)
+            path = write(bag_folder, args.storage, args.messages)
+        size_mb = path.stat().st_size / 1e6
+        print(
+            f"bag of {args.messages} messages over 10 topics ({args.storage}, {size_mb:.0f} MB) "
+            f"ready in {time.perf_counter() - began:.0f} s"
+        )
+        for run in range(args.repeat):
+            read = run_phase("read", path, folder / f"r{run}")
+            (folder / f"i{run}").mkdir()
+            ingest = run_phase("ingest", path, folder / f"i{run}")
+            read_rate = args.messages / read["seconds"]
+            ingest_rate = args.messages / ingest["seconds"]
+            print(
+                f"run {run + 1}: read+decode {read_rate:,.0f} msg/s "
+                f"(peak {read['peak_rss_mb']:.0f} MB); ingest {ingest_rate:,.0f} msg/s "
+                f"({ingest['steps']:.0f} steps, {ingest['rollouts']:.0f} rollout; peak "
+                f"{ingest['peak_rss_mb']:.0f} MB); ratio {ingest_rate / read_rate:.2f}x "
+                "(target >= 0.5x)"
+            )
+
+
+if __name__ == "__main__":
+    main()
