@@ -194,3 +194,31 @@ def test_refuse_policy_names_topic_field_and_time(client, admin, uploader, engin
     assert "topic /joint_states, field velocity[3]" in detail
     assert "s into the bag" in detail and "no value within 0.25 s" in detail
     assert store_contents(engine) == before
+
+
+@pytest.mark.parametrize("storage", ["ros1", "mcap"])
+def test_scene_from_our_own_message(storage, client, admin, uploader, tmp_path):
+    from app.ingest.logs.reader import SCENE_AGENT_TYPE, SCENE_TYPE
+
+    ts = typestore_for(storage)
+    messages, written = tractor_messages(storage)
+    Scene, Agent = ts.types[SCENE_TYPE], ts.types[SCENE_AGENT_TYPE]
+    scenes = []
+    for i, t in enumerate(written.times["/scene"]):
+        agent = Agent(kind="forklift", x=2.0 + i, y=-1.5, heading=0.5 * i)
+        scenes.append(("/scene_msg", t + 1, Scene(frame="robot", agents=[agent])))
+    topics = {**TOPICS, "/scene_msg": SCENE_TYPE}
+    path = tmp_path / ("scene.bag" if storage == "ros1" else "scene")
+    bag = write_bag(path, storage, topics, sorted(messages + scenes, key=lambda m: m[1]), ts)
+    make_loop(client, admin, {**MAPPING, "scene": {"topic": "/scene_msg", "format": "message"}})
+    response = upload(client, uploader, bag if storage == "ros1" else storage_file(bag))
+    assert response.status_code == 201, response.text
+    key = response.json()["rollouts"][0]["key"]
+    steps = steps_of(client, admin, key)
+    # scenes come every 0.5 s; the step 2.0 s into the rollout falls 3 µs before the fifth, so
+    # it holds the fourth (i = 3)
+    at_two = next(s for s in steps if abs(s["time_s"] - 2.0) < 1e-6)
+    assert at_two["scene"] == {
+        "frame": "robot",
+        "agents": [{"kind": "forklift", "x": 5.0, "y": -1.5, "heading": 1.5}],
+    }
