@@ -48,6 +48,7 @@ EXERCISED = {
     "tokens revoke",
     "loops create",
     "loops list",
+    "logs inspect",
     "serve",
     "worker",
     "upload",
@@ -203,6 +204,17 @@ def test_loops_create_on_a_fresh_store(script: Path, store: dict[str, str], tmp_
 def test_loops_list_on_a_fresh_store(script: Path, store: dict[str, str]) -> None:
     run(script, store, "db", "upgrade")
     assert run(script, store, "loops", "list") == ""
+
+
+def test_logs_inspect_of_the_demo_bag(script: Path, store: dict[str, str]) -> None:
+    bag = REPOSITORY / "demo_data" / "tow_tractor_run.mcap"
+    spec = REPOSITORY / "demo_data" / "tow_tractor_discrete.json"
+    out = run(script, store, "logs", "inspect", str(bag), "--spec", str(spec))
+    assert "/tractor/odom" in out and "tow_msgs/msg/CrossingView" in out
+    assert "rollout tow_tractor_run:" in out and "upload would be accepted" in out
+    out = run(script, store, "logs", "inspect", str(bag))
+    assert "no log mapping given" in out
+    assert "is not a robot log" in run(script, store, "logs", "inspect", str(spec), expect=2)
 
 
 def _api(url: str, token: str, method: str, path: str, **kwargs: Any) -> Any:
