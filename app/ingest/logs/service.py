@@ -8,10 +8,10 @@ from typing import Any
 
 from app.errors import InvalidInput
 from app.ingest.columns import CellError
+from app.ingest.limits import UploadLimits
 from app.ingest.logs.archive import bag_path, log_stem
 from app.ingest.logs.mapping import LogMapping
 from app.ingest.logs.reader import describe_time, open_bag
-from app.ingest.limits import UploadLimits
 from app.ingest.logs.steps import MappedLog, map_log
 from app.ingest.validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
 
