@@ -14,6 +14,7 @@ class JobRead(BaseModel):
 
     id: int
     kind: str
+    params: dict[str, Any]
     status: str
     progress: float
     message: str | None

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
@@ -15,6 +15,9 @@ SLUG_PATTERN = r"^[a-z0-9][a-z0-9-]{1,62}$"
 
 # A feature may not shadow a column name of the rollout file contract.
 RESERVED_COLUMN_NAMES = frozenset((*REQUIRED_COLUMNS, *OPTIONAL_COLUMNS))
+DEFAULT_MIN_GAP_STEPS = 10
+"""Ten steps (1 s at 10 Hz) removed the budget shortfall in an earlier run through the API;
+bench/label_efficiency.py --gap-steps compares others (README, "Label efficiency")."""
 
 
 class FeatureSpec(RequestBody):
@@ -74,16 +77,44 @@ class LoopSettings(RequestBody):
     uncertainty_weight: float = Field(default=0.5, ge=0.0)
     novelty_weight: float = Field(default=0.5, ge=0.0)
     novelty_k: int = Field(default=10, ge=1, le=100)
-    min_gap_s: float = Field(default=1.0, ge=0.0)
+    min_gap_steps: int = Field(
+        default=DEFAULT_MIN_GAP_STEPS,
+        ge=0,
+        le=100_000,
+        description="Minimum distance between two ranked picks from one rollout, in the "
+        "rollout's recorded steps; relaxed step by step when it would leave the budget unspent.",
+    )
     audit_fraction: float = Field(default=0.1, ge=0.0, le=1.0)
     spread: bool = False
     takeover_window_s: float = Field(default=3.0, ge=0.0)
     takeover_boost: float = Field(default=0.25, ge=0.0, le=1.0)
+    uncertainty_method: Literal["auto", "entropy", "margin", "least_confidence"] = Field(
+        default="auto",
+        description="auto: BALD for an ensemble, entropy for probabilities; the others score "
+        "the probabilities (an ensemble's mean) by that rule. Discrete action spaces only.",
+    )
+    self_tuning: bool = Field(
+        default=True,
+        description="Rank by a model of disagreement fitted on earlier rounds' labels once "
+        "they hold enough disagreements.",
+    )
+    tuning_min_disagreements: int = Field(default=10, ge=1, le=100_000)
     continuous_tolerance: list[float] | None = Field(
         default=None,
         description="Per-dimension tolerance for counting a continuous disagreement; "
         "default 10% of each dimension's range.",
     )
+
+    @model_validator(mode="before")
+    @classmethod
+    def _renamed(cls, data: Any) -> Any:
+        if isinstance(data, dict) and "min_gap_s" in data:
+            raise ValueError(
+                "min_gap_s (a gap in seconds) was replaced by min_gap_steps (a gap counted in "
+                "the rollout's recorded steps, the same at any control rate): at a control rate "
+                "of f Hz, min_gap_steps = round(min_gap_s * f)"
+            )
+        return data
 
     @model_validator(mode="after")
     def _weights(self) -> LoopSettings:
@@ -112,6 +143,16 @@ class LoopCreate(RequestBody):
         if clash:
             raise ValueError(f"feature names {clash} are column names of the rollout file")
         return features
+
+    @model_validator(mode="after")
+    def _uncertainty_method(self) -> LoopCreate:
+        method = self.settings.uncertainty_method
+        if method != "auto" and not isinstance(self.action_space, DiscreteActionSpace):
+            raise ValueError(
+                f"settings.uncertainty_method {method!r} scores action probabilities: it needs "
+                "a discrete action space (use 'auto' for a continuous one)"
+            )
+        return self
 
     @model_validator(mode="after")
     def _tolerance_width(self) -> LoopCreate:

@@ -27,6 +27,7 @@ class RoundSteps:
 
     step_id: np.ndarray
     rollout_id: np.ndarray
+    step_index: np.ndarray
     time_s: np.ndarray
     expert: np.ndarray
     features: np.ndarray
@@ -56,6 +57,7 @@ def load_round_steps(session: Session, *, loop: Loop, rnd: Round) -> RoundSteps:
         for k in (
             "id",
             "rollout_id",
+            "step_index",
             "time_s",
             "control",
             "features",
@@ -69,6 +71,7 @@ def load_round_steps(session: Session, *, loop: Loop, rnd: Round) -> RoundSteps:
         select(
             Step.id,
             Step.rollout_id,
+            Step.step_index,
             Step.time_s,
             Step.control,
             Step.features,
@@ -100,6 +103,7 @@ def load_round_steps(session: Session, *, loop: Loop, rnd: Round) -> RoundSteps:
     return RoundSteps(
         step_id=np.array(columns["id"], dtype=np.int64),
         rollout_id=np.array(columns["rollout_id"], dtype=np.int64),
+        step_index=np.array(columns["step_index"], dtype=np.int64),
         time_s=np.array(columns["time_s"], dtype=np.float64),
         expert=np.array(columns["control"], dtype=np.int64) == CONTROL_EXPERT,
         features=features.astype(np.float32, copy=False),

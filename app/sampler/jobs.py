@@ -5,14 +5,55 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
+from sqlalchemy.orm import Session
 
 from app.errors import NotFound
 from app.jobs.runner import JobContext, handler
 from app.loops.models import Loop, Round
-from app.sampler import service
+from app.sampler import history, service, tuning
 from app.sampler.candidates import load_round_steps
 from app.sampler.rank import RankParams, rank_round
 from app.snapshots import training_set
+from app.snapshots.training_set import Cutoff
+
+
+def pinned_cutoff(session: Session, *, loop: Loop, rnd: Round, params: RankParams) -> Cutoff:
+    """The training set as it was when the ranking was requested (jobs queued before the
+    cut-off was recorded read the current one)."""
+    if params.training_max_step_id is None or params.training_max_label_id is None:
+        return training_set.current_cutoff(session, loop=loop, up_to_round=rnd.number)
+    return Cutoff(rnd.number, params.training_max_step_id, params.training_max_label_id)
+
+
+def tune(
+    session: Session, *, loop: Loop, rnd: Round, params: RankParams, cutoff: Cutoff
+) -> tuple[tuning.DisagreementModel | None, dict[str, Any]]:
+    """Fit the disagreement model on earlier rounds' labels; the model to rank by, and a record.
+
+    The model ranks the round only with enough disagreements and agreements behind it; the
+    record says which, and why.
+    """
+    if not params.self_tuning:
+        return None, {"used": False, "why": "self-tuning is switched off for this loop"}
+    found = history.labelled_states(session, loop=loop, before_round=rnd.number, cutoff=cutoff)
+    if len(found) == 0:
+        return None, {"used": False, "why": "no labelled states in earlier rounds yet"}
+    model = tuning.fit_disagreement_model(found.signals, found.disagrees, found.weights)
+    used = tuning.enough_to_rank(model, params.tuning_min_disagreements)
+    why = (
+        "ranked by the predicted probability of disagreement"
+        if used
+        else f"fewer than {params.tuning_min_disagreements} disagreements or agreements "
+        "among labelled states: ranked by the weighted mean"
+    )
+    audit = found.is_audit
+    in_sample = tuning.calibration(model.predict(found.signals[audit]), found.disagrees[audit])
+    return (model if used else None), {
+        "used": used,
+        "why": why,
+        "model": model.record(),
+        "fit_audit_calibration": in_sample,
+    }
 
 
 @handler(service.RANK_JOB)
@@ -26,8 +67,9 @@ def rank_job(ctx: JobContext) -> dict[str, Any]:
             raise NotFound("the round of this ranking job no longer exists")
         ctx.progress(0.02, force=True)
         steps = load_round_steps(session, loop=loop, rnd=rnd)
-        cutoff = training_set.current_cutoff(session, loop=loop, up_to_round=rnd.number)
+        cutoff = pinned_cutoff(session, loop=loop, rnd=rnd, params=params)
         _, training = training_set.training_features(session, loop=loop, cutoff=cutoff)
+        model, tuning_record = tune(session, loop=loop, rnd=rnd, params=params, cutoff=cutoff)
         # End the read transaction: on SQLite a transaction whose snapshot predates another
         # connection's write (our own heartbeats) may not write later.
         session.commit()
@@ -45,6 +87,7 @@ def rank_job(ctx: JobContext) -> dict[str, Any]:
             low=low,
             high=high,
             params=params,
+            model=model,
             progress=lambda f: ctx.progress(0.25 + 0.65 * f),
         )
         ctx.progress(0.92, force=True)
@@ -57,6 +100,7 @@ def rank_job(ctx: JobContext) -> dict[str, Any]:
             ranking=ranking,
             n_training=len(training),
             user_id=ctx.job.created_by,
+            tuning=tuning_record,
         )
         return {
             "selection_id": selection.id,
@@ -65,5 +109,7 @@ def rank_job(ctx: JobContext) -> dict[str, Any]:
             "candidates": int(len(ranking.step_id)),
             "training_states": int(len(training)),
             "uncertainty_method": ranking.uncertainty_method,
+            "methods": ranking.methods,
+            "self_tuning": {k: v for k, v in tuning_record.items() if k in ("used", "why")},
             "notes": ranking.notes,
         }

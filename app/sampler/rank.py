@@ -15,9 +15,12 @@ from app.errors import InvalidInput
 from app.sampler import scores
 from app.sampler.candidates import RoundSteps
 from app.sampler.novelty import DEFAULT_EXACT_THRESHOLD, novelty
-from app.sampler.selection import select, takeover_boost
+from app.sampler.selection import rollout_positions, select, takeover_boost
+from app.sampler.tuning import DisagreementModel
 
 NEUTRAL_PERCENTILE = 0.5
+AUTO_METHOD = "auto"
+"""Uncertainty from the richest learner output: BALD for an ensemble, entropy for probabilities."""
 # Exact search costs about 10 ns per (candidate, training state) pair on our machines: above this
 # many pairs (a couple of seconds) the approximate index answers faster at recall near 1.
 EXACT_PAIR_BUDGET = 2e8
@@ -29,7 +32,7 @@ class RankParams:
 
     budget: int
     seed: int
-    min_gap_s: float
+    min_gap_steps: int
     audit_fraction: float
     spread: bool
     uncertainty_weight: float
@@ -37,7 +40,12 @@ class RankParams:
     novelty_k: int
     takeover_window_s: float
     takeover_boost: float
-    discrete_method: str = "entropy"
+    uncertainty_method: str = AUTO_METHOD
+    self_tuning: bool = True
+    tuning_min_disagreements: int = 10
+    # the training set's cut-off when the ranking was requested: a rerun reads the same one
+    training_max_step_id: int | None = None
+    training_max_label_id: int | None = None
 
 
 @dataclass
@@ -55,6 +63,9 @@ class Ranking:
     reasons: np.ndarray
     ranks: np.ndarray
     uncertainty_method: str
+    near_takeover: np.ndarray  # bool: within the window before an expert takeover
+    predicted: np.ndarray  # predicted probability of disagreement; nan without a model
+    methods: dict[str, object] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
 
 
@@ -70,15 +81,24 @@ def _uncertainty(
     values = np.full(len(rows), np.nan)
     if steps.ensemble is not None and steps.has_ensemble[rows].any():
         have = steps.has_ensemble[rows]
-        found, name = scores.uncertainty_from_learner_outputs(
-            kind, ensemble=steps.ensemble[rows][have], low=low, high=high
-        )
+        if kind == "discrete" and method != AUTO_METHOD:
+            # a chosen probability score applies to the ensemble's mean probabilities
+            found, name = scores.uncertainty_from_learner_outputs(
+                kind,
+                probs=steps.ensemble[rows][have].mean(axis=1),
+                method=method,  # type: ignore[arg-type]
+            )
+            name = f"{name} (ensemble mean)"  # fits the 32 characters stored
+        else:
+            found, name = scores.uncertainty_from_learner_outputs(
+                kind, ensemble=steps.ensemble[rows][have], low=low, high=high
+            )
     elif kind == "discrete" and steps.probs is not None and steps.has_probs[rows].any():
         have = steps.has_probs[rows]
         found, name = scores.uncertainty_from_learner_outputs(
             kind,
             probs=steps.probs[rows][have],
-            method=method,  # type: ignore[arg-type]
+            method="entropy" if method == AUTO_METHOD else method,  # type: ignore[arg-type]
         )
     elif kind == "continuous" and steps.std is not None and steps.has_std[rows].any():
         have = steps.has_std[rows]
@@ -100,6 +120,11 @@ def _percentiles(values: np.ndarray) -> np.ndarray:
     return out
 
 
+def signals_of(u_pct: np.ndarray, n_pct: np.ndarray, near_takeover: np.ndarray) -> np.ndarray:
+    """The disagreement model's inputs (n, 3), in app.sampler.tuning.SIGNALS order."""
+    return np.column_stack([u_pct, n_pct, near_takeover.astype(np.float64)])
+
+
 def rank_round(
     steps: RoundSteps,
     training_features: np.ndarray,
@@ -108,14 +133,22 @@ def rank_round(
     low: np.ndarray,
     high: np.ndarray,
     params: RankParams,
+    model: DisagreementModel | None = None,
     progress: Callable[[float], None] = lambda _: None,
 ) -> Ranking:
-    """Score every learner-driven state of a round and choose the selection."""
+    """Score every learner-driven state of a round and choose the selection.
+
+    With a ``model``, the score is its predicted probability of disagreement (nearness to a
+    takeover is one of its inputs, so no boost is added); otherwise the weighted mean of the
+    percentiles plus the takeover boost.
+    """
     candidates = np.flatnonzero(~steps.expert)
     if len(candidates) == 0:
         raise InvalidInput("the round has no learner-driven states to rank")
     notes: list[str] = []
-    uncertainty, method = _uncertainty(steps, candidates, kind, low, high, params.discrete_method)
+    uncertainty, method = _uncertainty(
+        steps, candidates, kind, low, high, params.uncertainty_method
+    )
     if method == "novelty only":
         notes.append("the rollouts carry no learner outputs: ranked on novelty alone")
     elif np.isnan(uncertainty).any():
@@ -124,13 +157,16 @@ def rank_round(
             "they get the median uncertainty percentile"
         )
     progress(0.2)
+    search = None
     if len(training_features):
         pairs = float(len(candidates)) * len(training_features)
+        threshold = DEFAULT_EXACT_THRESHOLD if pairs <= EXACT_PAIR_BUDGET else 0
+        search = "exact" if len(training_features) <= threshold else "approximate (faiss IVF)"
         novel = novelty(
             steps.features[candidates],
             training_features,
             k=params.novelty_k,
-            exact_threshold=DEFAULT_EXACT_THRESHOLD if pairs <= EXACT_PAIR_BUDGET else 0,
+            exact_threshold=threshold,
             rng=np.random.default_rng(params.seed),
             progress=lambda f: progress(0.2 + 0.6 * f),
         )
@@ -145,32 +181,43 @@ def rank_round(
     progress(0.8)
     u_pct = _percentiles(uncertainty)
     n_pct = _percentiles(novel)
-    combined = scores.combined_score(
-        None if method == "novelty only" else u_pct,
-        None if np.isnan(novel).all() else n_pct,
-        params.uncertainty_weight,
-        params.novelty_weight,
-    )
     boost_all = takeover_boost(
         steps.rollout_id,
         steps.time_s,
         steps.expert,
         params.takeover_window_s,
-        params.takeover_boost,
+        1.0,
     )
-    boost = boost_all[candidates]
+    near_takeover = boost_all[candidates] > 0
+    predicted = np.full(len(candidates), np.nan)
+    if model is not None:
+        predicted = model.predict(signals_of(u_pct, n_pct, near_takeover))
+        combined = predicted
+        boost = np.zeros(len(candidates))
+        score_method = "predicted disagreement"
+    else:
+        combined = scores.combined_score(
+            None if method == "novelty only" else u_pct,
+            None if np.isnan(novel).all() else n_pct,
+            params.uncertainty_weight,
+            params.novelty_weight,
+        )
+        boost = np.where(near_takeover, params.takeover_boost, 0.0)
+        score_method = "weighted mean of percentiles"
+    positions = rollout_positions(steps.rollout_id, steps.step_index)
     result = select(
         combined,
         steps.rollout_id[candidates],
-        steps.time_s[candidates],
+        positions[candidates],
         params.budget,
-        min_gap_s=params.min_gap_s,
+        min_gap=params.min_gap_steps,
         audit_fraction=params.audit_fraction,
         rng=np.random.default_rng(params.seed),
         features=steps.features[candidates] if params.spread else None,
         spread=params.spread,
         takeover_boost=boost,
     )
+    notes.extend(result.notes)
     progress(0.9)
     return Ranking(
         step_id=steps.step_id[candidates],
@@ -184,5 +231,15 @@ def rank_round(
         reasons=result.reasons,
         ranks=result.ranks,
         uncertainty_method=method,
+        near_takeover=near_takeover,
+        predicted=predicted,
+        methods={
+            "uncertainty": method,
+            "novelty": search or "none (empty training set)",
+            "score": score_method,
+            "min_gap_steps": params.min_gap_steps,
+            "gap_steps_used": result.final_gap,
+            "spread": params.spread,
+        },
         notes=notes,
     )

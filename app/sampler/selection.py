@@ -5,24 +5,28 @@ Rules (the README's "Ranking a round (the sampler)"; docs/references.md, "Select
 1. A uniform random *audit* sample is drawn first, ``round_half_up(audit_fraction * budget)``
    states from all candidates, so the learner's on-policy error can be estimated without bias.
 2. The rest of the budget is filled in descending score order, skipping any state within
-   ``min_gap_s`` seconds (``|t - t_taken| < min_gap_s``) of a state already taken from the same
-   rollout, audit picks included. Plain top-B picks near-duplicates; the gap spreads labels
-   across time.
+   ``min_gap`` steps (``|p - p_taken| < min_gap``, positions counted in the rollout's recorded
+   steps) of a state already taken from the same rollout, audit picks included. Plain top-B picks
+   near-duplicates; the gap spreads labels across time. Counting in steps, not seconds, keeps
+   the rule's effect the same at any control rate.
 3. Optionally (``spread=True``) the ranked part is chosen by k-center greedy (farthest-first)
    in standardised feature space from a pool of the best gap-respecting candidates.
+4. The budget is always spent when there are at least ``budget`` candidates: where the gap
+   leaves too few eligible states, it is halved step by step, then dropped, and the fill goes on
+   in score order; each relaxation is reported in :attr:`SelectionResult.notes`.
 
 Candidates are the states the learner controlled: steps where the expert was in control
 are labels already, go straight to the training set upstream, and must never be passed here.
 
-All work is done in a canonical order, sorted by (rollout, time, input position), so the result
-does not depend on the order the store returned the rows in: shuffling the input changes only
-the indices reported, never the states chosen (given unique (rollout, time) pairs). Score ties
-are broken by that canonical order, which equals input order when input is so sorted.
+All work is done in a canonical order, sorted by (rollout, position, input position), so the
+result does not depend on the order the store returned the rows in: shuffling the input changes
+only the indices reported, never the states chosen (given unique (rollout, position) pairs).
+Score ties are broken by that canonical order, which equals input order when input is so sorted.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -53,6 +57,10 @@ class SelectionResult:
         Scores after the takeover boost, in input order.
     n_audit : int
         Number of audit picks.
+    final_gap : float
+        The gap in force when the last ranked pick was taken (``min_gap`` unless relaxed).
+    notes : list of str
+        What had to give to fill the budget, or why fewer than ``budget`` were chosen.
     """
 
     indices: IntArray
@@ -60,14 +68,44 @@ class SelectionResult:
     ranks: IntArray
     effective_scores: FloatArray
     n_audit: int
+    final_gap: float = 0.0
+    notes: list[str] = field(default_factory=list)
 
 
 def _canonical_order(rollout_ids: ArrayLike, times: FloatArray) -> tuple[IntArray, IntArray]:
-    """Return (order, rollout codes) with order sorting by (rollout, time, input position)."""
+    """Return (order, rollout codes) with order sorting by (rollout, time or position, input)."""
     _, codes = np.unique(np.asarray(rollout_ids), return_inverse=True)
     codes = codes.astype(np.int64).ravel()
     order = np.lexsort((np.arange(times.size), times, codes))
     return order.astype(np.int64), codes
+
+
+def rollout_positions(rollout_ids: ArrayLike, step_index: ArrayLike) -> IntArray:
+    """Position of each step within its rollout, counting the rollout's recorded steps.
+
+    Parameters
+    ----------
+    rollout_ids : array_like of shape (n_steps,)
+    step_index : array_like of shape (n_steps,)
+        The steps' indices as recorded (unique within a rollout; gaps allowed).
+
+    Returns
+    -------
+    ndarray of shape (n_steps,)
+        0 for a rollout's first recorded step, 1 for the next, and so on. A robot that logs
+        every fifth step of a 50 Hz controller and one that logs every step at 10 Hz give the
+        same positions to the same moments, so a gap counted in positions means the same
+        stretch of the rollout at any rate of recording.
+    """
+    idx = np.asarray(step_index, dtype=np.int64)
+    if idx.ndim != 1 or np.asarray(rollout_ids).shape != idx.shape:
+        raise ValueError("rollout_ids and step_index must be 1-d arrays of the same length")
+    order, codes = _canonical_order(rollout_ids, idx.astype(np.float64))
+    sorted_codes = codes[order]
+    starts = np.searchsorted(sorted_codes, sorted_codes, side="left")
+    positions = np.empty(idx.size, dtype=np.int64)
+    positions[order] = np.arange(idx.size) - starts
+    return positions
 
 
 def _count_before(
@@ -91,10 +129,10 @@ def _count_before(
     return counts
 
 
-def _gap_windows(codes: IntArray, times: FloatArray, min_gap_s: float) -> tuple[IntArray, IntArray]:
-    """Canonical-position windows [lo, hi) of states within min_gap_s in the same rollout."""
-    lo = _count_before(codes, times, times - min_gap_s, inclusive=True)
-    hi = _count_before(codes, times, times + min_gap_s, inclusive=False)
+def _gap_windows(codes: IntArray, times: FloatArray, min_gap: float) -> tuple[IntArray, IntArray]:
+    """Canonical-position windows [lo, hi) of states within min_gap in the same rollout."""
+    lo = _count_before(codes, times, times - min_gap, inclusive=True)
+    hi = _count_before(codes, times, times + min_gap, inclusive=False)
     # ``t_i <= t_j - gap`` and ``|t_i - t_j| >= gap`` can disagree in the last bit (e.g.
     # 0.9 - 0.3 vs 0.9 - 0.6000000000000001), so move each edge until the rule as stated holds.
     # Within a rollout the rule is monotone in time, so a few vectorised steps settle it.
@@ -102,7 +140,7 @@ def _gap_windows(codes: IntArray, times: FloatArray, min_gap_s: float) -> tuple[
     end = np.searchsorted(codes, codes, side="right")
 
     def inside(pos: IntArray) -> NDArray[np.bool_]:
-        return np.abs(times[np.clip(pos, 0, codes.size - 1)] - times) < min_gap_s
+        return np.abs(times[np.clip(pos, 0, codes.size - 1)] - times) < min_gap
 
     while np.any(move := (lo > start) & inside(lo - 1)):
         lo[move] -= 1
@@ -118,9 +156,9 @@ def _gap_windows(codes: IntArray, times: FloatArray, min_gap_s: float) -> tuple[
 def _validate(
     scores: ArrayLike,
     rollout_ids: ArrayLike,
-    times: ArrayLike,
+    positions: ArrayLike,
     budget: int,
-    min_gap_s: float,
+    min_gap: float,
     audit_fraction: float,
     features: ArrayLike | None,
     spread: bool,
@@ -128,16 +166,16 @@ def _validate(
     boost: ArrayLike | None,
 ) -> tuple[FloatArray, FloatArray, NDArray[np.float64] | None]:
     s = np.asarray(scores, dtype=np.float64)
-    t = np.asarray(times, dtype=np.float64)
+    t = np.asarray(positions, dtype=np.float64)
     n = s.size
     if s.ndim != 1 or t.shape != s.shape or np.asarray(rollout_ids).shape != s.shape:
-        raise ValueError("scores, rollout_ids and times must be 1-d arrays of the same length")
+        raise ValueError("scores, rollout_ids and positions must be 1-d arrays of the same length")
     if not (np.all(np.isfinite(s)) and np.all(np.isfinite(t))):
-        raise ValueError("scores and times must be finite")
+        raise ValueError("scores and positions must be finite")
     if budget < 0:
         raise ValueError(f"budget must be >= 0, got {budget}")
-    if not (np.isfinite(min_gap_s) and min_gap_s >= 0):
-        raise ValueError(f"min_gap_s must be >= 0, got {min_gap_s}")
+    if not (np.isfinite(min_gap) and min_gap >= 0):
+        raise ValueError(f"min_gap must be >= 0, got {min_gap}")
     if not 0 <= audit_fraction <= 1:
         raise ValueError(f"audit_fraction must be in [0, 1], got {audit_fraction}")
     if boost is not None:
@@ -175,13 +213,67 @@ def _farthest_first(points: FloatArray, n_pick: int) -> IntArray:
     return picks
 
 
+def relaxed_gaps(min_gap: float) -> list[float]:
+    """The gaps tried in turn to fill a budget: ``min_gap``, halved (whole steps), then 0.
+
+    Halving keeps as much spread as the round allows before giving it up. A gap of one step
+    blocks nothing but the state itself, so the ladder stops halving at 2: 10 gives
+    [10, 5, 2, 0] and 50 gives [50, 25, 12, 6, 3, 0].
+    """
+    gaps = [float(min_gap)]
+    while (half := float(np.floor(gaps[-1] / 2))) >= 2:
+        gaps.append(half)
+    if gaps[-1] > 0:
+        gaps.append(0.0)
+    return gaps
+
+
+def _fill(
+    by_score: IntArray,
+    blocked: NDArray[np.bool_],
+    lo: IntArray,
+    hi: IntArray,
+    target: int,
+    accepted: list[int],
+) -> None:
+    """Take unblocked candidates in score order until ``accepted`` holds ``target``.
+
+    Sequential by nature (each pick blocks its neighbours); O(1) per candidate plus the slice
+    writes, and the loop stops as soon as the target is met.
+    """
+    if len(accepted) >= target:
+        return
+    lo_list, hi_list = lo.tolist(), hi.tolist()
+    for pos in by_score.tolist():
+        if blocked[pos]:
+            continue
+        accepted.append(pos)
+        blocked[lo_list[pos] : hi_list[pos]] = True
+        blocked[pos] = True
+        if len(accepted) == target:
+            return
+
+
+def _block_around(taken: IntArray, lo: IntArray, hi: IntArray, n: int) -> NDArray[np.bool_]:
+    """Candidates blocked by the states already taken under the windows (lo, hi)."""
+    blocked = np.zeros(n, dtype=bool)
+    blocked[taken] = True
+    for a in taken.tolist():
+        blocked[lo[a] : hi[a]] = True
+    return blocked
+
+
+def _gap_words(gap: float) -> str:
+    return f"{gap:g} step" if gap == 1 else f"{gap:g} steps"
+
+
 def select(
     scores: ArrayLike,
     rollout_ids: ArrayLike,
-    times: ArrayLike,
+    positions: ArrayLike,
     budget: int,
     *,
-    min_gap_s: float,
+    min_gap: float,
     audit_fraction: float = 0.1,
     rng: np.random.Generator,
     features: ArrayLike | None = None,
@@ -189,7 +281,7 @@ def select(
     spread_pool_factor: int = 5,
     takeover_boost: ArrayLike | None = None,
 ) -> SelectionResult:
-    """Choose up to ``budget`` candidate states: an audit sample, then the best-scored.
+    """Choose ``min(budget, n_candidates)`` candidate states: an audit sample, then the best.
 
     Parameters
     ----------
@@ -197,13 +289,14 @@ def select(
         Larger is more useful to label (e.g. :func:`app.sampler.scores.combined_score`).
     rollout_ids : array_like of shape (n_candidates,)
         Rollout of each state (any sortable type: ints or strings).
-    times : array_like of shape (n_candidates,)
-        Time of each state within its rollout, in seconds.
+    positions : array_like of shape (n_candidates,)
+        Position of each state within its rollout, in recorded steps (0, 1, 2, ... over all the
+        rollout's steps, expert-driven ones included).
     budget : int
-        Number of states to choose. If the gap rule leaves fewer eligible, all of those
-        are taken; otherwise exactly ``budget`` are chosen.
-    min_gap_s : float
-        Ranked picks must be at least this far in time from every state already taken
+        Number of states to choose. Exactly ``budget`` are chosen when there are at least that
+        many candidates (the gap is relaxed if it must be, see the module notes); otherwise all.
+    min_gap : float
+        Ranked picks should be at least this many steps from every state already taken
         (audit or ranked) in the same rollout. 0 disables the rule.
     audit_fraction : float
         ``n_audit = floor(audit_fraction * budget + 0.5)`` (half-up), capped at the number of
@@ -230,9 +323,9 @@ def select(
     s, t, f = _validate(
         scores,
         rollout_ids,
-        times,
+        positions,
         budget,
-        min_gap_s,
+        min_gap,
         audit_fraction,
         features,
         spread,
@@ -240,6 +333,9 @@ def select(
         takeover_boost,
     )
     n = s.size
+    notes: list[str] = []
+    if n < budget:
+        notes.append(f"only {n} candidates for a budget of {budget}: all of them were chosen")
     order, codes = _canonical_order(rollout_ids, t)
     c_scores, c_codes, c_times = s[order], codes[order], t[order]
 
@@ -251,33 +347,37 @@ def select(
     n_audit = min(int(np.floor(audit_fraction * budget + 0.5)), n, budget)
     audit = rng.choice(n, size=n_audit, replace=False).astype(np.int64)
 
-    lo, hi = _gap_windows(c_codes, c_times, min_gap_s)
-    blocked = np.zeros(n, dtype=bool)
-    blocked[audit] = True
-    for a in audit:
-        blocked[lo[a] : hi[a]] = True
-
-    n_ranked = budget - n_audit
+    lo, hi = _gap_windows(c_codes, c_times, min_gap)
+    blocked = _block_around(audit, lo, hi, n)
+    n_ranked = min(budget, n) - n_audit
     target = n_ranked * spread_pool_factor if spread else n_ranked
     accepted: list[int] = []
-    if target > 0:
-        # Sequential by nature (each pick blocks its neighbours); O(1) per candidate plus the
-        # slice writes, and the loop stops as soon as the target is met.
-        lo_list, hi_list = lo.tolist(), hi.tolist()
-        for pos in by_score.tolist():
-            if blocked[pos]:
-                continue
-            accepted.append(pos)
-            if len(accepted) == target:
-                break
-            blocked[lo_list[pos] : hi_list[pos]] = True
-            blocked[pos] = True
+    _fill(by_score, blocked, lo, hi, target, accepted)
     ranked = np.asarray(accepted, dtype=np.int64)
     if spread and ranked.size > n_ranked:
         assert f is not None
         standardiser = Standardiser.fit(f)
         pool_points = standardiser.transform(f[order[ranked]])
         ranked = ranked[_farthest_first(pool_points, n_ranked)]
+
+    final_gap = float(min_gap)
+    if ranked.size < n_ranked:
+        short = n_ranked - ranked.size
+        accepted = ranked.tolist()
+        for gap in relaxed_gaps(min_gap)[1:]:
+            lo, hi = _gap_windows(c_codes, c_times, gap)
+            taken = np.concatenate([audit, np.asarray(accepted, dtype=np.int64)])
+            _fill(by_score, _block_around(taken, lo, hi, n), lo, hi, n_ranked, accepted)
+            final_gap = gap
+            if len(accepted) == n_ranked:
+                break
+        added = len(accepted) - ranked.size
+        relaxed = "dropped" if final_gap == 0 else f"relaxed to {_gap_words(final_gap)}"
+        notes.append(
+            f"gap {relaxed} to fill the budget: {_gap_words(min_gap)} left room for "
+            f"{n_ranked - short} of {n_ranked} ranked states; {added} more were taken"
+        )
+        ranked = np.asarray(accepted, dtype=np.int64)
 
     chosen = np.concatenate([audit, ranked])
     reasons = np.array([REASON_AUDIT] * audit.size + [REASON_RANKED] * ranked.size, dtype=str)
@@ -287,6 +387,8 @@ def select(
         ranks=score_rank[chosen],
         effective_scores=s,
         n_audit=n_audit,
+        final_gap=final_gap,
+        notes=notes,
     )
 
 

@@ -20,18 +20,21 @@ from app.jobs.models import Job
 from app.loops.models import Loop, Round
 from app.queue.models import Label, QueueItem
 from app.sampler.models import SelectedState, Selection
-from app.sampler.rank import Ranking, RankParams
+from app.sampler.rank import AUTO_METHOD, Ranking, RankParams
+from app.snapshots import training_set
 
 RANK_JOB = "rank"
 
 
-def rank_params(loop: Loop, *, budget: int, seed: int | None) -> RankParams:
-    """The ranking parameters from the loop's settings, with a recorded seed."""
+def rank_params(
+    loop: Loop, *, budget: int, seed: int | None, cutoff: training_set.Cutoff | None = None
+) -> RankParams:
+    """The ranking parameters from the loop's settings, with a recorded seed and cut-off."""
     s = loop.settings
     return RankParams(
         budget=budget,
         seed=seed if seed is not None else secrets.randbits(63),
-        min_gap_s=float(s["min_gap_s"]),
+        min_gap_steps=int(s["min_gap_steps"]),
         audit_fraction=float(s["audit_fraction"]),
         spread=bool(s["spread"]),
         uncertainty_weight=float(s["uncertainty_weight"]),
@@ -39,6 +42,11 @@ def rank_params(loop: Loop, *, budget: int, seed: int | None) -> RankParams:
         novelty_k=int(s["novelty_k"]),
         takeover_window_s=float(s["takeover_window_s"]),
         takeover_boost=float(s["takeover_boost"]),
+        uncertainty_method=str(s.get("uncertainty_method", AUTO_METHOD)),
+        self_tuning=bool(s.get("self_tuning", True)),
+        tuning_min_disagreements=int(s.get("tuning_min_disagreements", 10)),
+        training_max_step_id=None if cutoff is None else cutoff.max_step_id,
+        training_max_label_id=None if cutoff is None else cutoff.max_label_id,
     )
 
 
@@ -63,7 +71,9 @@ def request_ranking(
         raise Conflict(
             f"round {rnd.number} already has labels; ranking it again would change its queue"
         )
-    params = rank_params(loop, budget=budget, seed=seed)
+    # pin the training set now: a job taken over later, or rerun, reads the same one
+    cutoff = training_set.current_cutoff(session, loop=loop, up_to_round=rnd.number)
+    params = rank_params(loop, budget=budget, seed=seed, cutoff=cutoff)
     return jobs_service.enqueue(
         session,
         kind=RANK_JOB,
@@ -85,6 +95,8 @@ def _pack_scores(ranking: Ranking) -> bytes:
         novelty_pct=ranking.novelty_pct.astype(np.float32),
         boost=ranking.boost.astype(np.float32),
         score=ranking.score.astype(np.float32),
+        near_takeover=ranking.near_takeover.astype(bool),
+        predicted=ranking.predicted.astype(np.float32),
     )
     return sink.getvalue()
 
@@ -103,6 +115,7 @@ def store_ranking(
     ranking: Ranking,
     n_training: int,
     user_id: int | None,
+    tuning: dict[str, Any] | None = None,
 ) -> Selection:
     """Replace the round's selection and queue with this ranking, in one transaction."""
     # SQLite: take the write lock first, so the checks below cannot go stale before the writes
@@ -116,7 +129,12 @@ def store_ranking(
             job_id=job_id,
             budget=params.budget,
             seed=params.seed,
-            params={**asdict(params), "notes": ranking.notes},
+            params={
+                **asdict(params),
+                "methods": ranking.methods,
+                "self_tuning": tuning or {"used": False, "why": "not fitted"},
+                "notes": ranking.notes,
+            },
             uncertainty_method=None
             if ranking.uncertainty_method == "novelty only"
             else ranking.uncertainty_method,

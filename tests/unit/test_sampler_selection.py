@@ -24,7 +24,7 @@ def make_round(rng, n=3000, n_rollouts=40, step_s=0.1):
     return scores, rollout, times
 
 
-def slow_ranked(scores, rollout, times, budget, min_gap_s, taken):
+def slow_ranked(scores, rollout, times, budget, min_gap, taken):
     """Obvious reference: walk the score order, check every taken state in the same rollout."""
     order = sorted(range(len(scores)), key=lambda i: (-scores[i], i))
     taken = list(taken)
@@ -34,22 +34,22 @@ def slow_ranked(scores, rollout, times, budget, min_gap_s, taken):
             break
         if i in taken:
             continue
-        if any(rollout[j] == rollout[i] and abs(times[j] - times[i]) < min_gap_s for j in taken):
+        if any(rollout[j] == rollout[i] and abs(times[j] - times[i]) < min_gap for j in taken):
             continue
         chosen.append(i)
         taken.append(i)
     return chosen
 
 
-def assert_gap_respected(result, rollout, times, min_gap_s):
-    """Every ranked pick is at least min_gap_s from every other pick in its rollout."""
+def assert_gap_respected(result, rollout, times, min_gap):
+    """Every ranked pick is at least min_gap from every other pick in its rollout."""
     idx = result.indices
     for pos, i in enumerate(idx):
         if result.reasons[pos] != "ranked":
             continue
         others = np.delete(idx, pos)
         same = rollout[others] == rollout[i]
-        assert np.all(np.abs(times[others][same] - times[i]) >= min_gap_s)
+        assert np.all(np.abs(times[others][same] - times[i]) >= min_gap)
 
 
 def test_matches_slow_reference_with_audit_and_gap():
@@ -60,7 +60,7 @@ def test_matches_slow_reference_with_audit_and_gap():
         rollout,
         times,
         120,
-        min_gap_s=0.55,
+        min_gap=0.55,
         audit_fraction=0.1,
         rng=np.random.default_rng(1),
     )
@@ -79,7 +79,7 @@ def test_without_gap_or_audit_is_plain_top_b_with_index_tie_break():
     rollout = np.arange(6)
     times = np.zeros(6)
     result = sel.select(
-        scores, rollout, times, 4, min_gap_s=0, audit_fraction=0, rng=np.random.default_rng(0)
+        scores, rollout, times, 4, min_gap=0, audit_fraction=0, rng=np.random.default_rng(0)
     )
     # hand-checkable: descending, ties by index -> 1, 4, 5, 0
     assert_array_equal(result.indices, [1, 4, 5, 0])
@@ -92,10 +92,11 @@ def test_gap_by_hand_boundary_is_allowed():
     times = np.arange(6.0)
     scores = np.array([0.1, 0.9, 0.8, 0.7, 0.2, 0.3])
     result = sel.select(
-        scores, np.zeros(6), times, 6, min_gap_s=2.0, audit_fraction=0, rng=np.random.default_rng(0)
+        scores, np.zeros(6), times, 3, min_gap=2.0, audit_fraction=0, rng=np.random.default_rng(0)
     )
     # hand-checkable: take t=1 (0.9); t=2 blocked; t=3 (0.7) allowed; then t=5 (0.3)
     assert_array_equal(result.indices, [1, 3, 5])
+    assert result.notes == [] and result.final_gap == 2.0
 
 
 def test_rollouts_are_independent_for_the_gap():
@@ -105,8 +106,8 @@ def test_rollouts_are_independent_for_the_gap():
         np.array([4.0, 3, 2, 1]),
         rollout,
         times,
-        4,
-        min_gap_s=1.0,
+        3,
+        min_gap=1.0,
         audit_fraction=0,
         rng=np.random.default_rng(0),
     )
@@ -122,7 +123,7 @@ def test_audit_fraction_rounds_half_up_and_is_uniform():
             rollout,
             times,
             budget,
-            min_gap_s=0,
+            min_gap=0,
             audit_fraction=0.1,
             rng=np.random.default_rng(0),
         )
@@ -132,7 +133,7 @@ def test_audit_fraction_rounds_half_up_and_is_uniform():
     counts = np.zeros(20)
     draw_rng = np.random.default_rng(123)
     for _ in range(4000):
-        r = sel.select(scores, rollout, times, 5, min_gap_s=0, audit_fraction=1.0, rng=draw_rng)
+        r = sel.select(scores, rollout, times, 5, min_gap=0, audit_fraction=1.0, rng=draw_rng)
         counts[r.indices] += 1
     assert counts.sum() == 20_000
     assert chisquare(counts).pvalue > 1e-3
@@ -141,17 +142,17 @@ def test_audit_fraction_rounds_half_up_and_is_uniform():
 def test_audit_ignores_scores():
     rng = np.random.default_rng(3)
     scores, rollout, times = make_round(rng, n=500)
-    a = sel.select(scores, rollout, times, 50, min_gap_s=0.3, rng=np.random.default_rng(9))
-    b = sel.select(-scores, rollout, times, 50, min_gap_s=0.3, rng=np.random.default_rng(9))
+    a = sel.select(scores, rollout, times, 50, min_gap=0.3, rng=np.random.default_rng(9))
+    b = sel.select(-scores, rollout, times, 50, min_gap=0.3, rng=np.random.default_rng(9))
     assert_array_equal(a.indices[: a.n_audit], b.indices[: b.n_audit])
 
 
 def test_same_seed_same_selection_different_seed_different_audit():
     rng = np.random.default_rng(4)
     scores, rollout, times = make_round(rng)
-    a = sel.select(scores, rollout, times, 200, min_gap_s=0.5, rng=np.random.default_rng(7))
-    b = sel.select(scores, rollout, times, 200, min_gap_s=0.5, rng=np.random.default_rng(7))
-    c = sel.select(scores, rollout, times, 200, min_gap_s=0.5, rng=np.random.default_rng(8))
+    a = sel.select(scores, rollout, times, 200, min_gap=0.5, rng=np.random.default_rng(7))
+    b = sel.select(scores, rollout, times, 200, min_gap=0.5, rng=np.random.default_rng(7))
+    c = sel.select(scores, rollout, times, 200, min_gap=0.5, rng=np.random.default_rng(8))
     assert_array_equal(a.indices, b.indices)
     assert list(a.reasons) == list(b.reasons)
     assert set(a.indices[: a.n_audit]) != set(c.indices[: c.n_audit])
@@ -162,7 +163,7 @@ def test_shuffling_candidates_does_not_change_the_states_chosen(spread):
     rng = np.random.default_rng(5)
     scores, rollout, times = make_round(rng, n=2000)
     features = rng.standard_normal((2000, 6))
-    kwargs = dict(min_gap_s=0.35, audit_fraction=0.1, features=features, spread=spread)
+    kwargs = dict(min_gap=0.35, audit_fraction=0.1, features=features, spread=spread)
     base = sel.select(scores, rollout, times, 100, rng=np.random.default_rng(11), **kwargs)
     perm = rng.permutation(2000)
     kwargs["features"] = features[perm]
@@ -174,18 +175,23 @@ def test_shuffling_candidates_does_not_change_the_states_chosen(spread):
     assert_array_equal(shuffled.ranks, base.ranks)
 
 
-def test_budget_larger_than_candidates_takes_what_gap_allows():
+def test_budget_larger_than_candidates_takes_them_all_and_says_so():
     rng = np.random.default_rng(6)
     scores, rollout, times = make_round(rng, n=300, n_rollouts=5)
-    everything = sel.select(scores, rollout, times, 1000, min_gap_s=0, rng=np.random.default_rng(0))
+    everything = sel.select(scores, rollout, times, 1000, min_gap=0, rng=np.random.default_rng(0))
     assert sorted(everything.indices.tolist()) == list(range(300))
     assert everything.n_audit == 100  # 10% of the budget, capped at nothing here
+    assert everything.notes == ["only 300 candidates for a budget of 1000: all of them were chosen"]
     gapped = sel.select(
-        scores, rollout, times, 1000, min_gap_s=1.0, audit_fraction=0, rng=np.random.default_rng(0)
+        scores, rollout, times, 1000, min_gap=1.0, audit_fraction=0, rng=np.random.default_rng(0)
     )
+    # first what the gap allows, in score order; then the rest once the gap is dropped
     expected = slow_ranked(scores, rollout, times, 1000, 1.0, [])
-    assert_array_equal(gapped.indices, expected)
-    assert gapped.indices.size < 300
+    assert len(expected) < 300
+    assert_array_equal(gapped.indices[: len(expected)], expected)
+    assert sorted(gapped.indices.tolist()) == list(range(300))
+    assert gapped.final_gap == 0
+    assert any(note.startswith("gap dropped to fill the budget") for note in gapped.notes)
 
 
 def test_spread_is_farthest_first_over_the_gap_pool():
@@ -197,7 +203,7 @@ def test_spread_is_farthest_first_over_the_gap_pool():
         rollout,
         times,
         20,
-        min_gap_s=0.3,
+        min_gap=0.3,
         audit_fraction=0,
         rng=np.random.default_rng(0),
         features=features,
@@ -223,7 +229,7 @@ def test_spread_covers_more_clusters_than_plain_ranking():
     features = np.eye(5)[label] * 10 + rng.standard_normal((1000, 5)) * 0.1
     scores = rng.random(1000) + (label == 0) * 1.0
     rollout, times = np.arange(1000), np.zeros(1000)
-    kwargs = dict(min_gap_s=0, audit_fraction=0, features=features, spread_pool_factor=30)
+    kwargs = dict(min_gap=0, audit_fraction=0, features=features, spread_pool_factor=30)
     plain = sel.select(scores, rollout, times, 10, rng=np.random.default_rng(0), **kwargs)
     spread = sel.select(
         scores, rollout, times, 10, rng=np.random.default_rng(0), spread=True, **kwargs
@@ -279,7 +285,7 @@ def test_boost_changes_the_ranking():
         np.arange(3),
         np.zeros(3),
         1,
-        min_gap_s=0,
+        min_gap=0,
         audit_fraction=0,
         rng=np.random.default_rng(0),
         takeover_boost=np.array([0.0, 0.0, 0.6]),
@@ -291,13 +297,13 @@ def test_boost_changes_the_ranking():
 def test_invalid_parameters_are_refused():
     s, r, t = np.ones(3), np.zeros(3), np.arange(3.0)
     with pytest.raises(ValueError, match="budget"):
-        sel.select(s, r, t, -1, min_gap_s=0, rng=np.random.default_rng(0))
+        sel.select(s, r, t, -1, min_gap=0, rng=np.random.default_rng(0))
     with pytest.raises(ValueError, match="audit_fraction"):
-        sel.select(s, r, t, 1, min_gap_s=0, audit_fraction=1.5, rng=np.random.default_rng(0))
+        sel.select(s, r, t, 1, min_gap=0, audit_fraction=1.5, rng=np.random.default_rng(0))
     with pytest.raises(ValueError, match="features"):
-        sel.select(s, r, t, 1, min_gap_s=0, spread=True, rng=np.random.default_rng(0))
+        sel.select(s, r, t, 1, min_gap=0, spread=True, rng=np.random.default_rng(0))
     with pytest.raises(ValueError, match="same length"):
-        sel.select(s, r[:2], t, 1, min_gap_s=0, rng=np.random.default_rng(0))
+        sel.select(s, r[:2], t, 1, min_gap=0, rng=np.random.default_rng(0))
 
 
 def test_gap_rule_holds_at_float_boundaries():
@@ -306,6 +312,70 @@ def test_gap_rule_holds_at_float_boundaries():
     rng = np.random.default_rng(10)
     scores, rollout, times = make_round(rng, n=1500, n_rollouts=10)
     result = sel.select(
-        scores, rollout, times, 400, min_gap_s=0.3, audit_fraction=0, rng=np.random.default_rng(0)
+        scores, rollout, times, 400, min_gap=0.3, audit_fraction=0, rng=np.random.default_rng(0)
     )
-    assert_array_equal(result.indices, slow_ranked(scores, rollout, times, 400, 0.3, []))
+    # the gap leaves room for fewer than 400: those come first, exactly as the rule says
+    expected = slow_ranked(scores, rollout, times, 400, 0.3, [])
+    assert len(expected) < 400
+    assert_array_equal(result.indices[: len(expected)], expected)
+    assert result.indices.size == 400
+
+
+def slow_ladder(scores, rollout, positions, budget, gaps):
+    """Obvious reference for the relaxation: fill with each gap in turn, keeping earlier picks."""
+    taken = []
+    for gap in gaps:
+        more = slow_ranked(scores, rollout, positions, budget - len(taken), gap, taken)
+        taken.extend(more)
+        if len(taken) == budget:
+            return taken, gap
+    return taken, gaps[-1]
+
+
+def test_relaxed_gaps_halve_in_whole_steps_then_drop():
+    assert sel.relaxed_gaps(10) == [10, 5, 2, 0]
+    assert sel.relaxed_gaps(50) == [50, 25, 12, 6, 3, 0]
+    assert sel.relaxed_gaps(3) == [3, 0]
+    assert sel.relaxed_gaps(0.3) == [0.3, 0]
+    assert sel.relaxed_gaps(0) == [0]
+
+
+@pytest.mark.parametrize("seed,gap,budget", [(0, 10, 120), (1, 25, 60), (2, 4, 290)])
+def test_budget_is_spent_by_relaxing_the_gap_step_by_step(seed, gap, budget):
+    rng = np.random.default_rng(seed)
+    scores, rollout, positions = make_round(rng, n=300, n_rollouts=6, step_s=1.0)
+    result = sel.select(scores, rollout, positions, budget, min_gap=gap, audit_fraction=0, rng=rng)
+    expected, final_gap = slow_ladder(scores, rollout, positions, budget, sel.relaxed_gaps(gap))
+    assert_array_equal(result.indices, expected)
+    assert result.indices.size == budget == np.unique(result.indices).size
+    assert result.final_gap == final_gap
+    assert len(result.notes) == 1 and "to fill the budget" in result.notes[0]
+
+
+def test_relaxation_respects_audit_picks_and_says_how_far_it_went():
+    # one rollout of 30 steps, best scores clustered at steps 10..14; gap 20 with a budget of 6
+    positions = np.arange(30.0)
+    scores = np.where((positions >= 10) & (positions < 15), 1.0 + positions / 100, positions / 100)
+    result = sel.select(
+        scores,
+        np.zeros(30),
+        positions,
+        6,
+        min_gap=20,
+        audit_fraction=0,
+        rng=np.random.default_rng(0),
+    )
+    # gap 20 allows step 14 and then nothing within 20 steps: only 14 (and nothing else).
+    # 10 allows 14, 29 (best far enough) and 4; 5 adds 19 and 24 and 9; six picks
+    assert sorted(result.indices.tolist()) == [4, 9, 14, 19, 24, 29]
+    assert result.final_gap == 5
+    assert result.notes == [
+        "gap relaxed to 5 steps to fill the budget: 20 steps left room for 1 of 6 ranked "
+        "states; 5 more were taken"
+    ]
+
+
+def test_rollout_positions_count_recorded_steps():
+    rollout = np.array(["b", "a", "a", "b", "a"])
+    step_index = np.array([10, 5, 0, 0, 15])
+    assert sel.rollout_positions(rollout, step_index).tolist() == [1, 1, 0, 0, 2]
