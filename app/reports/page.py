@@ -15,6 +15,7 @@ from app.loops.models import Loop
 from app.reports import charts
 from app.reports.schemas import RateRead, RoundReport
 from app.reports.table import loop_table
+from app.sampler.tuning import SIGNALS
 from app.snapshots.training_set import continuous_tolerance
 
 DASH = "–"
@@ -375,6 +376,7 @@ def loop_page_context(loop: Loop, reports: list[RoundReport]) -> dict[str, Any]:
             agreement_figure(reports),
         ],
         "features": features_figure(with_shift[-1]) if with_shift else None,
+        "self_tuning": self_tuning_rows(reports),
         "latest": latest,
         "annotators": [
             [
@@ -387,6 +389,33 @@ def loop_page_context(loop: Loop, reports: list[RoundReport]) -> dict[str, Any]:
             for a in (latest.annotators if latest else [])
         ],
     }
+
+
+def self_tuning_rows(reports: list[RoundReport]) -> list[list[str]]:
+    """One row per ranked round: the disagreement model's weights and its audit calibration."""
+    rows = []
+    for r in reports:
+        tuned = r.self_tuning
+        if tuned is None:
+            continue
+        weights = tuned.weights or {}
+        calibration = tuned.audit_calibration
+        rows.append(
+            [
+                str(r.round),
+                "predicted disagreement" if tuned.used else "weighted mean",
+                number(tuned.intercept, 2),
+                *(number(weights.get(name), 2) for name in SIGNALS),
+                DASH
+                if tuned.n_labelled is None
+                else f"{tuned.n_disagreements} / {tuned.n_labelled}",
+                DASH
+                if calibration is None or not calibration.n
+                else f"{calibration.expected:.1f} / {calibration.observed} (n = {calibration.n})",
+                DASH if calibration is None else number(calibration.brier),
+            ]
+        )
+    return rows
 
 
 def _rate_cell(rate: RateRead, round_number: int) -> tuple[str, str]:

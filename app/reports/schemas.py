@@ -136,6 +136,38 @@ class CountsRead(BaseModel):
     multi_label_states: int
 
 
+class CalibrationBinRead(BaseModel):
+    low: float
+    high: float
+    n: int
+    mean_predicted: float
+    observed_rate: float
+
+
+class CalibrationRead(BaseModel):
+    """Predicted against observed disagreement on a sample of labelled states."""
+
+    n: int
+    brier: float | None
+    expected: float
+    observed: int
+    bins: list[CalibrationBinRead]
+
+
+class SelfTuningRead(BaseModel):
+    """The disagreement model fitted when the round was ranked, and how it fared on the round's
+    own audit sample (states it had not seen)."""
+
+    used: bool
+    why: str
+    intercept: float | None = None
+    weights: dict[str, float] | None = None
+    n_labelled: int | None = None
+    n_disagreements: int | None = None
+    effective_n: float | None = None
+    audit_calibration: CalibrationRead | None = None
+
+
 class RoundReport(BaseModel):
     """Everything the report says about one round."""
 
@@ -153,6 +185,7 @@ class RoundReport(BaseModel):
     annotators: list[AnnotatorRead]
     pace: PaceRead
     shown_vs_hidden: ShownHiddenRead
+    self_tuning: SelfTuningRead | None = None
 
 
 class RoundReportRow(BaseModel):

@@ -38,7 +38,8 @@ from app.loops import service as loops_service
 from app.loops.models import Loop, Round
 from app.queue.models import ANSWER_UNSURE, Label
 from app.reports import annotators, compute, rates
-from app.reports.schemas import CountsRead, RoundReport
+from app.reports.schemas import CountsRead, RoundReport, SelfTuningRead
+from app.sampler import history, tuning
 from app.sampler.models import REASON_AUDIT, SelectedState, Selection
 from app.snapshots import training_set as ts
 
@@ -102,18 +103,9 @@ def _step_actions(
 
 def _expert(found: ts.Relabels, step_ids: np.ndarray, kind: compute.ActionKind) -> np.ndarray:
     """Consensus action of each step id; "none" where unlabelled or unresolved."""
-    hit = np.zeros(len(step_ids), dtype=bool)
-    at = np.zeros(len(step_ids), dtype=np.int64)
-    if len(found.step_id):
-        at = np.minimum(np.searchsorted(found.step_id, step_ids), len(found.step_id) - 1)
-        hit = (found.step_id[at] == step_ids) & found.resolved[at]
-    if kind.discrete:
-        expert = np.full(len(step_ids), -1, np.int64)
-        expert[hit] = found.action[at[hit]]
-        return expert
-    expert_vec = np.full((len(step_ids), len(kind.dimension_names)), np.nan)
-    expert_vec[hit] = found.action[at[hit]]
-    return expert_vec
+    return history.expert_actions(
+        found, step_ids, discrete=kind.discrete, width=len(kind.dimension_names)
+    )
 
 
 def _features(session: Session, step_ids: np.ndarray, width: int) -> np.ndarray:
@@ -212,7 +204,45 @@ def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundR
         annotators=annotators.annotators_read(labels, kind, names),
         pace=annotators.pace_read(labels),
         shown_vs_hidden=annotators.shown_hidden_read(labels, kind),
+        self_tuning=_self_tuning(session, rnd, learner, expert, kind),
     )
+
+
+def _self_tuning(
+    session: Session,
+    rnd: Round,
+    learner: np.ndarray,
+    expert: np.ndarray,
+    kind: compute.ActionKind,
+) -> SelfTuningRead | None:
+    """The model the round's ranking fitted, and its calibration on the round's audit sample.
+
+    ``learner`` and ``expert`` are the selected states' actions in step-id order, the order
+    ``history.selection_states`` returns them in.
+    """
+    selection = session.scalar(select(Selection).where(Selection.round_id == rnd.id))
+    record = None if selection is None else selection.params.get("self_tuning")
+    if selection is None or not record:
+        return None
+    found: dict[str, Any] = {"used": bool(record.get("used")), "why": str(record.get("why", ""))}
+    if "model" in record:
+        model = tuning.DisagreementModel.from_record(record["model"])
+        _, is_audit, signals = history.selection_states(session, selection)
+        disagrees, known = tuning.disagreement_of(
+            learner, expert, None if kind.discrete else kind.tolerance
+        )
+        audit = is_audit & known
+        found |= {
+            "intercept": model.intercept,
+            "weights": model.weights,
+            "n_labelled": model.n_labelled,
+            "n_disagreements": model.n_disagreements,
+            "effective_n": model.effective_n,
+            "audit_calibration": tuning.calibration(
+                model.predict(signals[audit]), disagrees[audit]
+            ),
+        }
+    return SelfTuningRead.model_validate(found)
 
 
 def _labels(

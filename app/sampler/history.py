@@ -65,17 +65,20 @@ def learner_actions(session: Session, loop: Loop, step_ids: np.ndarray) -> np.nd
     )
 
 
-def expert_actions(found: ts.Relabels, step_ids: np.ndarray, discrete: bool) -> np.ndarray:
-    """Consensus action of each step id; -1 / NaN where unlabelled or unresolved."""
-    at = np.clip(np.searchsorted(found.step_id, step_ids), 0, max(len(found.step_id) - 1, 0))
+def expert_actions(
+    found: ts.Relabels, step_ids: np.ndarray, *, discrete: bool, width: int
+) -> np.ndarray:
+    """Consensus action of each step id; -1 (discrete) or a NaN row (continuous, ``width``
+    dimensions) where unlabelled or unresolved."""
     hit = np.zeros(len(step_ids), dtype=bool)
+    at = np.zeros(len(step_ids), dtype=np.int64)
     if len(found.step_id):
+        at = np.minimum(np.searchsorted(found.step_id, step_ids), len(found.step_id) - 1)
         hit = (found.step_id[at] == step_ids) & found.resolved[at]
     if discrete:
         out = np.full(len(step_ids), -1, dtype=np.int64)
         out[hit] = found.action[at[hit]]
         return out
-    width = found.action.shape[1] if found.action.ndim == 2 else 0
     vec = np.full((len(step_ids), width), np.nan)
     vec[hit] = found.action[at[hit]]
     return vec
@@ -122,7 +125,7 @@ def labelled_states(
         if len(step_ids) == 0:
             continue
         learner = learner_actions(session, loop, step_ids)
-        expert = expert_actions(found, step_ids, discrete)
+        expert = expert_actions(found, step_ids, discrete=discrete, width=ts.action_width(loop))
         disagrees, known = disagreement_of(learner, expert, tolerance)
         # weights from the whole selection, so unlabelled picks do not inflate the audit share
         weights = stratum_weights(is_audit, chosen.n_candidates)
