@@ -213,16 +213,16 @@ def main() -> None:
     print(f"  IVF build alone at {args.training:,d}: {time.perf_counter() - t0:.2f} s")
     del standardised
 
-    # Selection over the same round: budget 2% of candidates, 0.5 s gap, 10% audit.
+    # Selection over the same round: budget 2% of candidates, a 5-step gap, 10% audit.
     rollout = rng.integers(0, max(1, args.candidates // 500), args.candidates)
-    times = rng.integers(0, 5000, args.candidates) * 0.1
+    positions = rng.integers(0, 5000, args.candidates)
     t0 = time.perf_counter()
     result = selection.select(
         rng.random(args.candidates),
         rollout,
-        times,
+        positions,
         max(1, args.candidates // 50),
-        min_gap_s=0.5,
+        min_gap=5,
         rng=np.random.default_rng(args.seed),
     )
     print(

@@ -61,7 +61,8 @@ def test_ranking_job_fills_selection_and_queue(client, app, settings, admin, ran
     assert reasons.count("audit") == 2 and reasons.count("ranked") == 18
     for item in selection["items"]:
         assert 0 < item["novelty_pct"] <= 1 and 0 < item["uncertainty_pct"] <= 1
-    # the gap rule: ranked picks of one rollout are at least min_gap_s (1 s) apart from every pick
+    # the gap rule: ranked picks of one rollout are at least min_gap_steps (10 steps, 1 s at
+    # 10 Hz) apart from every pick
     by_rollout: dict[str, list[float]] = {}
     for item in selection["items"]:
         by_rollout.setdefault(item["rollout"], []).append((item["time_s"], item["reason"]))
