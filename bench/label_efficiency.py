@@ -1,0 +1,352 @@
+"""Label efficiency: ranked against uniform selection, whole DAgger rounds through the HTTP API.
+
+A server runs in a subprocess on a fresh SQLite store. For each task, budget B and seed, two
+loops run side by side, one ranked (the loop's defaults) and one uniform (``audit_fraction``
+1.0: the whole budget drawn uniformly at random). Each round: roll out the current learner,
+upload, rank, let the scripted expert answer the queue through the queue API, snapshot, pull,
+retrain a bootstrap ensemble, and score the new learner on fixed evaluation episodes.
+
+Tasks: ``demo`` (the invented tow-tractor scenario, discrete; score = 1 - conflicts per
+crossing, the expert scores 1), and gymnasium tasks from bench/label_tasks.py (``acrobot``,
+``mountain-car``; score normalised so that a random policy is 0 and the expert 1). Reported per
+task and budget: labels to first reach and to hold (every later round too) 95% of the expert's
+score; a seed that never holds counts as above the cap (rounds x B). Medians, paired wins
+(ranked holds with fewer labels than uniform on the same seed) and the ratio of medians
+(uniform / ranked). Needs the ``bench`` extra (gymnasium).
+
+    python bench/label_efficiency.py --tasks demo,acrobot,mountain-car --budgets 20,50 \\
+        --seeds 10 --rounds 8
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import statistics
+import sys
+import tempfile
+import time
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+
+from app.client import Client  # noqa: E402
+from app.demo import loop_run  # noqa: E402
+from app.migrations_state import upgrade  # noqa: E402
+from app.system.server_process import server_process  # noqa: E402
+from bench import label_tasks as tasks  # noqa: E402
+
+TARGET = 0.95
+SELECTIONS = ("ranked", "uniform")
+RESULTS = Path(__file__).resolve().parent / "results"
+
+
+@dataclass
+class Run:
+    task: str
+    budget: int
+    seed: int
+    selection: str
+    labels: list[int] = field(default_factory=list)
+    scores: list[float] = field(default_factory=list)
+
+    def reach(self) -> float:
+        """Labels when the score first reached the target (inf: never)."""
+        return next(
+            (n for n, s in zip(self.labels, self.scores, strict=True) if s >= TARGET), math.inf
+        )
+
+    def hold(self) -> float:
+        """Labels from which the score stayed at or above the target to the last round."""
+        held = math.inf
+        for n, s in zip(reversed(self.labels), reversed(self.scores), strict=True):
+            if s < TARGET:
+                break
+            held = n
+        return held
+
+
+def _tokens(database_url: str) -> tuple[str, str]:
+    from app.auth import service as auth_service
+    from app.db import make_engine, make_session_factory
+
+    upgrade(database_url)
+    engine = make_engine(database_url)
+    with make_session_factory(engine)() as session:
+        admin = auth_service.create_user(session, name="bench-admin", roles=["admin"])
+        expert = auth_service.create_user(session, name="scripted-expert", roles=["annotator"])
+        found = (
+            auth_service.issue_token(session, user=admin),
+            auth_service.issue_token(session, user=expert),
+        )
+    engine.dispose()
+    return found
+
+
+def _upload(client: Client, slug: str, number: int, columns: dict[str, Any], folder: Path) -> None:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    path = folder / f"{slug}-{number}.parquet"
+    pq.write_table(pa.table(columns), path)
+    client.upload(slug, number, path)
+
+
+def _answer(client: Client, slug: str, task: tasks.GymTask) -> int:
+    answered = 0
+    while True:
+        item = client.request("POST", f"/api/loops/{slug}/queue/claim")["item"]
+        if item is None:
+            return answered
+        action = task.expert(np.asarray([item["state"]["features"]], np.float64))[0]
+        payload: Any = int(action) if task.kind == "discrete" else [float(action[0])]
+        client.request(
+            "POST",
+            f"/api/loops/{slug}/queue/items/{item['item_id']}/labels",
+            json={"submission_id": uuid.uuid4().hex, "answer": "action", "action": payload},
+        )
+        answered += 1
+
+
+def _train(client: Client, slug: str, task: tasks.GymTask, seed: int) -> tasks.Ensemble:
+    rows = client.pull(slug, version="latest")
+    assert isinstance(rows, dict)
+    return tasks.fit(task, rows["features"], rows["expert_action"], np.random.default_rng(seed))
+
+
+def run_gym(
+    admin: Client, annotator: Client, run: Run, args: argparse.Namespace, folder: Path
+) -> Run:
+    task = tasks.GYM_TASKS[run.task]
+    slug = f"{run.task}-b{run.budget}-{run.selection}-s{run.seed}"
+    settings: dict[str, Any] = {"audit_fraction": 1.0} if run.selection == "uniform" else {}
+    if args.gap_steps is not None:
+        settings["min_gap_steps"] = args.gap_steps
+    admin.create_loop(task.spec(slug, settings))
+    base = 1_000_000 + 10_000 * run.seed
+    eval_seeds = [base + 9_000 + i for i in range(args.eval_episodes)]
+    expert = tasks.run_episodes(task, None, eval_seeds, "eval").returns.mean()
+    floor = tasks.random_return(task, eval_seeds)
+    demos = tasks.run_episodes(task, None, [base + i for i in range(args.demos)], "demo")
+    _upload(admin, slug, 0, demos.columns, folder)
+    admin.create_snapshot(slug, up_to_round=0)
+    policy = _train(admin, slug, task, run.seed)
+    labels = 0
+    for number in range(args.rounds + 1):
+        if number:
+            admin.open_round(slug, f"learner-{number}")
+            seeds = [base + 100 * number + i for i in range(args.episodes)]
+            visited = tasks.run_episodes(task, policy, seeds, f"r{number}")
+            _upload(admin, slug, number, visited.columns, folder)
+            started = admin.request(
+                "POST",
+                f"/api/loops/{slug}/rounds/{number}/ranking",
+                json={"budget": run.budget, "seed": run.seed * 100 + number},
+            )
+            loop_run._wait(admin, started["job"])
+            labels += _answer(annotator, slug, task)
+            admin.create_snapshot(slug, up_to_round=number)
+            policy = _train(admin, slug, task, run.seed * 100 + number)
+        achieved = tasks.run_episodes(task, policy, eval_seeds, "eval").returns.mean()
+        run.labels.append(labels)
+        run.scores.append(float((achieved - floor) / (expert - floor)))
+    return run
+
+
+def run_demo(admin: Client, annotator: Client, run: Run, args: argparse.Namespace) -> Run:
+    rows = loop_run.run(
+        admin,
+        annotator,
+        kind="discrete",
+        rounds=args.rounds,
+        budget=run.budget,
+        selection=run.selection,
+        seed=run.seed,
+        slug=f"demo-b{run.budget}-{run.selection}-s{run.seed}",
+        size=loop_run.RunSize(evaluation_rollouts=args.eval_episodes * 3, with_scene=False),
+    )
+    for row in rows:
+        run.labels.append(row.labels_used)
+        run.scores.append(1.0 - row.conflicts_per_100 / 100.0)
+    return run
+
+
+def _median(values: list[float]) -> float:
+    return statistics.median(values) if values else math.nan
+
+
+def _text(value: float, cap: int) -> str:
+    return f">{cap}" if math.isinf(value) else f"{value:g}"
+
+
+def summarise(runs: list[Run], rounds: int) -> list[dict[str, Any]]:
+    """One line per task and budget: medians, paired wins and the ratio of medians."""
+    lines = []
+    for task in dict.fromkeys(r.task for r in runs):
+        for budget in dict.fromkeys(r.budget for r in runs if r.task == task):
+            pick = {
+                s: sorted(
+                    (r for r in runs if (r.task, r.budget, r.selection) == (task, budget, s)),
+                    key=lambda r: r.seed,
+                )
+                for s in SELECTIONS
+            }
+            ranked, uniform = pick["ranked"], pick["uniform"]
+            paired = [(a, b) for a in ranked for b in uniform if a.seed == b.seed]
+            hold_r = _median([r.hold() for r in ranked])
+            hold_u = _median([r.hold() for r in uniform])
+            lines.append(
+                {
+                    "task": task,
+                    "budget": budget,
+                    "seeds": len(paired),
+                    "cap": rounds * budget,
+                    "reach_ranked": _median([r.reach() for r in ranked]),
+                    "reach_uniform": _median([r.reach() for r in uniform]),
+                    "hold_ranked": hold_r,
+                    "hold_uniform": hold_u,
+                    "held_ranked": sum(not math.isinf(r.hold()) for r in ranked),
+                    "held_uniform": sum(not math.isinf(r.hold()) for r in uniform),
+                    "wins_ranked": sum(a.hold() < b.hold() for a, b in paired),
+                    "wins_uniform": sum(b.hold() < a.hold() for a, b in paired),
+                    "ratio": hold_u / hold_r if hold_r and not math.isinf(hold_r) else math.nan,
+                }
+            )
+    return lines
+
+
+def print_summary(lines: list[dict[str, Any]]) -> None:
+    print(
+        f"{'task':<13}{'B':>4}{'seeds':>6}  {'reach r/u':>13}  {'hold r/u':>13}  "
+        f"{'held r/u':>9}  {'wins r/u':>9}  {'u/r':>6}"
+    )
+    for x in lines:
+        cap = x["cap"]
+        reach = f"{_text(x['reach_ranked'], cap)}/{_text(x['reach_uniform'], cap)}"
+        hold = f"{_text(x['hold_ranked'], cap)}/{_text(x['hold_uniform'], cap)}"
+        ratio = "-" if math.isnan(x["ratio"]) else f"{x['ratio']:.2f}"
+        if math.isinf(x["hold_uniform"]) and not math.isinf(x["hold_ranked"]):
+            ratio = f">{cap / x['hold_ranked']:.2f}" if x["hold_ranked"] else ratio
+        print(
+            f"{x['task']:<13}{x['budget']:>4}{x['seeds']:>6}  {reach:>13}  {hold:>13}  "
+            f"{x['held_ranked']:>4}/{x['held_uniform']:<4}  "
+            f"{x['wins_ranked']:>4}/{x['wins_uniform']:<4}  {ratio:>6}"
+        )
+
+
+def plot(runs: list[Run], path: Path) -> None:
+    """Median score (bars: lowest to highest seed) by round, ranked and uniform, per task and
+    budget, stacked in one SVG drawn with the service's own chart code."""
+    from app.reports.charts import Point, Series, point_chart
+
+    charts = []
+    for task in dict.fromkeys(r.task for r in runs):
+        for budget in dict.fromkeys(r.budget for r in runs if r.task == task):
+            series = []
+            for selection, marker in zip(SELECTIONS, ("circle", "square"), strict=True):
+                chosen = [
+                    r for r in runs if (r.task, r.budget, r.selection) == (task, budget, selection)
+                ]
+                if not chosen:
+                    continue
+                scores = np.array([r.scores for r in chosen])
+                points = [
+                    Point(k, float(np.median(col)), float(col.min()), float(col.max()))
+                    for k, col in enumerate(scores.T)
+                ]
+                series.append(Series(selection, points, marker=marker))  # type: ignore[arg-type]
+            charts.append(
+                point_chart(
+                    series,
+                    chart_id=f"{task}-{budget}",
+                    title=f"{task}, B = {budget} labels a round: score (1 = expert)",
+                    description="Median score of the learner after each round across seeds.",
+                    y_label="score",
+                    x_label=f"round (labels = round x {budget})",
+                )
+            )
+    height = 280 * len(charts)
+    body = "".join(f'<g transform="translate(0, {280 * i})">{c}</g>' for i, c in enumerate(charts))
+    path.write_text(
+        f'<svg xmlns="http://www.w3.org/2000/svg" width="560" height="{height}">{body}</svg>\n'
+    )
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--tasks", default="demo,acrobot,mountain-car")
+    parser.add_argument("--budgets", default="20,50")
+    parser.add_argument("--seeds", type=int, default=10)
+    parser.add_argument("--first-seed", type=int, default=0)
+    parser.add_argument("--rounds", type=int, default=8)
+    parser.add_argument("--episodes", type=int, default=8, help="learner rollouts per round")
+    parser.add_argument("--demos", type=int, default=2, help="demonstration episodes")
+    parser.add_argument("--eval-episodes", type=int, default=10)
+    parser.add_argument("--gap-steps", type=int, default=None, help="override min_gap_steps")
+    parser.add_argument("--out", type=Path, default=RESULTS / "label_efficiency")
+    args = parser.parse_args()
+    budgets = [int(b) for b in args.budgets.split(",")]
+    names = args.tasks.split(",")
+    unknown = set(names) - {"demo", *tasks.GYM_TASKS}
+    if unknown:
+        parser.error(f"unknown tasks {sorted(unknown)}")
+    print(f"load average at start: {os.getloadavg()}")
+    started = time.monotonic()
+    runs: list[Run] = []
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        url = f"sqlite:///{folder / 'bench.db'}"
+        admin_token, expert_token = _tokens(url)
+        with server_process(url, folder / "data", log_path=folder / "server.log") as server:
+            admin, annotator = Client(server.url, admin_token), Client(server.url, expert_token)
+            for name in names:
+                for budget in budgets:
+                    for seed in range(args.first_seed, args.first_seed + args.seeds):
+                        for selection in SELECTIONS:
+                            run = Run(name, budget, seed, selection)
+                            if name == "demo":
+                                run_demo(admin, annotator, run, args)
+                            else:
+                                run_gym(admin, annotator, run, args, folder)
+                            runs.append(run)
+                            scores = " ".join(f"{s:.2f}" for s in run.scores)
+                            print(
+                                f"{name} B={budget} seed={seed} {selection:>7}: hold "
+                                f"{_text(run.hold(), args.rounds * budget)} scores {scores}",
+                                flush=True,
+                            )
+    lines = summarise(runs, args.rounds)
+    print()
+    print_summary(lines)
+    print(f"\n{time.monotonic() - started:.0f} s; load average at end: {os.getloadavg()}")
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    plot(runs, args.out.with_suffix(".svg"))
+    args.out.with_suffix(".json").write_text(
+        json.dumps(
+            {
+                "args": {k: str(v) for k, v in vars(args).items()},
+                # never held or reached: null (JSON has no infinity)
+                "summary": [
+                    {
+                        k: None if isinstance(v, float) and not math.isfinite(v) else v
+                        for k, v in line.items()
+                    }
+                    for line in lines
+                ],
+                "runs": [r.__dict__ for r in runs],
+            },
+            indent=1,
+        )
+    )
+    print(f"wrote {args.out.with_suffix('.svg')} and .json")
+
+
+if __name__ == "__main__":
+    main()

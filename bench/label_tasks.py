@@ -1,0 +1,223 @@
+"""Control tasks for bench/label_efficiency.py: gymnasium environments, scripted experts and a
+bootstrap-ensemble learner (scikit-learn MLPs, CPU only).
+
+Experts are written from the tasks' published dynamics (gymnasium's documentation of each
+environment), not tuned against the learner:
+
+- acrobot (Acrobot-v1, discrete torque -1/0/+1 on the second joint): apply the torque with the
+  sign of the second joint's angular velocity. The power the motor puts in, torque x angular
+  velocity, is then never negative, so the system's energy grows until the tip swings above the
+  line (energy pumping, common practice for underactuated swing-up).
+- mountain-car (MountainCarContinuous-v0, force in [-1, 1]): push with full force in the
+  direction the car moves, which adds the most energy per step, so the car rocks up to the flag
+  (common practice).
+
+Scores are normalised per task: (mean return - random policy's) / (expert's - random policy's),
+each measured on the same evaluation episodes, so 1.0 is the expert and 0.95 the target.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+from sklearn.exceptions import ConvergenceWarning
+from sklearn.neural_network import MLPClassifier, MLPRegressor
+
+N_MEMBERS = 5
+HIDDEN_UNITS = 32
+MAX_ITER = 60
+
+
+@dataclass(frozen=True)
+class GymTask:
+    name: str
+    env_id: str
+    kind: str  # "discrete" or "continuous"
+    feature_names: tuple[str, ...]
+    actions: tuple[str, ...] = ()
+    low: float = -1.0
+    high: float = 1.0
+    step_s: float = 0.1
+    max_steps: int = 500
+
+    def expert(self, obs: NDArray[Any]) -> NDArray[Any]:
+        """The scripted expert's actions for observations (n, d)."""
+        if self.name == "acrobot":
+            return np.where(obs[:, 5] > 0, 2, 0).astype(np.int64)
+        if self.name == "mountain-car":
+            return np.where(obs[:, 1] >= 0, 1.0, -1.0).reshape(-1, 1)
+        raise ValueError(self.name)
+
+    def spec(self, slug: str, settings: dict[str, Any]) -> dict[str, Any]:
+        space: dict[str, Any]
+        if self.kind == "discrete":
+            space = {"kind": "discrete", "actions": list(self.actions)}
+        else:
+            space = {
+                "kind": "continuous",
+                "dimensions": [{"name": "force", "low": self.low, "high": self.high}],
+            }
+        return {
+            "slug": slug,
+            "title": f"{self.env_id} (benchmark)",
+            "features": [{"name": n} for n in self.feature_names],
+            "action_space": space,
+            "settings": settings,
+        }
+
+
+GYM_TASKS = {
+    "acrobot": GymTask(
+        "acrobot",
+        "Acrobot-v1",
+        "discrete",
+        ("cos_a", "sin_a", "cos_b", "sin_b", "rate_a", "rate_b"),
+        actions=("minus", "zero", "plus"),
+        step_s=0.2,
+    ),
+    "mountain-car": GymTask(
+        "mountain-car",
+        "MountainCarContinuous-v0",
+        "continuous",
+        ("position", "velocity"),
+        max_steps=999,
+    ),
+}
+
+
+@dataclass
+class Ensemble:
+    """A bootstrap ensemble of small MLPs; discrete members give probabilities, continuous
+    members regress the action."""
+
+    task: GymTask
+    members: list[Any]
+    mean: NDArray[np.float64]
+    scale: NDArray[np.float64]
+
+    def outputs(self, obs: NDArray[Any]) -> NDArray[np.float64]:
+        z = (np.asarray(obs, np.float64) - self.mean) / self.scale
+        out = []
+        for member in self.members:
+            if self.task.kind == "discrete":
+                probs = np.zeros((len(z), len(self.task.actions)))
+                probs[:, member.classes_] = member.predict_proba(z)
+                out.append(probs)
+            else:
+                pred = np.asarray(member.predict(z)).reshape(len(z), -1)
+                out.append(np.clip(pred, self.task.low, self.task.high))
+        return np.stack(out, axis=1)
+
+    def act(self, obs: NDArray[Any]) -> tuple[NDArray[Any], NDArray[np.float64]]:
+        members = self.outputs(obs)
+        mean = members.mean(axis=1)
+        action = mean.argmax(axis=1) if self.task.kind == "discrete" else mean
+        return action, members
+
+
+def fit(task: GymTask, x: NDArray[Any], y: NDArray[Any], rng: np.random.Generator) -> Ensemble:
+    x = np.asarray(x, np.float64)
+    mean, scale = x.mean(axis=0), x.std(axis=0)
+    scale[scale == 0] = 1.0
+    z = (x - mean) / scale
+    members = []
+    for _ in range(N_MEMBERS):
+        sample = rng.integers(0, len(z), len(z))
+        seed = int(rng.integers(0, 2**31 - 1))
+        if task.kind == "discrete":
+            member: Any = MLPClassifier(
+                hidden_layer_sizes=(HIDDEN_UNITS,), max_iter=MAX_ITER, random_state=seed
+            )
+            target = np.asarray(y, np.int64)[sample]
+        else:
+            member = MLPRegressor(
+                hidden_layer_sizes=(HIDDEN_UNITS,), max_iter=MAX_ITER, random_state=seed
+            )
+            target = np.asarray(y, np.float64).reshape(len(z), -1)[sample].ravel()
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            members.append(member.fit(z[sample], target))
+    return Ensemble(task, members, mean, scale)
+
+
+@dataclass
+class Episodes:
+    """Steps of several episodes as upload columns, plus their returns."""
+
+    columns: dict[str, list[Any]]
+    returns: NDArray[np.float64]
+
+
+def run_episodes(task: GymTask, policy: Ensemble | None, seeds: list[int], prefix: str) -> Episodes:
+    """Run one episode per seed, all at once (one batched policy call per step).
+
+    ``policy`` None: the expert drives (demonstrations, control "expert"). Otherwise the learner
+    drives and reports its ensemble members' outputs.
+    """
+    import gymnasium as gym
+
+    envs = [gym.make(task.env_id, max_episode_steps=task.max_steps) for _ in seeds]
+    obs = np.stack([env.reset(seed=s)[0] for env, s in zip(envs, seeds, strict=True)])
+    live = np.ones(len(envs), dtype=bool)
+    returns = np.zeros(len(envs))
+    cols: dict[str, list[Any]] = {
+        k: []
+        for k in ("rollout", "step", "time_s", "features", "control")
+        + (("expert_action",) if policy is None else ("learner_action", "learner_ensemble"))
+    }
+    step = 0
+    while live.any():
+        idx = np.flatnonzero(live)
+        if policy is None:
+            actions: Any = task.expert(obs[idx])
+            members = None
+        else:
+            actions, members = policy.act(obs[idx])
+        for j, i in enumerate(idx.tolist()):
+            cols["rollout"].append(f"{prefix}-{i:03d}")
+            cols["step"].append(step)
+            cols["time_s"].append(round(step * task.step_s, 6))
+            cols["features"].append(obs[i].astype(float).tolist())
+            action = actions[j]
+            value = int(action) if task.kind == "discrete" else [float(action[0])]
+            if policy is None:
+                cols["control"].append("expert")
+                cols["expert_action"].append(value)
+            else:
+                assert members is not None
+                cols["control"].append("learner")
+                cols["learner_action"].append(value)
+                cols["learner_ensemble"].append(members[j].tolist())
+            env_action = int(action) if task.kind == "discrete" else np.asarray(action, np.float32)
+            new_obs, reward, terminated, truncated, _ = envs[i].step(env_action)
+            returns[i] += float(reward)
+            obs[i] = new_obs
+            if terminated or truncated:
+                live[i] = False
+        step += 1
+    for env in envs:
+        env.close()
+    return Episodes(cols, returns)
+
+
+def random_return(task: GymTask, seeds: list[int]) -> float:
+    """Mean return of uniformly random actions on the evaluation episodes."""
+    import gymnasium as gym
+
+    total = []
+    for seed in seeds:
+        env = gym.make(task.env_id, max_episode_steps=task.max_steps)
+        env.reset(seed=seed)
+        env.action_space.seed(seed)
+        done, ret = False, 0.0
+        while not done:
+            _, reward, terminated, truncated, _ = env.step(env.action_space.sample())
+            ret += float(reward)
+            done = terminated or truncated
+        total.append(ret)
+        env.close()
+    return float(np.mean(total))
