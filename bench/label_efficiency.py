@@ -279,6 +279,29 @@ def plot(runs: list[Run], path: Path) -> None:
     )
 
 
+def save(runs: list[Run], args: argparse.Namespace) -> None:
+    """Write every finished run and the summary so far (an interrupted benchmark keeps them)."""
+    lines = summarise(runs, args.rounds)
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    args.out.with_suffix(".json").write_text(
+        json.dumps(
+            {
+                "args": {k: str(v) for k, v in vars(args).items()},
+                # never held or reached: null (JSON has no infinity)
+                "summary": [
+                    {
+                        k: None if isinstance(v, float) and not math.isfinite(v) else v
+                        for k, v in line.items()
+                    }
+                    for line in lines
+                ],
+                "runs": [r.__dict__ for r in runs],
+            },
+            indent=1,
+        )
+    )
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--tasks", default="demo,acrobot,mountain-car")
@@ -291,7 +314,19 @@ def main() -> None:
     parser.add_argument("--eval-episodes", type=int, default=10)
     parser.add_argument("--gap-steps", type=int, default=None, help="override min_gap_steps")
     parser.add_argument("--out", type=Path, default=RESULTS / "label_efficiency")
+    parser.add_argument(
+        "--from-json",
+        type=Path,
+        default=None,
+        help="summarise and plot the runs saved in this file (e.g. of an interrupted run)",
+    )
     args = parser.parse_args()
+    if args.from_json is not None:
+        saved = json.loads(args.from_json.read_text())
+        runs = [Run(**r) for r in saved["runs"]]
+        print_summary(summarise(runs, int(saved["args"]["rounds"])))
+        plot(runs, args.from_json.with_suffix(".svg"))
+        return
     budgets = [int(b) for b in args.budgets.split(",")]
     names = args.tasks.split(",")
     unknown = set(names) - {"demo", *tasks.GYM_TASKS}
@@ -322,29 +357,13 @@ def main() -> None:
                                 f"{_text(run.hold(), args.rounds * budget)} scores {scores}",
                                 flush=True,
                             )
+                            save(runs, args)
     lines = summarise(runs, args.rounds)
     print()
     print_summary(lines)
     print(f"\n{time.monotonic() - started:.0f} s; load average at end: {os.getloadavg()}")
-    args.out.parent.mkdir(parents=True, exist_ok=True)
     plot(runs, args.out.with_suffix(".svg"))
-    args.out.with_suffix(".json").write_text(
-        json.dumps(
-            {
-                "args": {k: str(v) for k, v in vars(args).items()},
-                # never held or reached: null (JSON has no infinity)
-                "summary": [
-                    {
-                        k: None if isinstance(v, float) and not math.isfinite(v) else v
-                        for k, v in line.items()
-                    }
-                    for line in lines
-                ],
-                "runs": [r.__dict__ for r in runs],
-            },
-            indent=1,
-        )
-    )
+    save(runs, args)
     print(f"wrote {args.out.with_suffix('.svg')} and .json")
 
 
