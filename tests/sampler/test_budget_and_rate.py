@@ -14,9 +14,8 @@ from app.jobs import runner
 from app.jobs.models import Job
 from app.models import utcnow
 from tests.conftest import store_contents
-from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
-
-SLUG = DISCRETE_SPEC["slug"]
+from tests.helpers import DISCRETE_SPEC, discrete_rows
+from tests.sampler.rounds import SLUG, rank, upload
 
 
 def _loop(client, admin, slug=SLUG, **settings):
@@ -24,28 +23,6 @@ def _loop(client, admin, slug=SLUG, **settings):
     created = client.post("/api/loops", json=spec, headers=admin)
     assert created.status_code == 201, created.text
     client.post(f"/api/loops/{slug}/rounds", json={"learner_version": "v1"}, headers=admin)
-
-
-def _upload(client, headers, cols, number, slug=SLUG):
-    response = client.post(
-        f"/api/loops/{slug}/rounds/{number}/rollouts",
-        files={"file": ("f.parquet", parquet_bytes(cols))},
-        headers=headers,
-    )
-    assert response.status_code == 201, response.text
-
-
-def _rank(client, app, settings, admin, budget, seed=3, slug=SLUG, number=1):
-    started = client.post(
-        f"/api/loops/{slug}/rounds/{number}/ranking",
-        json={"budget": budget, "seed": seed},
-        headers=admin,
-    )
-    assert started.status_code == 202, started.text
-    assert runner.run_one(app.state.session_factory, settings, "test-worker")
-    job = client.get(f"/api/jobs/{started.json()['job']['id']}", headers=admin).json()
-    assert job["status"] == "done", job
-    return job
 
 
 def _selection(client, admin, slug=SLUG, number=1):
@@ -73,9 +50,9 @@ def clustered_round():
 def test_clustered_short_round_still_spends_the_budget(client, app, settings, admin, uploader):
     # a gap of 50 steps is the old 1 s at 50 Hz, which chose 7 of 20 in the reported case
     _loop(client, admin, min_gap_steps=50)
-    _upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
-    _upload(client, uploader, clustered_round(), 1)
-    job = _rank(client, app, settings, admin, budget=20)
+    upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
+    upload(client, uploader, clustered_round(), 1)
+    job = rank(client, app, settings, admin, budget=20)
     result = job["result"]
     assert result["candidates"] == 291
     assert result["chosen"] == 20 and result["audit"] == 2
@@ -94,9 +71,9 @@ def test_clustered_short_round_still_spends_the_budget(client, app, settings, ad
 
 def test_fewer_candidates_than_the_budget_are_all_chosen(client, app, settings, admin, uploader):
     _loop(client, admin)
-    _upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
-    _upload(client, uploader, clustered_round(), 1)
-    job = _rank(client, app, settings, admin, budget=400)
+    upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
+    upload(client, uploader, clustered_round(), 1)
+    job = rank(client, app, settings, admin, budget=400)
     assert job["result"]["chosen"] == 291
     assert (
         "only 291 candidates for a budget of 400: all of them were chosen"
@@ -118,9 +95,9 @@ def test_same_moments_logged_at_10_hz_and_every_fifth_step_at_50_hz_give_the_sam
     picks = {}
     for slug, run in (("at-ten-hz", ten_hz), ("at-fifty-hz", fifty_hz)):
         _loop(client, admin, slug=slug, min_gap_steps=8)
-        _upload(client, uploader, demos, 0, slug=slug)
-        _upload(client, uploader, run, 1, slug=slug)
-        job = _rank(client, app, settings, admin, budget=24, seed=9, slug=slug)
+        upload(client, uploader, demos, 0, slug=slug)
+        upload(client, uploader, run, 1, slug=slug)
+        job = rank(client, app, settings, admin, budget=24, seed=9, slug=slug)
         assert job["result"]["chosen"] == 24 and job["result"]["notes"] == []
         items = _selection(client, admin, slug=slug)["items"]
         picks[slug] = [(i["rollout"], round(i["time_s"], 6), i["reason"]) for i in items]
@@ -157,9 +134,9 @@ def test_uncertainty_method_setting_is_used_and_recorded(
     client, app, settings, admin, uploader, method, expected
 ):
     _loop(client, admin, uncertainty_method=method)
-    _upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
-    _upload(client, uploader, discrete_rows(4, 40, seed=2), 1)
-    job = _rank(client, app, settings, admin, budget=10)
+    upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
+    upload(client, uploader, discrete_rows(4, 40, seed=2), 1)
+    job = rank(client, app, settings, admin, budget=10)
     assert job["result"]["uncertainty_method"] == expected
     selection = _selection(client, admin)
     assert selection["uncertainty_method"] == expected
@@ -170,12 +147,12 @@ def test_uncertainty_method_setting_is_used_and_recorded(
 
 def test_ensemble_outputs_are_recorded_as_bald(client, app, settings, admin, uploader):
     _loop(client, admin)
-    _upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
+    upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
     run = discrete_rows(3, 30, seed=2)
     rng = np.random.default_rng(0)
     run["learner_ensemble"] = [rng.dirichlet(np.ones(3), size=4).tolist() for _ in run["step"]]
-    _upload(client, uploader, run, 1)
-    job = _rank(client, app, settings, admin, budget=10)
+    upload(client, uploader, run, 1)
+    job = rank(client, app, settings, admin, budget=10)
     assert job["result"]["uncertainty_method"] == "bald"
     assert _selection(client, admin)["params"]["methods"]["uncertainty"] == "bald"
 
@@ -212,12 +189,12 @@ def test_taken_over_job_keeps_the_cutoff_while_labels_arrive(
 ):
     annotator = make_user("annotator")
     _loop(client, admin)
-    _upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
-    _upload(client, uploader, discrete_rows(4, 40, seed=2), 1)
-    _rank(client, app, settings, admin, budget=12)  # fills round 1's queue
+    upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
+    upload(client, uploader, discrete_rows(4, 40, seed=2), 1)
+    rank(client, app, settings, admin, budget=12)  # fills round 1's queue
     _label_some(client, annotator, 3)
     client.post(f"/api/loops/{SLUG}/rounds", json={"learner_version": "v2"}, headers=admin)
-    _upload(client, uploader, discrete_rows(4, 40, seed=3, prefix="s"), 2)
+    upload(client, uploader, discrete_rows(4, 40, seed=3, prefix="s"), 2)
 
     started = client.post(
         f"/api/loops/{SLUG}/rounds/2/ranking", json={"budget": 15, "seed": 5}, headers=admin
@@ -250,6 +227,6 @@ def test_taken_over_job_keeps_the_cutoff_while_labels_arrive(
     assert first["n_training"] == second["n_training"] == 60 + 3
     # not vacuous: a ranking requested now reads the 12 labelled states
     client.post(f"/api/loops/{SLUG}/rounds", json={"learner_version": "v3"}, headers=admin)
-    _upload(client, uploader, discrete_rows(2, 40, seed=4, prefix="t"), 3)
-    later = _rank(client, app, settings, admin, budget=5, number=3)
+    upload(client, uploader, discrete_rows(2, 40, seed=4, prefix="t"), 3)
+    later = rank(client, app, settings, admin, budget=5, number=3)
     assert later["result"]["training_states"] == 60 + 12

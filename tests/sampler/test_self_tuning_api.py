@@ -7,31 +7,12 @@ import uuid
 
 import pytest
 
-from app.jobs import runner
-from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
-
-SLUG = DISCRETE_SPEC["slug"]
-
-
-def _upload(client, uploader, cols, number):
-    response = client.post(
-        f"/api/loops/{SLUG}/rounds/{number}/rollouts",
-        files={"file": ("f.parquet", parquet_bytes(cols))},
-        headers=uploader,
-    )
-    assert response.status_code == 201, response.text
+from tests.helpers import DISCRETE_SPEC, discrete_rows
+from tests.sampler.rounds import SLUG, rank, upload
 
 
 def _rank_and_label(client, app, settings, admin, annotator, number, budget=12):
-    started = client.post(
-        f"/api/loops/{SLUG}/rounds/{number}/ranking",
-        json={"budget": budget, "seed": number},
-        headers=admin,
-    )
-    assert started.status_code == 202, started.text
-    assert runner.run_one(app.state.session_factory, settings, "test-worker")
-    job = client.get(f"/api/jobs/{started.json()['job']['id']}", headers=admin).json()
-    assert job["status"] == "done", job
+    job = rank(client, app, settings, admin, budget, seed=number, number=number)
     while True:  # the expert always says "hold": the learner disagrees wherever it did not
         item = client.post(f"/api/loops/{SLUG}/queue/claim", headers=annotator).json()["item"]
         if item is None:
@@ -58,14 +39,14 @@ def test_labelled_round_tunes_the_next_ranking(
     }
     assert client.post("/api/loops", json=spec, headers=admin).status_code == 201
     client.post(f"/api/loops/{SLUG}/rounds", json={"learner_version": "v1"}, headers=admin)
-    _upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
-    _upload(client, uploader, discrete_rows(4, 40, seed=2), 1)
+    upload(client, uploader, discrete_rows(2, 30, expert=True, prefix="demo", seed=1), 0)
+    upload(client, uploader, discrete_rows(4, 40, seed=2), 1)
     first = _rank_and_label(client, app, settings, admin, annotator, 1)
     assert first["result"]["self_tuning"]["used"] is False
     assert first["result"]["methods"]["score"] == "weighted mean of percentiles"
 
     client.post(f"/api/loops/{SLUG}/rounds", json={"learner_version": "v2"}, headers=admin)
-    _upload(client, uploader, discrete_rows(4, 40, seed=3, prefix="s"), 2)
+    upload(client, uploader, discrete_rows(4, 40, seed=3, prefix="s"), 2)
     second = _rank_and_label(client, app, settings, admin, annotator, 2)
     selection = client.get(f"/api/loops/{SLUG}/rounds/2/selection", headers=admin).json()
     record = selection["params"]["self_tuning"]
