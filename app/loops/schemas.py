@@ -110,9 +110,8 @@ class LoopSettings(RequestBody):
     def _renamed(cls, data: Any) -> Any:
         if isinstance(data, dict) and "min_gap_s" in data:
             raise ValueError(
-                "min_gap_s (a gap in seconds) was replaced by min_gap_steps (a gap counted in "
-                "the rollout's recorded steps, the same at any control rate): at a control rate "
-                "of f Hz, min_gap_steps = round(min_gap_s * f)"
+                "min_gap_s was replaced by min_gap_steps (recorded steps): "
+                "min_gap_steps = round(min_gap_s * f) at f Hz"
             )
         return data
 
