@@ -1,7 +1,7 @@
 """loop settings: the ranking gap in recorded steps (min_gap_steps) instead of seconds
 
 Revision ID: 0006
-Revises: 0004
+Revises: 0009
 
 Data only. Each loop's ``min_gap_s`` becomes ``min_gap_steps``:
 
@@ -26,7 +26,7 @@ import sqlalchemy as sa
 from alembic import op
 
 revision: str = "0006"
-down_revision: str | None = "0004"
+down_revision: str | None = "0009"
 branch_labels: str | Sequence[str] | None = None
 depends_on: str | Sequence[str] | None = None
 

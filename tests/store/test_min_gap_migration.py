@@ -37,7 +37,7 @@ def test_gap_in_seconds_becomes_steps_at_each_loops_own_rate(
     assert uploaded.status_code == 201, uploaded.text
     config = alembic_config(database_url)
     try:
-        command.downgrade(config, "0004")
+        command.downgrade(config, "0009")
         # back to seconds: the default is the old default; 25 steps at 50 Hz are 0.5 s; a loop
         # without rollouts is taken to run at 10 Hz
         assert _settings(engine, "default-gap")["min_gap_s"] == 1.0
