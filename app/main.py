@@ -8,15 +8,17 @@ from typing import Any
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
-from fastapi.responses import JSONResponse, RedirectResponse, Response
+from fastapi.responses import JSONResponse, Response
 from fastapi.staticfiles import StaticFiles
 from sqlalchemy.exc import DataError, InterfaceError, OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeout
+from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from app.auth.throttle import Limits, SignInThrottle
 from app.config import Settings, get_settings
 from app.db import make_engine, make_session_factory, make_writer_session_factory
-from app.errors import ExpertloopError, Unauthenticated
+from app.error_pages import error_response
+from app.errors import ExpertloopError
 from app.ingest.spool import sweep_stale
 from app.jobs.runner import JobThread
 from app.limits import shown
@@ -28,24 +30,28 @@ from app.snapshots.files import SPOOL_SUFFIX
 from app.templating import STATIC_DIR
 
 
-def _wants_page(request: Request) -> bool:
-    return not request.url.path.startswith("/api") and "text/html" in request.headers.get(
-        "accept", ""
-    )
-
-
 async def _domain_error(request: Request, exc: Exception) -> Response:
     assert isinstance(exc, ExpertloopError)
-    if isinstance(exc, Unauthenticated) and _wants_page(request):
-        return RedirectResponse(f"/login?next={request.url.path}", status_code=303)
-    return JSONResponse({"detail": exc.message}, status_code=exc.status_code)
+    return error_response(request, exc.status_code, exc.message)
+
+
+async def _http_error(request: Request, exc: Exception) -> Response:
+    # routing's own errors (no such path, method not allowed), as pages for browsers
+    assert isinstance(exc, StarletteHTTPException)
+    return error_response(request, exc.status_code, exc.detail, headers=exc.headers)
+
+
+async def _server_error(request: Request, exc: Exception) -> Response:
+    # the traceback is still logged by the server; the person sees our page, not a bare 500
+    return error_response(request, 500, "the service failed to answer this request")
 
 
 async def _store_unreachable(request: Request, exc: Exception) -> Response:
     # Only connection-level failures land here; pool_pre_ping reconnects once the store is back.
-    return JSONResponse(
-        {"detail": "the database is unreachable right now; nothing was changed, try again shortly"},
-        status_code=503,
+    return error_response(
+        request,
+        503,
+        "the database is unreachable right now; nothing was changed, try again shortly",
         headers={"Retry-After": "2"},
     )
 
@@ -53,9 +59,10 @@ async def _store_unreachable(request: Request, exc: Exception) -> Response:
 async def _store_busy(request: Request, exc: Exception) -> Response:
     # No pooled connection came free within the pool timeout (app.db: at most pool size plus
     # overflow connections per process on PostgreSQL).
-    return JSONResponse(
-        {"detail": "the service is busy: no database connection came free in time; try again"},
-        status_code=503,
+    return error_response(
+        request,
+        503,
+        "the service is busy: no database connection came free in time; try again",
         headers={"Retry-After": "2"},
     )
 
@@ -118,6 +125,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.add_exception_handler(PoolTimeout, _store_busy)
     app.add_exception_handler(DataError, _value_beyond_store)
     app.add_exception_handler(OverflowError, _value_beyond_store)
+    app.add_exception_handler(StarletteHTTPException, _http_error)
+    app.add_exception_handler(Exception, _server_error)
 
     from app.auth.router import router as auth_router
     from app.ingest.router import router as ingest_router

@@ -17,7 +17,7 @@
 
   var s = {
     item: null, steps: [], view: 0, choice: null, unsure: false, touched: false,
-    sid: null, shownAt: 0, lastRenew: 0, busy: false, activeDim: 0, note: "",
+    sid: null, shownAt: 0, lastRenew: 0, busy: false, activeDim: 0, note: "", now: "",
   };
 
   function $(id) { return document.getElementById(id); }
@@ -110,9 +110,9 @@
     render();
     root.dataset.itemId = String(item.item_id);
     root.dataset.phase = "ready";
+    s.now = "Now: rollout " + item.state.rollout + ", step " + item.state.step + ".";
     if (!$("status").classList.contains("problem")) {  // a problem stays readable until acted on
-      setStatus((s.note ? s.note + " " : "") + "Now: rollout " + item.state.rollout + ", step " +
-        item.state.step + ".");
+      setStatus((s.note ? s.note + " " : "") + s.now);
     }
     s.note = "";
     var first = discrete ? form.querySelector(".action") : $("dim-0-range");
@@ -195,9 +195,15 @@
       var p = r.data;
       $("p-today").textContent = String(p.labelled_today);
       $("p-left").textContent = p.left_for_you + (p.left_for_you === 1 ? " state" : " states");
-      $("p-eta").textContent = p.expected_seconds_left === null
-        ? "after two labels" : duration(p.expected_seconds_left);
+      $("p-eta").textContent = expectedLeft(p);
     }, function () {});
+  }
+
+  function expectedLeft(p) {
+    if (p.left_for_you === 0) return "none: nothing left for you";
+    if (p.expected_seconds_left !== null) return duration(p.expected_seconds_left);
+    // the pace needs two of today's labels (one timed gap)
+    return p.labelled_today === 0 ? "known after your first 2 labels" : "known after your next label";
   }
 
   function duration(seconds) {
@@ -243,7 +249,7 @@
     u.setAttribute("aria-pressed", s.unsure ? "true" : "false");
     u.querySelector(".mark").textContent = s.unsure ? " ✓ chosen" : "";
     if ((s.unsure || s.choice !== null || s.touched) && $("status").classList.contains("problem")) {
-      setStatus("");  // the problem was the missing answer; it is there now
+      setStatus(s.now);  // the problem was the missing answer; it is there now
     }
     var text;
     if (s.unsure) text = "Your answer: unsure.";

@@ -17,7 +17,7 @@ from app.deps import (
     SettingsDep,
     WriterSessionDep,
 )
-from app.limits import name_problem
+from app.error_pages import safe_next
 from app.loops import service as loops_service
 from app.templating import templates
 
@@ -30,21 +30,22 @@ SIGN_IN_CSRF_COOKIE = "expertloop_signin_csrf"
 HTML: dict[str, Any] = {"content": {"text/html": {}}}
 
 
-def _safe_next(target: str) -> str:
-    # only same-site paths, so the sign-in form cannot bounce a user to another site
-    # (browsers read "/\\" as "//"; control characters cannot go into a Location header)
-    same_site = target.startswith("/") and not target.startswith(("//", "/\\"))
-    return target if same_site and name_problem(target, max_chars=2000) is None else "/"
-
-
 def _form(
-    request: Request, next_url: str, error: str | None, status_code: int, **headers: str
+    request: Request,
+    next_url: str,
+    error: str | None,
+    status_code: int,
+    name: str = "",
+    **headers: str,
 ) -> Response:
     token = security.new_csrf_token()
+    context = {"next_url": safe_next(next_url), "error": error, "caller": None}
+    # the name is kept after a refusal, so a mistyped password costs only the password
+    context |= {"csrf_token": token, "name": name}
     response = templates.TemplateResponse(
         request,
         "login.html",
-        {"next_url": _safe_next(next_url), "error": error, "caller": None, "csrf_token": token},
+        context,
         status_code=status_code,
         headers=headers or None,
     )
@@ -96,10 +97,10 @@ def login(
     opened = service.sign_in(session, name=name, password=password, hours=settings.session_hours)
     if opened is None:
         throttle.failed(name=name, address=address)
-        return _form(request, next, "Name or password is wrong.", 401)
+        return _form(request, next, "Name or password is wrong.", 401, name=name)
     throttle.succeeded(name=name)
     session_id, _csrf = opened
-    response = RedirectResponse(_safe_next(next), status_code=303)
+    response = RedirectResponse(safe_next(next), status_code=303)
     response.set_cookie(
         SESSION_COOKIE,
         session_id,

@@ -100,7 +100,8 @@ def test_loop_page_tables_charts_and_caution(app, client, admin, uploader, make_
     assert "not a safety case" in page.text_of("safety")
     links = {a.get("href") for tag, a in page.tags if tag == "a"}
     assert f"/loops/{world.slug}/bench" in links
-    assert f"/api/loops/{world.slug}/snapshots" in links
+    # annotators may not read snapshots, so the page does not offer them a link that refuses
+    assert f"/api/loops/{world.slug}/snapshots" not in links
     assert f"/api/loops/{world.slug}/report.csv" in links
     assert not [tag for tag, _ in page.tags if tag == "script"]  # no scripts at all
 
