@@ -1,16 +1,23 @@
-"""The `expertloop` command: serve, db, loops, users, tokens, upload, export."""
+"""The `expertloop` command: serve, db, loops, rounds, users, tokens, upload, rank, snapshots,
+export."""
 
 from __future__ import annotations
 
 import json
 import os
+from collections.abc import Callable
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import typer
 from pydantic import ValidationError
 
 from app.config import get_settings
+
+if TYPE_CHECKING:
+    from sqlalchemy.orm import Session
+
+    from app.auth.models import User
 
 cli = typer.Typer(
     help="expertloop: expert relabelling rounds for imitation-learned policies.",
@@ -22,8 +29,12 @@ loops_cli = typer.Typer(help="Loops (one per robot skill).", no_args_is_help=Tru
 users_cli = typer.Typer(help="Users and roles.", no_args_is_help=True)
 tokens_cli = typer.Typer(help="API tokens.", no_args_is_help=True)
 logs_cli = typer.Typer(help="Robot logs (ROS bags).", no_args_is_help=True)
+rounds_cli = typer.Typer(help="Rounds of a loop (over HTTP).", no_args_is_help=True)
+snapshots_cli = typer.Typer(help="Training-set versions (over HTTP).", no_args_is_help=True)
 cli.add_typer(db_cli, name="db")
 cli.add_typer(loops_cli, name="loops")
+cli.add_typer(rounds_cli, name="rounds")
+cli.add_typer(snapshots_cli, name="snapshots")
 cli.add_typer(users_cli, name="users")
 cli.add_typer(tokens_cli, name="tokens")
 cli.add_typer(logs_cli, name="logs")
@@ -50,11 +61,26 @@ def _fail(message: str) -> None:
 @db_cli.command("upgrade")
 def db_upgrade() -> None:
     """Bring the database schema to the newest migration."""
-    from app.migrations_state import upgrade
+    from app.db import make_engine
+    from app.migrations_state import current_and_head, upgrade
 
     url = get_settings().resolved_database_url
-    upgrade(url)
-    typer.echo("database schema is up to date")
+    engine = make_engine(url)
+    try:
+        with engine.connect() as connection:
+            before, head = current_and_head(connection)
+        if before == head:
+            typer.echo(f"already at revision {head} (the newest); nothing to do")
+            return
+        upgrade(url)
+        with engine.connect() as connection:
+            after, _ = current_and_head(connection)
+    finally:
+        engine.dispose()
+    if before is None:
+        typer.echo(f"created the database schema at revision {after} (the database was empty)")
+    else:
+        typer.echo(f"upgraded the database schema from revision {before} to {after}")
 
 
 @cli.command()
@@ -129,7 +155,10 @@ def loops_create(spec_file: Path) -> None:
         _fail(f"cannot read {spec_file}: {exc}")
         return
     except ValidationError as exc:
-        _fail(f"{spec_file} is not a valid loop spec:\n{exc}")
+        from app.loops.spec_errors import plain_problems
+
+        problems = "\n".join(f"  {line}" for line in plain_problems(exc))
+        _fail(f"{spec_file} is not a valid loop spec:\n{problems}")
         return
     with _session() as session:
         loop = service.create_loop(session, spec=spec, user_id=None)
@@ -182,7 +211,63 @@ def users_list() -> None:
     with _session() as session:
         for user in service.list_users(session):
             has_password = "password" if user.password_hash else "no password"
-            typer.echo(f"{user.name}\t{','.join(user.roles)}\t{has_password}")
+            inactive = "" if user.active else "\tdeactivated"
+            typer.echo(f"{user.name}\t{','.join(user.roles)}\t{has_password}{inactive}")
+
+
+def _change_user(name: str, change: Callable[[Session, User], str]) -> None:
+    from app.auth import service
+    from app.errors import ExpertloopError
+
+    with _session() as session:
+        try:
+            user = service.get_user_by_name(session, name=name)
+            said = change(session, user)
+        except ExpertloopError as exc:
+            _fail(exc.message)
+            return
+        session.commit()
+    typer.echo(said)
+
+
+@users_cli.command("role")
+def users_role(
+    name: str,
+    role: Annotated[list[str], typer.Option(help="admin, uploader, annotator or trainer.")],
+) -> None:
+    """Replace a user's roles with the ones given (repeat --role for several)."""
+    from app.auth import service
+
+    def change(session: Session, user: User) -> str:
+        before = ", ".join(user.roles)
+        service.set_roles(session, user=user, roles=role)
+        return f"user '{user.name}': roles {before} -> {', '.join(user.roles)}"
+
+    _change_user(name, change)
+
+
+@users_cli.command("deactivate")
+def users_deactivate(name: str) -> None:
+    """Stop a user's tokens and browser sessions at once; their labels and records stay."""
+    from app.auth import service
+
+    def change(session: Session, user: User) -> str:
+        service.set_active(session, user=user, active=False)
+        return f"user '{user.name}' deactivated: tokens and sign-in refused from now on"
+
+    _change_user(name, change)
+
+
+@users_cli.command("activate")
+def users_activate(name: str) -> None:
+    """Let a deactivated user sign in and use their tokens again."""
+    from app.auth import service
+
+    def change(session: Session, user: User) -> str:
+        service.set_active(session, user=user, active=True)
+        return f"user '{user.name}' active again"
+
+    _change_user(name, change)
 
 
 @tokens_cli.command("issue")
@@ -235,6 +320,24 @@ def upload(
 
     if not file.exists():
         _fail(f"no such file: {file}")
+    with Client(url, token) as client:
+        # a cheap GET first, so a wrong loop or round is refused before the file travels
+        try:
+            rounds = {r["number"]: r for r in client.rounds(loop)}
+        except ApiError as exc:
+            _fail(f"refused before sending the file: {exc.detail}")
+            return
+        if round_number not in rounds:
+            _fail(
+                f"refused before sending the file: loop '{loop}' has no round {round_number} "
+                f"(rounds: {', '.join(str(n) for n in sorted(rounds))}); open one with "
+                f"`expertloop rounds open --loop {loop} --learner-version V`"
+            )
+        if rounds[round_number]["status"] != "open":
+            _fail(
+                f"refused before sending the file: round {round_number} of '{loop}' is "
+                f"{rounds[round_number]['status']} and takes no uploads"
+            )
     with (
         Client(url, token) as client,
         tqdm(total=file.stat().st_size, unit="B", unit_scale=True, desc=file.name) as bar,
@@ -344,6 +447,113 @@ def rank(
         typer.echo(f"note: {note}")
 
 
+@rounds_cli.command("open")
+def rounds_open(
+    loop: Annotated[str, typer.Option(help="Loop slug.")],
+    learner_version: Annotated[str, typer.Option(help="The learner version that ran it.")],
+    url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
+    token: Annotated[str, TOKEN_OPTION] = "",
+) -> None:
+    """Open the loop's next round for a learner version (admin token)."""
+    from app.client import ApiError, Client
+
+    with Client(url, token) as client:
+        try:
+            opened = client.open_round(loop, learner_version)
+        except ApiError as exc:
+            _fail(f"refused: {exc.detail}")
+            return
+    typer.echo(f"opened round {opened['number']} of '{loop}' for learner {learner_version}")
+
+
+@rounds_cli.command("close")
+def rounds_close(
+    loop: Annotated[str, typer.Option(help="Loop slug.")],
+    round_number: Annotated[int, typer.Option("--round", help="Round number.")],
+    url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
+    token: Annotated[str, TOKEN_OPTION] = "",
+) -> None:
+    """Close a round: it takes no more uploads (admin token)."""
+    from app.client import ApiError, Client
+
+    with Client(url, token) as client:
+        try:
+            client.close_round(loop, round_number)
+        except ApiError as exc:
+            _fail(f"refused: {exc.detail}")
+            return
+    typer.echo(f"closed round {round_number} of '{loop}'; it takes no more uploads")
+
+
+@rounds_cli.command("list")
+def rounds_list(
+    loop: Annotated[str, typer.Option(help="Loop slug.")],
+    url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
+    token: Annotated[str, TOKEN_OPTION] = "",
+) -> None:
+    """List a loop's rounds: number, status, learner version, rollouts, steps."""
+    from app.client import ApiError, Client
+
+    with Client(url, token) as client:
+        try:
+            rounds = client.rounds(loop)
+        except ApiError as exc:
+            _fail(f"refused: {exc.detail}")
+            return
+    for r in rounds:
+        typer.echo(
+            f"{r['number']}\t{r['status']}\t{r['learner_version'] or '-'}\t"
+            f"{r['rollouts']} rollouts\t{r['steps']} steps"
+        )
+
+
+@snapshots_cli.command("create")
+def snapshots_create(
+    loop: Annotated[str, typer.Option(help="Loop slug.")],
+    up_to_round: Annotated[
+        int | None, typer.Option(help="Last round included (default: the newest).")
+    ] = None,
+    url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
+    token: Annotated[str, TOKEN_OPTION] = "",
+) -> None:
+    """Make the next training-set version, or name the existing one with the same content."""
+    from app.client import ApiError, Client
+
+    with Client(url, token) as client:
+        try:
+            made = client.create_snapshot(loop, up_to_round)
+        except ApiError as exc:
+            _fail(f"refused: {exc.detail}")
+            return
+    what = "created" if made["created"] else "unchanged, the same content is already"
+    typer.echo(
+        f"{what} {made['version']} of '{loop}': {made['row_count']} rows up to round "
+        f"{made['up_to_round']}, content sha256 {made['content_sha256']}"
+    )
+
+
+@snapshots_cli.command("list")
+def snapshots_list(
+    loop: Annotated[str, typer.Option(help="Loop slug.")],
+    url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
+    token: Annotated[str, TOKEN_OPTION] = "",
+) -> None:
+    """List a loop's training-set versions: version, rounds, rows, created, content hash."""
+    from app.client import ApiError, Client
+
+    with Client(url, token) as client:
+        try:
+            versions = client.snapshots(loop)
+        except ApiError as exc:
+            _fail(f"refused: {exc.detail}")
+            return
+    for v in versions:
+        typer.echo(
+            f"{v['version']}\tup to round {v['up_to_round']}\t{v['row_count']} rows\t"
+            f"{v['created_at']}\t{v['content_sha256'][:16]}"
+        )
+
+
 @cli.command("demo-run")
 def demo_run(
     rounds: Annotated[int, typer.Option(help="DAgger rounds after the demonstrations.")] = 3,
@@ -428,6 +638,13 @@ def export(
 
     from app.client import ApiError, Client
 
+    with Client(url, token) as client:
+        try:
+            # "latest" is resolved to its number once, so the name and the rows agree
+            version = client.snapshot(loop, version)["version"]
+        except ApiError as exc:
+            _fail(f"refused: {exc.detail}")
+            return
     target = out or Path(f"{loop}-{version}.{file_format}")
     with (
         Client(url, token) as client,

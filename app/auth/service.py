@@ -161,3 +161,21 @@ def sign_out(session: Session, *, session_id: str) -> None:
     if found is not None and found.ended_at is None:
         found.ended_at = utcnow()
         session.commit()
+
+
+def set_roles(session: Session, *, user: User, roles: list[str]) -> None:
+    """Replace a user's roles (the caller commits)."""
+    unknown = sorted(set(roles) - set(ROLES))
+    if unknown or not roles:
+        raise InvalidInput(f"roles must be among {list(ROLES)}; got {roles}")
+    user.roles = sorted(set(roles))
+    session.flush()
+
+
+def set_active(session: Session, *, user: User, active: bool) -> None:
+    """Deactivate a user (tokens and sessions stop working at once) or activate them again.
+
+    The user's labels and other records stay; the caller commits.
+    """
+    user.active = active
+    session.flush()
