@@ -134,6 +134,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     from app.loops.router import router as loops_router
     from app.queue.router import router as queue_router
     from app.reports.router import router as reports_router
+    from app.revisions.router import router as revisions_router
     from app.sampler.router import router as sampler_router
     from app.snapshots.router import router as snapshots_router
     from app.system.router import router as system_router
@@ -148,6 +149,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         sampler_router,
         queue_router,
         snapshots_router,
+        revisions_router,
         reports_router,
     )
     for router in routers:

@@ -152,3 +152,16 @@ def _action(index: int | None, blob: bytes | None, spec: ActionSpec) -> str | li
     if spec.kind == "discrete":
         return None if index is None else spec.action_names[index]
     return _vector(blob)
+
+
+def steps_by_id(session: Session, *, loop: Loop, step_ids: Sequence[int]) -> dict[int, StepRead]:
+    """Steps of a loop by id (ids of other loops are left out)."""
+    if not step_ids:
+        return {}
+    rows = session.execute(
+        select(*_STEP_FIELDS)
+        .join(Rollout, Rollout.id == Step.rollout_id)
+        .where(Step.id.in_(list(step_ids)), Rollout.loop_id == loop.id)
+    ).all()
+    spec = ActionSpec.from_loop(loop.features, loop.action_space)
+    return {s.id: s for s in decode_steps(rows, spec)}

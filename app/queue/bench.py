@@ -11,7 +11,8 @@ from app.queue.schemas import BenchItem, BenchStep
 from app.queue.service import Claim, loop_settings
 
 
-def _bench_step(step: StepRead) -> BenchStep:
+def bench_step(step: StepRead) -> BenchStep:
+    """A step as the bench shows it (no learner outputs)."""
     # the values were validated as a StepRead a moment ago; no need to check them again
     return BenchStep.model_construct(
         id=step.id,
@@ -39,8 +40,8 @@ def bench_item(session: Session, *, loop: Loop, claim: Claim) -> BenchItem:
         item_id=claim.item.id,
         lease_expires_at=claim.expires_at,
         lease_seconds=settings.lease_seconds,
-        state=_bench_step(state),
-        context=[_bench_step(s) for s in before],
+        state=bench_step(state),
+        context=[bench_step(s) for s in before],
         context_seconds=settings.context_seconds,
         learner_shown=shown,
         learner_action=state.learner_action if shown else None,

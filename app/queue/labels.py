@@ -31,6 +31,7 @@ from app.ingest.models import Step
 from app.ingest.validate import ActionSpec
 from app.loops.models import Loop
 from app.queue.answers import check_answer, check_request
+from app.queue.current import is_current
 from app.queue.models import ITEM_DONE, ITEM_OPEN, Label, Lease
 from app.queue.models import QueueItem as Item
 from app.queue.rules import lock_item, loop_settings
@@ -170,6 +171,7 @@ def _answers_query() -> Select[Any]:
                     Label.step_id == bindparam("step_id"),
                     Label.item_id == bindparam("item_id"),
                     Label.user_id == bindparam("user_id"),
+                    is_current(),
                 ),
             )
         )

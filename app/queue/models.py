@@ -24,6 +24,8 @@ ITEM_OPEN = "open"
 ITEM_DONE = "done"
 ANSWER_ACTION = "action"
 ANSWER_UNSURE = "unsure"
+# an annotator took their answer back; the row supersedes it and is never a vote
+ANSWER_UNDONE = "undone"
 
 
 class QueueItem(Base):
@@ -84,6 +86,8 @@ class Label(Base):
         Index("ix_labels_step_id", "step_id"),
         # an annotator's labels of the day (progress, pace) without reading every label
         Index("ix_labels_user_id_created_at", "user_id", "created_at"),
+        # a label is superseded at most once: by its annotator's correction, or their undo
+        UniqueConstraint("supersedes_id"),
     )
 
     id: Mapped[int] = mapped_column(BigInteger().with_variant(Integer, "sqlite"), primary_key=True)
@@ -95,7 +99,7 @@ class Label(Base):
     user_id: Mapped[int] = mapped_column(ForeignKey("users.id"))
     # client-generated id: a repeated submit finds the label it already stored
     submission_id: Mapped[str] = mapped_column(String(64), unique=True)
-    answer: Mapped[str] = mapped_column(String(8))  # action | unsure
+    answer: Mapped[str] = mapped_column(String(8))  # action | unsure | undone
     action: Mapped[int | None] = mapped_column(Integer, nullable=True)
     action_vec: Mapped[bytes | None] = mapped_column(LargeBinary, nullable=True)
     learner_shown: Mapped[bool] = mapped_column(Boolean, default=False)
@@ -105,3 +109,8 @@ class Label(Base):
     )
     seconds_spent: Mapped[float | None] = mapped_column(Float, nullable=True)
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    # labels are never changed: a change or an undo is a new row naming the label it replaces,
+    # so a version pinned below the new row's id keeps the old answer
+    supersedes_id: Mapped[int | None] = mapped_column(
+        ForeignKey("labels.id", ondelete="CASCADE"), nullable=True
+    )

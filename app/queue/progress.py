@@ -15,7 +15,17 @@ from sqlalchemy import case, func, select
 from sqlalchemy.orm import Session
 
 from app.loops.models import Loop, Round
-from app.queue.models import ANSWER_UNSURE, ITEM_DONE, ITEM_OPEN, Label, Lease, QueueItem, Skip
+from app.queue.current import is_current
+from app.queue.models import (
+    ANSWER_UNDONE,
+    ANSWER_UNSURE,
+    ITEM_DONE,
+    ITEM_OPEN,
+    Label,
+    Lease,
+    QueueItem,
+    Skip,
+)
 from app.queue.rules import answered_by, rounds_of
 from app.reports.pace import labels_per_hour
 
@@ -52,6 +62,9 @@ class RoundQueue:
     live_leases: int
     skips: int
     learner_shown_items: int
+    # answers replaced by their annotator's later answer, and answers taken back (undone)
+    corrections: int
+    undone: int
 
 
 def _aware(moment: datetime) -> datetime:
@@ -68,6 +81,7 @@ def progress(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Pr
             Label.span.is_(False),
             Label.round_id.in_(rounds_of(loop.id)),
             Label.created_at >= day_start,
+            is_current(),
         )
     ).all()
     in_loop = QueueItem.round_id.in_(rounds_of(loop.id))
@@ -120,7 +134,13 @@ def round_queue(session: Session, *, rnd: Round, now: datetime) -> RoundQueue:
                 0,
             ),
             func.coalesce(func.sum(case((Label.span.is_(True), 1), else_=0)), 0),
-        ).where(Label.round_id == rnd.id)
+        ).where(Label.round_id == rnd.id, is_current())
+    ).one()
+    revisions = session.execute(
+        select(
+            func.coalesce(func.sum(case((Label.answer != ANSWER_UNDONE, 1), else_=0)), 0),
+            func.coalesce(func.sum(case((Label.answer == ANSWER_UNDONE, 1), else_=0)), 0),
+        ).where(Label.round_id == rnd.id, Label.supersedes_id.is_not(None))
     ).one()
     of_round = QueueItem.round_id == rnd.id
     leases = session.scalar(
@@ -147,4 +167,6 @@ def round_queue(session: Session, *, rnd: Round, now: datetime) -> RoundQueue:
         live_leases=int(leases or 0),
         skips=int(skips or 0),
         learner_shown_items=int(items[4]),
+        corrections=int(revisions[0]),
+        undone=int(revisions[1]),
     )

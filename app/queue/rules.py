@@ -30,6 +30,7 @@ from app.db import is_postgresql
 from app.errors import NotFound
 from app.loops.models import Loop, Round
 from app.loops.schemas import LoopSettings
+from app.queue.current import is_current
 from app.queue.models import ITEM_OPEN, Label, Lease, QueueItem, Skip
 
 
@@ -55,7 +56,10 @@ def answered_by() -> ColumnElement[bool]:
     labelled = (
         select(Label.id)
         .where(
-            Label.step_id == QueueItem.step_id, Label.item_id == QueueItem.id, Label.user_id == user
+            Label.step_id == QueueItem.step_id,
+            Label.item_id == QueueItem.id,
+            Label.user_id == user,
+            is_current(),  # an undone answer leaves the item to be labelled again
         )
         .correlate(QueueItem)
         .exists()

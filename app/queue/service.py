@@ -26,6 +26,7 @@ from app.db import is_postgresql, write_transaction
 from app.errors import Conflict, InvalidInput
 from app.ingest.models import Step
 from app.loops.models import Loop, Round
+from app.queue.current import is_current
 from app.queue.labels import Submitted, submit
 from app.queue.models import ITEM_OPEN, Label, Lease, QueueItem, Skip
 from app.queue.progress import Progress, RoundQueue, progress, round_queue
@@ -239,7 +240,10 @@ def skip(session: Session, *, loop: Loop, item_id: int, user_id: int, now: datet
         item = lock_item(session, loop=loop, item_id=item_id)
         labelled = session.scalar(
             select(Label.id).where(
-                Label.step_id == item.step_id, Label.item_id == item.id, Label.user_id == user_id
+                Label.step_id == item.step_id,
+                Label.item_id == item.id,
+                Label.user_id == user_id,
+                is_current(),
             )
         )
         if labelled is not None:

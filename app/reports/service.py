@@ -36,6 +36,7 @@ from app.ingest.encode import FLOAT32_LE, stored_actions
 from app.ingest.models import CONTROL_LEARNER, Rollout, Step
 from app.loops import service as loops_service
 from app.loops.models import Loop, Round
+from app.queue.current import is_current
 from app.queue.models import ANSWER_UNSURE, Label
 from app.reports import annotators, compute, rates
 from app.reports.schemas import CountsRead, RoundReport, SelfTuningRead
@@ -258,7 +259,7 @@ def _labels(
             Label.learner_shown,
             Label.created_at,
         )
-        .where(Label.round_id == rnd.id)
+        .where(Label.round_id == rnd.id, is_current())
         .order_by(Label.id)
     ).all()
     step_ids = np.array([r[0] for r in rows], dtype=np.int64)

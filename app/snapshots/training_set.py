@@ -17,6 +17,7 @@ from sqlalchemy.orm import Session
 from app.ingest.encode import stored_actions
 from app.ingest.models import Step
 from app.loops.models import Loop, Round
+from app.queue.current import is_current
 from app.queue.models import ANSWER_UNSURE, Label
 from app.snapshots import rows
 from app.snapshots.batches import (
@@ -135,6 +136,7 @@ def relabels(session: Session, *, loop: Loop, cutoff: Cutoff) -> Relabels:
             Round.loop_id == loop.id,
             Round.number <= cutoff.up_to_round,
             Label.id <= cutoff.max_label_id,
+            is_current(cutoff.max_label_id),  # a later correction or undo counts from its id on
         )
         .order_by(Label.id)
     ).all()

@@ -14,7 +14,7 @@ from sqlalchemy.orm import Session
 from app.ingest.models import Step
 from app.jobs.models import Job
 from app.loops.models import Loop, Round
-from app.queue.models import ITEM_OPEN, Label, QueueItem
+from app.queue.models import ANSWER_UNDONE, ITEM_OPEN, Label, QueueItem
 
 CLAIM_SECONDS = Histogram(
     "expertloop_claim_seconds",
@@ -33,7 +33,14 @@ class StoreCollector(Collector):
     def collect(self) -> Iterator[Metric]:
         with Session(self._engine) as session:
             steps = session.scalar(select(func.count()).select_from(Step)) or 0
-            labels = session.scalar(select(func.count()).select_from(Label)) or 0
+            labels = (
+                session.scalar(
+                    select(func.count())
+                    .select_from(Label)
+                    .where(Label.answer != ANSWER_UNDONE)  # an undo is no label
+                )
+                or 0
+            )
             depth = session.execute(
                 select(Loop.slug, func.count(QueueItem.id))
                 .join(Round, Round.loop_id == Loop.id)

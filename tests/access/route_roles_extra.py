@@ -17,6 +17,9 @@ EXTRA_ROUTE_ROLES: dict[tuple[str, str], set[str]] = {
     ("GET", "/api/loops/{slug}/queue/progress"): {"annotator"},
     ("GET", "/api/loops/{slug}/rounds/{number}/queue"): set(),
     ("GET", "/loops/{slug}/bench"): {"annotator"},
+    ("GET", "/api/loops/{slug}/queue/my-labels"): {"annotator"},
+    ("POST", "/api/loops/{slug}/queue/my-labels/{label_id}/undo"): {"annotator"},
+    ("POST", "/api/loops/{slug}/queue/my-labels/{label_id}/change"): {"annotator"},
     # reports and the loop page
     ("GET", "/api/loops/{slug}/rounds/{number}/report"): READERS,
     ("GET", "/api/loops/{slug}/report"): READERS,

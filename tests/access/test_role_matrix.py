@@ -62,7 +62,7 @@ def schema_routes(client) -> set[tuple[str, str]]:
 
 
 def concrete(path: str) -> str:
-    numeric = ("{number}", "{step_id}", "{job_id}", "{item_id}")
+    numeric = ("{number}", "{step_id}", "{job_id}", "{item_id}", "{label_id}")
     return re.sub(r"\{[^}]+\}", lambda m: "1" if m.group(0) in numeric else "x", path)
 
 

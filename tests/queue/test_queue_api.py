@@ -175,6 +175,8 @@ def test_admins_read_a_rounds_queue_counts(discrete_loop, client, ann, admin):
         "live_leases": 0,
         "skips": 0,
         "learner_shown_items": 0,
+        "corrections": 0,
+        "undone": 0,
     }
 
 
