@@ -14,10 +14,17 @@
   var nActions = discrete ? config.action_space.actions.length : dims.length;
   var form = document.getElementById("answer-form");
   var spanInput = document.getElementById("span-steps");
+  var START_WORDS = {
+    neutral: "Starts at neutral: 0 where the bounds allow, else the middle of the range. Change what differs.",
+    expert: "Starts at the expert's command on the step before (step {step}). Change what differs.",
+    yours: "Starts at your answer on step {step}. Change what differs.",
+    learner: "Starts at the learner's action on this state. Change what differs.",
+  };
 
   var s = {
     item: null, steps: [], view: 0, choice: null, unsure: false, touched: false,
     sid: null, shownAt: 0, lastRenew: 0, busy: false, activeDim: 0, note: "", now: "",
+    start: [], startFrom: "neutral", correcting: null,
   };
 
   function $(id) { return document.getElementById(id); }
@@ -76,16 +83,19 @@
 
   function showEmpty() {
     s.item = null;
+    s.correcting = null;
     delete root.dataset.itemId;
     root.dataset.phase = "empty";
     $("workspace").hidden = true;
     $("empty").hidden = false;
-    setStatus("Nothing left for you in this queue.");
+    setStatus((s.note ? s.note + " " : "") + "Nothing left for you in this queue.");
+    s.note = "";
     $("look-again").focus();
   }
 
   function show(item) {
     s.item = item;
+    s.correcting = null;
     s.steps = item.context.concat([item.state]);
     s.view = s.steps.length - 1;
     s.choice = null;
@@ -96,6 +106,9 @@
     s.lastRenew = Date.now();
     $("empty").hidden = true;
     $("workspace").hidden = false;
+    $("correcting").hidden = true;
+    $("cancel-change").hidden = true;
+    $("skip").hidden = false;
     var learner = $("learner-box");
     learner.hidden = !item.learner_shown || item.learner_action === null;
     $("learner-action").textContent = item.learner_shown ? describeAction(item.learner_action) : "";
@@ -105,7 +118,7 @@
       spanInput.disabled = item.span_max_steps === 0;
     }
     if (!discrete) {
-      dims.forEach(function (d, i) { setDim(i, (d.low + d.high) / 2, false); });
+      setStart(item.start_action, item.start_from || "neutral", item.start_step);
     }
     render();
     root.dataset.itemId = String(item.item_id);
@@ -115,8 +128,25 @@
       setStatus((s.note ? s.note + " " : "") + s.now);
     }
     s.note = "";
-    var first = discrete ? form.querySelector(".action") : $("dim-0-range");
-    if (first) first.focus();
+    answerMode();
+  }
+
+  function setStart(values, from, step) {
+    s.start = values || dims.map(function (d) { return d.low <= 0 && 0 <= d.high ? 0 : (d.low + d.high) / 2; });
+    s.startFrom = values ? from : "neutral";
+    dims.forEach(function (d, i) { setDim(i, s.start[i], false); });
+    s.touched = false;
+    $("start-note").textContent = (START_WORDS[s.startFrom] || START_WORDS.neutral).replace("{step}", step);
+  }
+
+  // focus on the answer as a whole: digits choose (discrete) or open a dimension (continuous)
+  function answerMode() {
+    if (discrete) {
+      var first = form.querySelector(".action");
+      if (first) first.focus();
+    } else {
+      form.focus();
+    }
   }
 
   function answerBody() {
@@ -125,7 +155,10 @@
       if (s.choice === null) return "Choose an action (keys 1–" + Math.min(nActions, 9) + ") or Unsure (U) first.";
       return { answer: "action", action: s.choice };
     }
-    if (!s.touched) return "Set the action with the sliders or fields first (the start is only the middle of each range).";
+    if (!s.touched && s.startFrom === "neutral" && !s.correcting) {
+      return "Set the action first: the neutral start is not an answer (type a value, or 1–" +
+        Math.min(nActions, 9) + " to open a dimension).";
+    }
     var values = [];
     for (var i = 0; i < dims.length; i++) {
       var v = parseFloat($("dim-" + i + "-number").value);
@@ -138,7 +171,9 @@
   }
 
   function submit() {
-    if (s.busy || !s.item) return;
+    if (s.busy) return;
+    if (s.correcting) { sendChange(); return; }
+    if (!s.item) return;
     var body = answerBody();
     if (typeof body === "string") { setStatus(body, true); return; }
     body.submission_id = s.sid;
@@ -151,6 +186,7 @@
       if (r.ok) {
         s.note = "Saved: " + said + ".";
         setStatus(s.note + " Loading the next state…");
+        recent.changed();
         return claim();
       }
       if (r.status === 409) {
@@ -165,7 +201,7 @@
   }
 
   function skip() {
-    if (s.busy || !s.item) return;
+    if (s.busy || !s.item || s.correcting) return;
     s.busy = true;
     call("POST", api + "/items/" + s.item.item_id + "/skip").then(function (r) {
       s.busy = false;
@@ -213,6 +249,62 @@
     return "about " + Math.floor(minutes / 60) + " h " + (minutes % 60) + " min";
   }
 
+  // --- changing one of my recent labels -----------------------------------------------------
+
+  function startCorrection(label) {
+    s.correcting = label;
+    s.steps = [label.state];
+    s.view = 0;
+    s.unsure = label.answer === "unsure";
+    s.choice = discrete && typeof label.action === "number" ? label.action : null;
+    s.sid = newSubmissionId();
+    $("empty").hidden = true;
+    $("workspace").hidden = false;
+    $("learner-box").hidden = true;
+    $("skip").hidden = true;
+    $("cancel-change").hidden = false;
+    var note = $("correcting");
+    note.hidden = false;
+    note.textContent = "Changing your answer on rollout " + label.state.rollout + ", step " + label.state.step +
+      " (was: " + (label.answer === "unsure" ? "unsure" : describeAction(label.action)) + "). " +
+      (label.in_snapshot ? label.in_snapshot + " holds it: the change is a correction used from the next snapshot on. "
+        : "No snapshot holds it yet. ") + "Enter sends, Esc goes back.";
+    if (!discrete) {
+      s.start = Array.isArray(label.action) ? label.action.slice() : s.start;
+      dims.forEach(function (d, i) { setDim(i, s.start[i], false); });
+      $("start-note").textContent = "Starts at your earlier answer.";
+    }
+    root.dataset.phase = "correcting";
+    render();
+    answerMode();
+  }
+
+  function endCorrection() {
+    s.correcting = null;
+    $("correcting").hidden = true;
+    if (s.item) { var item = s.item; s.item = null; show(item); } else { claim(); }
+  }
+
+  function sendChange() {
+    var label = s.correcting;
+    var body = answerBody();
+    if (typeof body === "string") { setStatus(body, true); return; }
+    body.submission_id = s.sid;
+    s.busy = true;
+    var said = body.answer === "unsure" ? "unsure" : describeAction(body.action);
+    call("POST", api + "/my-labels/" + label.id + "/change", body).then(function (r) {
+      s.busy = false;
+      if (!r.ok) { setStatus(detail(r), true); if (r.status === 409 || r.status === 404) endCorrection(); return; }
+      s.note = (r.data.correction ? "Corrected (from the next snapshot on): " : "Changed: ") + said + ".";
+      setStatus(s.note);
+      recent.changed();
+      endCorrection();
+    }, function () {
+      s.busy = false;
+      setStatus("Not saved: the server cannot be reached. Press Enter to send again (it is stored once).", true);
+    });
+  }
+
   // --- answer controls --------------------------------------------------------------------
 
   function describeAction(action) {
@@ -243,18 +335,19 @@
     form.querySelectorAll(".action").forEach(function (b) {
       var on = !s.unsure && Number(b.dataset.action) === s.choice;
       b.setAttribute("aria-pressed", on ? "true" : "false");
-      b.querySelector(".mark").textContent = on ? " ✓ chosen" : "";
+      b.querySelector(".mark").textContent = on ? " ✓" : "";
     });
     var u = $("unsure");
     u.setAttribute("aria-pressed", s.unsure ? "true" : "false");
-    u.querySelector(".mark").textContent = s.unsure ? " ✓ chosen" : "";
+    u.querySelector(".mark").textContent = s.unsure ? " ✓" : "";
     if ((s.unsure || s.choice !== null || s.touched) && $("status").classList.contains("problem")) {
       setStatus(s.now);  // the problem was the missing answer; it is there now
     }
     var text;
     if (s.unsure) text = "Your answer: unsure.";
     else if (discrete) text = s.choice === null ? "No answer chosen yet." : "Your answer: " + describeAction(s.choice) + ".";
-    else text = s.touched ? "Your answer: " + describeAction(currentValues()) + "." : "Move a slider or type a value.";
+    else if (!s.touched && s.startFrom === "neutral" && !s.correcting) text = "Type the values that differ from the start.";
+    else text = "Your answer: " + describeAction(currentValues()) + ".";
     $("choice").textContent = text;
   }
 
@@ -262,33 +355,48 @@
     return dims.map(function (_, i) { return parseFloat($("dim-" + i + "-number").value); });
   }
 
+  function markChanged(i, value) {
+    var row = form.querySelector(".dimension[data-dim='" + i + "']");
+    row.classList.toggle("changed", Math.abs(value - s.start[i]) > 1e-9);
+  }
+
   function setDim(i, value, touched) {
     var d = dims[i];
     var v = Math.min(d.high, Math.max(d.low, value));
-    var step = (d.high - d.low) / 100;
-    v = Math.round((v - d.low) / step) * step + d.low;  // stay on the slider's grid
-    v = Number(v.toPrecision(10));
+    v = Number(v.toPrecision(7));  // float32 answers come back with 7 significant digits
     $("dim-" + i + "-range").value = String(v);
     $("dim-" + i + "-number").value = String(v);
     $("dim-" + i + "-number").removeAttribute("aria-invalid");
+    markChanged(i, v);
     if (touched) { s.touched = true; s.unsure = false; }
     renderChoice();
   }
 
+  function focusDim(i) {
+    if (i < 0 || i >= dims.length) { answerMode(); return; }
+    s.activeDim = i;
+    var field = $("dim-" + i + "-number");
+    field.focus();
+    field.select();  // typing replaces the value shown
+  }
+
   function nudge(direction, times) {
-    if (discrete || !s.item) return;
+    if (discrete || (!s.item && !s.correcting)) return;
     var d = dims[s.activeDim];
     var value = parseFloat($("dim-" + s.activeDim + "-number").value);
-    if (!isFinite(value)) value = (d.low + d.high) / 2;
-    setDim(s.activeDim, value + direction * times * (d.high - d.low) / 100, true);
+    if (!isFinite(value)) value = s.start[s.activeDim];
+    var step = (d.high - d.low) / 100;
+    var next = Math.round((value + direction * times * step - d.low) / step) * step + d.low;
+    setDim(s.activeDim, next, true);
   }
 
   function renderFeatures(step) {
-    document.querySelectorAll("#features td[data-feature]").forEach(function (td) {
-      td.textContent = fmt(step.features[Number(td.dataset.feature)]);
+    document.querySelectorAll("#features [data-feature]").forEach(function (cell) {
+      cell.textContent = fmt(step.features[Number(cell.dataset.feature)]);
     });
     var current = s.view === s.steps.length - 1;
-    $("features-when").textContent = current ? "at this state" : "at the step viewed (" + offset(step) + ")";
+    $("features-when").textContent = s.correcting ? "at the state you are changing"
+      : current ? "at this state" : "at the step viewed (" + offset(step) + ")";
   }
 
   function renderCamera(step) {
@@ -301,23 +409,27 @@
     fig.hidden = false;
   }
 
-  function offset(step) { return draw.timeOffset(step, s.item.state.time_s); }
+  function offset(step) { return draw.timeOffset(step, s.steps[s.steps.length - 1].time_s); }
 
-  function plotted() {
-    return Array.prototype.filter.call(document.querySelectorAll("input[name=plot]"), function (c) {
+  function checked(name) {
+    return Array.prototype.filter.call(document.querySelectorAll("input[name=" + name + "]"), function (c) {
       return c.checked;
     }).map(function (c) { return Number(c.value); });
   }
 
   function spanCount() {
-    if (!spanInput || spanInput.disabled) return 0;
+    if (!spanInput || spanInput.disabled || !s.item || s.correcting) return 0;
     var n = parseInt(spanInput.value || "0", 10);
     return isFinite(n) ? Math.max(0, Math.min(n, s.item.span_max_steps)) : 0;
   }
 
   function renderPlots() {
     draw.plots($("plots"), {
-      steps: s.steps, view: s.view, features: config.features, plotted: plotted(),
+      steps: s.steps, view: s.view, features: config.features, plotted: checked("plot"),
+      commands: {
+        names: config.command_names, plotted: checked("plot-command"), discrete: discrete,
+        actions: config.action_space.actions || [], dimensions: dims,
+      },
       covered: spanCount(), contextSeconds: config.context_seconds,
     });
   }
@@ -330,7 +442,7 @@
     $("step-current").disabled = current;
     var step = s.steps[s.view];
     $("step-position").textContent = current
-      ? "current step " + step.step + " (" + last + " earlier steps available)"
+      ? "step " + step.step + " (" + last + " earlier)"
       : "viewing step " + step.step + ", " + offset(step) + " (view only)";
     var note = $("viewing-note");
     note.hidden = current;
@@ -341,7 +453,7 @@
 
   function render() {
     var step = s.steps[s.view];
-    draw.scene($("scene"), $("agent-list"), step);
+    $("scene-scale").textContent = draw.scene($("scene"), $("agent-list"), step, document.querySelector(".legend"));
     renderFeatures(step);
     renderCamera(step);
     renderPlots();
@@ -350,7 +462,7 @@
   }
 
   function stepBy(delta) {
-    if (!s.item) return;
+    if (!s.item || s.correcting) return;
     var next = Math.max(0, Math.min(s.steps.length - 1, s.view + delta));
     if (next !== s.view) { s.view = next; render(); }
   }
@@ -361,26 +473,45 @@
     render();
   }
 
+  // --- my recent labels -------------------------------------------------------------------
+
+  var recent = window.expertloopRecent({
+    api: api, call: call, detail: detail, newId: newSubmissionId, describe: function (label) {
+      return label.answer === "unsure" ? "unsure" : describeAction(label.action);
+    },
+    onChange: startCorrection,
+    onUndone: function (text) {
+      setStatus(text);
+      refreshProgress();
+      if (!s.item && !s.correcting) claim();
+    },
+    onClose: function () { if (s.correcting) return; answerMode(); },
+    setStatus: setStatus,
+  });
+
   // --- events -----------------------------------------------------------------------------
 
+  form.setAttribute("tabindex", "-1");
   form.addEventListener("submit", function (e) { e.preventDefault(); submit(); });
   form.querySelectorAll(".action").forEach(function (b) {
     b.addEventListener("click", function () { choose(Number(b.dataset.action)); });
   });
   $("unsure").addEventListener("click", toggleUnsure);
   $("skip").addEventListener("click", skip);
+  $("cancel-change").addEventListener("click", endCorrection);
   $("look-again").addEventListener("click", claim);
+  $("recent-toggle").addEventListener("click", recent.toggle);
+  $("empty-recent").addEventListener("click", function (e) { e.preventDefault(); recent.open(); });
   $("step-back").addEventListener("click", function () { stepBy(-1); });
   $("step-forward").addEventListener("click", function () { stepBy(1); });
   $("step-current").addEventListener("click", viewCurrent);
-  document.querySelectorAll("input[name=plot]").forEach(function (c) {
-    c.addEventListener("change", function () { if (s.item) renderPlots(); });
+  document.querySelectorAll("input[name=plot], input[name=plot-command]").forEach(function (c) {
+    c.addEventListener("change", function () { if (s.item || s.correcting) renderPlots(); });
   });
   if (spanInput) spanInput.addEventListener("input", function () { if (s.item) renderPlots(); });
   dims.forEach(function (d, i) {
     var range = $("dim-" + i + "-range"), number = $("dim-" + i + "-number");
     range.addEventListener("input", function () { s.activeDim = i; setDim(i, parseFloat(range.value), true); });
-    range.addEventListener("focus", function () { s.activeDim = i; });
     number.addEventListener("focus", function () { s.activeDim = i; });
     number.addEventListener("input", function () {
       var v = parseFloat(number.value);
@@ -388,6 +519,7 @@
       if (isFinite(v) && v >= d.low && v <= d.high) {
         range.value = String(v);
         number.removeAttribute("aria-invalid");
+        markChanged(i, v);
         s.touched = true;
         s.unsure = false;
       } else {
@@ -402,12 +534,24 @@
     return target instanceof HTMLInputElement && (target.type === "number" || target.type === "text");
   }
 
+  function dimensionField(target) {
+    return target instanceof HTMLInputElement && target.classList.contains("dim-number");
+  }
+
   document.addEventListener("keydown", function (e) {
     if (e.ctrlKey || e.metaKey || e.altKey || e.isComposing) return;
     noteActivity();
+    if (recent.isOpen() && recent.handleKey(e)) return;
     var t = e.target;
+    if (dimensionField(t)) {
+      var i = Number(t.dataset.dim);
+      if (e.key === " ") { e.preventDefault(); focusDim(i + 1 < dims.length ? i + 1 : -1); return; }
+      if (e.key === "ArrowDown") { e.preventDefault(); focusDim(Math.min(i + 1, dims.length - 1)); return; }
+      if (e.key === "ArrowUp") { e.preventDefault(); focusDim(Math.max(i - 1, 0)); return; }
+    }
     if (e.key === "Escape") {
-      if (typingIn(t)) t.blur();
+      if (typingIn(t)) { answerMode(); return; }  // leave the field; its value stays
+      if (s.correcting) { endCorrection(); return; }
       viewCurrent();
       return;
     }
@@ -423,20 +567,16 @@
     var key = e.key;
     if (/^[1-9]$/.test(key)) {
       var n = Number(key) - 1;
-      if (n >= nActions || !s.item) return;
+      if (n >= nActions || (!s.item && !s.correcting)) return;
       e.preventDefault();
-      if (discrete) {
-        choose(n);
-      } else {
-        s.activeDim = n;
-        $("dim-" + n + "-range").focus();
-      }
+      if (discrete) choose(n); else focusDim(n);
       return;
     }
     var handled = true;
     switch (key) {
-      case "u": case "U": if (s.item) toggleUnsure(); break;
+      case "u": case "U": if (s.item || s.correcting) toggleUnsure(); break;
       case "s": case "S": skip(); break;
+      case "l": case "L": recent.toggle(); break;
       case ",": case "<": stepBy(-1); break;
       case ".": case ">": stepBy(1); break;
       case "+": case "=": nudge(1, 1); break;

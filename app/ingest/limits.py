@@ -9,7 +9,7 @@ same file gets the same answer on SQLite and PostgreSQL. Every refusal names the
 | step | 0 to 2**31 - 1 (the store's INTEGER column) |
 | time_s | 0 or more, finite |
 | integer features | at most 2**24 in magnitude (float32 holds those exactly) |
-| scene | a JSON object of at most `max_scene_bytes`: `frame` and up to 256 `agents` (`kind`, `x`, `y`, `heading`) |
+| scene | a JSON object of at most `max_scene_bytes`: `frame`, up to 256 `agents` (`kind`, `x`, `y`, `heading`), up to 64 `geometry` shapes and `view_m` (app.ingest.scene) |
 | image | PNG, JPEG or WebP by their first bytes, at most `max_image_bytes` |
 """
 
@@ -18,6 +18,7 @@ from __future__ import annotations
 import difflib
 import json
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -28,6 +29,7 @@ from app.errors import InvalidInput
 from app.ingest import columns as col
 from app.ingest.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
 from app.ingest.images import HEAD_BYTES, image_media_type
+from app.ingest.scene import geometry_problem
 from app.limits import INT32_MAX, KEY_MAX_CHARS, name_problem, shown
 
 STEP_MAX = INT32_MAX
@@ -101,6 +103,9 @@ class Scene(BaseModel):
 
     frame: str | None = Field(default=None, max_length=SCENE_TEXT_MAX_CHARS)
     agents: list[SceneAgent] = Field(default_factory=list, max_length=SCENE_MAX_AGENTS)
+    # static shapes and the view's reach, checked in plain words by app.ingest.scene
+    geometry: list[Any] | None = None
+    view_m: float | None = None
 
 
 def check_scenes(column: pa.ChunkedArray, max_bytes: int) -> np.ndarray:
@@ -122,6 +127,9 @@ def check_scenes(column: pa.ChunkedArray, max_bytes: int) -> np.ndarray:
             raise col.fail(i, "scene", f"not valid JSON ({why})") from exc
         if not isinstance(parsed, dict):
             raise col.fail(i, "scene", "must be a JSON object")
+        problem = geometry_problem(parsed)
+        if problem:
+            raise col.fail(i, "scene", problem)
         try:
             Scene.model_validate(parsed)
         except ValidationError as exc:

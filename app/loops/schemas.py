@@ -99,6 +99,23 @@ class LoopSettings(RequestBody):
         "they hold enough disagreements.",
     )
     tuning_min_disagreements: int = Field(default=10, ge=1, le=100_000)
+    key_features: list[str] | None = Field(
+        default=None,
+        max_length=64,
+        description="Features the bench shows first, in this order (names from the state schema).",
+    )
+    continuous_start: Literal["neutral", "previous", "learner"] = Field(
+        default="neutral",
+        description="Where a continuous answer starts on the bench: neutral (0 where the bounds "
+        "allow, else mid-range), previous (the step before's expert command, else your own "
+        "answer on an earlier step of the rollout), learner (the learner's action on items that "
+        "show it).",
+    )
+    context_commands: Literal["none", "expert", "all"] = Field(
+        default="expert",
+        description="Commands plotted for the steps before a state: none, the expert's on "
+        "takeover steps, or all (the learner's too).",
+    )
     continuous_tolerance: list[float] | None = Field(
         default=None,
         description="Per-dimension tolerance for counting a continuous disagreement; "
@@ -151,6 +168,14 @@ class LoopCreate(RequestBody):
                 f"settings.uncertainty_method {method!r} scores action probabilities: it needs "
                 "a discrete action space (use 'auto' for a continuous one)"
             )
+        return self
+
+    @model_validator(mode="after")
+    def _key_features_known(self) -> LoopCreate:
+        names = {f.name for f in self.features}
+        unknown = [n for n in self.settings.key_features or [] if n not in names]
+        if unknown:
+            raise ValueError(f"settings.key_features: {unknown} are not features of this loop")
         return self
 
     @model_validator(mode="after")

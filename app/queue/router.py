@@ -36,7 +36,7 @@ def claim(slug: str, session: SessionDep, caller: AnnotatorDep) -> ClaimRead:
         claimed = service.claim_next(session, loop=loop, user_id=caller.user_id, now=utcnow())
     if claimed is None:
         return ClaimRead(item=None)
-    return ClaimRead(item=bench_item(session, loop=loop, claim=claimed))
+    return ClaimRead(item=bench_item(session, loop=loop, claim=claimed, user_id=caller.user_id))
 
 
 @router.post(QUEUE + "/items/{item_id}/renew", response_model=LeaseRead)
@@ -127,14 +127,28 @@ def bench_page(request: Request, slug: str, session: SessionDep, caller: Annotat
     """The bench: label the loop's queued states, keyboard first (annotator)."""
     loop = loops_service.get_loop(session, slug=slug)
     settings = service.loop_settings(loop)
+    names = [f["name"] for f in loop.features]
+    key = [names.index(n) for n in settings.key_features or []]
+    order = key + [i for i in range(len(names)) if i not in key]
+    space = loop.action_space
+    commands = (
+        ["action"] if space["kind"] == "discrete" else [d["name"] for d in space["dimensions"]]
+    )
     config = {
         "slug": loop.slug,
         "features": loop.features,
-        "action_space": loop.action_space,
+        "action_space": space,
         "lease_seconds": settings.lease_seconds,
         "context_seconds": settings.context_seconds,
         "span_labels": settings.span_labels,
-        "plotted_features": min(3, len(loop.features)),
+        # key features first; the first two are plotted, with the first command where shown
+        "feature_order": order,
+        "key_count": len(key),
+        "plotted": order[:2],
+        "command_names": commands,
+        "plotted_commands": [0] if settings.context_commands != "none" else [],
+        "context_commands": settings.context_commands,
+        "continuous_start": settings.continuous_start,
     }
     return templates.TemplateResponse(
         request,

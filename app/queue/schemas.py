@@ -20,6 +20,10 @@ class BenchStep(BaseModel):
     features: list[float]
     scene: dict[str, Any] | None
     image_sha256: str | None
+    # past commands for the context plots, as the loop's `context_commands` allows; never the
+    # learner's action on the state being labelled
+    expert_command: str | list[float] | None = None
+    learner_command: str | list[float] | None = None
 
 
 class BenchItem(BaseModel):
@@ -34,6 +38,13 @@ class BenchItem(BaseModel):
     learner_shown: bool
     learner_action: str | list[float] | None
     span_max_steps: int = Field(description="0 when span labels are off for the loop")
+    start_action: list[float] | None = Field(
+        default=None, description="where a continuous answer starts (the loop's continuous_start)"
+    )
+    start_from: str = Field(
+        default="", description="neutral, expert, yours or learner: what start_action is"
+    )
+    start_step: int | None = Field(default=None, description="the step start_action comes from")
 
 
 class ClaimRead(BaseModel):

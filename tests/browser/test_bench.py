@@ -221,7 +221,7 @@ def test_label_by_keyboard_skip_and_unsure(make_loop, make_user, settings, app, 
     assert all(lab.seconds_spent is not None and lab.seconds_spent >= 0 for lab in labels)
 
 
-def test_continuous_action_with_the_slider(make_loop, make_user, settings, app, browser):
+def test_continuous_action_typed_and_nudged(make_loop, make_user, settings, app, browser):
     slug = make_loop(CONTINUOUS_SPEC, queue=2, start=5)
     make_user("annotator", name="ann", password=PASSWORD)
     with server_process(
@@ -232,17 +232,26 @@ def test_continuous_action_with_the_slider(make_loop, make_user, settings, app, 
         base = server.url
         page = browser.new_page(viewport={"width": 1440, "height": 900})
         sign_in_and_open_bench(page, base, slug)
+        # the neutral start: 0 m/s and 0 1/m, both inside the bounds
+        assert page.input_value("#dim-0-number") == "0"
         page.keyboard.press("Enter")  # nothing set yet: refused on the page, nothing sent
         assert "Problem" in page.inner_text("#status")
-        page.keyboard.press("1")  # the speed_cmd slider
-        assert page.evaluate("document.activeElement.id") == "dim-0-range"
-        for _ in range(25):  # arrows move a focused slider by its step, 1% of the range
-            page.keyboard.press("ArrowRight")
-        page.keyboard.press("2")
-        for _ in range(10):
-            page.keyboard.press("ArrowLeft")
-        page.keyboard.press("+")  # a nudge on the active dimension
+        page.keyboard.press("1")  # opens the speed_cmd field with its value selected
+        assert page.evaluate("document.activeElement.id") == "dim-0-number"
+        page.keyboard.type("1.4")  # replaces the value
+        page.keyboard.press("Space")  # on to curvature
+        assert page.evaluate("document.activeElement.id") == "dim-1-number"
+        page.keyboard.type("-0.04")
+        page.keyboard.press("Escape")  # leave the field, keeping the value
+        page.keyboard.press("1")
+        page.keyboard.press("Escape")
+        page.keyboard.press("+")  # a nudge on the active dimension: 1% of the range
+        page.keyboard.press("+")
+        page.keyboard.press("+")
+        page.keyboard.press("+")
+        page.keyboard.press("+")
         assert page.input_value("#dim-0-number") == "1.5"
+        assert page.locator(".dimension.changed").count() == 2
         ARTIFACTS.mkdir(exist_ok=True)
         page.screenshot(path=str(ARTIFACTS / "bench-continuous.png"), full_page=True)
         labelled = answer_and_wait(page, ["Enter"])
@@ -250,9 +259,9 @@ def test_continuous_action_with_the_slider(make_loop, make_user, settings, app, 
     with app.state.session_factory() as session:
         label = session.scalar(select(Label).where(Label.user_id == user_id(app, "ann")))
     assert label.item_id == labelled and label.answer == "action"
-    # 1 + 25 x 0.02 m/s and 0 - 10 x 0.004 + 0.004 1/m, stored as float32
+    # 1.4 + 5 x 0.02 m/s and -0.04 1/m as typed, stored as float32
     np.testing.assert_allclose(
-        np.frombuffer(label.action_vec, dtype="<f4"), [1.5, -0.036], rtol=0, atol=1e-6
+        np.frombuffer(label.action_vec, dtype="<f4"), [1.5, -0.04], rtol=0, atol=1e-6
     )
 
 
