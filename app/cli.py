@@ -7,7 +7,7 @@ import json
 import os
 from collections.abc import Callable
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 from pydantic import ValidationError
@@ -18,6 +18,7 @@ if TYPE_CHECKING:
     from sqlalchemy.orm import Session
 
     from app.auth.models import User
+    from app.client import Client
 
 cli = typer.Typer(
     help="expertloop: expert relabelling rounds for imitation-learned policies.",
@@ -56,6 +57,17 @@ def _session():  # type: ignore[no-untyped-def]
 def _fail(message: str) -> None:
     typer.secho(message, fg=typer.colors.RED, err=True)
     raise typer.Exit(code=2)
+
+
+def _over_http(url: str, token: str, request: Callable[[Client], Any]) -> Any:
+    """The answer of one API request, or exit with the service's refusal in words."""
+    from app.client import ApiError, Client
+
+    with Client(url, token) as client:
+        try:
+            return request(client)
+        except ApiError as exc:
+            _fail(f"refused: {exc.detail}")
 
 
 @db_cli.command("upgrade")
@@ -455,14 +467,7 @@ def rounds_open(
     token: Annotated[str, TOKEN_OPTION] = "",
 ) -> None:
     """Open the loop's next round for a learner version (admin token)."""
-    from app.client import ApiError, Client
-
-    with Client(url, token) as client:
-        try:
-            opened = client.open_round(loop, learner_version)
-        except ApiError as exc:
-            _fail(f"refused: {exc.detail}")
-            return
+    opened = _over_http(url, token, lambda client: client.open_round(loop, learner_version))
     typer.echo(f"opened round {opened['number']} of '{loop}' for learner {learner_version}")
 
 
@@ -474,14 +479,7 @@ def rounds_close(
     token: Annotated[str, TOKEN_OPTION] = "",
 ) -> None:
     """Close a round: it takes no more uploads (admin token)."""
-    from app.client import ApiError, Client
-
-    with Client(url, token) as client:
-        try:
-            client.close_round(loop, round_number)
-        except ApiError as exc:
-            _fail(f"refused: {exc.detail}")
-            return
+    _over_http(url, token, lambda client: client.close_round(loop, round_number))
     typer.echo(f"closed round {round_number} of '{loop}'; it takes no more uploads")
 
 
@@ -492,15 +490,7 @@ def rounds_list(
     token: Annotated[str, TOKEN_OPTION] = "",
 ) -> None:
     """List a loop's rounds: number, status, learner version, rollouts, steps."""
-    from app.client import ApiError, Client
-
-    with Client(url, token) as client:
-        try:
-            rounds = client.rounds(loop)
-        except ApiError as exc:
-            _fail(f"refused: {exc.detail}")
-            return
-    for r in rounds:
+    for r in _over_http(url, token, lambda client: client.rounds(loop)):
         typer.echo(
             f"{r['number']}\t{r['status']}\t{r['learner_version'] or '-'}\t"
             f"{r['rollouts']} rollouts\t{r['steps']} steps"
@@ -517,14 +507,7 @@ def snapshots_create(
     token: Annotated[str, TOKEN_OPTION] = "",
 ) -> None:
     """Make the next training-set version, or name the existing one with the same content."""
-    from app.client import ApiError, Client
-
-    with Client(url, token) as client:
-        try:
-            made = client.create_snapshot(loop, up_to_round)
-        except ApiError as exc:
-            _fail(f"refused: {exc.detail}")
-            return
+    made = _over_http(url, token, lambda client: client.create_snapshot(loop, up_to_round))
     what = "created" if made["created"] else "unchanged, the same content is already"
     typer.echo(
         f"{what} {made['version']} of '{loop}': {made['row_count']} rows up to round "
@@ -539,15 +522,7 @@ def snapshots_list(
     token: Annotated[str, TOKEN_OPTION] = "",
 ) -> None:
     """List a loop's training-set versions: version, rounds, rows, created, content hash."""
-    from app.client import ApiError, Client
-
-    with Client(url, token) as client:
-        try:
-            versions = client.snapshots(loop)
-        except ApiError as exc:
-            _fail(f"refused: {exc.detail}")
-            return
-    for v in versions:
+    for v in _over_http(url, token, lambda client: client.snapshots(loop)):
         typer.echo(
             f"{v['version']}\tup to round {v['up_to_round']}\t{v['row_count']} rows\t"
             f"{v['created_at']}\t{v['content_sha256'][:16]}"
@@ -638,13 +613,8 @@ def export(
 
     from app.client import ApiError, Client
 
-    with Client(url, token) as client:
-        try:
-            # "latest" is resolved to its number once, so the name and the rows agree
-            version = client.snapshot(loop, version)["version"]
-        except ApiError as exc:
-            _fail(f"refused: {exc.detail}")
-            return
+    # "latest" is resolved to its number once, so the name and the rows agree
+    version = _over_http(url, token, lambda client: client.snapshot(loop, version))["version"]
     target = out or Path(f"{loop}-{version}.{file_format}")
     with (
         Client(url, token) as client,

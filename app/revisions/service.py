@@ -116,12 +116,12 @@ def undo(
     )
     try:
         with write_transaction(session):
-            repeat = _repeat(session, submission_id, label_id=label_id, user_id=user_id)
-            if repeat is not None:
-                return repeat
-            label = _own_label(session, loop=loop, label_id=label_id, user_id=user_id)
-            item = lock_item(session, loop=loop, item_id=label.item_id or 0)
-            _standing(session, label)
+            found = _standing_label(
+                session, loop=loop, label_id=label_id, user_id=user_id, submission_id=submission_id
+            )
+            if isinstance(found, Revised):
+                return found
+            label, item = found
             held = first_versions(session, loop=loop, labels=[label]).get(label.id)
             if held is not None:
                 raise Conflict(
@@ -183,12 +183,12 @@ def change(
     )
     try:
         with write_transaction(session):
-            repeat = _repeat(session, submission_id, label_id=label_id, user_id=user_id)
-            if repeat is not None:
-                return repeat
-            label = _own_label(session, loop=loop, label_id=label_id, user_id=user_id)
-            lock_item(session, loop=loop, item_id=label.item_id or 0)
-            _standing(session, label)
+            found = _standing_label(
+                session, loop=loop, label_id=label_id, user_id=user_id, submission_id=submission_id
+            )
+            if isinstance(found, Revised):
+                return found
+            label, _item = found
             new = _insert(
                 session,
                 label,
@@ -201,6 +201,20 @@ def change(
             return Revised(label=new, replaced=label, repeated=False)
     except IntegrityError:
         return _after_race(session, submission_id, label_id=label_id, user_id=user_id)
+
+
+def _standing_label(
+    session: Session, *, loop: Loop, label_id: int, user_id: int, submission_id: str
+) -> Revised | tuple[Label, Item]:
+    """The stored revision when this request repeats one; else the caller's label, checked to
+    be still standing once its queue item is locked, and the item."""
+    repeat = _repeat(session, submission_id, label_id=label_id, user_id=user_id)
+    if repeat is not None:
+        return repeat
+    label = _own_label(session, loop=loop, label_id=label_id, user_id=user_id)
+    item = lock_item(session, loop=loop, item_id=label.item_id or 0)
+    _standing(session, label)
+    return label, item
 
 
 def _own_label(session: Session, *, loop: Loop, label_id: int, user_id: int) -> Label:
