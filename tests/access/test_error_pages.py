@@ -12,7 +12,7 @@ from fastapi.testclient import TestClient
 
 from app.error_pages import safe_next
 from tests.access.test_sign_in import sign_in
-from tests.helpers import DISCRETE_SPEC
+from tests.helpers import DISCRETE_SPEC, sign_in_form
 from tests.reports.test_loop_page import Page
 
 BROWSER = {"accept": "text/html,application/xhtml+xml,*/*;q=0.8"}
@@ -58,11 +58,7 @@ def test_next_is_only_a_local_path(target, kept):
 
 def test_signed_in_sign_in_returns_to_next(client, make_user):
     make_user("annotator", name="ann", password="correct horse")
-    response = client.post(
-        "/login",
-        data={"name": "ann", "password": "correct horse", "next": "/loops/x/bench"},
-        follow_redirects=False,
-    )
+    response = sign_in_form(client, "ann", "correct horse", "/loops/x/bench")
     assert response.headers["location"] == "/loops/x/bench"
 
 
@@ -127,7 +123,7 @@ def test_server_error_is_a_page_for_browsers_and_json_for_api(app, make_user, mo
 
 def test_wrong_password_keeps_the_name(client, make_user):
     make_user("annotator", name="ann", password="correct horse")
-    response = client.post("/login", data={"name": "ann", "password": "wrong", "next": "/"})
+    response = sign_in_form(client, "ann", "wrong", "/")
     assert response.status_code == 401
     page = parsed(response)
     name = [a for tag, a in page.tags if tag == "input" and a.get("id") == "name"][0]
