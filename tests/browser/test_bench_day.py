@@ -13,6 +13,7 @@ import json
 import math
 import statistics
 import tempfile
+import time
 from pathlib import Path
 from typing import Any
 
@@ -115,6 +116,15 @@ def spec(slug: str, dims: list[dict] | None) -> dict[str, Any]:
             "action_space": space}  # fmt: skip
 
 
+def wait_until(page: Any, expression: str, timeout_s: float = 30.0) -> None:
+    """Poll an expression through Playwright's evaluate (the page's Content-Security-Policy
+    forbids the string evaluation that wait_for_function does inside the page)."""
+    deadline = time.monotonic() + timeout_s
+    while not page.evaluate(f"() => Boolean({expression})"):
+        assert time.monotonic() < deadline, f"timed out waiting for {expression}"
+        time.sleep(0.01)
+
+
 class Keys:
     """Presses keys on the page and counts them."""
 
@@ -157,7 +167,7 @@ def answer(page: Any, keys: Keys, sequence: list[str]) -> tuple[int, float]:
     page.evaluate(WATCH)
     for key in sequence:
         keys.press(key)
-    page.wait_for_function("window.__shown !== null")
+    wait_until(page, "window.__shown !== null")
     return before, page.evaluate("window.__shown - window.__sent")
 
 
@@ -201,7 +211,7 @@ def test_a_day_at_the_bench(make_loop, make_user, settings, app, browser):
         base = server.url
         page = browser.new_page(viewport=VIEWPORT)
         sign_in_and_open_bench(page, base, discrete)
-        page.wait_for_function("document.getElementById('p-left').textContent === '30 states'")
+        wait_until(page, "document.getElementById('p-left').textContent === '30 states'")
         assert_fits(page)
         assert page.is_visible(".legend [data-legend=zone]")  # geometry present: legend entry
         assert page.is_visible(".legend [data-legend=beyond]")  # the truck 48 m ahead
@@ -224,7 +234,7 @@ def test_a_day_at_the_bench(make_loop, make_user, settings, app, browser):
         page.screenshot(path=str(SHOTS / "discrete-empty.png"))
         # recent labels, by keyboard: undo the newest (it comes back), answer it again, change it
         keys.press("l")
-        page.wait_for_function("document.querySelectorAll('#recent-list li').length === 20")
+        wait_until(page, "document.querySelectorAll('#recent-list li').length === 20")
         page.screenshot(path=str(SHOTS / "recent-labels.png"))
         keys.press("Delete")
         page.wait_for_selector("#bench[data-phase=ready]")
@@ -232,14 +242,12 @@ def test_a_day_at_the_bench(make_loop, make_user, settings, app, browser):
         undone_item = int(page.get_attribute("#bench", "data-item-id"))
         answer(page, keys, ["3", "Enter"])
         keys.press("l")
-        page.wait_for_function("document.querySelectorAll('#recent-list li').length === 20")
+        wait_until(page, "document.querySelectorAll('#recent-list li').length === 20")
         keys.press("c")
         page.wait_for_selector("#bench[data-phase=correcting]")
         page.screenshot(path=str(SHOTS / "changing-a-label.png"))
         keys.press("2", "Enter")
-        page.wait_for_function(
-            "document.getElementById('status').textContent.startsWith('Changed')"
-        )
+        wait_until(page, "document.getElementById('status').textContent.startsWith('Changed')")
         figures["discrete_latency_ms"] = latencies
 
         # continuous: 7 dimensions, each state starting from the step before's answer
