@@ -46,6 +46,14 @@ EXERCISED = {
     "users list",
     "tokens issue",
     "tokens revoke",
+    "users role",
+    "users deactivate",
+    "users activate",
+    "rounds open",
+    "rounds list",
+    "rounds close",
+    "snapshots create",
+    "snapshots list",
     "loops create",
     "loops list",
     "logs inspect",
@@ -164,7 +172,9 @@ def token_of(output: str) -> str:
 
 
 def test_accounts_on_a_fresh_store(script: Path, store: dict[str, str]) -> None:
-    assert "up to date" in run(script, store, "db", "upgrade")
+    created = run(script, store, "db", "upgrade")
+    assert "created the database schema at revision" in created
+    assert "already at revision" in run(script, store, "db", "upgrade")
     with_password = store | {"EXPERTLOOP_NEW_PASSWORD": "s3cret-pass"}
     out = run(script, with_password, "users", "add", "alice", "--role", "admin", "--password")
     assert "created user 'alice' with roles admin" in out
@@ -182,6 +192,14 @@ def test_accounts_on_a_fresh_store(script: Path, store: dict[str, str]) -> None:
         script, store, "users", "add", "bob", "--role", "pilot", expect=2
     )
     assert "no user named 'nobody'" in run(script, store, "tokens", "issue", "nobody", expect=2)
+    out = run(script, store, "users", "role", "fleet-7", "--role", "uploader", "--role", "trainer")
+    assert "user 'fleet-7': roles uploader -> trainer, uploader" in out
+    assert "deactivated" in run(script, store, "users", "deactivate", "fleet-7")
+    assert "fleet-7\ttrainer,uploader\tno password\tdeactivated" in run(
+        script, store, "users", "list"
+    )
+    run(script, store, "users", "activate", "fleet-7")
+    assert "deactivated" not in run(script, store, "users", "list")
 
 
 @pytest.mark.xfail(
@@ -253,16 +271,24 @@ def test_upload_rank_and_export_through_a_served_store(
         refused = ("upload", str(wrong_width), "--round", "0", *where, "--token", fleet)
         out = run(script, store, *refused, expect=2)
         assert "refused:" in out and "features" in out
-        _api(url, admin, "POST", "/api/loops/aisle-crossing/rounds", json={"learner_version": "v1"})
+        opening = ("rounds", "open", "--learner-version", "v1", *where, "--token", admin)
+        assert "opened round 1 of 'aisle-crossing' for learner v1" in run(script, store, *opening)
+        listed = run(script, store, "rounds", "list", *where, "--token", fleet).splitlines()
+        assert [line.split("\t")[:2] for line in listed] == [["0", "open"], ["1", "open"]]
         out = run(script, store, "upload", str(rollouts), "--round", "1", *where, "--token", fleet)
         assert "stored 4 rollouts, 120 steps" in out
         ranking = ("rank", "--round", "1", "--budget", "6", *where)
         out = run(script, store, *ranking, "--seed", "3", "--token", admin)
         assert re.search(r"chose 6 states \(1 audit\) of 120 candidates against 10 training", out)
         assert "refused:" in run(script, store, *ranking, "--token", fleet, expect=2)
-        snapshot = _api(
-            url, admin, "POST", "/api/loops/aisle-crossing/snapshots", json={"up_to_round": 0}
-        )
+        creating = ("snapshots", "create", "--up-to-round", "0", *where, "--token", admin)
+        out = run(script, store, *creating)
+        assert "created v1 of 'aisle-crossing': 10 rows up to round 0" in out
+        listing = ("snapshots", "list", *where, "--token", admin)
+        assert run(script, store, *listing).startswith("v1\tup to round 0\t10 rows\t")
+        snapshot = _api(url, admin, "GET", "/api/loops/aisle-crossing/snapshots/v1")
+        closing = ("rounds", "close", "--round", "1", *where, "--token", admin)
+        assert "closed round 1" in run(script, store, *closing)
         target = tmp_path / "train.parquet"
         exporting = ("export", "--version", "v1", "--format", "parquet", "--out", str(target))
         out = run(script, store, *exporting, *where, "--token", admin)
