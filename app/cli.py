@@ -258,28 +258,26 @@ def users_role(
     _change_user(name, change)
 
 
-@users_cli.command("deactivate")
-def users_deactivate(name: str) -> None:
-    """Stop a user's tokens and browser sessions at once; their labels and records stay."""
+def _set_active(name: str, *, active: bool, done: str) -> None:
     from app.auth import service
 
     def change(session: Session, user: User) -> str:
-        service.set_active(session, user=user, active=False)
-        return f"user '{user.name}' deactivated: tokens and sign-in refused from now on"
+        service.set_active(session, user=user, active=active)
+        return f"user '{user.name}' {done}"
 
     _change_user(name, change)
+
+
+@users_cli.command("deactivate")
+def users_deactivate(name: str) -> None:
+    """Stop a user's tokens and browser sessions at once; their labels and records stay."""
+    _set_active(name, active=False, done="deactivated: tokens and sign-in refused from now on")
 
 
 @users_cli.command("activate")
 def users_activate(name: str) -> None:
     """Let a deactivated user sign in and use their tokens again."""
-    from app.auth import service
-
-    def change(session: Session, user: User) -> str:
-        service.set_active(session, user=user, active=True)
-        return f"user '{user.name}' active again"
-
-    _change_user(name, change)
+    _set_active(name, active=True, done="active again")
 
 
 @tokens_cli.command("issue")

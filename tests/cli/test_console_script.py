@@ -72,10 +72,18 @@ def _clean_environment() -> dict[str, str]:
     return env | {"NO_COLOR": "1", "COLUMNS": "200"}
 
 
+def _not_installed(reason: str) -> None:
+    """Skip on a developer's machine that has another checkout installed; in CI, which installs
+    the tree under test, a missing or foreign script is a failure, never a skip."""
+    if os.environ.get("CI"):
+        pytest.fail(reason)
+    pytest.skip(reason)
+
+
 @pytest.fixture(scope="module")
 def script(tmp_path_factory: pytest.TempPathFactory) -> Path:
     if not SCRIPT.is_file():
-        pytest.skip(f"no expertloop console script beside {sys.executable}: pip install -e .")
+        _not_installed(f"no expertloop console script beside {sys.executable}: pip install -e .")
     interpreter = SCRIPT.read_text().splitlines()[0].removeprefix("#!").strip()
     found = subprocess.run(
         [interpreter, "-c", "import app; print(app.__file__)"],
@@ -86,7 +94,7 @@ def script(tmp_path_factory: pytest.TempPathFactory) -> Path:
         check=True,
     ).stdout.strip()
     if Path(found).resolve() != REPOSITORY / "app" / "__init__.py":
-        pytest.skip(f"{SCRIPT} runs {found}, not this tree: install this tree (pip install -e .)")
+        _not_installed(f"{SCRIPT} runs {found}, not this tree: install it (pip install -e .)")
     return SCRIPT
 
 
