@@ -9,8 +9,8 @@ COPY migrations ./migrations
 COPY templates ./templates
 COPY static ./static
 COPY demo_data ./demo_data
-# editable install keeps migrations/, templates/ and static/ beside the package
-RUN pip install --no-cache-dir -e .
+# a plain install: templates, static files, migrations and demo data ship inside the package
+RUN pip install --no-cache-dir . && rm -rf /srv/expertloop/*
 RUN useradd --create-home expertloop && mkdir -p /data && chown expertloop /data
 USER expertloop
 ENV EXPERTLOOP_DATA_DIR=/data

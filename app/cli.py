@@ -12,13 +12,13 @@ from typing import TYPE_CHECKING, Annotated, Any
 import typer
 from pydantic import ValidationError
 
-from app.config import get_settings
+from .config import get_settings
 
 if TYPE_CHECKING:
     from sqlalchemy.orm import Session
 
-    from app.auth.models import User
-    from app.client import Client
+    from .auth.models import User
+    from .client import Client
 
 cli = typer.Typer(
     help="expertloop: expert relabelling rounds for imitation-learned policies.",
@@ -48,7 +48,7 @@ TOKEN_OPTION = typer.Option(envvar="EXPERTLOOP_TOKEN", help="API token.")
 
 
 def _session():  # type: ignore[no-untyped-def]
-    from app.db import make_engine, make_session_factory
+    from .db import make_engine, make_session_factory
 
     engine = make_engine(get_settings().resolved_database_url)
     return make_session_factory(engine)()
@@ -61,7 +61,7 @@ def _fail(message: str) -> None:
 
 def _over_http(url: str, token: str, request: Callable[[Client], Any]) -> Any:
     """The answer of one API request, or exit with the service's refusal in words."""
-    from app.client import ApiError, Client
+    from .client import ApiError, Client
 
     with Client(url, token) as client:
         try:
@@ -73,8 +73,8 @@ def _over_http(url: str, token: str, request: Callable[[Client], Any]) -> Any:
 @db_cli.command("upgrade")
 def db_upgrade() -> None:
     """Bring the database schema to the newest migration."""
-    from app.db import make_engine
-    from app.migrations_state import current_and_head, upgrade
+    from .db import make_engine
+    from .migrations_state import current_and_head, upgrade
 
     url = get_settings().resolved_database_url
     engine = make_engine(url)
@@ -107,19 +107,19 @@ def serve(
     """Run the web service (migrating the database first)."""
     import uvicorn
 
-    from app.migrations_state import upgrade
-    from app.system.logs import configure_logging, logging_config
+    from .migrations_state import upgrade
+    from .system.logs import configure_logging, logging_config
 
     settings = get_settings()
     configure_logging(settings.log_format)
     upgrade(settings.resolved_database_url)
     if demo:
-        from app.demo.setup import prepare_demo
+        from .demo.setup import prepare_demo
 
         typer.echo(prepare_demo(host=host, port=port))
     # uvicorn applies the dictionary in each server process (also with --workers > 1)
     uvicorn.run(
-        "app.asgi:app",
+        "expertloop.asgi:app",
         host=host,
         port=port,
         workers=workers,
@@ -135,9 +135,9 @@ def worker() -> None:
     import signal
     import threading
 
-    from app.db import make_engine, make_session_factory
-    from app.jobs.runner import run_until_stopped, worker_name
-    from app.system.logs import configure_logging
+    from .db import make_engine, make_session_factory
+    from .jobs.runner import run_until_stopped, worker_name
+    from .system.logs import configure_logging
 
     settings = get_settings()
     configure_logging(settings.log_format)
@@ -158,8 +158,8 @@ def worker() -> None:
 @loops_cli.command("create")
 def loops_create(spec_file: Path) -> None:
     """Create a loop from a JSON spec file."""
-    from app.loops import service
-    from app.loops.schemas import LoopCreate
+    from .loops import service
+    from .loops.schemas import LoopCreate
 
     try:
         spec = LoopCreate.model_validate(json.loads(spec_file.read_text()))
@@ -167,7 +167,7 @@ def loops_create(spec_file: Path) -> None:
         _fail(f"cannot read {spec_file}: {exc}")
         return
     except ValidationError as exc:
-        from app.loops.spec_errors import plain_problems
+        from .loops.spec_errors import plain_problems
 
         problems = "\n".join(f"  {line}" for line in plain_problems(exc))
         _fail(f"{spec_file} is not a valid loop spec:\n{problems}")
@@ -180,7 +180,7 @@ def loops_create(spec_file: Path) -> None:
 @loops_cli.command("list")
 def loops_list() -> None:
     """List loops."""
-    from app.loops import service
+    from .loops import service
 
     with _session() as session:
         for loop in service.list_loops(session):
@@ -196,8 +196,8 @@ def users_add(
     token: Annotated[bool, typer.Option(help="Print a one-time API token.")] = True,
 ) -> None:
     """Create a user with roles; prints an API token once and/or sets a password."""
-    from app.auth import service
-    from app.errors import ExpertloopError
+    from .auth import service
+    from .errors import ExpertloopError
 
     secret = None
     if password:
@@ -218,7 +218,7 @@ def users_add(
 @users_cli.command("list")
 def users_list() -> None:
     """List users and their roles."""
-    from app.auth import service
+    from .auth import service
 
     with _session() as session:
         for user in service.list_users(session):
@@ -228,8 +228,8 @@ def users_list() -> None:
 
 
 def _change_user(name: str, change: Callable[[Session, User], str]) -> None:
-    from app.auth import service
-    from app.errors import ExpertloopError
+    from .auth import service
+    from .errors import ExpertloopError
 
     with _session() as session:
         try:
@@ -248,7 +248,7 @@ def users_role(
     role: Annotated[list[str], typer.Option(help="admin, uploader, annotator or trainer.")],
 ) -> None:
     """Replace a user's roles with the ones given (repeat --role for several)."""
-    from app.auth import service
+    from .auth import service
 
     def change(session: Session, user: User) -> str:
         before = ", ".join(user.roles)
@@ -259,7 +259,7 @@ def users_role(
 
 
 def _set_active(name: str, *, active: bool, done: str) -> None:
-    from app.auth import service
+    from .auth import service
 
     def change(session: Session, user: User) -> str:
         service.set_active(session, user=user, active=active)
@@ -283,8 +283,8 @@ def users_activate(name: str) -> None:
 @tokens_cli.command("issue")
 def tokens_issue(name: str) -> None:
     """Print a new API token for an existing user (shown once)."""
-    from app.auth import service
-    from app.errors import ExpertloopError
+    from .auth import service
+    from .errors import ExpertloopError
 
     with _session() as session:
         try:
@@ -300,8 +300,8 @@ def tokens_revoke(
     prefix: Annotated[str, typer.Argument(help="The token or its first 10 characters.")],
 ) -> None:
     """Revoke an API token."""
-    from app.auth import service
-    from app.errors import ExpertloopError
+    from .auth import service
+    from .errors import ExpertloopError
 
     with _session() as session:
         try:
@@ -326,7 +326,7 @@ def upload(
     folder as .zip or .tar) with a progress bar."""
     from tqdm import tqdm
 
-    from app.client import ApiError, Client
+    from .client import ApiError, Client
 
     if not file.exists():
         _fail(f"no such file: {file}")
@@ -381,9 +381,9 @@ def logs_inspect(
     it (steps, rollouts, missing values), here on this machine, storing nothing."""
     import tempfile
 
-    from app.client import ApiError, Client
-    from app.errors import ExpertloopError
-    from app.ingest.logs.inspect import inspect_log, report_lines
+    from .client import ApiError, Client
+    from .errors import ExpertloopError
+    from .ingest.logs.inspect import inspect_log, report_lines
 
     if not file.exists():
         _fail(f"no such file: {file}")
@@ -428,7 +428,7 @@ def rank(
 
     from tqdm import tqdm
 
-    from app.client import ApiError, Client
+    from .client import ApiError, Client
 
     with Client(url, token) as client:
         try:
@@ -543,17 +543,17 @@ def demo_run(
     """Run the invented demo loop end to end through the HTTP API and print a per-round table."""
     import tempfile
 
-    from app.client import Client
-    from app.config import Settings
+    from .client import Client
+    from .config import Settings
 
     try:
-        from app.demo import loop_run
+        from .demo import loop_run
     except ModuleNotFoundError as exc:  # the demo learner's library comes with the demo extra
         if exc.name != "sklearn":
             raise
         _fail("demo-run trains the demo learner with scikit-learn: pip install 'expertloop[demo]'")
-    from app.demo.local_server import local_server
-    from app.demo.plot import write_plot
+    from .demo.local_server import local_server
+    from .demo.plot import write_plot
 
     if selection not in ("ranked", "uniform") or actions not in ("discrete", "continuous"):
         _fail("--selection is ranked or uniform; --actions is discrete or continuous")
@@ -609,7 +609,7 @@ def export(
     """Download a snapshot (training-set version) with a progress bar."""
     from tqdm import tqdm
 
-    from app.client import ApiError, Client
+    from .client import ApiError, Client
 
     # "latest" is resolved to its number once, so the name and the rows agree
     version = _over_http(url, token, lambda client: client.snapshot(loop, version))["version"]

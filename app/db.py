@@ -75,7 +75,14 @@ def make_engine(url: str) -> Engine:
 
 
 def make_session_factory(engine: Engine) -> sessionmaker[Session]:
-    """Session factory bound to an engine; objects stay readable after commit."""
+    """Session factory bound to an engine; objects stay readable after commit.
+
+    Every table is registered first: a foreign key names its table by string, so a process that
+    imported only some table modules (a CLI command) could not flush a row.
+    """
+    from .models import import_all_tables
+
+    import_all_tables()
     return sessionmaker(bind=engine, expire_on_commit=False)
 
 
@@ -89,8 +96,7 @@ def make_writer_session_factory(engine: Engine) -> sessionmaker[Session]:
     """
     if engine.dialect.name != "sqlite":
         return make_session_factory(engine)
-    immediate = engine.execution_options(**{SQLITE_BEGIN_IMMEDIATE: True})
-    return sessionmaker(bind=immediate, expire_on_commit=False)
+    return make_session_factory(engine.execution_options(**{SQLITE_BEGIN_IMMEDIATE: True}))
 
 
 def session_scope(factory: sessionmaker[Session]) -> Iterator[Session]:

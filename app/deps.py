@@ -12,10 +12,10 @@ from sqlalchemy.exc import InterfaceError, OperationalError
 from sqlalchemy.orm import Session, sessionmaker
 from starlette.concurrency import run_in_threadpool
 
-from app.auth import service as auth_service
-from app.auth.models import User
-from app.config import Settings
-from app.errors import Forbidden, Unauthenticated
+from .auth import service as auth_service
+from .auth.models import User
+from .config import Settings
+from .errors import Forbidden, Unauthenticated
 
 SESSION_COOKIE = "expertloop_session"
 CSRF_HEADER = "x-csrf-token"

@@ -14,8 +14,8 @@ from urllib.parse import quote
 from fastapi import Request
 from fastapi.responses import JSONResponse, RedirectResponse, Response
 
-from app.limits import name_problem
-from app.templating import templates
+from .limits import name_problem
+from .templating import templates
 
 MACHINE_PATHS = frozenset({"/healthz", "/readyz", "/metrics", "/openapi.json"})
 

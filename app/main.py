@@ -14,20 +14,19 @@ from sqlalchemy.exc import DataError, InterfaceError, OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeout
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from app.auth.throttle import Limits, SignInThrottle
-from app.config import Settings, get_settings
-from app.db import make_engine, make_session_factory, make_writer_session_factory
-from app.error_pages import error_response
-from app.errors import ExpertloopError
-from app.ingest.spool import sweep_stale
-from app.jobs.runner import JobThread
-from app.limits import shown
-from app.models import import_all_tables
-from app.openapi_errors import install as document_errors
-from app.request_guard import RefuseControlCharacters
-from app.security_headers import SecurityHeaders
-from app.snapshots.files import SPOOL_SUFFIX
-from app.templating import STATIC_DIR
+from .auth.throttle import Limits, SignInThrottle
+from .config import Settings, get_settings
+from .db import make_engine, make_session_factory, make_writer_session_factory
+from .error_pages import error_response
+from .errors import ExpertloopError
+from .ingest.spool import sweep_stale
+from .jobs.runner import JobThread
+from .limits import shown
+from .openapi_errors import install as document_errors
+from .request_guard import RefuseControlCharacters
+from .security_headers import SecurityHeaders
+from .snapshots.files import SPOOL_SUFFIX
+from .templating import STATIC_DIR
 
 
 async def _domain_error(request: Request, exc: Exception) -> Response:
@@ -128,18 +127,17 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.add_exception_handler(StarletteHTTPException, _http_error)
     app.add_exception_handler(Exception, _server_error)
 
-    from app.auth.router import router as auth_router
-    from app.ingest.router import router as ingest_router
-    from app.jobs.router import router as jobs_router
-    from app.loops.router import router as loops_router
-    from app.queue.router import router as queue_router
-    from app.reports.router import router as reports_router
-    from app.revisions.router import router as revisions_router
-    from app.sampler.router import router as sampler_router
-    from app.snapshots.router import router as snapshots_router
-    from app.system.router import router as system_router
+    from .auth.router import router as auth_router
+    from .ingest.router import router as ingest_router
+    from .jobs.router import router as jobs_router
+    from .loops.router import router as loops_router
+    from .queue.router import router as queue_router
+    from .reports.router import router as reports_router
+    from .revisions.router import router as revisions_router
+    from .sampler.router import router as sampler_router
+    from .snapshots.router import router as snapshots_router
+    from .system.router import router as system_router
 
-    import_all_tables()  # every table known before the first query, whatever the route
     routers = (
         system_router,
         auth_router,

@@ -29,10 +29,10 @@ def utcnow() -> datetime:
 
 def import_all_tables() -> None:
     """Import every domain's table module so Base.metadata is complete."""
-    from app.auth import models as _auth  # noqa: F401
-    from app.ingest import models as _ingest  # noqa: F401
-    from app.jobs import models as _jobs  # noqa: F401
-    from app.loops import models as _loops  # noqa: F401
-    from app.queue import models as _queue  # noqa: F401
-    from app.sampler import models as _sampler  # noqa: F401
-    from app.snapshots import models as _snapshots  # noqa: F401
+    from .auth import models as _auth  # noqa: F401
+    from .ingest import models as _ingest  # noqa: F401
+    from .jobs import models as _jobs  # noqa: F401
+    from .loops import models as _loops  # noqa: F401
+    from .queue import models as _queue  # noqa: F401
+    from .sampler import models as _sampler  # noqa: F401
+    from .snapshots import models as _snapshots  # noqa: F401

@@ -15,7 +15,7 @@ from fastapi.openapi.utils import get_openapi
 from fastapi.routing import APIRoute
 from pydantic import BaseModel
 
-from app.deps import Roles
+from .deps import Roles
 
 
 class Problem(BaseModel):

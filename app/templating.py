@@ -2,14 +2,13 @@
 
 from __future__ import annotations
 
-from pathlib import Path
-
 from fastapi.templating import Jinja2Templates
 
-from app.safety import SAFETY_CAUTION
+from .resources import shipped_folder
+from .safety import SAFETY_CAUTION
 
-TEMPLATES_DIR = Path(__file__).resolve().parent.parent / "templates"
-STATIC_DIR = Path(__file__).resolve().parent.parent / "static"
+TEMPLATES_DIR = shipped_folder("templates")
+STATIC_DIR = shipped_folder("static")
 
 templates = Jinja2Templates(directory=str(TEMPLATES_DIR))
 

@@ -31,7 +31,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from app.ingest.logs.writer import Storage, storage_file, typestore_for, write_bag  # noqa: E402
+from expertloop.ingest.logs.writer import Storage, storage_file, typestore_for, write_bag  # noqa: E402
 
 NS = 1_000_000_000
 RATE_HZ = 100
@@ -201,7 +201,7 @@ def write(folder: Path, storage: Storage, n: int) -> Path:
 def phase_read(path: Path) -> dict[str, float]:
     from rosbags.highlevel import AnyReader
 
-    from app.ingest.logs.reader import standard_types
+    from expertloop.ingest.logs.reader import standard_types
 
     began = time.perf_counter()
     count = 0
@@ -213,11 +213,11 @@ def phase_read(path: Path) -> dict[str, float]:
 
 
 def phase_ingest(path: Path, folder: Path) -> dict[str, float]:
-    from app.db import make_engine, make_session_factory
-    from app.ingest import service
-    from app.loops import service as loops_service
-    from app.loops.schemas import LoopCreate
-    from app.migrations_state import upgrade
+    from expertloop.db import make_engine, make_session_factory
+    from expertloop.ingest import service
+    from expertloop.loops import service as loops_service
+    from expertloop.loops.schemas import LoopCreate
+    from expertloop.migrations_state import upgrade
 
     url = f"sqlite:///{folder / 'store.db'}"
     upgrade(url)

@@ -28,19 +28,19 @@ import pyarrow.parquet as pq
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from app.system.server_process import server_process  # noqa: E402
 from bench.queue_claims import rollout_file  # noqa: E402
+from tests.serving import server_process  # noqa: E402
 
 SLUG = "bench-uploads"
 
 
 def prepare(url: str) -> str:
     """Migrate an empty store, create a loop with round 1 open; return an uploader's token."""
-    from app.auth import service as auth_service
-    from app.db import make_engine, make_session_factory
-    from app.loops import service as loops_service
-    from app.loops.schemas import LoopCreate
-    from app.migrations_state import upgrade_empty
+    from expertloop.auth import service as auth_service
+    from expertloop.db import make_engine, make_session_factory
+    from expertloop.loops import service as loops_service
+    from expertloop.loops.schemas import LoopCreate
+    from tests.serving import upgrade_empty
 
     upgrade_empty(url)
     engine = make_engine(url)

@@ -37,17 +37,16 @@ from sqlalchemy import insert, text
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from app.auth import service as auth_service  # noqa: E402
-from app.db import make_engine, make_session_factory  # noqa: E402
-from app.ingest.bulk import STEP_COLUMNS, insert_steps  # noqa: E402
-from app.ingest.encode import rows_to_bytes  # noqa: E402
-from app.ingest.models import Rollout, Upload  # noqa: E402
-from app.loops import service as loops_service  # noqa: E402
-from app.loops.schemas import LoopCreate  # noqa: E402
-from app.migrations_state import upgrade_empty  # noqa: E402
-from app.queue.models import Label  # noqa: E402
-from app.snapshots.export import PARQUET_COMPRESSION, PARQUET_DICTIONARY_COLUMNS  # noqa: E402
-from app.system.server_process import server_process  # noqa: E402
+from expertloop.auth import service as auth_service  # noqa: E402
+from expertloop.db import make_engine, make_session_factory  # noqa: E402
+from expertloop.ingest.bulk import STEP_COLUMNS, insert_steps  # noqa: E402
+from expertloop.ingest.encode import rows_to_bytes  # noqa: E402
+from expertloop.ingest.models import Rollout, Upload  # noqa: E402
+from expertloop.loops import service as loops_service  # noqa: E402
+from expertloop.loops.schemas import LoopCreate  # noqa: E402
+from expertloop.queue.models import Label  # noqa: E402
+from expertloop.snapshots.export import PARQUET_COMPRESSION, PARQUET_DICTIONARY_COLUMNS  # noqa: E402
+from tests.serving import server_process, upgrade_empty  # noqa: E402
 
 STEPS_PER_ROLLOUT = 1000
 SLUG = "bench-export"

@@ -23,12 +23,12 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from sqlalchemy import text
 
-from app.db import make_engine, make_session_factory
-from app.ingest import bulk, service
-from app.ingest.encode import rows_to_bytes
-from app.loops import service as loops_service
-from app.loops.schemas import LoopCreate
-from app.migrations_state import upgrade
+from expertloop.db import make_engine, make_session_factory
+from expertloop.ingest import bulk, service
+from expertloop.ingest.encode import rows_to_bytes
+from expertloop.loops import service as loops_service
+from expertloop.loops.schemas import LoopCreate
+from expertloop.migrations_state import upgrade
 
 N_FEATURES = 64
 ACTIONS = ["a0", "a1", "a2", "a3"]

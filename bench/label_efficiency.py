@@ -37,11 +37,11 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from app.client import Client  # noqa: E402
-from app.demo import loop_run  # noqa: E402
-from app.migrations_state import upgrade  # noqa: E402
-from app.system.server_process import server_process  # noqa: E402
 from bench import label_tasks as tasks  # noqa: E402
+from expertloop.client import Client  # noqa: E402
+from expertloop.demo import loop_run  # noqa: E402
+from expertloop.migrations_state import upgrade  # noqa: E402
+from tests.serving import server_process  # noqa: E402
 
 TARGET = 0.95
 SELECTIONS = ("ranked", "uniform")
@@ -74,8 +74,8 @@ class Run:
 
 
 def _tokens(database_url: str) -> tuple[str, str]:
-    from app.auth import service as auth_service
-    from app.db import make_engine, make_session_factory
+    from expertloop.auth import service as auth_service
+    from expertloop.db import make_engine, make_session_factory
 
     upgrade(database_url)
     engine = make_engine(database_url)
@@ -244,7 +244,7 @@ def print_summary(lines: list[dict[str, Any]]) -> None:
 def plot(runs: list[Run], path: Path) -> None:
     """Median score (bars: lowest to highest seed) by round, ranked and uniform, per task and
     budget, stacked in one SVG drawn with the service's own chart code."""
-    from app.reports.charts import Point, Series, point_chart
+    from expertloop.reports.charts import Point, Series, point_chart
 
     charts = []
     for task in dict.fromkeys(r.task for r in runs):

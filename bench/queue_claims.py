@@ -38,7 +38,7 @@ from sqlalchemy import func, select
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from app.system.server_process import server_process  # noqa: E402
+from tests.serving import server_process  # noqa: E402
 
 
 def rollout_file(path: Path, n_rollouts: int, steps: int, seed: int = 0) -> None:
@@ -62,13 +62,13 @@ def rollout_file(path: Path, n_rollouts: int, steps: int, seed: int = 0) -> None
 
 def prepare(url: str, data_dir: Path, n_items: int, n_clients: int) -> list[str]:
     """Migrate an empty store, create the loop, round, rollouts and queue; return API tokens."""
-    from app.auth import service as auth_service
-    from app.db import make_engine, make_session_factory
-    from app.ingest import service as ingest_service
-    from app.loops import service as loops_service
-    from app.loops.schemas import LoopCreate
-    from app.migrations_state import upgrade_empty
-    from app.queue import service as queue_service
+    from expertloop.auth import service as auth_service
+    from expertloop.db import make_engine, make_session_factory
+    from expertloop.ingest import service as ingest_service
+    from expertloop.loops import service as loops_service
+    from expertloop.loops.schemas import LoopCreate
+    from expertloop.queue import service as queue_service
+    from tests.serving import upgrade_empty
 
     upgrade_empty(url)
     engine = make_engine(url)
@@ -99,7 +99,7 @@ def prepare(url: str, data_dir: Path, n_items: int, n_clients: int) -> list[str]
             user_id=None,
             blob_dir=data_dir / "blobs",
         )
-        from app.ingest.models import Step
+        from expertloop.ingest.models import Step
 
         step_ids = list(session.scalars(select(Step.id).order_by(Step.id)))[:n_items]
         queue_service.enqueue_steps(session, rnd=rnd, loop=loop, step_ids=step_ids, seed=1)
@@ -178,8 +178,8 @@ def claim_and_submit(
 def double_assignments(url: str, results: list[list[Any]], k: int) -> int:
     """Items handed to more annotators than they need labels, plus items over k labels or
     labelled twice by one annotator (from the clients' records and the store)."""
-    from app.db import make_engine
-    from app.queue.models import Label
+    from expertloop.db import make_engine
+    from expertloop.queue.models import Label
 
     handed = Counter(item for rows in results for item, _, _ in rows)
     over = sum(1 for n in handed.values() if n > k)

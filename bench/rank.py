@@ -33,8 +33,8 @@ from sklearn.neighbors import NearestNeighbors
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from app.sampler import novelty as nv  # noqa: E402
-from app.sampler import selection  # noqa: E402
+from expertloop.sampler import novelty as nv  # noqa: E402
+from expertloop.sampler import selection  # noqa: E402
 
 K = 10
 N_FEATURES = 64

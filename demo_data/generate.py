@@ -25,9 +25,9 @@ import numpy as np
 # Run as a plain script from anywhere: make the repository's `app` package importable.
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from app.demo import bag, expert, files, learner, sim  # noqa: E402
-from app.demo import scenario as sc  # noqa: E402
-from app.ingest.logs.writer import storage_file  # noqa: E402
+from expertloop.demo import bag, expert, files, learner, sim  # noqa: E402
+from expertloop.demo import scenario as sc  # noqa: E402
+from expertloop.ingest.logs.writer import storage_file  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 

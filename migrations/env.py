@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from alembic import context
 
-from app.db import make_engine
-from app.models import Base, import_all_tables
+from expertloop.db import make_engine
+from expertloop.models import Base, import_all_tables
 
 import_all_tables()
 target_metadata = Base.metadata

@@ -17,10 +17,11 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine, inspect, text
 
-from app.config import Settings
-from app.db import make_engine
-from app.main import create_app
-from app.migrations_state import upgrade, upgrade_empty
+from expertloop.config import Settings
+from expertloop.db import make_engine
+from expertloop.main import create_app
+from expertloop.migrations_state import upgrade
+from tests.serving import upgrade_empty
 
 PG_URL = os.environ.get("EXPERTLOOP_TEST_DATABASE_URL")
 # Hypothesis (under schemathesis) keeps caches in ./.hypothesis unless told otherwise: keep them
@@ -98,7 +99,7 @@ def engine(app: Any) -> Engine:
 @pytest.fixture
 def make_user(app: Any) -> Callable[..., dict[str, str]]:
     """Create a user with roles; returns its Authorization header."""
-    from app.auth import service
+    from expertloop.auth import service
 
     def make(*roles: str, name: str | None = None, password: str | None = None) -> dict[str, str]:
         with app.state.session_factory() as session:

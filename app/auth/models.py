@@ -7,7 +7,7 @@ from datetime import datetime
 from sqlalchemy import JSON, Boolean, DateTime, ForeignKey, Integer, String
 from sqlalchemy.orm import Mapped, mapped_column
 
-from app.models import Base, utcnow
+from ..models import Base, utcnow
 
 
 class User(Base):

@@ -8,18 +8,18 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Form, Request
 from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
-from app.auth import security, service
-from app.auth.throttle import SignInThrottle
-from app.deps import (
+from ..deps import (
     SESSION_COOKIE,
     ReaderDep,
     SessionDep,
     SettingsDep,
     WriterSessionDep,
 )
-from app.error_pages import safe_next
-from app.loops import service as loops_service
-from app.templating import templates
+from ..error_pages import safe_next
+from ..loops import service as loops_service
+from ..templating import templates
+from . import security, service
+from .throttle import SignInThrottle
 
 router = APIRouter(tags=["access"])
 

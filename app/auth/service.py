@@ -7,12 +7,12 @@ from datetime import datetime, timedelta
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from app.auth import security
-from app.auth.models import ApiToken, BrowserSession, User
-from app.db import write_transaction
-from app.errors import Conflict, InvalidInput, NotFound
-from app.limits import name_problem
-from app.models import utcnow
+from ..db import write_transaction
+from ..errors import Conflict, InvalidInput, NotFound
+from ..limits import name_problem
+from ..models import utcnow
+from . import security
+from .models import ApiToken, BrowserSession, User
 
 ROLES = ("admin", "uploader", "annotator", "trainer")
 USER_NAME_MAX_CHARS = 100

@@ -15,9 +15,9 @@ from typing import Any
 import numpy as np
 from rosbags.typesys import get_types_from_msg
 
-from app.demo import scenario as sc
-from app.demo.sim import RolloutResult
-from app.ingest.logs.writer import typestore_for, write_bag
+from ..ingest.logs.writer import typestore_for, write_bag
+from . import scenario as sc
+from .sim import RolloutResult
 
 NS = 1_000_000_000
 RECORDING_START_NS = 1_767_225_600 * NS  # an invented recording date (2026-01-01 UTC)

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from app.demo import scenario as sc
+from . import scenario as sc
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]

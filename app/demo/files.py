@@ -17,8 +17,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from numpy.typing import NDArray
 
-from app.demo import scenario as sc
-from app.demo.sim import RolloutResult
+from . import scenario as sc
+from .sim import RolloutResult
 
 
 def _list_array(values: NDArray[Any], valid: NDArray[np.bool_] | None = None) -> pa.Array:

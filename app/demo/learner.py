@@ -18,7 +18,7 @@ from numpy.typing import NDArray
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.neural_network import MLPClassifier, MLPRegressor
 
-from app.demo import scenario as sc
+from . import scenario as sc
 
 FloatArray = NDArray[np.float64]
 

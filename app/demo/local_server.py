@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import socket
 import threading
 import time
 from collections.abc import Iterator
@@ -10,11 +11,17 @@ from dataclasses import dataclass
 
 import uvicorn
 
-from app.auth import service as auth_service
-from app.config import Settings
-from app.main import create_app
-from app.migrations_state import upgrade
-from app.system.server_process import free_port
+from ..auth import service as auth_service
+from ..config import Settings
+from ..main import create_app
+from ..migrations_state import upgrade
+
+
+def free_port() -> int:
+    """A port free on 127.0.0.1 right now (the server binds it a moment later)."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
 
 
 @dataclass

@@ -17,9 +17,9 @@ from typing import Any
 
 import numpy as np
 
-from app.client import Client
-from app.demo import expert, learner, scenario, sim
-from app.demo.files import to_table, write_parquet
+from ..client import Client
+from . import expert, learner, scenario, sim
+from .files import to_table, write_parquet
 
 DEMONSTRATION_ROLLOUTS = 4
 ROLLOUTS_PER_ROUND = 10

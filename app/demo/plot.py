@@ -6,7 +6,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Protocol
 
-from app.reports.charts import Point, Series, point_chart
+from ..reports.charts import Point, Series, point_chart
 
 
 class _Row(Protocol):

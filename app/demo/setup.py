@@ -13,18 +13,19 @@ from pathlib import Path
 
 from sqlalchemy import select
 
-from app.auth import service as auth_service
-from app.auth.models import User
-from app.config import get_settings
-from app.db import make_engine, make_session_factory
-from app.errors import NotFound
-from app.ingest import service as ingest_service
-from app.jobs import runner
-from app.loops import service as loops_service
-from app.loops.schemas import LoopCreate
-from app.sampler import service as sampler_service
+from ..auth import service as auth_service
+from ..auth.models import User
+from ..config import get_settings
+from ..db import make_engine, make_session_factory
+from ..errors import NotFound
+from ..ingest import service as ingest_service
+from ..jobs import runner
+from ..loops import service as loops_service
+from ..loops.schemas import LoopCreate
+from ..resources import shipped_folder
+from ..sampler import service as sampler_service
 
-DEMO_DIR = Path(__file__).resolve().parent.parent.parent / "demo_data"
+DEMO_DIR = shipped_folder("demo_data")
 DEMO_SPEC = DEMO_DIR / "tow_tractor_discrete.json"
 ROUND0_FILE = DEMO_DIR / "round0_demonstrations.parquet"
 ROUND1_FILE = DEMO_DIR / "round1_rollouts.parquet"

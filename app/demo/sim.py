@@ -16,8 +16,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from app.demo import expert
-from app.demo import scenario as sc
+from . import expert
+from . import scenario as sc
 
 FloatArray = NDArray[np.float64]
 Policy = Callable[[NDArray[Any]], sc.PolicyOutput]

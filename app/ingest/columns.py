@@ -11,8 +11,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from app.errors import InvalidInput
-from app.limits import INT64_MAX, shown
+from ..errors import InvalidInput
+from ..limits import INT64_MAX, shown
 
 # float32 has a 24-bit significand: integers up to 2**24 in magnitude are exact, some beyond are
 # not (docs/references.md, "Hostile input"); larger integers are refused, not rounded silently.

@@ -21,10 +21,10 @@ import numpy.lib.format as npformat
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from app.errors import InvalidInput, TooLarge
-from app.ingest.contract import FORMATS
-from app.ingest.logs.archive import BAG_FORMATS, bag_format
-from app.limits import shown
+from ..errors import InvalidInput, TooLarge
+from ..limits import shown
+from .contract import FORMATS
+from .logs.archive import BAG_FORMATS, bag_format
 
 DEFAULT_MAX_ARRAY_BYTES = 1024 * 1024 * 1024
 NPZ_MAX_MEMBERS = 5000  # the contract's columns plus one per feature (at most 4096)

@@ -25,12 +25,12 @@ import pyarrow as pa
 import pyarrow.compute as pc
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from app.errors import InvalidInput
-from app.ingest import columns as col
-from app.ingest.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
-from app.ingest.images import HEAD_BYTES, image_media_type
-from app.ingest.scene import geometry_problem
-from app.limits import INT32_MAX, KEY_MAX_CHARS, name_problem, shown
+from ..errors import InvalidInput
+from ..limits import INT32_MAX, KEY_MAX_CHARS, name_problem, shown
+from . import columns as col
+from .contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
+from .images import HEAD_BYTES, image_media_type
+from .scene import geometry_problem
 
 STEP_MAX = INT32_MAX
 SCENE_MAX_AGENTS = 256

@@ -19,7 +19,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
-from app.models import Base, utcnow
+from ..models import Base, utcnow
 
 CONTROL_LEARNER = 0
 CONTROL_EXPERT = 1

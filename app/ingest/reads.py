@@ -10,12 +10,12 @@ import numpy as np
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from app.errors import NotFound
-from app.ingest.encode import FLOAT32_LE
-from app.ingest.models import CONTROL_EXPERT, Rollout, Step
-from app.ingest.schemas import RolloutRead, StepRead
-from app.ingest.validate import ActionSpec
-from app.loops.models import Loop, Round
+from ..errors import NotFound
+from ..loops.models import Loop, Round
+from .encode import FLOAT32_LE
+from .models import CONTROL_EXPERT, Rollout, Step
+from .schemas import RolloutRead, StepRead
+from .validate import ActionSpec
 
 _STEP_FIELDS = (
     Step.id,

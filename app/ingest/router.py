@@ -9,15 +9,15 @@ from fastapi import APIRouter, Query, UploadFile, status
 from fastapi.responses import FileResponse
 from starlette.concurrency import run_in_threadpool
 
-from app.deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep
-from app.errors import NotFound
-from app.ingest import reads, service
-from app.ingest.images import HEAD_BYTES, image_media_type
-from app.ingest.limits import UploadLimits
-from app.ingest.schemas import RolloutList, StateContext, StepList, UploadRead
-from app.ingest.spool import CHUNK_BYTES, spool
-from app.limits import PageOffset, RoundNumber, StepId
-from app.loops import service as loops_service
+from ..deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep
+from ..errors import NotFound
+from ..limits import PageOffset, RoundNumber, StepId
+from ..loops import service as loops_service
+from . import reads, service
+from .images import HEAD_BYTES, image_media_type
+from .limits import UploadLimits
+from .schemas import RolloutList, StateContext, StepList, UploadRead
+from .spool import CHUNK_BYTES, spool
 
 router = APIRouter(prefix="/api", tags=["rollouts"])
 

@@ -6,7 +6,7 @@ from typing import Any
 
 from pydantic import BaseModel
 
-from app.limits import UtcDatetime
+from ..limits import UtcDatetime
 
 
 class UploadRead(BaseModel):

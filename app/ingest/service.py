@@ -11,20 +11,20 @@ from sqlalchemy import insert, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from app.db import write_transaction
-from app.errors import Conflict
-from app.ingest import bulk
-from app.ingest.columns import Vectors
-from app.ingest.encode import rows_to_bytes
-from app.ingest.formats import detect_format, read_table
-from app.ingest.limits import UploadLimits
-from app.ingest.logs.archive import BAG_FORMATS, DEFAULT_MAX_UNPACKED_BYTES
-from app.ingest.logs.service import loop_mapping, validate_log
-from app.ingest.models import Rollout, Upload
-from app.ingest.validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
-from app.limits import shown
-from app.loops import service as loops_service
-from app.loops.models import Loop, Round
+from ..db import write_transaction
+from ..errors import Conflict
+from ..limits import shown
+from ..loops import service as loops_service
+from ..loops.models import Loop, Round
+from . import bulk
+from .columns import Vectors
+from .encode import rows_to_bytes
+from .formats import detect_format, read_table
+from .limits import UploadLimits
+from .logs.archive import BAG_FORMATS, DEFAULT_MAX_UNPACKED_BYTES
+from .logs.service import loop_mapping, validate_log
+from .models import Rollout, Upload
+from .validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
 
 
 @dataclass

@@ -8,7 +8,7 @@ import time
 from collections.abc import AsyncIterator
 from pathlib import Path
 
-from app.errors import TooLarge
+from ..errors import TooLarge
 
 CHUNK_BYTES = 1024 * 1024
 

@@ -10,12 +10,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from app.errors import InvalidInput
-from app.ingest import columns as col
-from app.ingest import limits as upload_limits
-from app.ingest.contract import CONTROL_VALUES, PROBABILITY_SUM_TOLERANCE, REQUIRED_COLUMNS
-from app.ingest.models import CONTROL_EXPERT, CONTROL_LEARNER
-from app.limits import shown
+from ..errors import InvalidInput
+from ..limits import shown
+from . import columns as col
+from . import limits as upload_limits
+from .contract import CONTROL_VALUES, PROBABILITY_SUM_TOLERANCE, REQUIRED_COLUMNS
+from .models import CONTROL_EXPERT, CONTROL_LEARNER
 
 NO_ACTION = -1
 DEFAULT_LIMITS = upload_limits.UploadLimits()

@@ -8,7 +8,7 @@ from typing import Any
 from sqlalchemy import JSON, DateTime, Float, ForeignKey, Index, Integer, String, Text, text
 from sqlalchemy.orm import Mapped, mapped_column
 
-from app.models import Base, utcnow
+from ..models import Base, utcnow
 
 JOB_QUEUED = "queued"
 JOB_RUNNING = "running"

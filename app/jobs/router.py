@@ -4,10 +4,10 @@ from __future__ import annotations
 
 from fastapi import APIRouter
 
-from app.deps import ReaderDep, SessionDep
-from app.jobs import service
-from app.jobs.schemas import JobRead
-from app.limits import RowId
+from ..deps import ReaderDep, SessionDep
+from ..limits import RowId
+from . import service
+from .schemas import JobRead
 
 router = APIRouter(prefix="/api/jobs", tags=["jobs"])
 

@@ -18,10 +18,10 @@ from typing import Any
 
 from sqlalchemy.orm import Session, sessionmaker
 
-from app.config import Settings
-from app.errors import ExpertloopError
-from app.jobs import service
-from app.jobs.models import Job
+from ..config import Settings
+from ..errors import ExpertloopError
+from . import service
+from .models import Job
 
 log = logging.getLogger("expertloop.jobs")
 
@@ -82,7 +82,7 @@ def handler(kind: str) -> Callable[[Handler], Handler]:
 
 def load_handlers() -> None:
     """Import the modules that register handlers."""
-    from app.sampler import jobs as _sampler_jobs  # noqa: F401
+    from ..sampler import jobs as _sampler_jobs  # noqa: F401
 
 
 def worker_name() -> str:

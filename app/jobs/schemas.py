@@ -6,7 +6,7 @@ from typing import Any
 
 from pydantic import BaseModel, ConfigDict
 
-from app.limits import UtcDatetime
+from ..limits import UtcDatetime
 
 
 class JobRead(BaseModel):

@@ -14,10 +14,10 @@ from sqlalchemy import or_, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from app.db import write_transaction
-from app.errors import Conflict, NotFound
-from app.jobs.models import JOB_DONE, JOB_FAILED, JOB_QUEUED, JOB_RUNNING, Job
-from app.models import utcnow
+from ..db import write_transaction
+from ..errors import Conflict, NotFound
+from ..models import utcnow
+from .models import JOB_DONE, JOB_FAILED, JOB_QUEUED, JOB_RUNNING, Job
 
 DEFAULT_LEASE_SECONDS = 30.0
 

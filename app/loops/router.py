@@ -4,10 +4,10 @@ from __future__ import annotations
 
 from fastapi import APIRouter, status
 
-from app.deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
-from app.limits import RoundNumber
-from app.loops import service
-from app.loops.schemas import LoopCreate, LoopList, LoopRead, RoundList, RoundOpen, RoundRead
+from ..deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
+from ..limits import RoundNumber
+from . import service
+from .schemas import LoopCreate, LoopList, LoopRead, RoundList, RoundOpen, RoundRead
 
 router = APIRouter(prefix="/api/loops", tags=["loops"])
 

@@ -6,11 +6,11 @@ from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from app.errors import Conflict, NotFound
-from app.ingest.models import Rollout
-from app.loops.models import Loop, Round
-from app.loops.schemas import LoopCreate, RoundRead
-from app.models import utcnow
+from ..errors import Conflict, NotFound
+from ..ingest.models import Rollout
+from ..models import utcnow
+from .models import Loop, Round
+from .schemas import LoopCreate, RoundRead
 
 DEMONSTRATION_VERSION = "demonstrations"
 

@@ -6,7 +6,7 @@ from typing import Any
 
 from pydantic import ValidationError
 
-from app.loops.schemas import NAME_PATTERN, SLUG_PATTERN
+from .schemas import NAME_PATTERN, SLUG_PATTERN
 
 PATTERN_WORDS = {
     NAME_PATTERN: "a lowercase name: a letter, then letters, digits or '_' (at most 63)",

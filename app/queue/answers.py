@@ -9,11 +9,11 @@ from typing import Any
 
 import numpy as np
 
-from app.errors import InvalidInput
-from app.ingest.encode import FLOAT32_LE
-from app.ingest.validate import ActionSpec
-from app.loops.schemas import LoopSettings
-from app.queue.models import ANSWER_ACTION, ANSWER_UNSURE, Label
+from ..errors import InvalidInput
+from ..ingest.encode import FLOAT32_LE
+from ..ingest.validate import ActionSpec
+from ..loops.schemas import LoopSettings
+from .models import ANSWER_ACTION, ANSWER_UNSURE, Label
 
 # Room is left in the 64-character column for the ".N" suffix of span labels.
 SUBMISSION_ID = re.compile(r"^[A-Za-z0-9_-]{8,48}$")

@@ -8,15 +8,15 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from app.ingest import reads
-from app.ingest.encode import FLOAT32_LE
-from app.ingest.schemas import StepRead
-from app.loops.models import Loop
-from app.loops.schemas import LoopSettings
-from app.queue.current import is_current
-from app.queue.models import ANSWER_ACTION, Label
-from app.queue.schemas import BenchItem, BenchStep
-from app.queue.service import Claim, loop_settings
+from ..ingest import reads
+from ..ingest.encode import FLOAT32_LE
+from ..ingest.schemas import StepRead
+from ..loops.models import Loop
+from ..loops.schemas import LoopSettings
+from .current import is_current
+from .models import ANSWER_ACTION, Label
+from .schemas import BenchItem, BenchStep
+from .service import Claim, loop_settings
 
 
 def bench_step(step: StepRead, *, commands: str = "none") -> BenchStep:

@@ -25,16 +25,16 @@ from sqlalchemy import (
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from app.db import write_transaction
-from app.errors import Conflict, InvalidInput
-from app.ingest.models import Step
-from app.ingest.validate import ActionSpec
-from app.loops.models import Loop
-from app.queue.answers import check_answer, check_request
-from app.queue.current import is_current
-from app.queue.models import ITEM_DONE, ITEM_OPEN, Label, Lease
-from app.queue.models import QueueItem as Item
-from app.queue.rules import lock_item, loop_settings
+from ..db import write_transaction
+from ..errors import Conflict, InvalidInput
+from ..ingest.models import Step
+from ..ingest.validate import ActionSpec
+from ..loops.models import Loop
+from .answers import check_answer, check_request
+from .current import is_current
+from .models import ITEM_DONE, ITEM_OPEN, Label, Lease
+from .models import QueueItem as Item
+from .rules import lock_item, loop_settings
 
 
 @dataclass(frozen=True)

@@ -18,7 +18,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
-from app.models import Base, utcnow
+from ..models import Base, utcnow
 
 ITEM_OPEN = "open"
 ITEM_DONE = "done"

@@ -14,9 +14,10 @@ import numpy as np
 from sqlalchemy import case, func, select
 from sqlalchemy.orm import Session
 
-from app.loops.models import Loop, Round
-from app.queue.current import is_current
-from app.queue.models import (
+from ..loops.models import Loop, Round
+from ..reports.pace import labels_per_hour
+from .current import is_current
+from .models import (
     ANSWER_UNDONE,
     ANSWER_UNSURE,
     ITEM_DONE,
@@ -26,8 +27,7 @@ from app.queue.models import (
     QueueItem,
     Skip,
 )
-from app.queue.rules import answered_by, rounds_of
-from app.reports.pace import labels_per_hour
+from .rules import answered_by, rounds_of
 
 
 @dataclass(frozen=True)

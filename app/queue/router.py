@@ -6,22 +6,22 @@ from __future__ import annotations
 from fastapi import APIRouter, Request, Response, status
 from fastapi.responses import HTMLResponse
 
-from app.deps import AdminDep, AnnotatorDep, SessionDep
-from app.limits import RoundNumber, RowId
-from app.loops import service as loops_service
-from app.models import utcnow
-from app.queue import service
-from app.queue.answers import stored_action
-from app.queue.bench import bench_item
-from app.queue.schemas import (
+from ..deps import AdminDep, AnnotatorDep, SessionDep
+from ..limits import RoundNumber, RowId
+from ..loops import service as loops_service
+from ..models import utcnow
+from ..system.metrics import CLAIM_SECONDS
+from ..templating import templates
+from . import service
+from .answers import stored_action
+from .bench import bench_item
+from .schemas import (
     ClaimRead,
     LabelCreate,
     LabelRead,
     LeaseRead,
     SkipRead,
 )
-from app.system.metrics import CLAIM_SECONDS
-from app.templating import templates
 
 router = APIRouter(tags=["queue"])
 

@@ -26,12 +26,12 @@ from sqlalchemy import (
 from sqlalchemy.orm import Session
 from sqlalchemy.sql.dml import ReturningInsert
 
-from app.db import is_postgresql
-from app.errors import NotFound
-from app.loops.models import Loop, Round
-from app.loops.schemas import LoopSettings
-from app.queue.current import is_current
-from app.queue.models import ITEM_OPEN, Label, Lease, QueueItem, Skip
+from ..db import is_postgresql
+from ..errors import NotFound
+from ..loops.models import Loop, Round
+from ..loops.schemas import LoopSettings
+from .current import is_current
+from .models import ITEM_OPEN, Label, Lease, QueueItem, Skip
 
 
 def loop_settings(loop: Loop) -> LoopSettings:

@@ -6,7 +6,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, Field
 
-from app.limits import INT32_MAX, PlainText, RequestBody, UtcDatetime
+from ..limits import INT32_MAX, PlainText, RequestBody, UtcDatetime
 
 
 class BenchStep(BaseModel):

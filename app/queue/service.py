@@ -1,7 +1,7 @@
 """The relabelling queue: enqueue a round's selected states, claim them with leases, renew, skip.
 
 Submitting labels lives in `app.queue.labels`, progress in `app.queue.progress`; both are
-re-exported here so other domains import one module (`from app.queue import service`).
+re-exported here so other domains import one module (`from ..queue import service`).
 
 Claim rules, for an annotator on a loop: the item is open, `labels_done` plus the live leases of
 other annotators is below `labels_needed`, and the annotator has neither labelled nor skipped it.
@@ -21,23 +21,23 @@ import numpy as np
 from sqlalchemy import delete, func, insert, or_, select, update
 from sqlalchemy.orm import Session
 
-from app.auth.models import User
-from app.db import is_postgresql, write_transaction
-from app.errors import Conflict, InvalidInput
-from app.ingest.models import Step
-from app.loops.models import Loop, Round
-from app.queue.current import is_current
-from app.queue.labels import Submitted, submit
-from app.queue.models import ITEM_OPEN, Label, Lease, QueueItem, Skip
-from app.queue.progress import Progress, RoundQueue, progress, round_queue
-from app.queue.rules import (
+from ..auth.models import User
+from ..db import is_postgresql, write_transaction
+from ..errors import Conflict, InvalidInput
+from ..ingest.models import Step
+from ..loops.models import Loop, Round
+from ..sampler.models import SelectedState, Selection
+from .current import is_current
+from .labels import Submitted, submit
+from .models import ITEM_OPEN, Label, Lease, QueueItem, Skip
+from .progress import Progress, RoundQueue, progress, round_queue
+from .rules import (
     candidate_query,
     live_leases_query,
     lock_item,
     loop_settings,
     take_lease,
 )
-from app.sampler.models import SelectedState, Selection
 
 __all__ = [
     "Claim",

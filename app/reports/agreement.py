@@ -12,7 +12,7 @@ from typing import Literal
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from app.reports.rates import FloatArray
+from .rates import FloatArray
 
 KappaWeights = Literal["linear", "quadratic"] | None
 

@@ -9,10 +9,10 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from app.reports import agreement, rates
-from app.reports.compute import ActionKind, LabelArrays, json_number, present
-from app.reports.pace import labels_per_hour
-from app.reports.schemas import (
+from . import agreement, rates
+from .compute import ActionKind, LabelArrays, json_number, present
+from .pace import labels_per_hour
+from .schemas import (
     AgreementRead,
     AlphaRead,
     AnnotatorRead,

@@ -21,8 +21,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from app.reports import rates, shift
-from app.reports.schemas import (
+from . import rates, shift
+from .schemas import (
     FeatureShiftRead,
     RateRead,
     SampleRead,

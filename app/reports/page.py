@@ -11,12 +11,12 @@ from typing import Any
 
 from markupsafe import Markup
 
-from app.loops.models import Loop
-from app.reports import charts
-from app.reports.schemas import RateRead, RoundReport
-from app.reports.table import loop_table
-from app.sampler.tuning import SIGNALS
-from app.snapshots.training_set import continuous_tolerance
+from ..loops.models import Loop
+from ..sampler.tuning import SIGNALS
+from ..snapshots.training_set import continuous_tolerance
+from . import charts
+from .schemas import RateRead, RoundReport
+from .table import loop_table
 
 DASH = "–"
 

@@ -7,12 +7,12 @@ from typing import Annotated
 from fastapi import APIRouter, Depends, Request
 from fastapi.responses import HTMLResponse, Response
 
-from app.deps import ReaderDep, SessionDep
-from app.limits import RoundNumber
-from app.loops import service as loops_service
-from app.reports import page, service, table
-from app.reports.schemas import LoopReport, RoundReport
-from app.templating import templates
+from ..deps import ReaderDep, SessionDep
+from ..limits import RoundNumber
+from ..loops import service as loops_service
+from ..templating import templates
+from . import page, service, table
+from .schemas import LoopReport, RoundReport
 
 router = APIRouter(tags=["reports"])
 

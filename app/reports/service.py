@@ -31,18 +31,18 @@ import numpy as np
 from sqlalchemy import and_, func, select
 from sqlalchemy.orm import Session, aliased
 
-from app.auth.models import User
-from app.ingest.encode import FLOAT32_LE, stored_actions
-from app.ingest.models import CONTROL_LEARNER, Rollout, Step
-from app.loops import service as loops_service
-from app.loops.models import Loop, Round
-from app.queue.current import is_current
-from app.queue.models import ANSWER_UNSURE, Label
-from app.reports import annotators, compute, rates
-from app.reports.schemas import CountsRead, RoundReport, SelfTuningRead
-from app.sampler import history, tuning
-from app.sampler.models import REASON_AUDIT, SelectedState, Selection
-from app.snapshots import training_set as ts
+from ..auth.models import User
+from ..ingest.encode import FLOAT32_LE, stored_actions
+from ..ingest.models import CONTROL_LEARNER, Rollout, Step
+from ..loops import service as loops_service
+from ..loops.models import Loop, Round
+from ..queue.current import is_current
+from ..queue.models import ANSWER_UNSURE, Label
+from ..sampler import history, tuning
+from ..sampler.models import REASON_AUDIT, SelectedState, Selection
+from ..snapshots import training_set as ts
+from . import annotators, compute, rates
+from .schemas import CountsRead, RoundReport, SelfTuningRead
 
 MAX_SHIFT_SAMPLES = 1000
 """States drawn from each side for the shift test (memory and time grow with its square)."""

@@ -12,7 +12,7 @@ from typing import NamedTuple
 import numpy as np
 from numpy.typing import ArrayLike
 
-from app.reports.rates import FloatArray
+from .rates import FloatArray
 
 
 def _squared_distances(a: FloatArray, b: FloatArray) -> FloatArray:

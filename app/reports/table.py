@@ -5,9 +5,9 @@ from __future__ import annotations
 import csv
 import io
 
-from app.loops.models import Loop
-from app.reports import rates
-from app.reports.schemas import LoopReport, RoundReport, RoundReportRow
+from ..loops.models import Loop
+from . import rates
+from .schemas import LoopReport, RoundReport, RoundReportRow
 
 
 def report_row(report: RoundReport) -> RoundReportRow:

@@ -5,15 +5,15 @@ from __future__ import annotations
 from fastapi import APIRouter, Response, status
 from sqlalchemy.orm import Session
 
-from app.deps import AnnotatorDep, SessionDep
-from app.loops import service as loops_service
-from app.loops.models import Loop
-from app.models import utcnow
-from app.queue.answers import stored_action
-from app.queue.bench import bench_step
-from app.queue.models import Label
-from app.revisions import service
-from app.revisions.schemas import (
+from ..deps import AnnotatorDep, SessionDep
+from ..loops import service as loops_service
+from ..loops.models import Loop
+from ..models import utcnow
+from ..queue.answers import stored_action
+from ..queue.bench import bench_step
+from ..queue.models import Label
+from . import service
+from .schemas import (
     ChangeCreate,
     ChangeRead,
     MyLabel,

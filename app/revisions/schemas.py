@@ -7,7 +7,7 @@ from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from app.queue.schemas import BenchStep
+from ..queue.schemas import BenchStep
 
 
 class MyLabel(BaseModel):

@@ -17,17 +17,17 @@ from sqlalchemy import case, func, insert, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from app.db import write_transaction
-from app.errors import Conflict, NotFound
-from app.ingest import reads
-from app.ingest.validate import ActionSpec
-from app.loops.models import Loop, Round
-from app.queue.answers import check_answer, check_request
-from app.queue.current import is_current
-from app.queue.models import ANSWER_UNDONE, ITEM_DONE, ITEM_OPEN, Label
-from app.queue.models import QueueItem as Item
-from app.queue.rules import lock_item, loop_settings, rounds_of
-from app.snapshots.models import Snapshot
+from ..db import write_transaction
+from ..errors import Conflict, NotFound
+from ..ingest import reads
+from ..ingest.validate import ActionSpec
+from ..loops.models import Loop, Round
+from ..queue.answers import check_answer, check_request
+from ..queue.current import is_current
+from ..queue.models import ANSWER_UNDONE, ITEM_DONE, ITEM_OPEN, Label
+from ..queue.models import QueueItem as Item
+from ..queue.rules import lock_item, loop_settings, rounds_of
+from ..snapshots.models import Snapshot
 
 RECENT = 20
 

@@ -12,14 +12,14 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from app.ingest.encode import stored_actions
-from app.ingest.models import Step
-from app.loops.models import Loop, Round
-from app.sampler import service
-from app.sampler.models import REASON_AUDIT, SelectedState, Selection
-from app.sampler.rank import NEUTRAL_PERCENTILE
-from app.sampler.tuning import disagreement_of, stratum_weights
-from app.snapshots import training_set as ts
+from ..ingest.encode import stored_actions
+from ..ingest.models import Step
+from ..loops.models import Loop, Round
+from ..snapshots import training_set as ts
+from . import service
+from .models import REASON_AUDIT, SelectedState, Selection
+from .rank import NEUTRAL_PERCENTILE
+from .tuning import disagreement_of, stratum_weights
 
 CHUNK = 5_000
 

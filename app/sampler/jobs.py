@@ -7,14 +7,14 @@ from typing import Any
 import numpy as np
 from sqlalchemy.orm import Session
 
-from app.errors import NotFound
-from app.jobs.runner import JobContext, handler
-from app.loops.models import Loop, Round
-from app.sampler import history, service, tuning
-from app.sampler.candidates import load_round_steps
-from app.sampler.rank import RankParams, rank_round
-from app.snapshots import training_set
-from app.snapshots.training_set import Cutoff
+from ..errors import NotFound
+from ..jobs.runner import JobContext, handler
+from ..loops.models import Loop, Round
+from ..snapshots import training_set
+from ..snapshots.training_set import Cutoff
+from . import history, service, tuning
+from .candidates import load_round_steps
+from .rank import RankParams, rank_round
 
 
 def pinned_cutoff(session: Session, *, loop: Loop, rnd: Round, params: RankParams) -> Cutoff:

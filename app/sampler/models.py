@@ -18,7 +18,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
-from app.models import Base, utcnow
+from ..models import Base, utcnow
 
 REASON_RANKED = "ranked"
 REASON_AUDIT = "audit"

@@ -11,12 +11,12 @@ from typing import Literal
 
 import numpy as np
 
-from app.errors import InvalidInput
-from app.sampler import scores
-from app.sampler.candidates import RoundSteps
-from app.sampler.novelty import DEFAULT_EXACT_THRESHOLD, novelty
-from app.sampler.selection import rollout_positions, select, takeover_boost
-from app.sampler.tuning import DisagreementModel
+from ..errors import InvalidInput
+from . import scores
+from .candidates import RoundSteps
+from .novelty import DEFAULT_EXACT_THRESHOLD, novelty
+from .selection import rollout_positions, select, takeover_boost
+from .tuning import DisagreementModel
 
 NEUTRAL_PERCENTILE = 0.5
 AUTO_METHOD = "auto"

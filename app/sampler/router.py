@@ -4,12 +4,12 @@ from __future__ import annotations
 
 from fastapi import APIRouter, Query, status
 
-from app.deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
-from app.jobs.schemas import JobRead
-from app.limits import PageOffset, RoundNumber
-from app.loops import service as loops_service
-from app.sampler import service
-from app.sampler.schemas import RankingRequest, RankingStarted, SelectedStateRead, SelectionRead
+from ..deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
+from ..jobs.schemas import JobRead
+from ..limits import PageOffset, RoundNumber
+from ..loops import service as loops_service
+from . import service
+from .schemas import RankingRequest, RankingStarted, SelectedStateRead, SelectionRead
 
 router = APIRouter(prefix="/api/loops/{slug}/rounds/{number}", tags=["sampler"])
 

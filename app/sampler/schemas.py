@@ -6,8 +6,8 @@ from typing import Any
 
 from pydantic import BaseModel, Field
 
-from app.jobs.schemas import JobRead
-from app.limits import RequestBody, UtcDatetime
+from ..jobs.schemas import JobRead
+from ..limits import RequestBody, UtcDatetime
 
 
 class RankingRequest(RequestBody):

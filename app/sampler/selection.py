@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from app.sampler.novelty import Standardiser
+from .novelty import Standardiser
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]

@@ -11,17 +11,17 @@ import numpy as np
 from sqlalchemy import delete, exists, func, insert, select
 from sqlalchemy.orm import Session
 
-import app.queue.service as queue_service
-from app.db import write_transaction
-from app.errors import Conflict, InvalidInput, NotFound
-from app.ingest.models import Rollout, Step
-from app.jobs import service as jobs_service
-from app.jobs.models import Job
-from app.loops.models import Loop, Round
-from app.queue.models import Label, QueueItem
-from app.sampler.models import SelectedState, Selection
-from app.sampler.rank import AUTO_METHOD, Ranking, RankParams
-from app.snapshots import training_set
+from ..db import write_transaction
+from ..errors import Conflict, InvalidInput, NotFound
+from ..ingest.models import Rollout, Step
+from ..jobs import service as jobs_service
+from ..jobs.models import Job
+from ..loops.models import Loop, Round
+from ..queue import service as queue_service
+from ..queue.models import Label, QueueItem
+from ..snapshots import training_set
+from .models import SelectedState, Selection
+from .rank import AUTO_METHOD, Ranking, RankParams
 
 RANK_JOB = "rank"
 

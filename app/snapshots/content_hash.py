@@ -34,7 +34,7 @@ import struct
 
 import numpy as np
 
-from app.snapshots.batches import RowBatch
+from .batches import RowBatch
 
 HASH_SCHEME = "expertloop-rows-1"
 _COLUMNS = (

@@ -47,8 +47,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from app.snapshots.batches import RowBatch
-from app.snapshots.training_set import SOURCES
+from .batches import RowBatch
+from .training_set import SOURCES
 
 EXPORT_FORMATS = ("parquet", "npz", "jsonl")
 MEDIA_TYPES = {

@@ -26,7 +26,7 @@ from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import IO
 
-from app.snapshots.models import Snapshot
+from .models import Snapshot
 
 log = logging.getLogger(__name__)
 

@@ -5,11 +5,11 @@ from __future__ import annotations
 from fastapi import APIRouter, Query, Response, status
 from fastapi.responses import StreamingResponse
 
-from app.deps import SessionDep, SettingsDep, TrainerDep, WriterSessionDep
-from app.loops import service as loops_service
-from app.snapshots import service
-from app.snapshots.export import MEDIA_TYPES
-from app.snapshots.schemas import (
+from ..deps import SessionDep, SettingsDep, TrainerDep, WriterSessionDep
+from ..loops import service as loops_service
+from . import service
+from .export import MEDIA_TYPES
+from .schemas import (
     ExportFormat,
     SnapshotCreate,
     SnapshotCreated,

@@ -19,10 +19,10 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from app.ingest.encode import FLOAT32_LE
-from app.ingest.models import CONTROL_EXPERT, Rollout, Step
-from app.loops.models import Round
-from app.snapshots.batches import SOURCES, RowBatch, merge_sorted
+from ..ingest.encode import FLOAT32_LE
+from ..ingest.models import CONTROL_EXPERT, Rollout, Step
+from ..loops.models import Round
+from .batches import SOURCES, RowBatch, merge_sorted
 
 
 @dataclass(frozen=True)

@@ -6,8 +6,8 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, Field
 
-from app.limits import INT32_MAX, RequestBody, UtcDatetime
-from app.snapshots.models import Snapshot
+from ..limits import INT32_MAX, RequestBody, UtcDatetime
+from .models import Snapshot
 
 ExportFormat = Literal["parquet", "npz", "jsonl"]
 

@@ -21,17 +21,17 @@ from sqlalchemy import func, select, text
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from app.auth.models import User
-from app.errors import Conflict, InvalidInput, NotFound
-from app.loops import service as loops_service
-from app.loops.models import Loop, Round
-from app.models import utcnow
-from app.safety import SAFETY_CAUTION
-from app.snapshots import export, files
-from app.snapshots import training_set as ts
-from app.snapshots.batches import RowBatch, rows_not_in
-from app.snapshots.content_hash import HASH_SCHEME, ContentHasher
-from app.snapshots.models import Snapshot
+from ..auth.models import User
+from ..errors import Conflict, InvalidInput, NotFound
+from ..loops import service as loops_service
+from ..loops.models import Loop, Round
+from ..models import utcnow
+from ..safety import SAFETY_CAUTION
+from . import export, files
+from . import training_set as ts
+from .batches import RowBatch, rows_not_in
+from .content_hash import HASH_SCHEME, ContentHasher
+from .models import Snapshot
 
 LATEST = "latest"
 _VERSION = re.compile(r"^v([1-9][0-9]{0,8})$")

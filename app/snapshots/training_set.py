@@ -14,13 +14,13 @@ import numpy as np
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from app.ingest.encode import stored_actions
-from app.ingest.models import Step
-from app.loops.models import Loop, Round
-from app.queue.current import is_current
-from app.queue.models import ANSWER_UNSURE, Label
-from app.snapshots import rows
-from app.snapshots.batches import (
+from ..ingest.encode import stored_actions
+from ..ingest.models import Step
+from ..loops.models import Loop, Round
+from ..queue.current import is_current
+from ..queue.models import ANSWER_UNSURE, Label
+from . import rows
+from .batches import (
     SOURCE_DEMONSTRATION,
     SOURCE_RELABEL,
     SOURCE_TAKEOVER,
@@ -29,7 +29,7 @@ from app.snapshots.batches import (
     concat,
     merge_sorted,
 )
-from app.snapshots.consensus import continuous_consensus, discrete_consensus
+from .consensus import continuous_consensus, discrete_consensus
 
 __all__ = [
     "SOURCES",

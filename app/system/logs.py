@@ -58,7 +58,7 @@ class JsonFormatter(logging.Formatter):
 def logging_config(log_format: LogFormat, level: str = "INFO") -> dict[str, Any]:
     """A `logging.config.dictConfig` dictionary: our loggers and uvicorn's, to stderr."""
     if log_format == "json":
-        formatter: dict[str, Any] = {"()": "app.system.logs.JsonFormatter"}
+        formatter: dict[str, Any] = {"()": "expertloop.system.logs.JsonFormatter"}
     elif log_format == "text":
         formatter = {"format": TEXT_FORMAT}
     else:

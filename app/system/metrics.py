@@ -11,10 +11,10 @@ from prometheus_client.registry import Collector
 from sqlalchemy import Engine, func, select
 from sqlalchemy.orm import Session
 
-from app.ingest.models import Step
-from app.jobs.models import Job
-from app.loops.models import Loop, Round
-from app.queue.models import ANSWER_UNDONE, ITEM_OPEN, Label, QueueItem
+from ..ingest.models import Step
+from ..jobs.models import Job
+from ..loops.models import Loop, Round
+from ..queue.models import ANSWER_UNDONE, ITEM_OPEN, Label, QueueItem
 
 CLAIM_SECONDS = Histogram(
     "expertloop_claim_seconds",

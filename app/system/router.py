@@ -6,9 +6,9 @@ from fastapi import APIRouter, Request
 from fastapi.responses import JSONResponse, Response
 from sqlalchemy import text
 
-from app.deps import AdminDep
-from app.migrations_state import current_and_head
-from app.system.metrics import render
+from ..deps import AdminDep
+from ..migrations_state import current_and_head
+from .metrics import render
 
 router = APIRouter(tags=["system"])
 

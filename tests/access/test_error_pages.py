@@ -10,7 +10,7 @@ from urllib.parse import parse_qs, urlsplit
 import pytest
 from fastapi.testclient import TestClient
 
-from app.error_pages import safe_next
+from expertloop.error_pages import safe_next
 from tests.access.test_sign_in import sign_in
 from tests.helpers import DISCRETE_SPEC, sign_in_form
 from tests.reports.test_loop_page import Page
@@ -104,7 +104,7 @@ def test_loop_page_links_snapshots_only_for_roles_that_may_read_them(client, adm
 
 
 def test_server_error_is_a_page_for_browsers_and_json_for_api(app, make_user, monkeypatch):
-    from app.loops import service as loops_service
+    from expertloop.loops import service as loops_service
 
     def broken(*args, **kwargs):
         raise RuntimeError("simulated failure")

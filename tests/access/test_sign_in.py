@@ -7,10 +7,10 @@ from html.parser import HTMLParser
 
 from sqlalchemy import select, update
 
-from app.auth import security, service
-from app.auth.models import ApiToken, BrowserSession, User
-from app.deps import SESSION_COOKIE
-from app.models import utcnow
+from expertloop.auth import security, service
+from expertloop.auth.models import ApiToken, BrowserSession, User
+from expertloop.deps import SESSION_COOKIE
+from expertloop.models import utcnow
 from tests.conftest import store_contents
 from tests.helpers import DISCRETE_SPEC, sign_in_form
 

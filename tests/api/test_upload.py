@@ -395,7 +395,7 @@ def test_stale_spooled_uploads_are_swept_at_start(settings):
     import os
     import time
 
-    from app.ingest.spool import sweep_stale
+    from expertloop.ingest.spool import sweep_stale
 
     settings.upload_dir.mkdir(parents=True)
     stale = settings.upload_dir / "upload-left-by-a-dead-process"

@@ -18,10 +18,10 @@ import pytest
 from playwright.sync_api import expect
 from sqlalchemy import select
 
-from app.queue.models import Label, Lease, QueueItem, Skip
-from app.system.server_process import ROOT, server_process
+from expertloop.queue.models import Label, Lease, QueueItem, Skip
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC
 from tests.queue.conftest import user_id
+from tests.serving import ROOT, server_process
 
 pytestmark = pytest.mark.browser
 

@@ -21,10 +21,10 @@ import numpy as np
 import pytest
 from sqlalchemy import select
 
-from app.queue.models import ANSWER_UNDONE, Label
-from app.system.server_process import server_process
+from expertloop.queue.models import ANSWER_UNDONE, Label
 from tests.browser.test_bench import PASSWORD, sign_in_and_open_bench
 from tests.queue.conftest import user_id
+from tests.serving import server_process
 
 pytestmark = pytest.mark.browser
 

@@ -9,9 +9,9 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from app.cli import cli
-from app.config import Settings, get_settings
-from app.demo.local_server import local_server
+from expertloop.cli import cli
+from expertloop.config import Settings, get_settings
+from expertloop.demo.local_server import local_server
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
 
 runner = CliRunner()
@@ -63,7 +63,7 @@ def test_upload_and_rank_over_http(tmp_path):
     settings = Settings(data_dir=tmp_path / "srv", job_mode="thread")
     with local_server(settings) as server:
         common = ["--url", server.url, "--token", server.admin_token]
-        from app.client import Client
+        from expertloop.client import Client
 
         with Client(server.url, server.admin_token) as client:
             client.create_loop(DISCRETE_SPEC)

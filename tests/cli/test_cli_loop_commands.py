@@ -10,12 +10,12 @@ from pathlib import Path
 import pytest
 from sqlalchemy import select, text
 
-from app.auth.models import User
-from app.client import Client
-from app.config import Settings
-from app.db import make_engine
-from app.demo.local_server import local_server
-from app.migrations_state import alembic_config
+from expertloop.auth.models import User
+from expertloop.client import Client
+from expertloop.config import Settings
+from expertloop.db import make_engine
+from expertloop.demo.local_server import local_server
+from expertloop.migrations_state import alembic_config
 from tests.cli.test_cli import cli_env, run  # noqa: F401  (cli_env is a fixture)
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
 
@@ -140,7 +140,7 @@ def test_db_upgrade_says_what_it_did(tmp_path, monkeypatch):
     url = f"sqlite:///{tmp_path / 'fresh.db'}"
     monkeypatch.setenv("EXPERTLOOP_DATABASE_URL", url)
     monkeypatch.setenv("EXPERTLOOP_DATA_DIR", str(tmp_path / "d"))
-    from app.config import get_settings
+    from expertloop.config import get_settings
 
     get_settings.cache_clear()
     try:

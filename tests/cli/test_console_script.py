@@ -27,12 +27,12 @@ import pyarrow.parquet as pq
 import pytest
 from sqlalchemy import text
 
-from app.db import make_engine
-from app.migrations_state import upgrade_empty
+from expertloop.db import make_engine
 from tests.conftest import PG_URL
 from tests.docs.readme import code_blocks, inline_code
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
 from tests.packaging.hidden import hide
+from tests.serving import upgrade_empty
 
 SCRIPT = Path(sys.executable).parent / "expertloop"
 REPOSITORY = Path(__file__).resolve().parents[2]
@@ -86,7 +86,7 @@ def script(tmp_path_factory: pytest.TempPathFactory) -> Path:
         _not_installed(f"no expertloop console script beside {sys.executable}: pip install -e .")
     interpreter = SCRIPT.read_text().splitlines()[0].removeprefix("#!").strip()
     found = subprocess.run(
-        [interpreter, "-c", "import app; print(app.__file__)"],
+        [interpreter, "-c", "import expertloop; print(expertloop.__file__)"],
         cwd=tmp_path_factory.mktemp("where"),
         env=_clean_environment(),
         capture_output=True,
@@ -210,11 +210,6 @@ def test_accounts_on_a_fresh_store(script: Path, store: dict[str, str]) -> None:
     assert "deactivated" not in run(script, store, "users", "list")
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="loops create on a fresh store raises NoReferencedTableError (loops.created_by -> "
-    "users): the CLI process has not imported every model; being fixed with the loop spec work",
-)
 def test_loops_create_on_a_fresh_store(script: Path, store: dict[str, str], tmp_path: Path) -> None:
     run(script, store, "db", "upgrade")
     spec = tmp_path / "spec.json"
@@ -373,7 +368,7 @@ def test_demo_run_one_round(script: Path, store: dict[str, str], tmp_path: Path)
 def cli_commands() -> set[str]:
     from typer.main import get_command
 
-    from app.cli import cli
+    from expertloop.cli import cli
 
     found = set()
 

@@ -12,11 +12,11 @@ from pathlib import Path
 
 import pytest
 
-from app.client import Client
-from app.config import Settings
-from app.demo import loop_run
-from app.demo.local_server import local_server
-from app.demo.plot import write_plot
+from expertloop.client import Client
+from expertloop.config import Settings
+from expertloop.demo import loop_run
+from expertloop.demo.local_server import local_server
+from expertloop.demo.plot import write_plot
 
 SEEDS = (0, 1, 2)
 SMALL = loop_run.RunSize(

@@ -19,7 +19,7 @@ from pathlib import Path
 import psycopg
 import pytest
 
-from app.system.server_process import free_port
+from tests.serving import free_port
 
 PG_VERSIONS = ("17", "16", "15", "14")
 

@@ -17,7 +17,7 @@ import pytest
 from prometheus_client.parser import text_string_to_metric_families
 from sqlalchemy.engine import make_url
 
-from app.migrations_state import alembic_config
+from expertloop.migrations_state import alembic_config
 from tests.deploy.pgcluster import PgCluster, free_port
 from tests.deploy.services import (
     Service,

@@ -20,12 +20,12 @@ import httpx
 import pytest
 from sqlalchemy import select
 
-from app.auth import service as auth_service
-from app.db import make_engine, make_session_factory
-from app.ingest.models import Step
-from app.loops import service as loops_service
-from app.migrations_state import upgrade
-from app.queue import service as queue_service
+from expertloop.auth import service as auth_service
+from expertloop.db import make_engine, make_session_factory
+from expertloop.ingest.models import Step
+from expertloop.loops import service as loops_service
+from expertloop.migrations_state import upgrade
+from expertloop.queue import service as queue_service
 from tests.deploy.pgcluster import PgCluster, free_port
 from tests.deploy.services import (
     Service,

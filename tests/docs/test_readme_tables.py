@@ -15,11 +15,11 @@ import pytest
 from pydantic.fields import FieldInfo
 from typer.main import get_command
 
-from app import db
-from app.cli import NEW_PASSWORD_ENV, cli
-from app.config import Settings
-from app.ingest.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
-from app.loops.schemas import LoopSettings
+from expertloop import db
+from expertloop.cli import NEW_PASSWORD_ENV, cli
+from expertloop.config import Settings
+from expertloop.ingest.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
+from expertloop.loops.schemas import LoopSettings
 from tests.docs.readme import README, Table, tables_with_header, unquote
 
 NO_DEFAULT = "—"

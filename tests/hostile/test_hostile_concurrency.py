@@ -7,7 +7,7 @@ import threading
 from concurrent.futures import ThreadPoolExecutor
 from unittest import mock
 
-from app.ingest import service as ingest_service
+from expertloop.ingest import service as ingest_service
 from tests.helpers import discrete_rows, parquet_bytes
 from tests.hostile.conftest import row_counts
 

@@ -8,9 +8,9 @@ import io
 
 import pytest
 
-from app.reports.schemas import RoundReportRow
-from app.reports.table import rows_csv
-from app.security_headers import CONTENT_SECURITY_POLICY
+from expertloop.reports.schemas import RoundReportRow
+from expertloop.reports.table import rows_csv
+from expertloop.security_headers import CONTENT_SECURITY_POLICY
 
 
 @pytest.mark.parametrize(

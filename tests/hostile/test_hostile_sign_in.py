@@ -12,9 +12,9 @@ from unittest import mock
 import pytest
 from fastapi.testclient import TestClient
 
-from app.auth import security
-from app.config import Settings
-from app.main import create_app
+from expertloop.auth import security
+from expertloop.config import Settings
+from expertloop.main import create_app
 from tests.helpers import sign_in_form
 from tests.hostile.conftest import row_counts
 
@@ -61,7 +61,7 @@ def test_one_address_trying_many_names_is_throttled(throttled, make_user):
 
 
 def test_throttle_counts_in_a_sliding_window():
-    from app.auth.throttle import Limits, SignInThrottle
+    from expertloop.auth.throttle import Limits, SignInThrottle
 
     now = [1000.0]
     throttle = SignInThrottle(Limits(2, 10, 60.0), clock=lambda: now[0])
@@ -142,8 +142,8 @@ def test_hostile_form_values_get_a_plain_answer(client, make_user, engine, name,
 
 def test_wrong_passwords_do_not_stall_other_writers(app, client, make_user):
     """While wrong-password sign-ins hash, another writer's transaction commits at once."""
-    from app.db import write_transaction
-    from app.jobs.models import Job
+    from expertloop.db import write_transaction
+    from expertloop.jobs.models import Job
 
     make_user("annotator", name="ann", password=PASSWORD)
     gate = threading.Event()

@@ -7,9 +7,9 @@ from datetime import UTC
 import pytest
 from pydantic import ValidationError
 
-from app.config import Settings
-from app.jobs import runner, service
-from app.models import utcnow
+from expertloop.config import Settings
+from expertloop.jobs import runner, service
+from expertloop.models import utcnow
 
 
 def test_heartbeat_interval_gives_three_renewals_per_lease_and_at_most_five_seconds() -> None:

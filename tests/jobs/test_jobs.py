@@ -8,9 +8,9 @@ from datetime import timedelta
 import pytest
 from sqlalchemy import update
 
-from app.jobs import runner, service
-from app.jobs.models import JOB_DONE, JOB_FAILED, JOB_RUNNING, Job
-from app.models import utcnow
+from expertloop.jobs import runner, service
+from expertloop.jobs.models import JOB_DONE, JOB_FAILED, JOB_RUNNING, Job
+from expertloop.models import utcnow
 
 
 @pytest.fixture
@@ -44,7 +44,7 @@ def test_enqueue_claim_finish(app, settings, echo_handler):
 
 
 def test_second_live_job_for_a_round_is_a_conflict(app, client, admin):
-    from app.errors import Conflict
+    from expertloop.errors import Conflict
     from tests.helpers import DISCRETE_SPEC
 
     client.post("/api/loops", json=DISCRETE_SPEC, headers=admin)
@@ -57,7 +57,7 @@ def test_second_live_job_for_a_round_is_a_conflict(app, client, admin):
 
 
 def test_failed_handler_records_its_message(app, settings):
-    from app.errors import InvalidInput
+    from expertloop.errors import InvalidInput
 
     @runner.handler("test-fail")
     def fail(ctx):

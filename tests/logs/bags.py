@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 from PIL import Image
 
-from app.ingest.logs.writer import Storage, storage_file, typestore_for, write_bag
+from expertloop.ingest.logs.writer import Storage, storage_file, typestore_for, write_bag
 
 NS = 1_000_000_000
 T0 = 1_700_000_000 * NS  # an invented recording start

@@ -7,10 +7,10 @@ import json
 
 import numpy as np
 
-from app.demo import bag, sim
-from app.demo import scenario as sc
-from app.demo.setup import BAG_FILE, DEMO_SPEC
-from app.ingest.logs.writer import storage_file
+from expertloop.demo import bag, sim
+from expertloop.demo import scenario as sc
+from expertloop.demo.setup import BAG_FILE, DEMO_SPEC
+from expertloop.ingest.logs.writer import storage_file
 from tests.logs.test_log_upload import upload
 
 SPEC = json.loads(DEMO_SPEC.read_text())

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import json
 
-from app.config import Settings
-from app.demo.local_server import local_server
+from expertloop.config import Settings
+from expertloop.demo.local_server import local_server
 from tests.cli.test_cli import run
 from tests.helpers import DISCRETE_SPEC
 from tests.logs.bags import MAPPING, build
@@ -46,7 +46,7 @@ def test_inspect_with_the_loops_mapping_and_upload_over_http(tmp_path):
     settings = Settings(data_dir=tmp_path / "srv", job_mode="off")
     with local_server(settings) as server:
         common = ["--url", server.url, "--token", server.admin_token]
-        from app.client import Client
+        from expertloop.client import Client
 
         with Client(server.url, server.admin_token) as client:
             client.create_loop({**DISCRETE_SPEC, "log_mapping": MAPPING})

@@ -10,7 +10,7 @@ import zipfile
 import numpy as np
 import pytest
 
-from app.ingest.logs.writer import storage_file, typestore_for, write_bag
+from expertloop.ingest.logs.writer import storage_file, typestore_for, write_bag
 from tests.conftest import store_contents
 from tests.helpers import DISCRETE_SPEC, parquet_bytes
 from tests.logs.bags import MAPPING, NS, TOPICS, build, tractor_messages

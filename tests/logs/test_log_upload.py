@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import interp1d
 
-from app.ingest.logs.writer import storage_file, typestore_for, write_bag
+from expertloop.ingest.logs.writer import storage_file, typestore_for, write_bag
 from tests.conftest import store_contents
 from tests.helpers import DISCRETE_SPEC
 from tests.logs.bags import MAPPING, NS, T0, TOPICS, build, tractor_messages, zip_folder
@@ -198,7 +198,7 @@ def test_refuse_policy_names_topic_field_and_time(client, admin, uploader, engin
 
 @pytest.mark.parametrize("storage", ["ros1", "mcap"])
 def test_scene_from_our_own_message(storage, client, admin, uploader, tmp_path):
-    from app.ingest.logs.reader import SCENE_AGENT_TYPE, SCENE_TYPE
+    from expertloop.ingest.logs.reader import SCENE_AGENT_TYPE, SCENE_TYPE
 
     ts = typestore_for(storage)
     messages, written = tractor_messages(storage)

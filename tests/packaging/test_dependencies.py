@@ -28,14 +28,14 @@ APP = REPOSITORY / "app"
 
 # extra -> (the import names it provides, the modules that alone may import them). The demo
 # learner of `expertloop demo-run` trains with scikit-learn; `serve --demo` does not need it.
-EXTRA_ONLY = {"demo": ({"sklearn"}, {"app.demo.learner", "app.demo.loop_run"})}
+EXTRA_ONLY = {"demo": ({"sklearn"}, {"expertloop.demo.learner", "expertloop.demo.loop_run"})}
 
 IMPORT_EVERY_MODULE = """
 import importlib, json, pkgutil
-import app
+import expertloop
 
 failed = {}
-for info in pkgutil.walk_packages(app.__path__, "app."):
+for info in pkgutil.walk_packages(expertloop.__path__, "expertloop."):
     try:
         importlib.import_module(info.name)
     except ModuleNotFoundError as exc:
@@ -56,7 +56,7 @@ def declared() -> tuple[set[str], dict[str, set[str]]]:
 
 
 def module_name(path: Path) -> str:
-    parts = path.relative_to(REPOSITORY).with_suffix("").parts
+    parts = ("expertloop", *path.relative_to(APP).with_suffix("").parts)
     return ".".join(parts[:-1] if parts[-1] == "__init__" else parts)
 
 
@@ -72,7 +72,7 @@ def third_party_imports() -> dict[str, set[str]]:
             else:
                 continue
             for top in tops:
-                if top != "app" and top not in sys.stdlib_module_names:
+                if top != "expertloop" and top not in sys.stdlib_module_names:
                     found.setdefault(top, set()).add(module_name(path))
     return found
 

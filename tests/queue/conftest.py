@@ -10,10 +10,10 @@ import numpy as np
 import pytest
 from sqlalchemy import select
 
-from app.auth.models import User
-from app.ingest.models import Rollout, Step
-from app.loops import service as loops_service
-from app.queue import service as queue_service
+from expertloop.auth.models import User
+from expertloop.ingest.models import Rollout, Step
+from expertloop.loops import service as loops_service
+from expertloop.queue import service as queue_service
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC, discrete_rows, parquet_bytes
 
 SCENE = {

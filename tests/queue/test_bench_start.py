@@ -8,9 +8,9 @@ import json
 
 import pytest
 
-from app.ingest.schemas import StepRead
-from app.loops.schemas import LoopSettings
-from app.queue.bench import neutral_action, start_action
+from expertloop.ingest.schemas import StepRead
+from expertloop.loops.schemas import LoopSettings
+from expertloop.queue.bench import neutral_action, start_action
 from tests.conftest import store_contents
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC, discrete_rows, parquet_bytes
 from tests.queue.conftest import continuous_rows

@@ -14,10 +14,10 @@ import httpx
 import pytest
 from sqlalchemy import select
 
-from app.auth.models import User
-from app.queue.models import ITEM_DONE, Label, Lease, QueueItem, Skip
-from app.system.server_process import server_process
+from expertloop.auth.models import User
+from expertloop.queue.models import ITEM_DONE, Label, Lease, QueueItem, Skip
 from tests.helpers import DISCRETE_SPEC, discrete_rows
+from tests.serving import server_process
 
 N_CLIENTS = 32
 K = 2

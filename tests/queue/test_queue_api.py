@@ -8,7 +8,7 @@ from html.parser import HTMLParser
 
 import pytest
 
-from app.deps import SESSION_COOKIE
+from expertloop.deps import SESSION_COOKIE
 from tests.conftest import store_contents
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC, sign_in_form
 

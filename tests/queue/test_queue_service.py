@@ -9,12 +9,20 @@ import numpy as np
 import pytest
 from sqlalchemy import event, select
 
-from app.errors import Conflict, InvalidInput, NotFound
-from app.ingest.models import Step
-from app.loops import service as loops_service
-from app.queue import service
-from app.queue.models import ANSWER_UNSURE, ITEM_DONE, ITEM_OPEN, Label, Lease, QueueItem, Skip
-from app.sampler.models import REASON_AUDIT, REASON_RANKED, SelectedState, Selection
+from expertloop.errors import Conflict, InvalidInput, NotFound
+from expertloop.ingest.models import Step
+from expertloop.loops import service as loops_service
+from expertloop.queue import service
+from expertloop.queue.models import (
+    ANSWER_UNSURE,
+    ITEM_DONE,
+    ITEM_OPEN,
+    Label,
+    Lease,
+    QueueItem,
+    Skip,
+)
+from expertloop.sampler.models import REASON_AUDIT, REASON_RANKED, SelectedState, Selection
 from tests.conftest import store_contents
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC
 from tests.queue.conftest import user_id

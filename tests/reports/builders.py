@@ -10,12 +10,12 @@ from typing import Any
 import numpy as np
 from sqlalchemy import select
 
-from app.auth.models import User
-from app.ingest.encode import FLOAT32_LE
-from app.ingest.models import Rollout, Step
-from app.loops import service as loops_service
-from app.queue.models import ANSWER_ACTION, ANSWER_UNSURE, ITEM_DONE, Label, QueueItem
-from app.sampler.models import REASON_AUDIT, REASON_RANKED, SelectedState, Selection
+from expertloop.auth.models import User
+from expertloop.ingest.encode import FLOAT32_LE
+from expertloop.ingest.models import Rollout, Step
+from expertloop.loops import service as loops_service
+from expertloop.queue.models import ANSWER_ACTION, ANSWER_UNSURE, ITEM_DONE, Label, QueueItem
+from expertloop.sampler.models import REASON_AUDIT, REASON_RANKED, SelectedState, Selection
 from tests.helpers import parquet_bytes
 
 T0 = datetime(2026, 3, 2, 8, 0, tzinfo=UTC)

@@ -6,7 +6,7 @@ from html.parser import HTMLParser
 
 import pytest
 
-from app.templating import SAFETY_CAUTION
+from expertloop.templating import SAFETY_CAUTION
 from tests.reports.scenario import build_discrete
 
 

@@ -7,10 +7,10 @@ import io
 
 import pytest
 
-from app.loops import service as loops_service
-from app.queue.models import Label
-from app.reports import service
-from app.reports.schemas import RoundReportRow
+from expertloop.loops import service as loops_service
+from expertloop.queue.models import Label
+from expertloop.reports import service
+from expertloop.reports.schemas import RoundReportRow
 from tests.helpers import DISCRETE_SPEC
 from tests.reports import builders
 from tests.reports.scenario import build_discrete

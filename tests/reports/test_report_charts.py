@@ -6,7 +6,7 @@ import xml.etree.ElementTree as ET
 
 import pytest
 
-from app.reports import charts
+from expertloop.reports import charts
 
 SVG = "{http://www.w3.org/2000/svg}"
 

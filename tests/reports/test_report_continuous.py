@@ -15,8 +15,8 @@ from numpy.testing import assert_allclose
 from sklearn.metrics import mean_absolute_error
 from statsmodels.stats.proportion import proportion_confint
 
-from app.loops import service as loops_service
-from app.reports import service
+from expertloop.loops import service as loops_service
+from expertloop.reports import service
 from tests.helpers import CONTINUOUS_SPEC
 from tests.reports import builders
 

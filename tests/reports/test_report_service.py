@@ -17,8 +17,8 @@ from sklearn.metrics.pairwise import rbf_kernel
 from statsmodels.stats.inter_rater import aggregate_raters, fleiss_kappa
 from statsmodels.stats.proportion import confint_proportions_2indep, proportion_confint
 
-from app.loops import service as loops_service
-from app.reports import service
+from expertloop.loops import service as loops_service
+from expertloop.reports import service
 from tests.helpers import DISCRETE_SPEC
 from tests.reports import builders
 from tests.reports.scenario import ANNOTATORS, BREAK_AFTER, SECONDS_APART, build_discrete

@@ -12,12 +12,12 @@ from concurrent.futures import ThreadPoolExecutor
 import pytest
 from sqlalchemy import select
 
-from app.errors import Conflict, NotFound
-from app.loops import service as loops_service
-from app.models import utcnow
-from app.queue import service as queue_service
-from app.queue.models import ANSWER_UNDONE, Label, QueueItem
-from app.revisions import service
+from expertloop.errors import Conflict, NotFound
+from expertloop.loops import service as loops_service
+from expertloop.models import utcnow
+from expertloop.queue import service as queue_service
+from expertloop.queue.models import ANSWER_UNDONE, Label, QueueItem
+from expertloop.revisions import service
 from tests.helpers import DISCRETE_SPEC
 from tests.queue.conftest import user_id
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from app.jobs import runner
+from expertloop.jobs import runner
 from tests.helpers import DISCRETE_SPEC, parquet_bytes
 
 SLUG = DISCRETE_SPEC["slug"]

@@ -10,9 +10,9 @@ import numpy as np
 import pytest
 from sqlalchemy import update
 
-from app.jobs import runner
-from app.jobs.models import Job
-from app.models import utcnow
+from expertloop.jobs import runner
+from expertloop.jobs.models import Job
+from expertloop.models import utcnow
 from tests.conftest import store_contents
 from tests.helpers import DISCRETE_SPEC, discrete_rows
 from tests.sampler.rounds import SLUG, rank, upload

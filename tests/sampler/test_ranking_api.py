@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 from sqlalchemy import func, select
 
-from app.ingest.models import CONTROL_EXPERT, Step
-from app.jobs import runner
-from app.queue.models import QueueItem
+from expertloop.ingest.models import CONTROL_EXPERT, Step
+from expertloop.jobs import runner
+from expertloop.queue.models import QueueItem
 from tests.conftest import store_contents
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
 
@@ -98,8 +98,8 @@ def test_takeover_boost_lifts_states_just_before_a_takeover(
     _rank(client, app, settings, admin)
     items = client.get(f"/api/loops/{SLUG}/rounds/1/selection", headers=admin).json()["items"]
     with app.state.session_factory() as session:
-        from app.sampler.models import Selection
-        from app.sampler.service import candidate_scores
+        from expertloop.sampler.models import Selection
+        from expertloop.sampler.service import candidate_scores
 
         scores = candidate_scores(session.scalars(select(Selection)).one())
     boosted = scores["boost"] > 0

@@ -14,10 +14,10 @@ import pyarrow.parquet as pq
 import pytest
 from sqlalchemy import select
 
-from app.auth.models import User
-from app.ingest.models import Step
-from app.loops.models import Loop, Round
-from app.queue.models import ANSWER_ACTION, ANSWER_UNSURE, Label
+from expertloop.auth.models import User
+from expertloop.ingest.models import Step
+from expertloop.loops.models import Loop, Round
+from expertloop.queue.models import ANSWER_ACTION, ANSWER_UNSURE, Label
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC, discrete_rows, parquet_bytes
 
 SLUG = DISCRETE_SPEC["slug"]

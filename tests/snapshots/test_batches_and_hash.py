@@ -12,8 +12,8 @@ from typing import Any
 import numpy as np
 import pytest
 
-from app.snapshots.batches import RowBatch, concat, merge_sorted, rows_not_in
-from app.snapshots.content_hash import ContentHasher
+from expertloop.snapshots.batches import RowBatch, concat, merge_sorted, rows_not_in
+from expertloop.snapshots.content_hash import ContentHasher
 from tests.snapshots.reference import SOURCE_CODES, as_tuples, reference_hash
 
 SOURCES = list(SOURCE_CODES)

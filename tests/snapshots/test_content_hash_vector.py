@@ -13,8 +13,8 @@ import hashlib
 
 import numpy as np
 
-from app.snapshots.batches import RowBatch
-from app.snapshots.content_hash import HASH_SCHEME, ContentHasher
+from expertloop.snapshots.batches import RowBatch
+from expertloop.snapshots.content_hash import HASH_SCHEME, ContentHasher
 
 # Three rows of a discrete loop with two features and three actions, in step-id order:
 #

@@ -21,11 +21,11 @@ import pytest
 from sqlalchemy import text
 from typer.testing import CliRunner
 
-import app.client as client_module
-from app.cli import cli
-from app.client import ApiError, Client
-from app.snapshots import training_set as ts
-from app.snapshots.service import SnapshotChanged
+import expertloop.client as client_module
+from expertloop.cli import cli
+from expertloop.client import ApiError, Client
+from expertloop.snapshots import training_set as ts
+from expertloop.snapshots.service import SnapshotChanged
 from tests.snapshots.conftest import (
     BASE,
     LATE_ROLLOUT,

@@ -13,10 +13,10 @@ from pathlib import Path
 import pytest
 from fastapi.testclient import TestClient
 
-from app.config import Settings
-from app.main import create_app
-from app.migrations_state import upgrade
-from app.safety import SAFETY_CAUTION
+from expertloop.config import Settings
+from expertloop.main import create_app
+from expertloop.migrations_state import upgrade
+from expertloop.safety import SAFETY_CAUTION
 from tests.conftest import store_contents
 from tests.snapshots.conftest import (
     BASE,
@@ -186,7 +186,7 @@ def test_same_content_hash_on_a_second_store(
     url = f"sqlite:///{tmp_path / 'second.db'}"
     upgrade(url)
     second_app = create_app(Settings(data_dir=tmp_path / "second", database_url=url))
-    from app.auth import service as auth_service
+    from expertloop.auth import service as auth_service
 
     with second_app.state.session_factory() as session:
         headers = {}

@@ -18,11 +18,11 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import text
 
-from app.client import Client
-from app.snapshots import files
-from app.snapshots.files import StoredFileDamaged
-from app.snapshots.models import Snapshot
-from app.snapshots.service import SnapshotChanged
+from expertloop.client import Client
+from expertloop.snapshots import files
+from expertloop.snapshots.files import StoredFileDamaged
+from expertloop.snapshots.models import Snapshot
+from expertloop.snapshots.service import SnapshotChanged
 from tests.snapshots.conftest import BASE, SLUG
 
 EXPORT = f"{BASE}/snapshots/v1/export"

@@ -5,10 +5,10 @@ from __future__ import annotations
 import numpy as np
 from sqlalchemy import select
 
-from app.ingest.models import Step
-from app.loops import service as loops_service
-from app.queue.models import ANSWER_ACTION, ANSWER_UNSURE, Label
-from app.snapshots import training_set as ts
+from expertloop.ingest.models import Step
+from expertloop.loops import service as loops_service
+from expertloop.queue.models import ANSWER_ACTION, ANSWER_UNSURE, Label
+from expertloop.snapshots import training_set as ts
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
 
 
@@ -48,7 +48,7 @@ def _label(session, step_id, round_id, user_id, answer, action, n):
 
 def test_members_sources_actions_and_cutoff(app, client, admin, uploader, make_user):
     _setup(client, admin, uploader)
-    from app.auth.models import User
+    from expertloop.auth.models import User
 
     with app.state.session_factory() as session:
         loop = loops_service.get_loop(session, slug="aisle-crossing")

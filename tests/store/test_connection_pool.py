@@ -16,10 +16,10 @@ from fastapi.testclient import TestClient
 from sqlalchemy import text
 from sqlalchemy.exc import TimeoutError as PoolTimeout
 
-from app import db
-from app.auth import service as auth_service
-from app.config import Settings
-from app.main import create_app
+from expertloop import db
+from expertloop.auth import service as auth_service
+from expertloop.config import Settings
+from expertloop.main import create_app
 from tests.conftest import PG_URL
 
 BOUND = db.POSTGRES_POOL_SIZE + db.POSTGRES_MAX_OVERFLOW

@@ -6,8 +6,8 @@ from alembic.autogenerate import compare_metadata
 from alembic.runtime.migration import MigrationContext
 from sqlalchemy import inspect
 
-from app.migrations_state import current_and_head
-from app.models import Base, import_all_tables
+from expertloop.migrations_state import current_and_head
+from expertloop.models import Base, import_all_tables
 
 
 def test_models_and_migrations_agree(engine):

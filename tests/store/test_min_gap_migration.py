@@ -8,7 +8,7 @@ import json
 from alembic import command
 from sqlalchemy import text
 
-from app.migrations_state import alembic_config
+from expertloop.migrations_state import alembic_config
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
 
 

@@ -11,8 +11,8 @@ import pyarrow.parquet as pq
 import pytest
 from scipy.integrate import solve_ivp
 
-from app.demo import expert, files, learner, sim
-from app.demo import scenario as sc
+from expertloop.demo import expert, files, learner, sim
+from expertloop.demo import scenario as sc
 
 CONTRACT_COLUMNS = {
     "rollout", "step", "time_s", "features", "control", "learner_action", "learner_probs",

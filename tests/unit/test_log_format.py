@@ -11,8 +11,8 @@ from pathlib import Path
 import pytest
 from pydantic import ValidationError
 
-from app.config import Settings
-from app.system.logs import JsonFormatter, logging_config
+from expertloop.config import Settings
+from expertloop.system.logs import JsonFormatter, logging_config
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -76,7 +76,7 @@ def test_access_lines_get_method_path_and_status_fields() -> None:
 def _configured_output(log_format: str) -> str:
     # a fresh interpreter: dictConfig changes process-wide logging state
     code = (
-        "import logging; from app.system.logs import configure_logging; "
+        "import logging; from expertloop.system.logs import configure_logging; "
         f"configure_logging({log_format!r}); "
         "logging.getLogger('expertloop.worker').info('worker %s running', 'w1'); "
         "logging.getLogger('uvicorn.error').info('Started server process'); "

@@ -9,9 +9,9 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from app.errors import InvalidInput
-from app.ingest.logs.images import frame_bytes
-from app.ingest.logs.writer import typestore_for
+from expertloop.errors import InvalidInput
+from expertloop.ingest.logs.images import frame_bytes
+from expertloop.ingest.logs.writer import typestore_for
 
 T = typestore_for("mcap").types
 

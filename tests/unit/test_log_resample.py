@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.interpolate import interp1d
 
-from app.ingest.logs import fieldpath, resample
+from expertloop.ingest.logs import fieldpath, resample
 
 rng = np.random.default_rng(11)
 TIMES = np.cumsum(rng.integers(20_000_000, 80_000_000, size=200)).astype(np.int64)

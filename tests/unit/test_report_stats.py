@@ -15,14 +15,14 @@ from sklearn.metrics import cohen_kappa_score, mean_absolute_error
 from sklearn.metrics.pairwise import rbf_kernel
 from statsmodels.stats.proportion import confint_proportions_2indep, proportion_confint
 
-from app.reports.agreement import (
+from expertloop.reports.agreement import (
     agreement_with_consensus,
     cohen_kappa,
     fleiss_kappa,
     krippendorff_alpha,
 )
-from app.reports.pace import labels_per_hour
-from app.reports.rates import (
+from expertloop.reports.pace import labels_per_hour
+from expertloop.reports.rates import (
     MIN_AUDIT_LABELS,
     audit_sufficient,
     continuous_disagreement,
@@ -31,7 +31,7 @@ from app.reports.rates import (
     shown_vs_hidden_effect,
     wilson_interval,
 )
-from app.reports.shift import (
+from expertloop.reports.shift import (
     median_heuristic,
     mmd2_biased,
     mmd2_unbiased,

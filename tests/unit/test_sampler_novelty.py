@@ -5,7 +5,7 @@ import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 from sklearn.neighbors import NearestNeighbors
 
-from app.sampler import novelty as nv
+from expertloop.sampler import novelty as nv
 
 
 def references_data():

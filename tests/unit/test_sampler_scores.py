@@ -6,7 +6,7 @@ import scipy.stats
 from numpy.testing import assert_allclose
 from scipy.stats import rankdata
 
-from app.sampler import scores
+from expertloop.sampler import scores
 
 # docs/references.md, "Least confidence and margin" (Settles 2009, from memory; hand-checkable).
 TABLE_P = np.array([[0.7, 0.2, 0.1], [0.5, 0.25, 0.25], [0.4, 0.4, 0.2]])

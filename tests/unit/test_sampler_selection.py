@@ -10,7 +10,7 @@ from numpy.testing import assert_array_equal
 from scipy.spatial.distance import cdist
 from scipy.stats import chisquare
 
-from app.sampler import selection as sel
+from expertloop.sampler import selection as sel
 
 
 def make_round(rng, n=3000, n_rollouts=40, step_s=0.1):

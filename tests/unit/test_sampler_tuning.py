@@ -8,7 +8,7 @@ import pytest
 from numpy.testing import assert_allclose
 from sklearn.linear_model import LogisticRegression
 
-from app.sampler import tuning
+from expertloop.sampler import tuning
 
 SIGNAL_INDEX = {name: i for i, name in enumerate(tuning.SIGNALS)}
 

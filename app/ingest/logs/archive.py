@@ -12,7 +12,7 @@ from contextlib import contextmanager
 from pathlib import Path, PurePosixPath
 from typing import IO
 
-from app.errors import InvalidInput, TooLarge
+from ...errors import InvalidInput, TooLarge
 
 # format names stored with an upload (at most 16 characters)
 BAG_FORMATS = ("mcap", "ros2-sqlite", "ros1-bag", "ros2-zip", "ros2-tar")

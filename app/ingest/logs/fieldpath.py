@@ -11,7 +11,7 @@ from typing import Any
 
 from rosbags.interfaces import Nodetype
 
-from app.errors import InvalidInput
+from ...errors import InvalidInput
 
 _TOKEN = re.compile(r"([A-Za-z_][A-Za-z0-9_]*)|\[([0-9]+)\]")
 NUMERIC_TYPES = frozenset(

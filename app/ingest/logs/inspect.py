@@ -9,13 +9,13 @@ from typing import Any
 
 import numpy as np
 
-from app.errors import ExpertloopError
-from app.ingest.logs.archive import DEFAULT_MAX_UNPACKED_BYTES, bag_format, bag_path, log_stem
-from app.ingest.logs.mapping import LogMapping
-from app.ingest.logs.reader import NS, open_bag
-from app.ingest.logs.service import check_mapped, default_control
-from app.ingest.logs.steps import map_log
-from app.ingest.validate import ActionSpec
+from ...errors import ExpertloopError
+from ..validate import ActionSpec
+from .archive import DEFAULT_MAX_UNPACKED_BYTES, bag_format, bag_path, log_stem
+from .mapping import LogMapping
+from .reader import NS, open_bag
+from .service import check_mapped, default_control
+from .steps import map_log
 
 
 @dataclass

@@ -22,9 +22,9 @@ from rosbags.interfaces import Connection, Nodetype
 from rosbags.typesys import Stores, get_types_from_msg, get_typestore
 from rosbags.typesys.store import Typestore
 
-from app.errors import ExpertloopError, InvalidInput
-from app.ingest.logs import fieldpath
-from app.ingest.logs.mapping import FieldSource, LogMapping, SceneSource
+from ...errors import ExpertloopError, InvalidInput
+from . import fieldpath
+from .mapping import FieldSource, LogMapping, SceneSource
 
 # Our own scene message, documented in the README ("Robot logs"): a bag may carry it with its
 # definition, or without one (then this definition decodes it).

@@ -6,14 +6,14 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from app.errors import InvalidInput
-from app.ingest.columns import CellError
-from app.ingest.limits import UploadLimits
-from app.ingest.logs.archive import bag_path, log_stem
-from app.ingest.logs.mapping import LogMapping
-from app.ingest.logs.reader import describe_time, open_bag
-from app.ingest.logs.steps import MappedLog, map_log
-from app.ingest.validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
+from ...errors import InvalidInput
+from ..columns import CellError
+from ..limits import UploadLimits
+from ..validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
+from .archive import bag_path, log_stem
+from .mapping import LogMapping
+from .reader import describe_time, open_bag
+from .steps import MappedLog, map_log
 
 
 def loop_mapping(slug: str, log_mapping: dict[str, Any] | None) -> LogMapping:

@@ -13,16 +13,16 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from app.errors import InvalidInput
-from app.ingest.logs import resample
-from app.ingest.logs.images import frame_bytes
-from app.ingest.logs.mapping import (
+from ...errors import InvalidInput
+from . import resample
+from .images import frame_bytes
+from .mapping import (
     ContinuousActionSource,
     DiscreteActionSource,
     FieldSource,
     LogMapping,
 )
-from app.ingest.logs.reader import NS, Bag, TopicSeries, describe_time
+from .reader import NS, Bag, TopicSeries, describe_time
 
 MAX_STEPS = 20_000_000  # a bag mapped to more steps than this is refused (bounded memory)
 

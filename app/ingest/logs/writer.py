@@ -12,7 +12,7 @@ from rosbags.rosbag2 import StoragePlugin
 from rosbags.rosbag2 import Writer as Ros2Writer
 from rosbags.typesys.store import Typestore
 
-from app.ingest.logs.reader import standard_types
+from .reader import standard_types
 
 Storage = Literal["mcap", "sqlite3", "ros1"]
 

@@ -1,13 +1,14 @@
-"""expertloop in a uvicorn subprocess on a free loopback port, for tests and benchmarks.
+"""Test and benchmark helpers: expertloop in a uvicorn subprocess, and a scratch store migrated
+from nothing.
 
-A real server process, as deployed: its own event loop, thread pool and database connections,
-and with `workers` > 1 several processes competing for the same store.
+The subprocess is a real server process, as deployed: its own event loop, thread pool and
+database connections, and with `workers` > 1 several processes competing for the same store.
+It runs the installed `expertloop` (an editable install of the tree under test).
 """
 
 from __future__ import annotations
 
 import os
-import socket
 import subprocess
 import sys
 import time
@@ -17,9 +18,14 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import httpx
+from sqlalchemy import text
 
-# the checkout this module belongs to: the subprocess runs its `app`, not an installed copy
-ROOT = Path(__file__).resolve().parents[2]
+from expertloop.db import make_engine
+from expertloop.demo.local_server import free_port
+from expertloop.migrations_state import upgrade
+
+# the repository root (artifacts of browser tests are written below it)
+ROOT = Path(__file__).resolve().parents[1]
 START_SECONDS = 60
 
 
@@ -27,13 +33,6 @@ START_SECONDS = 60
 class ServerProcess:
     url: str
     pid: int
-
-
-def free_port() -> int:
-    """A port free on 127.0.0.1 right now (the server binds it a moment later)."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
 
 
 @contextmanager
@@ -48,16 +47,15 @@ def server_process(
         **os.environ,
         "EXPERTLOOP_DATABASE_URL": database_url,
         "EXPERTLOOP_DATA_DIR": str(data_dir),
-        "PYTHONPATH": os.pathsep.join(filter(None, [str(ROOT), os.environ.get("PYTHONPATH")])),
     }
     command = [
-        *(sys.executable, "-m", "uvicorn", "app.asgi:app"),
+        *(sys.executable, "-m", "uvicorn", "expertloop.asgi:app"),
         *("--host", "127.0.0.1", "--port", str(port), "--workers", str(workers)),
         *("--log-level", "warning", "--no-access-log"),
     ]
     sink = log_path.open("wb") if log_path is not None else None
     try:
-        process = subprocess.Popen(command, cwd=ROOT, env=env, stdout=sink, stderr=sink)
+        process = subprocess.Popen(command, env=env, stdout=sink, stderr=sink)
         try:
             url = f"http://127.0.0.1:{port}"
             _wait_until_healthy(process, url, log_path)
@@ -93,3 +91,18 @@ def _wait_until_healthy(process: subprocess.Popen[bytes], url: str, log_path: Pa
 
 def _tail(log_path: Path | None) -> str:
     return "" if log_path is None else ": " + log_path.read_text(errors="replace")[-2000:]
+
+
+def upgrade_empty(database_url: str) -> None:
+    """Empty a scratch database and migrate it from nothing (tests, benchmarks).
+
+    PostgreSQL: the public schema is dropped with everything in it and made again. SQLite: the
+    file is taken as it is (callers pass a new one).
+    """
+    if database_url.startswith("postgresql"):
+        engine = make_engine(database_url)
+        with engine.begin() as conn:
+            conn.execute(text("DROP SCHEMA public CASCADE"))
+            conn.execute(text("CREATE SCHEMA public"))
+        engine.dispose()
+    upgrade(database_url)
