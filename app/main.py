@@ -19,6 +19,7 @@ from .config import Settings, get_settings
 from .db import make_engine, make_session_factory, make_writer_session_factory
 from .error_pages import error_response
 from .errors import ExpertloopError
+from .ingest.logs.archive import SPOOL_PREFIX as BAG_SPOOL_PREFIX
 from .ingest.spool import sweep_stale
 from .jobs.runner import JobThread
 from .limits import shown
@@ -95,6 +96,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         sweep_stale(settings.upload_dir)
+        sweep_stale(settings.upload_dir, pattern=f"{BAG_SPOOL_PREFIX}*")
         sweep_stale(settings.snapshot_dir, pattern=f"loop-*/*{SPOOL_SUFFIX}")
         runner = None
         if settings.job_mode == "thread":

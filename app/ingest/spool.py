@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import hashlib
+import os
+import shutil
 import tempfile
 import time
 from collections.abc import AsyncIterator
@@ -11,6 +13,7 @@ from pathlib import Path
 from ..errors import TooLarge
 
 CHUNK_BYTES = 1024 * 1024
+UPLOAD_PREFIX = "upload-"
 
 
 async def spool(chunks: AsyncIterator[bytes], folder: Path, limit: int) -> tuple[Path, str]:
@@ -21,7 +24,7 @@ async def spool(chunks: AsyncIterator[bytes], folder: Path, limit: int) -> tuple
     folder.mkdir(parents=True, exist_ok=True)
     digest = hashlib.sha256()
     size = 0
-    handle = tempfile.NamedTemporaryFile(dir=folder, prefix="upload-", delete=False)
+    handle = tempfile.NamedTemporaryFile(dir=folder, prefix=UPLOAD_PREFIX, delete=False)
     path = Path(handle.name)
     try:
         with handle:
@@ -41,13 +44,15 @@ STALE_SPOOL_SECONDS = 24 * 3600
 
 
 def sweep_stale(
-    folder: Path, *, pattern: str = "upload-*", older_than_s: float = STALE_SPOOL_SECONDS
+    folder: Path, *, pattern: str = f"{UPLOAD_PREFIX}*", older_than_s: float = STALE_SPOOL_SECONDS
 ) -> int:
-    """Delete spooled files (`pattern` under `folder`) left by a process that died while writing
-    them, such as uploads; returns how many.
+    """Delete spooled entries (`pattern` under `folder`) left by a process that died while using
+    them, such as uploads, the links a bag is read through and the folders bags are unpacked
+    into; returns how many.
 
-    Only files untouched for a day go: a file in flight in another process is written
-    continuously, so it is never that old.
+    Only entries untouched for a day go: a file in flight in another process is written
+    continuously, so it is never that old. A link counts by its own time (its target may be
+    gone already), a folder by the newest entry anywhere inside it (unpacking writes inside).
     """
     if not folder.exists():
         return 0
@@ -55,9 +60,26 @@ def sweep_stale(
     removed = 0
     for path in folder.glob(pattern):
         try:
-            if path.stat().st_mtime < cutoff:
+            if _last_touched(path) >= cutoff:
+                continue
+            if path.is_dir() and not path.is_symlink():
+                shutil.rmtree(path)
+            else:
                 path.unlink()
-                removed += 1
+            removed += 1
         except FileNotFoundError:  # another process swept it first
             continue
     return removed
+
+
+def _last_touched(path: Path) -> float:
+    """The newest modification time of a file, a link itself, or a folder and all inside it."""
+    newest = path.lstat().st_mtime
+    if path.is_dir() and not path.is_symlink():
+        for root, dirs, files in os.walk(path):
+            for name in dirs + files:
+                try:
+                    newest = max(newest, os.lstat(os.path.join(root, name)).st_mtime)
+                except FileNotFoundError:
+                    continue
+    return newest

@@ -31,6 +31,9 @@ _MAGIC = ((b"\x89MCAP", "mcap"), (b"#ROSBAG", "ros1-bag"), (b"SQLite format 3\x0
 MAX_MEMBERS = 10_000
 DEFAULT_MAX_UNPACKED_BYTES = 4 * 1024**3
 COPY_CHUNK = 1024 * 1024
+# what a bag is read through in the spool folder (a link or an unpacked folder); servers sweep
+# day-old ones left by a crash (app/ingest/spool.py)
+SPOOL_PREFIX = "bag-"
 
 
 def bag_format(path: Path, filename: str) -> str | None:
@@ -67,7 +70,7 @@ def bag_path(path: Path, file_format: str, spool_dir: Path, max_bytes: int) -> I
         # rosbags picks the storage by suffix; the spooled file has none
         suffix = {"mcap": ".mcap", "ros2-sqlite": ".db3", "ros1-bag": ".bag"}[file_format]
         spool_dir.mkdir(parents=True, exist_ok=True)
-        link = spool_dir / f"bag-{path.name}{suffix}"
+        link = spool_dir / f"{SPOOL_PREFIX}{path.name}{suffix}"
         link.symlink_to(path.resolve())
         try:
             yield link
@@ -75,7 +78,7 @@ def bag_path(path: Path, file_format: str, spool_dir: Path, max_bytes: int) -> I
             link.unlink(missing_ok=True)
         return
     spool_dir.mkdir(parents=True, exist_ok=True)
-    folder = spool_dir / f"bag-{path.name}.d"
+    folder = spool_dir / f"{SPOOL_PREFIX}{path.name}.d"
     folder.mkdir()
     try:
         if file_format == "ros2-zip":
