@@ -136,6 +136,7 @@ def worker() -> None:
     import threading
 
     from .db import make_engine, make_session_factory
+    from .job_handlers import register_job_handlers
     from .jobs.runner import run_until_stopped, worker_name
     from .system.logs import configure_logging
 
@@ -143,6 +144,7 @@ def worker() -> None:
     configure_logging(settings.log_format)
     log = logging.getLogger("expertloop.worker")
     factory = make_session_factory(make_engine(settings.resolved_database_url))
+    register_job_handlers()
     stop = threading.Event()
     for sig in (signal.SIGINT, signal.SIGTERM):
         signal.signal(sig, lambda *_: stop.set())

@@ -21,6 +21,7 @@ from .error_pages import error_response
 from .errors import ExpertloopError
 from .ingest.logs.archive import SPOOL_PREFIX as BAG_SPOOL_PREFIX
 from .ingest.spool import sweep_stale
+from .job_handlers import register_job_handlers
 from .jobs.runner import JobThread
 from .limits import shown
 from .openapi_errors import install as document_errors
@@ -132,6 +133,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     from .auth.router import router as auth_router
     from .ingest.router import router as ingest_router
     from .jobs.router import router as jobs_router
+    from .loops.page import router as home_router
     from .loops.router import router as loops_router
     from .queue.router import router as queue_router
     from .reports.router import router as reports_router
@@ -140,9 +142,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     from .snapshots.router import router as snapshots_router
     from .system.router import router as system_router
 
+    register_job_handlers()
     routers = (
         system_router,
         auth_router,
+        home_router,
         loops_router,
         ingest_router,
         jobs_router,

@@ -40,11 +40,11 @@ sys.path.insert(0, str(ROOT))
 from expertloop.auth import service as auth_service  # noqa: E402
 from expertloop.db import make_engine, make_session_factory  # noqa: E402
 from expertloop.ingest.bulk import STEP_COLUMNS, insert_steps  # noqa: E402
-from expertloop.ingest.encode import rows_to_bytes  # noqa: E402
 from expertloop.ingest.models import Rollout, Upload  # noqa: E402
 from expertloop.loops import service as loops_service  # noqa: E402
 from expertloop.loops.schemas import LoopCreate  # noqa: E402
 from expertloop.queue.models import Label  # noqa: E402
+from expertloop.shared.encode import rows_to_bytes  # noqa: E402
 from expertloop.snapshots.export import PARQUET_COMPRESSION, PARQUET_DICTIONARY_COLUMNS  # noqa: E402
 from tests.serving import server_process, upgrade_empty  # noqa: E402
 

@@ -25,10 +25,10 @@ from sqlalchemy import text
 
 from expertloop.db import make_engine, make_session_factory
 from expertloop.ingest import bulk, service
-from expertloop.ingest.encode import rows_to_bytes
 from expertloop.loops import service as loops_service
 from expertloop.loops.schemas import LoopCreate
 from expertloop.migrations_state import upgrade
+from expertloop.shared.encode import rows_to_bytes
 
 N_FEATURES = 64
 ACTIONS = ["a0", "a1", "a2", "a3"]

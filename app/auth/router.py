@@ -1,4 +1,4 @@
-"""Browser sign-in and sign-out pages, the home page, and who-am-I for API clients."""
+"""Browser sign-in and sign-out pages, and who-am-I for API clients."""
 
 from __future__ import annotations
 
@@ -16,7 +16,6 @@ from ..deps import (
     WriterSessionDep,
 )
 from ..error_pages import safe_next
-from ..loops import service as loops_service
 from ..templating import templates
 from . import security, service
 from .throttle import SignInThrottle
@@ -123,13 +122,6 @@ def logout(request: Request, session: WriterSessionDep, _: ReaderDep) -> Respons
     response = RedirectResponse("/login", status_code=303)
     response.delete_cookie(SESSION_COOKIE, path="/")
     return response
-
-
-@router.get("/", response_class=HTMLResponse)
-def home(request: Request, session: SessionDep, caller: ReaderDep) -> Response:
-    """The list of loops (any signed-in role)."""
-    loops = loops_service.list_loops(session)
-    return templates.TemplateResponse(request, "home.html", {"loops": loops, "caller": caller})
 
 
 @router.get("/api/me")

@@ -19,6 +19,7 @@ from ..config import get_settings
 from ..db import make_engine, make_session_factory
 from ..errors import NotFound
 from ..ingest import service as ingest_service
+from ..job_handlers import register_job_handlers
 from ..jobs import runner
 from ..loops import service as loops_service
 from ..loops.schemas import LoopCreate
@@ -76,6 +77,7 @@ def prepare_demo(*, host: str, port: int) -> str:
                 session, loop=loop, rnd=rnd, budget=DEMO_BUDGET, seed=DEMO_SEED, user_id=None
             )
     # rank now, so the bench has work the moment the server is up
+    register_job_handlers()
     while runner.run_one(factory, settings, "demo-setup"):
         pass
     base = f"http://{host}:{port}"

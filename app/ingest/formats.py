@@ -23,7 +23,7 @@ import pyarrow.parquet as pq
 
 from ..errors import InvalidInput, TooLarge
 from ..limits import shown
-from .contract import FORMATS
+from ..shared.contract import FORMATS
 from .logs.archive import BAG_FORMATS, bag_format
 
 DEFAULT_MAX_ARRAY_BYTES = 1024 * 1024 * 1024

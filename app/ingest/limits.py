@@ -27,8 +27,8 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from ..errors import InvalidInput
 from ..limits import INT32_MAX, KEY_MAX_CHARS, name_problem, shown
+from ..shared.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
 from . import columns as col
-from .contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
 from .images import HEAD_BYTES, image_media_type
 from .scene import geometry_problem
 

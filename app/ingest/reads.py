@@ -12,7 +12,7 @@ from sqlalchemy.orm import Session
 
 from ..errors import NotFound
 from ..loops.models import Loop, Round
-from .encode import FLOAT32_LE
+from ..shared.encode import FLOAT32_LE
 from .models import CONTROL_EXPERT, Rollout, Step
 from .schemas import RolloutRead, StepRead
 from .validate import ActionSpec

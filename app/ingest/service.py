@@ -16,9 +16,9 @@ from ..errors import Conflict
 from ..limits import shown
 from ..loops import service as loops_service
 from ..loops.models import Loop, Round
+from ..shared.encode import rows_to_bytes
 from . import bulk
 from .columns import Vectors
-from .encode import rows_to_bytes
 from .formats import detect_format, read_table
 from .limits import UploadLimits
 from .logs.archive import BAG_FORMATS, DEFAULT_MAX_UNPACKED_BYTES

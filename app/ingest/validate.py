@@ -12,9 +12,9 @@ import pyarrow.compute as pc
 
 from ..errors import InvalidInput
 from ..limits import shown
+from ..shared.contract import CONTROL_VALUES, PROBABILITY_SUM_TOLERANCE, REQUIRED_COLUMNS
 from . import columns as col
 from . import limits as upload_limits
-from .contract import CONTROL_VALUES, PROBABILITY_SUM_TOLERANCE, REQUIRED_COLUMNS
 from .models import CONTROL_EXPERT, CONTROL_LEARNER
 
 NO_ACTION = -1

@@ -80,18 +80,13 @@ def handler(kind: str) -> Callable[[Handler], Handler]:
     return register
 
 
-def load_handlers() -> None:
-    """Import the modules that register handlers."""
-    from ..sampler import jobs as _sampler_jobs  # noqa: F401
-
-
 def worker_name() -> str:
     return f"{socket.gethostname()}:{os.getpid()}:{threading.get_ident()}"
 
 
 def run_one(session_factory: sessionmaker[Session], settings: Settings, worker: str) -> bool:
-    """Claim and run one job; False when there was nothing to do."""
-    load_handlers()
+    """Claim and run one job; False when there was nothing to do. The entry point registers the
+    handlers first (app/job_handlers.py)."""
     with session_factory() as session:
         job = service.claim(session, worker=worker, lease_seconds=settings.job_lease_seconds)
     if job is None:

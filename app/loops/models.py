@@ -24,7 +24,7 @@ class Loop(Base):
     # {"kind": "discrete", "actions": [...]} or {"kind": "continuous", "dimensions": [...]}
     action_space: Mapped[dict[str, Any]] = mapped_column(JSON)
     settings: Mapped[dict[str, Any]] = mapped_column(JSON)
-    # how states are read from robot logs (app/ingest/logs/mapping.py); none: files only
+    # how states are read from robot logs (app/loops/log_mapping.py); none: files only
     log_mapping: Mapped[dict[str, Any] | None] = mapped_column(JSON, nullable=True)
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
     created_by: Mapped[int | None] = mapped_column(ForeignKey("users.id"), nullable=True)

@@ -6,9 +6,9 @@ from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-from ..ingest.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
-from ..ingest.logs.mapping import LogMapping, check_against_loop
 from ..limits import PlainText, RequestBody, UtcDatetime
+from ..shared.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
+from .log_mapping import LogMapping, check_against_loop
 
 NAME_PATTERN = r"^[a-z][a-z0-9_]{0,62}$"
 SLUG_PATTERN = r"^[a-z0-9][a-z0-9-]{1,62}$"

@@ -10,9 +10,9 @@ from typing import Any
 import numpy as np
 
 from ..errors import InvalidInput
-from ..ingest.encode import FLOAT32_LE
 from ..ingest.validate import ActionSpec
 from ..loops.schemas import LoopSettings
+from ..shared.encode import FLOAT32_LE
 from .models import ANSWER_ACTION, ANSWER_UNSURE, Label
 
 # Room is left in the 64-character column for the ".N" suffix of span labels.

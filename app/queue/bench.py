@@ -9,11 +9,11 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from ..ingest import reads
-from ..ingest.encode import FLOAT32_LE
 from ..ingest.schemas import StepRead
 from ..loops.models import Loop
 from ..loops.schemas import LoopSettings
-from .current import is_current
+from ..shared.current import is_current
+from ..shared.encode import FLOAT32_LE
 from .models import ANSWER_ACTION, Label
 from .schemas import BenchItem, BenchStep
 from .service import Claim, loop_settings

@@ -30,8 +30,8 @@ from ..errors import Conflict, InvalidInput
 from ..ingest.models import Step
 from ..ingest.validate import ActionSpec
 from ..loops.models import Loop
+from ..shared.current import is_current
 from .answers import check_answer, check_request
-from .current import is_current
 from .models import ITEM_DONE, ITEM_OPEN, Label, Lease
 from .models import QueueItem as Item
 from .rules import lock_item, loop_settings

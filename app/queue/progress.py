@@ -15,8 +15,8 @@ from sqlalchemy import case, func, select
 from sqlalchemy.orm import Session
 
 from ..loops.models import Loop, Round
-from ..reports.pace import labels_per_hour
-from .current import is_current
+from ..shared.current import is_current
+from ..shared.pace import labels_per_hour
 from .models import (
     ANSWER_UNDONE,
     ANSWER_UNSURE,

@@ -10,11 +10,11 @@ from ..deps import AdminDep, AnnotatorDep, SessionDep
 from ..limits import RoundNumber, RowId
 from ..loops import service as loops_service
 from ..models import utcnow
-from ..system.metrics import CLAIM_SECONDS
 from ..templating import templates
 from . import service
 from .answers import stored_action
 from .bench import bench_item
+from .metrics import CLAIM_SECONDS
 from .schemas import (
     ClaimRead,
     LabelCreate,

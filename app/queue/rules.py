@@ -30,7 +30,7 @@ from ..db import is_postgresql
 from ..errors import NotFound
 from ..loops.models import Loop, Round
 from ..loops.schemas import LoopSettings
-from .current import is_current
+from ..shared.current import is_current
 from .models import ITEM_OPEN, Label, Lease, QueueItem, Skip
 
 

@@ -27,7 +27,7 @@ from ..errors import Conflict, InvalidInput
 from ..ingest.models import Step
 from ..loops.models import Loop, Round
 from ..sampler.models import SelectedState, Selection
-from .current import is_current
+from ..shared.current import is_current
 from .labels import Submitted, submit
 from .models import ITEM_OPEN, Label, Lease, QueueItem, Skip
 from .progress import Progress, RoundQueue, progress, round_queue
@@ -89,6 +89,13 @@ def enqueue_selection(session: Session, *, rnd: Round, selection: Selection, loo
         selected_ids=[r.id for r in rows],
         rng=np.random.default_rng(selection.seed),
     )
+
+
+def replace_round_queue(session: Session, loop: Loop, rnd: Round, selection: Selection) -> int:
+    """The round's queue becomes the selection's states (the ranking job calls this in its
+    transaction, after storing the selection); returns how many items were queued."""
+    session.execute(delete(QueueItem).where(QueueItem.round_id == rnd.id))
+    return enqueue_selection(session, rnd=rnd, selection=selection, loop=loop)
 
 
 def enqueue_steps(

@@ -9,9 +9,9 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from ..shared.pace import labels_per_hour
 from . import agreement, rates
 from .compute import ActionKind, LabelArrays, json_number, present
-from .pace import labels_per_hour
 from .schemas import (
     AgreementRead,
     AlphaRead,

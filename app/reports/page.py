@@ -13,7 +13,7 @@ from markupsafe import Markup
 
 from ..loops.models import Loop
 from ..sampler.tuning import SIGNALS
-from ..snapshots.training_set import continuous_tolerance
+from ..shared.training_set import continuous_tolerance
 from . import charts
 from .schemas import RateRead, RoundReport
 from .table import loop_table

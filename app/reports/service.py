@@ -32,15 +32,15 @@ from sqlalchemy import and_, func, select
 from sqlalchemy.orm import Session, aliased
 
 from ..auth.models import User
-from ..ingest.encode import FLOAT32_LE, stored_actions
 from ..ingest.models import CONTROL_LEARNER, Rollout, Step
 from ..loops import service as loops_service
 from ..loops.models import Loop, Round
-from ..queue.current import is_current
 from ..queue.models import ANSWER_UNSURE, Label
 from ..sampler import history, tuning
 from ..sampler.models import REASON_AUDIT, SelectedState, Selection
-from ..snapshots import training_set as ts
+from ..shared import training_set as ts
+from ..shared.current import is_current
+from ..shared.encode import FLOAT32_LE, stored_actions
 from . import annotators, compute, rates
 from .schemas import CountsRead, RoundReport, SelfTuningRead
 

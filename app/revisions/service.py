@@ -23,10 +23,10 @@ from ..ingest import reads
 from ..ingest.validate import ActionSpec
 from ..loops.models import Loop, Round
 from ..queue.answers import check_answer, check_request
-from ..queue.current import is_current
 from ..queue.models import ANSWER_UNDONE, ITEM_DONE, ITEM_OPEN, Label
 from ..queue.models import QueueItem as Item
 from ..queue.rules import lock_item, loop_settings, rounds_of
+from ..shared.current import is_current
 from ..snapshots.models import Snapshot
 
 RECENT = 20

@@ -8,9 +8,9 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from ..ingest.encode import FLOAT32_LE, nullable_rows
 from ..ingest.models import CONTROL_EXPERT, Step
 from ..loops.models import Loop, Round
+from ..shared.encode import FLOAT32_LE, nullable_rows
 
 FETCH_ROWS = 50_000
 

@@ -12,10 +12,10 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from ..ingest.encode import stored_actions
 from ..ingest.models import Step
 from ..loops.models import Loop, Round
-from ..snapshots import training_set as ts
+from ..shared import training_set as ts
+from ..shared.encode import stored_actions
 from . import service
 from .models import REASON_AUDIT, SelectedState, Selection
 from .rank import NEUTRAL_PERCENTILE

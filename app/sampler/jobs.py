@@ -1,4 +1,4 @@
-"""The ranking job: load the round and the training set, rank, store the selection and queue."""
+"""The ranking job: load the round and the training set, rank, store the selection, queue it."""
 
 from __future__ import annotations
 
@@ -8,10 +8,10 @@ import numpy as np
 from sqlalchemy.orm import Session
 
 from ..errors import NotFound
-from ..jobs.runner import JobContext, handler
+from ..jobs.runner import JobContext
 from ..loops.models import Loop, Round
-from ..snapshots import training_set
-from ..snapshots.training_set import Cutoff
+from ..shared import training_set
+from ..shared.training_set import Cutoff
 from . import history, service, tuning
 from .candidates import load_round_steps
 from .rank import RankParams, rank_round
@@ -56,9 +56,12 @@ def tune(
     }
 
 
-@handler(service.RANK_JOB)
-def rank_job(ctx: JobContext) -> dict[str, Any]:
-    """Deterministic given the recorded params: a rerun after a crash gives the same selection."""
+def rank_job(ctx: JobContext, *, fill_queue: service.FillQueue) -> dict[str, Any]:
+    """Deterministic given the recorded params: a rerun after a crash gives the same selection.
+
+    `fill_queue` replaces the round's labelling queue with the selection, in the same
+    transaction (the queue stage supplies it; app/job_handlers.py puts the two together).
+    """
     params = RankParams(**ctx.job.params)
     with ctx.session_factory() as session:
         rnd = session.get(Round, ctx.job.round_id)
@@ -101,6 +104,7 @@ def rank_job(ctx: JobContext) -> dict[str, Any]:
             n_training=len(training),
             user_id=ctx.job.created_by,
             tuning=tuning_record,
+            fill_queue=fill_queue,
         )
         return {
             "selection_id": selection.id,

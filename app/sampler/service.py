@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import io
 import secrets
+from collections.abc import Callable
 from dataclasses import asdict
 from typing import Any
 
@@ -17,13 +18,16 @@ from ..ingest.models import Rollout, Step
 from ..jobs import service as jobs_service
 from ..jobs.models import Job
 from ..loops.models import Loop, Round
-from ..queue import service as queue_service
-from ..queue.models import Label, QueueItem
-from ..snapshots import training_set
+from ..queue.models import Label
+from ..shared import training_set
 from .models import SelectedState, Selection
 from .rank import AUTO_METHOD, Ranking, RankParams
 
 RANK_JOB = "rank"
+
+# Replaces a round's labelling queue with a stored selection, inside the caller's transaction
+# (supplied by the queue stage, which comes after the sampler in the data flow).
+FillQueue = Callable[[Session, Loop, Round, Selection], object]
 
 
 def rank_params(
@@ -115,6 +119,7 @@ def store_ranking(
     ranking: Ranking,
     n_training: int,
     user_id: int | None,
+    fill_queue: FillQueue,
     tuning: dict[str, Any] | None = None,
 ) -> Selection:
     """Replace the round's selection and queue with this ranking, in one transaction."""
@@ -122,7 +127,6 @@ def store_ranking(
     with write_transaction(session):
         if _round_has_labels(session, rnd):
             raise Conflict(f"round {rnd.number} already has labels; its queue is kept as it is")
-        session.execute(delete(QueueItem).where(QueueItem.round_id == rnd.id))
         session.execute(delete(Selection).where(Selection.round_id == rnd.id))
         selection = Selection(
             round_id=rnd.id,
@@ -172,7 +176,7 @@ def store_ranking(
         ]
         if rows:
             session.execute(insert(SelectedState), rows)
-        queue_service.enqueue_selection(session, rnd=rnd, selection=selection, loop=loop)
+        fill_queue(session, loop, rnd, selection)
     return selection
 
 

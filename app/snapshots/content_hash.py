@@ -34,7 +34,7 @@ import struct
 
 import numpy as np
 
-from .batches import RowBatch
+from ..shared.row_batches import RowBatch
 
 HASH_SCHEME = "expertloop-rows-1"
 _COLUMNS = (

@@ -47,8 +47,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from .batches import RowBatch
-from .training_set import SOURCES
+from ..shared.row_batches import RowBatch
+from ..shared.training_set import SOURCES
 
 EXPORT_FORMATS = ("parquet", "npz", "jsonl")
 MEDIA_TYPES = {

@@ -27,9 +27,9 @@ from ..loops import service as loops_service
 from ..loops.models import Loop, Round
 from ..models import utcnow
 from ..safety import SAFETY_CAUTION
+from ..shared import training_set as ts
+from ..shared.row_batches import RowBatch, rows_not_in
 from . import export, files
-from . import training_set as ts
-from .batches import RowBatch, rows_not_in
 from .content_hash import HASH_SCHEME, ContentHasher
 from .models import Snapshot
 

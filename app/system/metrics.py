@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 
-from prometheus_client import CollectorRegistry, Histogram, generate_latest
+from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 from sqlalchemy import Engine, func, select
@@ -14,14 +14,8 @@ from sqlalchemy.orm import Session
 from ..ingest.models import Step
 from ..jobs.models import Job
 from ..loops.models import Loop, Round
+from ..queue.metrics import CLAIM_SECONDS
 from ..queue.models import ANSWER_UNDONE, ITEM_OPEN, Label, QueueItem
-
-CLAIM_SECONDS = Histogram(
-    "expertloop_claim_seconds",
-    "Time to claim the next queue item, as served by this process.",
-    buckets=(0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.25, 0.5, 1.0),
-    registry=None,
-)
 
 
 class StoreCollector(Collector):

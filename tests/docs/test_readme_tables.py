@@ -18,8 +18,8 @@ from typer.main import get_command
 from expertloop import db
 from expertloop.cli import NEW_PASSWORD_ENV, cli
 from expertloop.config import Settings
-from expertloop.ingest.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
 from expertloop.loops.schemas import LoopSettings
+from expertloop.shared.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
 from tests.docs.readme import README, Table, tables_with_header, unquote
 
 NO_DEFAULT = "—"

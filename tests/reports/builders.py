@@ -11,11 +11,11 @@ import numpy as np
 from sqlalchemy import select
 
 from expertloop.auth.models import User
-from expertloop.ingest.encode import FLOAT32_LE
 from expertloop.ingest.models import Rollout, Step
 from expertloop.loops import service as loops_service
 from expertloop.queue.models import ANSWER_ACTION, ANSWER_UNSURE, ITEM_DONE, Label, QueueItem
 from expertloop.sampler.models import REASON_AUDIT, REASON_RANKED, SelectedState, Selection
+from expertloop.shared.encode import FLOAT32_LE
 from tests.helpers import parquet_bytes
 
 T0 = datetime(2026, 3, 2, 8, 0, tzinfo=UTC)

@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from expertloop.snapshots.batches import RowBatch, concat, merge_sorted, rows_not_in
+from expertloop.shared.row_batches import RowBatch, concat, merge_sorted, rows_not_in
 from expertloop.snapshots.content_hash import ContentHasher
 from tests.snapshots.reference import SOURCE_CODES, as_tuples, reference_hash
 

@@ -13,7 +13,7 @@ import hashlib
 
 import numpy as np
 
-from expertloop.snapshots.batches import RowBatch
+from expertloop.shared.row_batches import RowBatch
 from expertloop.snapshots.content_hash import HASH_SCHEME, ContentHasher
 
 # Three rows of a discrete loop with two features and three actions, in step-id order:

@@ -24,7 +24,7 @@ from typer.testing import CliRunner
 import expertloop.client as client_module
 from expertloop.cli import cli
 from expertloop.client import ApiError, Client
-from expertloop.snapshots import training_set as ts
+from expertloop.shared import training_set as ts
 from expertloop.snapshots.service import SnapshotChanged
 from tests.snapshots.conftest import (
     BASE,

@@ -8,7 +8,7 @@ from sqlalchemy import select
 from expertloop.ingest.models import Step
 from expertloop.loops import service as loops_service
 from expertloop.queue.models import ANSWER_ACTION, ANSWER_UNSURE, Label
-from expertloop.snapshots import training_set as ts
+from expertloop.shared import training_set as ts
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
 
 

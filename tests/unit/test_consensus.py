@@ -5,7 +5,7 @@ import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 from scipy.stats import median_abs_deviation
 
-from expertloop.snapshots.consensus import continuous_consensus, discrete_consensus
+from expertloop.shared.consensus import continuous_consensus, discrete_consensus
 
 
 def test_majority_tie_unsure_and_empty_states_by_hand() -> None:

@@ -3,7 +3,7 @@
 import numpy as np
 from numpy.testing import assert_array_equal
 
-from expertloop.ingest.encode import nullable_rows, rows_to_bytes, stored_actions
+from expertloop.shared.encode import nullable_rows, rows_to_bytes, stored_actions
 
 
 def test_nullable_rows_round_trips_and_fills_the_gaps():

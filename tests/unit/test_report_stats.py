@@ -21,7 +21,6 @@ from expertloop.reports.agreement import (
     fleiss_kappa,
     krippendorff_alpha,
 )
-from expertloop.reports.pace import labels_per_hour
 from expertloop.reports.rates import (
     MIN_AUDIT_LABELS,
     audit_sufficient,
@@ -39,6 +38,7 @@ from expertloop.reports.shift import (
     rbf_kernel_matrix,
     standardised_mean_difference,
 )
+from expertloop.shared.pace import labels_per_hour
 
 # --- Wilson interval -------------------------------------------------------------------------
 

@@ -10,9 +10,9 @@ from typing import Any
 import numpy as np
 
 from ...errors import ExpertloopError
+from ...loops.log_mapping import LogMapping
 from ..validate import ActionSpec
 from .archive import DEFAULT_MAX_UNPACKED_BYTES, bag_format, bag_path, log_stem
-from .mapping import LogMapping
 from .reader import NS, open_bag
 from .service import check_mapped, default_control
 from .steps import map_log

@@ -23,8 +23,8 @@ from rosbags.typesys import Stores, get_types_from_msg, get_typestore
 from rosbags.typesys.store import Typestore
 
 from ...errors import ExpertloopError, InvalidInput
+from ...loops.log_mapping import FieldSource, LogMapping, SceneSource
 from . import fieldpath
-from .mapping import FieldSource, LogMapping, SceneSource
 
 # Our own scene message, documented in the README ("Robot logs"): a bag may carry it with its
 # definition, or without one (then this definition decodes it).

@@ -7,11 +7,11 @@ from pathlib import Path
 from typing import Any
 
 from ...errors import InvalidInput
+from ...loops.log_mapping import LogMapping
 from ..columns import CellError
 from ..limits import UploadLimits
 from ..validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
 from .archive import bag_path, log_stem
-from .mapping import LogMapping
 from .reader import describe_time, open_bag
 from .steps import MappedLog, map_log
 

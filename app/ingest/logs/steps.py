@@ -14,14 +14,14 @@ import numpy as np
 import pyarrow as pa
 
 from ...errors import InvalidInput
-from . import resample
-from .images import frame_bytes
-from .mapping import (
+from ...loops.log_mapping import (
     ContinuousActionSource,
     DiscreteActionSource,
     FieldSource,
     LogMapping,
 )
+from . import resample
+from .images import frame_bytes
 from .reader import NS, Bag, TopicSeries, describe_time
 
 MAX_STEPS = 20_000_000  # a bag mapped to more steps than this is refused (bounded memory)

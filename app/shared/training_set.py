@@ -14,13 +14,14 @@ import numpy as np
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from ..ingest.encode import stored_actions
 from ..ingest.models import Step
 from ..loops.models import Loop, Round
-from ..queue.current import is_current
 from ..queue.models import ANSWER_UNSURE, Label
-from . import rows
-from .batches import (
+from . import training_rows as rows
+from .consensus import continuous_consensus, discrete_consensus
+from .current import is_current
+from .encode import stored_actions
+from .row_batches import (
     SOURCE_DEMONSTRATION,
     SOURCE_RELABEL,
     SOURCE_TAKEOVER,
@@ -29,7 +30,6 @@ from .batches import (
     concat,
     merge_sorted,
 )
-from .consensus import continuous_consensus, discrete_consensus
 
 __all__ = [
     "SOURCES",

@@ -19,10 +19,10 @@ import numpy as np
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from ..ingest.encode import FLOAT32_LE
 from ..ingest.models import CONTROL_EXPERT, Rollout, Step
 from ..loops.models import Round
-from .batches import SOURCES, RowBatch, merge_sorted
+from .encode import FLOAT32_LE
+from .row_batches import SOURCES, RowBatch, merge_sorted
 
 
 @dataclass(frozen=True)

@@ -13,7 +13,7 @@ from typing import Any
 from sqlalchemy import ColumnElement, and_, or_, select
 from sqlalchemy.orm import aliased
 
-from .models import ANSWER_UNDONE, Label
+from ..queue.models import ANSWER_UNDONE, Label
 
 
 def is_current(max_label_id: Any = None) -> ColumnElement[bool]:
