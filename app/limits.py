@@ -91,7 +91,7 @@ class RequestBody(BaseModel):
 
 
 def _as_utc(moment: datetime) -> datetime:
-    # SQLite hands stored timestamps back without a zone; everything we store is UTC.
+    # a timestamp in an answer always carries its zone (stored ones are UTC already)
     return moment if moment.tzinfo else moment.replace(tzinfo=UTC)
 
 

@@ -4,8 +4,9 @@ from __future__ import annotations
 
 from datetime import UTC, datetime
 
-from sqlalchemy import MetaData
+from sqlalchemy import DateTime, Dialect, MetaData
 from sqlalchemy.orm import DeclarativeBase
+from sqlalchemy.types import TypeDecorator
 
 NAMING_CONVENTION = {
     "ix": "ix_%(column_0_label)s",
@@ -20,6 +21,28 @@ class Base(DeclarativeBase):
     """Base of every table; one MetaData with a naming convention for stable migrations."""
 
     metadata = MetaData(naming_convention=NAMING_CONVENTION)
+
+
+class UTCDateTime(TypeDecorator[datetime]):
+    """A timestamp that is timezone-aware UTC on both backends, written and read.
+
+    PostgreSQL keeps the zone (timestamptz); SQLite stores text without one and hands values back
+    naive. Values are converted to UTC on the way in (a naive value counts as UTC, the only
+    clock the store uses) and come back with UTC attached, so no reader needs its own fix.
+    """
+
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: datetime | None, dialect: Dialect) -> datetime | None:
+        if value is None:
+            return None
+        return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
+
+    def process_result_value(self, value: datetime | None, dialect: Dialect) -> datetime | None:
+        if value is None:
+            return None
+        return value.replace(tzinfo=UTC) if value.tzinfo is None else value.astimezone(UTC)
 
 
 def utcnow() -> datetime:

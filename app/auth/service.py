@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import datetime, timedelta
+from datetime import timedelta
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
@@ -18,11 +18,6 @@ ROLES = ("admin", "uploader", "annotator", "trainer")
 USER_NAME_MAX_CHARS = 100
 # Longer passwords are refused as wrong, after the same work as any other wrong one.
 PASSWORD_MAX_CHARS = 1024
-
-
-def _aware(moment: datetime) -> datetime:
-    # SQLite hands timestamps back without a zone; everything we store is UTC.
-    return moment if moment.tzinfo else moment.replace(tzinfo=utcnow().tzinfo)
 
 
 def create_user(
@@ -146,7 +141,7 @@ def browser_session(session: Session, *, session_id: str) -> tuple[User, Browser
     if row is None:
         return None
     user, live = row
-    if live.ended_at is not None or _aware(live.expires_at) <= utcnow() or not user.active:
+    if live.ended_at is not None or live.expires_at <= utcnow() or not user.active:
         return None
     return user, live
 

@@ -6,7 +6,6 @@ from datetime import datetime
 
 from sqlalchemy import (
     BigInteger,
-    DateTime,
     Float,
     ForeignKey,
     Index,
@@ -19,7 +18,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
-from ..models import Base, utcnow
+from ..models import Base, UTCDateTime, utcnow
 
 CONTROL_LEARNER = 0
 CONTROL_EXPERT = 1
@@ -38,7 +37,7 @@ class Upload(Base):
     file_format: Mapped[str] = mapped_column(String(16))
     n_rollouts: Mapped[int] = mapped_column(Integer)
     n_steps: Mapped[int] = mapped_column(Integer)
-    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
     uploaded_by: Mapped[int | None] = mapped_column(ForeignKey("users.id"), nullable=True)
 
 
@@ -57,7 +56,7 @@ class Rollout(Base):
     n_steps: Mapped[int] = mapped_column(Integer)
     # hash of the rollout's canonical content: a key reused with other content is refused
     content_sha256: Mapped[str] = mapped_column(String(64))
-    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
     uploaded_by: Mapped[int | None] = mapped_column(ForeignKey("users.id"), nullable=True)
 
 

@@ -5,10 +5,10 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import JSON, DateTime, ForeignKey, Integer, String, UniqueConstraint
+from sqlalchemy import JSON, ForeignKey, Integer, String, UniqueConstraint
 from sqlalchemy.orm import Mapped, mapped_column
 
-from ..models import Base, utcnow
+from ..models import Base, UTCDateTime, utcnow
 
 
 class Loop(Base):
@@ -26,7 +26,7 @@ class Loop(Base):
     settings: Mapped[dict[str, Any]] = mapped_column(JSON)
     # how states are read from robot logs (app/loops/log_mapping.py); none: files only
     log_mapping: Mapped[dict[str, Any] | None] = mapped_column(JSON, nullable=True)
-    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
     created_by: Mapped[int | None] = mapped_column(ForeignKey("users.id"), nullable=True)
 
 
@@ -41,6 +41,6 @@ class Round(Base):
     number: Mapped[int] = mapped_column(Integer)
     learner_version: Mapped[str | None] = mapped_column(String(200), nullable=True)
     status: Mapped[str] = mapped_column(String(16), default="open")  # open | closed
-    opened_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
-    closed_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True), nullable=True)
+    opened_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    closed_at: Mapped[datetime | None] = mapped_column(UTCDateTime, nullable=True)
     opened_by: Mapped[int | None] = mapped_column(ForeignKey("users.id"), nullable=True)

@@ -7,7 +7,6 @@ from datetime import datetime
 from sqlalchemy import (
     BigInteger,
     Boolean,
-    DateTime,
     Float,
     ForeignKey,
     Index,
@@ -18,7 +17,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
-from ..models import Base, utcnow
+from ..models import Base, UTCDateTime, utcnow
 
 ITEM_OPEN = "open"
 ITEM_DONE = "done"
@@ -49,7 +48,7 @@ class QueueItem(Base):
     # whether the bench shows the learner's action on this item (decided once, recorded)
     show_learner: Mapped[bool] = mapped_column(Boolean, default=False)
     status: Mapped[str] = mapped_column(String(8), default=ITEM_OPEN)
-    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
 
 
 class Lease(Base):
@@ -61,8 +60,8 @@ class Lease(Base):
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     item_id: Mapped[int] = mapped_column(ForeignKey("queue_items.id", ondelete="CASCADE"))
     user_id: Mapped[int] = mapped_column(ForeignKey("users.id", ondelete="CASCADE"), index=True)
-    expires_at: Mapped[datetime] = mapped_column(DateTime(timezone=True))
-    claimed_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    expires_at: Mapped[datetime] = mapped_column(UTCDateTime)
+    claimed_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
 
 
 class Skip(Base):
@@ -74,7 +73,7 @@ class Skip(Base):
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     item_id: Mapped[int] = mapped_column(ForeignKey("queue_items.id", ondelete="CASCADE"))
     user_id: Mapped[int] = mapped_column(ForeignKey("users.id", ondelete="CASCADE"))
-    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
 
 
 class Label(Base):
@@ -108,7 +107,7 @@ class Label(Base):
         ForeignKey("labels.id", ondelete="CASCADE"), nullable=True
     )
     seconds_spent: Mapped[float | None] = mapped_column(Float, nullable=True)
-    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
     # labels are never changed: a change or an undo is a new row naming the label it replaces,
     # so a version pinned below the new row's id keeps the old answer
     supersedes_id: Mapped[int | None] = mapped_column(

@@ -67,11 +67,6 @@ class RoundQueue:
     undone: int
 
 
-def _aware(moment: datetime) -> datetime:
-    # SQLite hands timestamps back without a zone; everything we store is UTC.
-    return moment if moment.tzinfo else moment.replace(tzinfo=UTC)
-
-
 def progress(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Progress:
     """Labelled today (UTC day), left in the queue, and the expected time left at today's pace."""
     day_start = now.astimezone(UTC).replace(hour=0, minute=0, second=0, microsecond=0)
@@ -98,7 +93,7 @@ def progress(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Pr
     )
     seconds_per_label = None
     if len(times) >= 2:
-        pace = labels_per_hour(np.array([_aware(t).timestamp() for t in times]))
+        pace = labels_per_hour(np.array([t.timestamp() for t in times]))
         if math.isfinite(pace.labels_per_hour) and pace.labels_per_hour > 0:
             seconds_per_label = 3600.0 / pace.labels_per_hour
     left_for_you = int(left or 0)

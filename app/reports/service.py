@@ -24,7 +24,6 @@ import hashlib
 import json
 import threading
 from collections import OrderedDict
-from datetime import UTC, datetime
 from typing import Any
 
 import numpy as np
@@ -125,11 +124,6 @@ def _subsample(ids: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     if len(ids) <= MAX_SHIFT_SAMPLES:
         return ids
     return np.sort(rng.choice(ids, MAX_SHIFT_SAMPLES, replace=False))
-
-
-def _seconds(moment: datetime) -> float:
-    # SQLite hands back naive datetimes; the store only writes UTC
-    return (moment if moment.tzinfo else moment.replace(tzinfo=UTC)).timestamp()
 
 
 def _counts(session: Session, rnd: Round) -> dict[str, int]:
@@ -274,7 +268,7 @@ def _labels(
         annotator=np.array([r[1] for r in rows], dtype=np.int64),
         state=state_index.astype(np.int64).reshape(-1),
         action=action,
-        created_s=np.array([_seconds(r[6]) for r in rows], dtype=np.float64),
+        created_s=np.array([r[6].timestamp() for r in rows], dtype=np.float64),
         learner_shown=np.array([bool(r[5]) for r in rows], dtype=bool),
         learner_action=learner[state_index.reshape(-1)] if len(rows) else learner,
         consensus=_expert(found, states, kind),

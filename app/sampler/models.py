@@ -8,7 +8,6 @@ from typing import Any
 from sqlalchemy import (
     JSON,
     BigInteger,
-    DateTime,
     Float,
     ForeignKey,
     Integer,
@@ -18,7 +17,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
-from ..models import Base, utcnow
+from ..models import Base, UTCDateTime, utcnow
 
 REASON_RANKED = "ranked"
 REASON_AUDIT = "audit"
@@ -40,7 +39,7 @@ class Selection(Base):
     n_training: Mapped[int] = mapped_column(Integer)
     # .npz bytes: step_id, uncertainty, novelty, percentiles, boost, score for every candidate
     candidate_scores: Mapped[bytes | None] = mapped_column(LargeBinary, nullable=True)
-    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
     created_by: Mapped[int | None] = mapped_column(ForeignKey("users.id"), nullable=True)
 
 
