@@ -19,6 +19,7 @@ from typing import Any
 import numpy as np
 import numpy.lib.format as npformat
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from ..errors import InvalidInput, TooLarge
@@ -99,16 +100,55 @@ def _read_parquet(path: Path, max_array_bytes: int) -> pa.Table:
         declared = _declared_parquet_bytes(metadata)
         if declared > max_array_bytes:
             raise _too_large("the Parquet file", declared, max_array_bytes)
+        # Dictionary-encoded text declares only its dictionary and indices: one long value
+        # repeated a million times is small on disk and huge once decoded. Text columns are
+        # therefore read as dictionaries, their decoded size counted, and only then decoded.
+        text = [f.name for f in parquet.schema_arrow if _is_text(f.type)]
+        parquet = pq.ParquetFile(path, memory_map=True, read_dictionary=text)
         groups, read_bytes = [], 0
         for i in range(metadata.num_row_groups):
-            # Dictionary-encoded text can decode to far more than declared: count as we go.
-            groups.append(parquet.read_row_group(i))
-            read_bytes += groups[-1].nbytes
+            group = parquet.read_row_group(i)
+            read_bytes += _decoded_bytes(group)
             if read_bytes > max_array_bytes:
                 raise _too_large("the Parquet file", read_bytes, max_array_bytes)
+            groups.append(_decode_dictionaries(group))
         return pa.concat_tables(groups) if groups else parquet.schema_arrow.empty_table()
     except (pa.ArrowException, OSError) as exc:
         raise InvalidInput("not a readable Parquet file (truncated or damaged?)") from exc
+
+
+def _is_text(kind: pa.DataType) -> bool:
+    return bool(
+        pa.types.is_string(kind)
+        or pa.types.is_large_string(kind)
+        or pa.types.is_binary(kind)
+        or pa.types.is_large_binary(kind)
+    )
+
+
+def _decoded_bytes(group: pa.Table) -> int:
+    """Bytes the row group takes once its dictionary columns are decoded (others as they are)."""
+    total = 0
+    for column in group.columns:
+        if not pa.types.is_dictionary(column.type):
+            total += column.nbytes
+            continue
+        for chunk in column.chunks:
+            lengths = pc.binary_length(chunk.dictionary).to_numpy(zero_copy_only=False)
+            indices = chunk.indices.fill_null(0).to_numpy(zero_copy_only=False)
+            # each value's bytes plus its 4-byte offset, as the decoded array holds them
+            total += (
+                int(lengths[indices].sum()) + 4 * len(chunk) if len(lengths) else 4 * len(chunk)
+            )
+    return total
+
+
+def _decode_dictionaries(group: pa.Table) -> pa.Table:
+    columns = [
+        pc.cast(column, column.type.value_type) if pa.types.is_dictionary(column.type) else column
+        for column in group.columns
+    ]
+    return pa.Table.from_arrays(columns, names=group.column_names)
 
 
 # Bytes per value once decoded, by Parquet physical type; text counts its 4-byte offset at least.

@@ -7,8 +7,13 @@ from __future__ import annotations
 
 import io
 import struct
+import subprocess
+import sys
 import tracemalloc
 import zipfile
+
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from tests.hostile.conftest import row_counts
 
@@ -45,5 +50,74 @@ def test_a_decompression_bomb_is_refused_in_bounded_memory(client, loops, upload
     assert "would expand to 400000000 bytes" in response.json()["detail"]
     print(f"peak traced memory while refusing a {len(data)}-byte .npz bomb: {peak} bytes")
     assert peak < PEAK_BOUND_BYTES, peak
+    assert row_counts(engine) == before
+    assert client.get("/healthz").status_code == 200
+
+
+# A Parquet file whose text column is dictionary-encoded: one 64 KiB value repeated 20,000 times
+# in one row group. On disk about 100 KB; decoded, 1.3 GB.
+REPEATS = 20_000
+VALUE_BYTES = 64 * 1024
+
+
+def dictionary_bomb() -> bytes:
+    table = pa.table(
+        {
+            "rollout": pa.array(["r"] * REPEATS),
+            "step": pa.array(range(REPEATS), pa.int64()),
+            "time_s": pa.array([0.1 * i for i in range(REPEATS)]),
+            "robot": pa.DictionaryArray.from_arrays(
+                pa.array([0] * REPEATS, pa.int32()), pa.array(["x" * VALUE_BYTES])
+            ),
+        }
+    )
+    sink = io.BytesIO()
+    # no Arrow schema in the file (as other writers make it): readers decode the text densely
+    pq.write_table(table, sink, row_group_size=REPEATS, compression="zstd", store_schema=False)
+    return sink.getvalue()
+
+
+READ_IN_A_FRESH_PROCESS = """
+import resource, sys
+from pathlib import Path
+from expertloop.errors import TooLarge
+from expertloop.ingest.formats import read_table
+before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+try:
+    read_table(Path(sys.argv[1]), "parquet", max_array_bytes=256 * 1024 * 1024)
+    print("accepted")
+except TooLarge as exc:
+    print("refused:", exc)
+print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss - before)
+"""
+GROWTH_BOUND_KIB = 200 * 1024
+
+
+def test_a_dictionary_encoded_bomb_is_refused_before_it_is_decoded(tmp_path):
+    path = tmp_path / "bomb.parquet"
+    path.write_bytes(dictionary_bomb())
+    assert path.stat().st_size < 1_000_000
+    done = subprocess.run(
+        [sys.executable, "-c", READ_IN_A_FRESH_PROCESS, str(path)],
+        capture_output=True,
+        text=True,
+        check=True,
+        timeout=300,
+    )
+    verdict, growth_kib = done.stdout.strip().splitlines()
+    print(f"{verdict}; peak RSS grew by {growth_kib} KiB")
+    assert verdict.startswith("refused: the Parquet file would expand to")
+    assert int(growth_kib) < GROWTH_BOUND_KIB
+
+
+def test_the_dictionary_bomb_gets_413_over_http_and_leaves_the_store(
+    client, loops, uploader, engine
+):
+    before = row_counts(engine)
+    response = client.post(
+        URL, files={"file": ("bomb.parquet", dictionary_bomb())}, headers=uploader
+    )
+    assert response.status_code == 413, response.text
+    assert "would expand to" in response.json()["detail"]
     assert row_counts(engine) == before
     assert client.get("/healthz").status_code == 200
