@@ -176,6 +176,7 @@ def loops_create(spec_file: Path) -> None:
         return
     with _session() as session:
         loop = service.create_loop(session, spec=spec, user_id=None)
+        session.commit()
         typer.echo(f"created loop '{loop.slug}' with round 0 open for demonstrations")
 
 

@@ -52,13 +52,19 @@ def get_app_settings(request: Request) -> Settings:
 
 
 def get_writer_session(request: Request) -> Iterator[Session]:
-    """A session whose transactions take SQLite's write lock at BEGIN: for routes whose service
-    reads and then writes in one transaction (see app.db.make_writer_session_factory)."""
-    yield from _session_for_request(request.app.state.writer_session_factory)
+    """The unit of work of a route that writes: committed when the route returns, before the
+    answer is sent (so a failed commit is the answer), rolled back when it raises. Its
+    transactions take SQLite's write lock at BEGIN (see app.db.make_writer_session_factory).
+    Services only flush; contended writes (queue claims, submits) frame their own short
+    transactions with `write_transaction` instead."""
+    for session in _session_for_request(request.app.state.writer_session_factory):
+        yield session
+        session.commit()
 
 
 SessionDep = Annotated[Session, Depends(get_session)]
-WriterSessionDep = Annotated[Session, Depends(get_writer_session)]
+# scope="function": the commit after `yield` runs before the answer is sent, not after it
+WriterSessionDep = Annotated[Session, Depends(get_writer_session, scope="function")]
 SettingsDep = Annotated[Settings, Depends(get_app_settings)]
 
 

@@ -227,6 +227,7 @@ def phase_ingest(path: Path, folder: Path) -> dict[str, float]:
             session, spec=LoopCreate.model_validate(SPEC), user_id=None
         )
         rnd = loops_service.open_round(session, loop=loop, learner_version="v1", user_id=None)
+        session.commit()
         with path.open("rb") as handle:  # in pieces, as the upload spool does
             digest = hashlib.file_digest(handle, "sha256").hexdigest()
         began = time.perf_counter()

@@ -73,6 +73,7 @@ def prepare_store(
         round_1 = loops_service.open_round(
             session, loop=loop, learner_version="bench-1", user_id=None
         )
+        session.commit()
         trainer = auth_service.create_user(session, name="bench-trainer", roles=["trainer"])
         token = auth_service.issue_token(session, user=trainer)
         labeller = auth_service.create_user(session, name="bench-labeller", roles=["annotator"])

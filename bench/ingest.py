@@ -94,6 +94,7 @@ def service_ingest(url: str, path: Path) -> float:
     with factory() as session:
         loop = loops_service.create_loop(session, spec=spec, user_id=None)
         rnd = loops_service.open_round(session, loop=loop, learner_version="v1", user_id=None)
+        session.commit()
         started = time.perf_counter()
         service.ingest_file(
             session,

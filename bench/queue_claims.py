@@ -87,6 +87,7 @@ def prepare(url: str, data_dir: Path, n_items: int, n_clients: int) -> list[str]
         )
         loop = loops_service.create_loop(session, spec=spec, user_id=None)
         rnd = loops_service.open_round(session, loop=loop, learner_version="v1", user_id=None)
+        session.commit()
         file = data_dir / "bench.parquet"
         rollout_file(file, n_rollouts=max(1, n_items // 100), steps=100)
         ingest_service.ingest_file(

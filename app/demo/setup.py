@@ -60,6 +60,7 @@ def prepare_demo(*, host: str, port: int) -> str:
             loop = loops_service.get_loop(session, slug=spec.slug)
         except NotFound:
             loop = loops_service.create_loop(session, spec=spec, user_id=None)
+            session.commit()
         if loop.log_mapping is None and spec.log_mapping is not None:
             # a demo store made before the demo had its robot log
             loop.log_mapping = spec.log_mapping.model_dump()
@@ -71,11 +72,13 @@ def prepare_demo(*, host: str, port: int) -> str:
             loops_service.open_round(
                 session, loop=loop, learner_version="demo-learner-1", user_id=None
             )
+            session.commit()
             _upload(session, loop, 1, ROUND1_FILE)
             rnd = loops_service.get_round(session, loop=loop, number=1)
             sampler_service.request_ranking(
                 session, loop=loop, rnd=rnd, budget=DEMO_BUDGET, seed=DEMO_SEED, user_id=None
             )
+            session.commit()
     # rank now, so the bench has work the moment the server is up
     register_job_handlers()
     while runner.run_one(factory, settings, "demo-setup"):

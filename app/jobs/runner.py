@@ -54,7 +54,7 @@ class JobContext:
         if not force and now - self._last_beat < heartbeat_interval(lease):
             return
         self._last_beat = now
-        with self.session_factory() as session:
+        with self.session_factory.begin() as session:
             held = service.heartbeat(
                 session,
                 job_id=self.job.id,
@@ -101,17 +101,17 @@ def run_one(session_factory: sessionmaker[Session], settings: Settings, worker: 
         log.warning("job %s lost to another worker", job.id)
         return True
     except ExpertloopError as exc:
-        with session_factory() as session:
+        with session_factory.begin() as session:
             service.fail(session, job_id=job.id, worker=worker, message=exc.message)
         return True
     except Exception as exc:  # a bug: record it on the job so the user sees it, and log it
         log.exception("job %s failed", job.id)
-        with session_factory() as session:
+        with session_factory.begin() as session:
             service.fail(
                 session, job_id=job.id, worker=worker, message=f"{type(exc).__name__}: {exc}"
             )
         return True
-    with session_factory() as session:
+    with session_factory.begin() as session:
         service.finish(session, job_id=job.id, worker=worker, result=result)
     return True
 

@@ -42,11 +42,11 @@ def enqueue(
         progress=0.0,
         attempts=0,
     )
-    session.add(job)
     try:
-        session.commit()
+        # a savepoint: a refused insert leaves the caller's transaction as it was
+        with session.begin_nested():
+            session.add(job)
     except IntegrityError as exc:
-        session.rollback()
         live = session.scalar(
             select(Job.id).where(
                 Job.kind == kind,
@@ -124,7 +124,6 @@ def heartbeat(
             lease_until=utcnow() + timedelta(seconds=lease_seconds),
         )
     )
-    session.commit()
     return bool(result.rowcount)  # type: ignore[attr-defined]
 
 
@@ -135,7 +134,6 @@ def finish(session: Session, *, job_id: int, worker: str, result: dict[str, Any]
         .where(Job.id == job_id, Job.worker == worker, Job.status == JOB_RUNNING)
         .values(status=JOB_DONE, progress=1.0, result=result, finished_at=utcnow(), message=None)
     )
-    session.commit()
     return bool(updated.rowcount)  # type: ignore[attr-defined]
 
 
@@ -146,4 +144,3 @@ def fail(session: Session, *, job_id: int, worker: str, message: str) -> None:
         .where(Job.id == job_id, Job.worker == worker, Job.status == JOB_RUNNING)
         .values(status=JOB_FAILED, message=message[:2000], finished_at=utcnow())
     )
-    session.commit()

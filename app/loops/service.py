@@ -28,16 +28,16 @@ def create_loop(session: Session, *, spec: LoopCreate, user_id: int | None) -> L
         log_mapping=None if spec.log_mapping is None else spec.log_mapping.model_dump(),
         created_by=user_id,
     )
-    session.add(loop)
     try:
-        session.flush()
+        # a savepoint: a refused insert leaves the caller's transaction as it was
+        with session.begin_nested():
+            session.add(loop)
     except IntegrityError as exc:  # a concurrent create with the same slug
-        session.rollback()
         raise Conflict(f"a loop with slug '{spec.slug}' already exists") from exc
     session.add(
         Round(loop_id=loop.id, number=0, learner_version=DEMONSTRATION_VERSION, opened_by=user_id)
     )
-    session.commit()
+    session.flush()
     return loop
 
 
@@ -68,11 +68,11 @@ def open_round(session: Session, *, loop: Loop, learner_version: str, user_id: i
     new = Round(
         loop_id=loop.id, number=last + 1, learner_version=learner_version, opened_by=user_id
     )
-    session.add(new)
     try:
-        session.commit()
+        # a savepoint: a refused insert leaves the caller's transaction as it was
+        with session.begin_nested():
+            session.add(new)
     except IntegrityError as exc:
-        session.rollback()
         raise Conflict(f"round {last + 1} of '{loop.slug}' was opened concurrently") from exc
     return new
 
@@ -83,7 +83,7 @@ def close_round(session: Session, *, loop: Loop, number: int) -> Round:
     if rnd.status != "closed":
         rnd.status = "closed"
         rnd.closed_at = utcnow()
-        session.commit()
+        session.flush()
     return rnd
 
 

@@ -42,7 +42,7 @@ def test_claims_and_heartbeats_use_the_configured_lease(app, settings) -> None:
         return {}
 
     try:
-        with factory() as session:
+        with factory.begin() as session:
             service.enqueue(session, kind="test-lease", params={})
         assert runner.run_one(factory, short, "w1")
     finally:

@@ -29,7 +29,7 @@ def echo_handler():
 
 def test_enqueue_claim_finish(app, settings, echo_handler):
     factory = app.state.session_factory
-    with factory() as session:
+    with factory.begin() as session:
         job = service.enqueue(session, kind="test-echo", params={"value": 21})
     assert runner.run_one(factory, settings, "w1") is True
     with factory() as session:
@@ -65,7 +65,7 @@ def test_failed_handler_records_its_message(app, settings):
 
     try:
         factory = app.state.session_factory
-        with factory() as session:
+        with factory.begin() as session:
             job = service.enqueue(session, kind="test-fail", params={})
         runner.run_one(factory, settings, "w1")
         with factory() as session:
@@ -96,7 +96,7 @@ def test_expired_lease_is_taken_over_and_the_old_worker_loses_it(app, settings, 
 
 def test_concurrent_claims_never_share_a_job(app):
     factory = app.state.session_factory
-    with factory() as session:
+    with factory.begin() as session:
         for i in range(40):
             service.enqueue(session, kind="test-none", params={"i": i})
     claimed: list[int] = []
@@ -124,7 +124,7 @@ def test_concurrent_claims_never_share_a_job(app):
 
 
 def test_job_api_shows_progress(app, client, admin, echo_handler):
-    with app.state.session_factory() as session:
+    with app.state.session_factory.begin() as session:
         job = service.enqueue(session, kind="test-echo", params={"value": 2})
     queued = client.get(f"/api/jobs/{job.id}", headers=admin).json()
     assert queued["status"] == "queued" and queued["progress"] == 0.0
