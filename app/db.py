@@ -99,15 +99,6 @@ def make_writer_session_factory(engine: Engine) -> sessionmaker[Session]:
     return make_session_factory(engine.execution_options(**{SQLITE_BEGIN_IMMEDIATE: True}))
 
 
-def session_scope(factory: sessionmaker[Session]) -> Iterator[Session]:
-    """Yield a session, closing it afterwards (used by the request dependency)."""
-    session = factory()
-    try:
-        yield session
-    finally:
-        session.close()
-
-
 # One lock per SQLite engine. SQLite has one writer at a time anyway; waiting on this lock hands
 # the turn over at once, whereas SQLite's own busy handler sleeps in growing steps (up to 100 ms)
 # and lets 32 waiting writers convoy. BEGIN IMMEDIATE still guards against other processes.

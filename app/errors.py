@@ -35,7 +35,3 @@ class Unauthenticated(ExpertloopError):
 
 class Forbidden(ExpertloopError):
     status_code = 403
-
-
-class Unavailable(ExpertloopError):
-    status_code = 503

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
-from sqlalchemy import case, func, insert, select, update
+from sqlalchemy import case, insert, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
@@ -291,15 +291,3 @@ def _after_race(session: Session, submission_id: str, *, label_id: int, user_id:
     if repeat is None:
         raise Conflict(f"label {label_id} was undone or changed at the same moment; reload")
     return repeat
-
-
-def standing_count(session: Session, *, item_id: int) -> int:
-    """Standing answers on an item (for checks: it equals the item's labels_done)."""
-    return int(
-        session.scalar(
-            select(func.count())
-            .select_from(Label)
-            .where(Label.item_id == item_id, Label.span.is_(False), is_current())
-        )
-        or 0
-    )
