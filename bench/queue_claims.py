@@ -38,7 +38,7 @@ from sqlalchemy import func, select
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from tests.serving import server_process  # noqa: E402
+from tests.serving import enqueue_steps, server_process  # noqa: E402
 
 
 def rollout_file(path: Path, n_rollouts: int, steps: int, seed: int = 0) -> None:
@@ -67,7 +67,6 @@ def prepare(url: str, data_dir: Path, n_items: int, n_clients: int) -> list[str]
     from expertloop.ingest import service as ingest_service
     from expertloop.loops import service as loops_service
     from expertloop.loops.schemas import LoopCreate
-    from expertloop.queue import service as queue_service
     from tests.serving import upgrade_empty
 
     upgrade_empty(url)
@@ -103,7 +102,7 @@ def prepare(url: str, data_dir: Path, n_items: int, n_clients: int) -> list[str]
         from expertloop.ingest.models import Step
 
         step_ids = list(session.scalars(select(Step.id).order_by(Step.id)))[:n_items]
-        queue_service.enqueue_steps(session, rnd=rnd, loop=loop, step_ids=step_ids, seed=1)
+        enqueue_steps(session, rnd=rnd, loop=loop, step_ids=step_ids, seed=1)
         session.commit()
         tokens = []
         for i in range(n_clients):

@@ -1,5 +1,5 @@
-"""Test and benchmark helpers: expertloop in a uvicorn subprocess, and a scratch store migrated
-from nothing.
+"""Test and benchmark helpers: expertloop in a uvicorn subprocess, a scratch store migrated from
+nothing, and a queue of chosen states.
 
 The subprocess is a real server process, as deployed: its own event loop, thread pool and
 database connections, and with `workers` > 1 several processes competing for the same store.
@@ -12,17 +12,23 @@ import os
 import subprocess
 import sys
 import time
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
 import httpx
-from sqlalchemy import text
+import numpy as np
+from sqlalchemy import select, text
+from sqlalchemy.orm import Session
 
 from expertloop.db import make_engine
 from expertloop.demo.local_server import free_port
+from expertloop.errors import InvalidInput
+from expertloop.ingest.models import Step
+from expertloop.loops.models import Loop, Round
 from expertloop.migrations_state import upgrade
+from expertloop.queue import service as queue_service
 
 # the repository root (artifacts of browser tests are written below it)
 ROOT = Path(__file__).resolve().parents[1]
@@ -106,3 +112,25 @@ def upgrade_empty(database_url: str) -> None:
             conn.execute(text("CREATE SCHEMA public"))
         engine.dispose()
     upgrade(database_url)
+
+
+def enqueue_steps(
+    session: Session, *, rnd: Round, loop: Loop, step_ids: Sequence[int], seed: int = 0
+) -> int:
+    """Queue steps of a round in the given order, without a ranking (tests and benchmarks that
+    need a queue of known states)."""
+    wanted = list(dict.fromkeys(int(s) for s in step_ids))
+    found = set(
+        session.scalars(select(Step.id).where(Step.id.in_(wanted), Step.round_id == rnd.id))
+    )
+    missing = [s for s in wanted if s not in found]
+    if missing:
+        raise InvalidInput(f"step_ids: {missing[:10]} are not states of round {rnd.number}")
+    return queue_service.enqueue_in_order(
+        session,
+        rnd=rnd,
+        loop=loop,
+        step_ids=wanted,
+        selected_ids=[None] * len(wanted),
+        rng=np.random.default_rng(seed),
+    )

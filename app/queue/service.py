@@ -12,7 +12,6 @@ IMMEDIATE on SQLite.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 from typing import Any
@@ -46,7 +45,7 @@ __all__ = [
     "Submitted",
     "claim_next",
     "enqueue_selection",
-    "enqueue_steps",
+    "enqueue_in_order",
     "loop_settings",
     "progress",
     "renew",
@@ -81,7 +80,7 @@ def enqueue_selection(session: Session, *, rnd: Round, selection: Selection, loo
         .where(SelectedState.selection_id == selection.id)
         .order_by(SelectedState.rank, SelectedState.id)
     ).all()
-    return _enqueue(
+    return enqueue_in_order(
         session,
         rnd=rnd,
         loop=loop,
@@ -98,28 +97,7 @@ def replace_round_queue(session: Session, loop: Loop, rnd: Round, selection: Sel
     return enqueue_selection(session, rnd=rnd, selection=selection, loop=loop)
 
 
-def enqueue_steps(
-    session: Session, *, rnd: Round, loop: Loop, step_ids: Sequence[int], seed: int = 0
-) -> int:
-    """Queue steps of a round in the given order, without a selection (development, tests)."""
-    wanted = list(dict.fromkeys(int(s) for s in step_ids))
-    found = set(
-        session.scalars(select(Step.id).where(Step.id.in_(wanted), Step.round_id == rnd.id))
-    )
-    missing = [s for s in wanted if s not in found]
-    if missing:
-        raise InvalidInput(f"step_ids: {missing[:10]} are not states of round {rnd.number}")
-    return _enqueue(
-        session,
-        rnd=rnd,
-        loop=loop,
-        step_ids=wanted,
-        selected_ids=[None] * len(wanted),
-        rng=np.random.default_rng(seed),
-    )
-
-
-def _enqueue(
+def enqueue_in_order(
     session: Session,
     *,
     rnd: Round,

@@ -25,7 +25,6 @@ from expertloop.db import make_engine, make_session_factory
 from expertloop.ingest.models import Step
 from expertloop.loops import service as loops_service
 from expertloop.migrations_state import upgrade
-from expertloop.queue import service as queue_service
 from tests.deploy.pgcluster import PgCluster, free_port
 from tests.deploy.services import (
     Service,
@@ -40,6 +39,7 @@ from tests.deploy.services import (
     wait_until,
 )
 from tests.helpers import DISCRETE_SPEC
+from tests.serving import enqueue_steps
 
 SLUG = DISCRETE_SPEC["slug"]
 # Short enough that a job of a killed worker is taken over within the test's time, long enough
@@ -203,7 +203,7 @@ def test_database_restart_under_labelling_loses_and_duplicates_no_label(
             loop = loops_service.get_loop(session, slug=SLUG)
             rnd = loops_service.get_round(session, loop=loop, number=1)
             steps = session.scalars(select(Step.id).order_by(Step.id).limit(ITEMS)).all()
-            assert queue_service.enqueue_steps(session, rnd=rnd, loop=loop, step_ids=steps) == ITEMS
+            assert enqueue_steps(session, rnd=rnd, loop=loop, step_ids=steps) == ITEMS
             session.commit()
         engine.dispose()
 

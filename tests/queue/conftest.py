@@ -13,8 +13,8 @@ from sqlalchemy import select
 from expertloop.auth.models import User
 from expertloop.ingest.models import Rollout, Step
 from expertloop.loops import service as loops_service
-from expertloop.queue import service as queue_service
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC, discrete_rows, parquet_bytes
+from tests.serving import enqueue_steps
 
 SCENE = {
     "frame": "robot",
@@ -93,7 +93,7 @@ def make_loop(client, admin, uploader, app) -> Callable[..., str]:
                     .order_by(Rollout.key, Step.step_index)
                 )
             )
-            queue_service.enqueue_steps(
+            enqueue_steps(
                 session,
                 rnd=rnd,
                 loop=loop,
