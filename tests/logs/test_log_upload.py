@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import interp1d
 
+from expertloop.ingest.logs import gridding
 from expertloop.ingest.logs.writer import storage_file, typestore_for, write_bag
 from tests.conftest import store_contents
 from tests.helpers import DISCRETE_SPEC
@@ -59,10 +60,13 @@ def previous(times, values, grid, max_age_s):
     return out
 
 
+@pytest.mark.parametrize("chunk", [None, 3], ids=["one-chunk", "chunks-of-3"])
 @pytest.mark.parametrize("storage", ["mcap", "sqlite3", "ros1"])
 def test_every_mapped_value_matches_the_messages_written(
-    storage, client, admin, uploader, tmp_path
+    storage, chunk, client, admin, uploader, tmp_path, monkeypatch
 ):
+    if chunk is not None:  # topics settle onto the grid every 3 messages: many chunk edges
+        monkeypatch.setattr(gridding, "CHUNK", chunk)
     make_loop(client, admin)
     path, written = build(tmp_path, storage, stamp_lag_ns=7_000_000)
     response = upload(client, uploader, path)

@@ -57,9 +57,9 @@ def inspect_log(
         raise ExpertloopError(f"'{name}' is not a robot log (.mcap, .db3, .bag, .zip or .tar)")
     with bag_path(path, file_format, spool_dir, max_unpacked_bytes) as bag_file:
         with open_bag(bag_file) as bag:
-            times = bag.log_times()
+            spans = bag.log_spans()
             topics = [
-                TopicSummary(topic, msgtype, count, _rate(times[topic]))
+                TopicSummary(topic, msgtype, count, _rate(*spans.get(topic, (0, 0, 0))))
                 for topic, (msgtype, count) in sorted(bag.topics().items())
             ]
             found = Inspection(file_format, bag.reader.duration / NS, topics)
@@ -93,10 +93,10 @@ def inspect_log(
     return found
 
 
-def _rate(times: np.ndarray) -> float | None:
-    if len(times) < 2 or times[-1] == times[0]:
+def _rate(count: int, first_ns: int, last_ns: int) -> float | None:
+    if count < 2 or last_ns == first_ns:
         return None
-    return float((len(times) - 1) / ((times[-1] - times[0]) / NS))
+    return float((count - 1) / ((last_ns - first_ns) / NS))
 
 
 def report_lines(found: Inspection, *, loop_slug: str | None) -> list[str]:

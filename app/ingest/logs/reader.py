@@ -1,5 +1,6 @@
 """Read the topics a log mapping needs from a bag as one stream in time order, keeping only
-the mapped values of each message (never the bag, never whole messages).
+the mapped values of each message (never the bag, never whole messages), handed on in chunks of
+a bounded number of messages per topic.
 
 rosbags decodes every message: types come from the definitions stored in the bag, and where a
 bag stores none (ROS 2 SQLite bags before Iron), from rosbags' standard message set.
@@ -52,7 +53,8 @@ class UnreadableBag(InvalidInput):
 
 @dataclass
 class TopicSeries:
-    """One topic's messages as read: times (ns, the stamp the mapping uses) and values by source."""
+    """One topic's messages read since the last chunk was taken: times (ns, the stamp the
+    mapping uses) and values by source."""
 
     topic: str
     msgtype: str
@@ -60,25 +62,31 @@ class TopicSeries:
     # compact arrays where the values are numbers: 8 bytes a value instead of a Python object
     times: array[int] = field(default_factory=lambda: array("q"))
     values: dict[str, array[float] | list[Any]] = field(default_factory=dict)
+    # how a message is read: its stamp (None: the log time) and (getter, buffer, field) by source
+    stamp: Callable[[Any], int] | None = None
+    getters: list[tuple[Callable[[Any], Any], array[float] | list[Any], str]] = field(
+        default_factory=list
+    )
 
-    def times_ns(self) -> np.ndarray:
-        return np.frombuffer(self.times, dtype=np.int64) if self.times else np.zeros(0, np.int64)
+    def take(self) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+        """The buffered times and each source's values (float64 for numbers, else objects),
+        emptying the buffers in place (the stream keeps appending to the same ones)."""
+        times = np.array(self.times, dtype=np.int64)
+        del self.times[:]
+        values: dict[str, np.ndarray] = {}
+        for name, buffered in self.values.items():
+            if isinstance(buffered, array):
+                values[name] = np.array(buffered, dtype=np.float64)
+                del buffered[:]
+            else:
+                out = np.empty(len(buffered), dtype=object)
+                out[:] = buffered
+                values[name] = out
+                buffered.clear()
+        return times, values
 
-    def values_of(self, name: str) -> np.ndarray:
-        """A source's values: float64 for numbers, else an object array."""
-        values = self.values[name]
-        if isinstance(values, array):
-            return np.frombuffer(values, dtype=np.float64) if values else np.zeros(0)
-        out = np.empty(len(values), dtype=object)
-        out[:] = values
-        return out
-
-
-@dataclass
-class _Plan:
-    series: TopicSeries
-    stamp: Callable[[Any], int] | None
-    getters: list[tuple[Callable[[Any], Any], array[float] | list[Any], str]]
+    def last_time(self) -> int | None:
+        return self.times[-1] if self.times else None
 
 
 class Bag:
@@ -136,40 +144,10 @@ class Bag:
             pending += _referenced_types(standard.fielddefs[name][1])
         store.register(needed)
 
-    def stream(self, mapping: LogMapping, *, image_topic: str | None) -> dict[str, TopicSeries]:
-        """Read every mapped topic's values in one pass in time order."""
-        plans = self._plans(mapping)
-        wanted = [c for topic in plans for c in self.connections(topic)]
-        by_connection = {c.id: plans[c.topic] for c in wanted}
-        deserialize = self.reader.deserialize
-        message: Any = None
-        plan: _Plan | None = None
-        try:
-            for connection, log_ns, raw in self.reader.messages(connections=wanted):
-                plan = by_connection[connection.id]
-                message = deserialize(raw, connection.msgtype)
-                plan.series.times.append(plan.stamp(message) if plan.stamp else log_ns)
-                for get, out, _ in plan.getters:
-                    out.append(get(message))
-        except (IndexError, AttributeError) as exc:
-            assert plan is not None
-            name = next((n for g, o, n in plan.getters if len(o) < len(plan.series.times)), "")
-            raise InvalidInput(
-                f"topic {plan.series.topic}, field {name}: not in the message at "
-                f"{describe_time(plan.series.times[-1], self.start_ns)} ({exc})"
-            ) from exc
-        except ExpertloopError:
-            raise
-        except MemoryError:
-            raise
-        except Exception as exc:  # any failure of the third-party decoder means a damaged file
-            raise UnreadableBag(
-                f"the bag could not be read (truncated or damaged?): {exc}"
-            ) from exc
-        return {topic: plan.series for topic, plan in plans.items()}
-
-    def _plans(self, mapping: LogMapping) -> dict[str, _Plan]:
-        plans: dict[str, _Plan] = {}
+    def prepare(self, mapping: LogMapping) -> dict[str, TopicSeries]:
+        """Each mapped topic's (empty) series with how its messages are read, after checking
+        its type and every field path: refuses what the bag cannot give before reading."""
+        plans: dict[str, TopicSeries] = {}
         sources: list[tuple[str, FieldSource | SceneSource | None, str]] = [
             (name, source, source.topic) for name, source in mapping.value_sources().items()
         ]
@@ -180,18 +158,17 @@ class Bag:
         for name, source, topic in sources:
             plan = plans.get(topic)
             if plan is None:
-                plan = plans[topic] = self._plan(topic, mapping)
-            msgtype = plan.series.msgtype
+                plan = plans[topic] = self._series(topic, mapping)
+            msgtype = plan.msgtype
             values: array[float] | list[Any] = []
-            plan.series.values[name] = values
             if name == "image":
                 if msgtype not in IMAGE_TYPES:
                     raise InvalidInput(
                         f"log_mapping.image: topic {topic} carries {msgtype}, not one of "
                         f"{list(IMAGE_TYPES)}"
                     )
-                plan.series.values.pop(name)  # frames are read in a second pass
-                continue
+                continue  # only the times: frames are read in a second pass
+            plan.values[name] = values
             if isinstance(source, SceneSource):
                 plan.getters.append((_scene_getter(source, msgtype, topic), values, "scene"))
                 continue
@@ -206,11 +183,11 @@ class Bag:
                     f"{where}: is {leaf.type_name} ({leaf.kind}), expected {' or '.join(expected)}"
                 )
             if leaf.kind == "number" and leaf.type_name != "bool":
-                values = plan.series.values[name] = array("d")
+                values = plan.values[name] = array("d")
             plan.getters.append((fieldpath.getter(source.field), values, source.field))
         return plans
 
-    def _plan(self, topic: str, mapping: LogMapping) -> _Plan:
+    def _series(self, topic: str, mapping: LogMapping) -> TopicSeries:
         msgtype = self.message_type(topic, f"log_mapping (topic {topic})")
         rule = mapping.rule(topic)
         has_header = "header" in dict(self.reader.typestore.fielddefs[msgtype][1])
@@ -219,8 +196,87 @@ class Bag:
                 f"log_mapping.topics.{topic}: stamp 'header', but {msgtype} has no header"
             )
         use_header = rule.stamp == "header" or (rule.stamp == "auto" and has_header)
-        series = TopicSeries(topic, msgtype, "header.stamp" if use_header else "log time")
-        return _Plan(series, _header_stamp if use_header else None, [])
+        return TopicSeries(
+            topic,
+            msgtype,
+            "header.stamp" if use_header else "log time",
+            stamp=_header_stamp if use_header else None,
+        )
+
+    def stream(
+        self,
+        plans: dict[str, TopicSeries],
+        on_chunk: Callable[[TopicSeries], None],
+        *,
+        chunk: int,
+    ) -> None:
+        """Read every planned topic's values in one pass in time order. Whenever a topic has
+        `chunk` messages buffered, `on_chunk` takes them (`TopicSeries.take`), so at most that
+        many a topic are held; what is left stays in the buffers for the caller."""
+        wanted = [c for topic in plans for c in self.connections(topic)]
+        by_connection = {c.id: plans[c.topic] for c in wanted}
+        deserialize = self.reader.deserialize
+        messages = self.reader.messages(connections=wanted)
+        while True:
+            plan: TopicSeries | None = None
+            message: Any = None
+            try:
+                item = next(messages, None)
+                if item is None:
+                    return
+                connection, log_ns, raw = item
+                plan = by_connection[connection.id]
+                message = deserialize(raw, connection.msgtype)
+                plan.times.append(plan.stamp(message) if plan.stamp else log_ns)
+                for get, out, _ in plan.getters:
+                    out.append(get(message))
+            except (IndexError, AttributeError) as exc:
+                if plan is None or message is None:  # the reader or decoder failed
+                    raise UnreadableBag(
+                        f"the bag could not be read (truncated or damaged?): {exc}"
+                    ) from exc
+                name = next((n for g, o, n in plan.getters if len(o) < len(plan.times)), "")
+                raise InvalidInput(
+                    f"topic {plan.topic}, field {name}: not in the message at "
+                    f"{describe_time(plan.times[-1], self.start_ns)} ({exc})"
+                ) from exc
+            except ExpertloopError:
+                raise
+            except MemoryError:
+                raise
+            except Exception as exc:  # any failure of the third-party decoder: a damaged file
+                raise UnreadableBag(
+                    f"the bag could not be read (truncated or damaged?): {exc}"
+                ) from exc
+            if len(plan.times) >= chunk:
+                on_chunk(plan)
+
+    def first_stamps(self, plans: dict[str, TopicSeries], topics: set[str]) -> dict[str, int]:
+        """The stamp of each topic's first message (no entry for a topic without messages),
+        reading only until every one of them has spoken."""
+        conns = [c for topic in sorted(topics) for c in self.connections(topic)]
+        found: dict[str, int] = {}
+        try:
+            for connection, log_ns, raw in self.reader.messages(connections=conns):
+                if connection.topic in found:
+                    continue
+                stamp = plans[connection.topic].stamp
+                found[connection.topic] = (
+                    log_ns
+                    if stamp is None
+                    else stamp(self.reader.deserialize(raw, connection.msgtype))
+                )
+                if len(found) == len(topics):
+                    break
+        except ExpertloopError:
+            raise
+        except MemoryError:
+            raise
+        except Exception as exc:  # as in stream(): a decoder failure means a damaged file
+            raise UnreadableBag(
+                f"the bag could not be read (truncated or damaged?): {exc}"
+            ) from exc
+        return found
 
     def frames(self, topic: str, wanted: dict[int, list[int]]) -> Iterator[tuple[int, Any]]:
         """(message number, decoded message) of the topic's messages whose number is wanted."""
@@ -238,17 +294,19 @@ class Bag:
                 f"the bag could not be read (truncated or damaged?): {exc}"
             ) from exc
 
-    def log_times(self) -> dict[str, np.ndarray]:
-        """Every topic's log times (ns), read without decoding (for the dry run's rates)."""
-        times: dict[str, list[int]] = {name: [] for name in self.reader.topics}
+    def log_spans(self) -> dict[str, tuple[int, int, int]]:
+        """Every topic's message count and first and last log time (ns), read without decoding
+        and without keeping the times (for the dry run's rates)."""
+        spans: dict[str, tuple[int, int, int]] = {}
         try:
             for connection, log_ns, _ in self.reader.messages():
-                times[connection.topic].append(log_ns)
+                count, first, _ = spans.get(connection.topic, (0, log_ns, log_ns))
+                spans[connection.topic] = (count + 1, first, log_ns)
         except Exception as exc:  # a decoder failure means a damaged file
             raise UnreadableBag(
                 f"the bag could not be read (truncated or damaged?): {exc}"
             ) from exc
-        return {name: np.asarray(t, dtype=np.int64) for name, t in times.items()}
+        return spans
 
 
 _stamp_of = attrgetter("header.stamp")

@@ -20,11 +20,9 @@ from ...loops.log_mapping import (
     FieldSource,
     LogMapping,
 )
-from . import resample
+from .gridding import OnGrid, stream_onto_grid
 from .images import frame_bytes
-from .reader import NS, Bag, TopicSeries, describe_time
-
-MAX_STEPS = 20_000_000  # a bag mapped to more steps than this is refused (bounded memory)
+from .reader import NS, Bag, describe_time
 
 
 @dataclass
@@ -50,25 +48,26 @@ class _Resampled:
 
 
 def map_log(
-    bag: Bag, mapping: LogMapping, *, stem: str, default_control: str, take_images: bool = True
+    bag: Bag,
+    mapping: LogMapping,
+    *,
+    stem: str,
+    default_control: str,
+    take_images: bool = True,
+    chunk: int | None = None,
 ) -> MappedLog:
-    """Read the bag through the mapping into contract columns (rows in rollout, step order)."""
-    series = bag.stream(mapping, image_topic=mapping.image.topic if mapping.image else None)
-    kept_index = {topic: _checked_times(s, bag.start_ns) for topic, s in series.items()}
-    sources = mapping.value_sources()
-    required_topics = {s.topic for n, s in sources.items() if n.startswith("feature:")}
-    if mapping.control is not None:
-        required_topics.add(mapping.control.topic)
-    grid = _grid(series, kept_index, required_topics, mapping.step_rate_hz)
+    """Read the bag through the mapping into contract columns (rows in rollout, step order);
+    `chunk`: messages a topic holds before they are settled onto the grid (default CHUNK)."""
+    on_grid = stream_onto_grid(bag, mapping, chunk=chunk)
+    grid = on_grid.steps
     out = MappedLog(None, np.zeros(0, np.int64), [], _column_sources(mapping), bag.start_ns)
     out.grid_steps = len(grid)
 
-    def resampled(name: str, source: FieldSource, *, numeric: bool) -> _Resampled:
-        s = series[source.topic]
-        times = s.times_ns()[kept_index[source.topic]]
-        raw = s.values_of(name)[kept_index[source.topic]]
-        rule = mapping.rule(source.topic)
-        return _resample(times, raw, grid, rule.resample if numeric else "hold", rule.max_age_s)
+    def resampled(name: str, source: FieldSource) -> _Resampled:
+        """A source at every step, fresh where no older than its topic's max age (how it was
+        resampled: `gridding._hows`)."""
+        values, age = on_grid.source(source.topic, name)
+        return _fresh(values, age, mapping.rule(source.topic).max_age_s)
 
     keep = np.ones(len(grid), dtype=bool)
 
@@ -89,13 +88,13 @@ def map_log(
     features = np.empty((len(grid), len(mapping.features)), dtype=np.float64)
     everywhere = np.ones(len(grid), dtype=bool)
     for j, (name, source) in enumerate(mapping.features.items()):
-        r = resampled(f"feature:{name}", source, numeric=True)
+        r = resampled(f"feature:{name}", source)
         require(f"feature:{name}", source, r.fresh, everywhere)
         features[:, j] = r.values * source.scale
 
     control = np.full(len(grid), default_control, dtype=object)
     if mapping.control is not None:
-        r = resampled("control", mapping.control, numeric=False)
+        r = resampled("control", mapping.control)
         require("control", mapping.control, r.fresh, everywhere)
         control = _lookup(r.values, keep, mapping.control, grid, bag.start_ns, "control")
     is_expert = control == "expert"
@@ -110,22 +109,14 @@ def map_log(
     for name in ("learner_probs", "learner_ensemble", "learner_std"):
         source = getattr(mapping, name)
         if source is not None:
-            r = resampled(name, source, numeric=True)
+            r = resampled(name, source)
             out.absent[source.describe()] = int((~r.fresh & keep).sum())
             if r.fresh.any():  # a topic without a single fresh value gives no column
                 optional[name] = (_stack(r.values, r.fresh, source, name), r.fresh)
 
     scene = None
     if mapping.scene is not None:
-        s = series[mapping.scene.topic]
-        index = kept_index[mapping.scene.topic]
-        r = _resample(
-            s.times_ns()[index],
-            s.values_of("scene")[index],
-            grid,
-            "hold",
-            mapping.scene.max_age_s,
-        )
+        r = _fresh(*on_grid.source(mapping.scene.topic, "scene"), mapping.scene.max_age_s)
         scene = r.values.copy()
         scene[~r.fresh] = None
         out.absent[f"topic {mapping.scene.topic} (scene)"] = int((~r.fresh & keep).sum())
@@ -173,84 +164,15 @@ def map_log(
     if scene is not None:
         columns["scene"] = pa.array(scene[order].tolist(), type=pa.string())
     if mapping.image is not None and take_images:
-        columns["image"] = _images(bag, mapping, series, grid[order], out)
+        columns["image"] = _images(bag, mapping, on_grid, order, out)
     out.table = pa.table(columns)
     out.row_time_ns = grid[order]
     out.row_key = row_key
     return out
 
 
-def _checked_times(series: TopicSeries, start_ns: int) -> np.ndarray:
-    """Indexes of the messages used: stamps must not go back; of equal stamps the last counts."""
-    times = series.times_ns()
-    back = np.flatnonzero(np.diff(times) < 0)
-    if back.size:
-        i = int(back[0]) + 1
-        raise InvalidInput(
-            f"topic {series.topic}, field {series.stamp_field}: message {i + 1} at "
-            f"{describe_time(int(times[i]), start_ns)} is earlier than the message before it at "
-            f"{describe_time(int(times[i - 1]), start_ns)}; stamps must not go back in time"
-        )
-    return resample.last_of_equal_times(times)
-
-
-def _grid(
-    series: dict[str, TopicSeries],
-    kept_index: dict[str, np.ndarray],
-    required: set[str],
-    rate_hz: float,
-) -> np.ndarray:
-    """Step times: every 1/rate from when all required topics have spoken to the last message
-    of any of them (values gone stale on the way are found by their age, not here)."""
-    for topic in sorted(required):
-        if len(kept_index[topic]) == 0:
-            raise InvalidInput(f"topic {topic}: the bag holds no messages on it")
-    begin = max(int(series[t].times_ns()[kept_index[t][0]]) for t in required)
-    end = max(int(series[t].times_ns()[kept_index[t][-1]]) for t in required)
-    period = round(NS / rate_hz)
-    n = (end - begin) // period + 1
-    if n > MAX_STEPS:
-        raise InvalidInput(
-            f"the bag maps to {n} steps at {rate_hz:g} Hz, more than {MAX_STEPS} in one upload; "
-            "split the bag"
-        )
-    return begin + np.arange(n, dtype=np.int64) * period
-
-
-def _resample(
-    times: np.ndarray, raw: np.ndarray, grid: np.ndarray, how: str, max_age_s: float | None
-) -> _Resampled:
-    max_age_ns = int(round((max_age_s or 0.0) * NS))
-    if len(times) == 0:
-        empty = np.zeros(len(grid), dtype=bool)
-        return _Resampled(
-            np.full(len(grid), None, dtype=object), empty, np.zeros(len(grid), np.int64)
-        )
-    numeric = how == "linear"
-    values = _array(raw, numeric)
-    if numeric:
-        out, age = resample.linear(times, values, grid)
-    else:
-        index, age = resample.hold(times, grid)
-        out = values[np.maximum(index, 0)]
-    return _Resampled(out, age <= max_age_ns, age)
-
-
-def _array(raw: np.ndarray, numeric: bool) -> np.ndarray:
-    """A source's values for resampling: lists of numbers stacked into (n, width) float64;
-    numbers as float64; anything else as objects."""
-    if raw.dtype != object or len(raw) == 0:
-        return raw
-    if isinstance(raw[0], np.ndarray):
-        if len({len(v) for v in raw}) != 1:
-            return raw  # lengths change between messages: refused when stacked
-        return np.stack(list(raw)).astype(np.float64)
-    if numeric:
-        try:
-            return raw.astype(np.float64)
-        except (TypeError, ValueError):
-            pass
-    return raw
+def _fresh(values: np.ndarray, age: np.ndarray, max_age_s: float | None) -> _Resampled:
+    return _Resampled(values, age <= int(round((max_age_s or 0.0) * NS)), age)
 
 
 def _raw_key(value: Any) -> str:
@@ -289,13 +211,13 @@ def _action(name, source, resampled, require, on_steps, keep, grid, bag):  # typ
     if isinstance(source, ContinuousActionSource):
         parts, fresh = [], np.ones(len(grid), dtype=bool)
         for dim, dim_source in source.dimensions.items():
-            r = resampled(f"{name}:{dim}", dim_source, numeric=True)
+            r = resampled(f"{name}:{dim}", dim_source)
             require(f"{name}:{dim}", dim_source, r.fresh, on_steps)
             parts.append(np.where(r.fresh, r.values, 0.0).astype(np.float64))
             fresh &= r.fresh
         return np.stack(parts, axis=1), fresh
     assert isinstance(source, DiscreteActionSource)
-    r = resampled(name, source, numeric=False)
+    r = resampled(name, source)
     require(name, source, r.fresh, on_steps)
     usable = keep & r.fresh
     if source.values:
@@ -388,25 +310,24 @@ def _segments(
 
 
 def _images(
-    bag: Bag, mapping: LogMapping, series: dict[str, TopicSeries], times: np.ndarray, out: MappedLog
+    bag: Bag, mapping: LogMapping, on_grid: OnGrid, order: np.ndarray, out: MappedLog
 ) -> pa.Array:
     """The nearest frame to each row within the image's max age, read in a second pass."""
     assert mapping.image is not None
     topic = mapping.image.topic
-    frame_times = series[topic].times_ns()
-    _checked_times(series[topic], bag.start_ns)
-    frames: list[bytes | None] = [None] * len(times)
-    if len(frame_times) == 0:
-        out.absent[f"topic {topic} (image)"] = len(times)
-        return pa.array(frames, type=pa.binary())
-    index, distance = resample.nearest(frame_times, times)
+    nearest, distance = on_grid.source(topic, "image")
+    nearest, distance = nearest[order], distance[order]
+    frames: list[bytes | None] = [None] * len(order)
     close = distance <= round(mapping.image.max_age_s * NS)
     wanted: dict[int, list[int]] = {}
+    stamps: dict[int, int] = {}
     for close_row in np.flatnonzero(close):
-        wanted.setdefault(int(index[close_row]), []).append(int(close_row))
-    msgtype = series[topic].msgtype
+        number, stamp = (int(v) for v in nearest[close_row])
+        wanted.setdefault(number, []).append(int(close_row))
+        stamps[number] = stamp
+    msgtype = on_grid.topics[topic].msgtype
     for number, message in bag.frames(topic, wanted):
-        where = f"topic {topic} at {describe_time(int(frame_times[number]), bag.start_ns)}"
+        where = f"topic {topic} at {describe_time(stamps[number], bag.start_ns)}"
         frame = frame_bytes(message, msgtype, where=where)
         for row in wanted[number]:
             frames[row] = frame
