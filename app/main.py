@@ -4,7 +4,6 @@ from __future__ import annotations
 
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
-from typing import Any
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
@@ -25,7 +24,7 @@ from .job_handlers import register_job_handlers
 from .jobs.runner import JobThread
 from .limits import shown
 from .openapi_errors import install as document_errors
-from .request_guard import RefuseControlCharacters
+from .request_guard import RefuseControlCharacters, RefuseOversized
 from .security_headers import SecurityHeaders
 from .snapshots.files import SPOOL_SUFFIX
 from .templating import STATIC_DIR
@@ -168,21 +167,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         },
     )
 
-    @app.middleware("http")
-    async def refuse_oversized(request: Request, call_next: Any) -> Response:
-        # Refuse before the body is read; chunked bodies are still capped while spooling.
-        declared = request.headers.get("content-length")
-        if declared and declared.isdigit() and int(declared) > settings.max_upload_bytes + 65536:
-            return JSONResponse(
-                {
-                    "detail": f"the request is larger than the upload limit of "
-                    f"{settings.max_upload_bytes} bytes"
-                },
-                status_code=413,
-            )
-        response: Response = await call_next(request)
-        return response
-
+    app.add_middleware(RefuseOversized, max_upload_bytes=settings.max_upload_bytes)
     app.add_middleware(RefuseControlCharacters)
     app.add_middleware(SecurityHeaders)  # outermost: every answer gets the headers
     return app

@@ -14,8 +14,9 @@ router = APIRouter(tags=["system"])
 
 
 @router.get("/healthz")
-def healthz() -> dict[str, str]:
+async def healthz() -> dict[str, str]:
     """The process is up (public)."""
+    # async: answered on the event loop itself, so a full thread pool cannot delay it
     return {"status": "ok"}
 
 
