@@ -2,25 +2,19 @@
 
 from __future__ import annotations
 
-import hmac
 from collections.abc import Iterator
-from dataclasses import dataclass
 from typing import Annotated
 
 from fastapi import Depends, Request
 from sqlalchemy.exc import InterfaceError, OperationalError
 from sqlalchemy.orm import Session, sessionmaker
-from starlette.concurrency import run_in_threadpool
 
-from .auth import service as auth_service
-from .auth.models import User
+from .auth.identify import SAFE_METHODS, SESSION_COOKIE, Caller, identify
 from .config import Settings
 from .errors import Forbidden, Unauthenticated
 
-SESSION_COOKIE = "expertloop_session"
 CSRF_HEADER = "x-csrf-token"
 CSRF_FIELD = "csrf_token"
-SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
 
 
 def _session_for_request(factory: sessionmaker[Session]) -> Iterator[Session]:
@@ -68,18 +62,6 @@ WriterSessionDep = Annotated[Session, Depends(get_writer_session, scope="functio
 SettingsDep = Annotated[Settings, Depends(get_app_settings)]
 
 
-@dataclass
-class Caller:
-    """Who made a request, and how: by API token or by browser session (with its CSRF token)."""
-
-    user: User
-    csrf_token: str | None = None
-
-    @property
-    def user_id(self) -> int:
-        return self.user.id
-
-
 class Roles:
     """Dependency that admits callers holding any of `roles` (admin is always admitted).
 
@@ -92,10 +74,7 @@ class Roles:
 
     async def __call__(self, request: Request) -> Caller:
         sent_csrf = await _sent_csrf(request)
-        # The store lookups are blocking: run them off the event loop, which must stay free to
-        # finish other requests (and so hand back their pooled connections). They use a short
-        # read session of their own, so the route's session starts its transactions afresh.
-        caller = await run_in_threadpool(_identify, request, sent_csrf)
+        caller = await identify(request, sent_csrf)
         if caller is None:
             raise Unauthenticated("sign in or send a valid API token (Authorization: Bearer ...)")
         if not self.roles & set(caller.user.roles):
@@ -117,32 +96,6 @@ async def _sent_csrf(request: Request) -> str | None:
         value = form.get(CSRF_FIELD)
         sent = value if isinstance(value, str) else None
     return sent
-
-
-def _identify(request: Request, sent_csrf: str | None) -> Caller | None:
-    with request.app.state.session_factory() as session:
-        return _lookup(request, session, sent_csrf)
-
-
-def _lookup(request: Request, session: Session, sent_csrf: str | None) -> Caller | None:
-    header = request.headers.get("authorization", "")
-    if header:
-        scheme, _, token = header.partition(" ")
-        if scheme.lower() != "bearer" or not token.strip():
-            return None
-        user = auth_service.user_for_token(session, token=token.strip())
-        return Caller(user=user) if user else None
-    cookie = request.cookies.get(SESSION_COOKIE)
-    if not cookie:
-        return None
-    found = auth_service.browser_session(session, session_id=cookie)
-    if found is None:
-        return None
-    user, live = found
-    if request.method not in SAFE_METHODS:
-        if not sent_csrf or not hmac.compare_digest(sent_csrf, live.csrf_token):
-            raise Forbidden("missing or wrong CSRF token; reload the page and try again")
-    return Caller(user=user, csrf_token=live.csrf_token)
 
 
 AdminDep = Annotated[Caller, Depends(Roles("admin"))]

@@ -13,6 +13,8 @@ from sqlalchemy.exc import DataError, InterfaceError, OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeout
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from .auth.access_version import make_reader
+from .auth.cache import IdentityCache
 from .auth.throttle import Limits, SignInThrottle
 from .config import Settings, get_settings
 from .db import make_engine, make_session_factory, make_writer_session_factory
@@ -105,6 +107,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         yield
         if runner is not None:
             runner.stop()
+        await app.state.access_version.close()
         engine.dispose()
 
     app = FastAPI(title="expertloop", version="0.1.0", lifespan=lifespan)
@@ -112,6 +115,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.engine = engine
     app.state.session_factory = make_session_factory(engine)
     app.state.writer_session_factory = make_writer_session_factory(engine)
+    # who each credential belongs to, kept while the store's access version stays the same
+    app.state.identity_cache = IdentityCache()
+    app.state.access_version = make_reader(engine)
     app.state.sign_in_throttle = SignInThrottle(
         Limits(
             per_name=settings.sign_in_failures_per_name,

@@ -1,10 +1,10 @@
-"""Tables for users, their API tokens and browser sessions."""
+"""Tables for users, their API tokens and browser sessions, and the counter of their changes."""
 
 from __future__ import annotations
 
 from datetime import datetime
 
-from sqlalchemy import JSON, Boolean, ForeignKey, Integer, String
+from sqlalchemy import JSON, BigInteger, Boolean, ForeignKey, Integer, String
 from sqlalchemy.orm import Mapped, mapped_column
 
 from ..models import Base, UTCDateTime, utcnow
@@ -48,3 +48,23 @@ class BrowserSession(Base):
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
     expires_at: Mapped[datetime] = mapped_column(UTCDateTime)
     ended_at: Mapped[datetime | None] = mapped_column(UTCDateTime, nullable=True)
+
+
+# Every UPDATE or DELETE of these tables bumps access_version.version, by database triggers
+# (migration 0010), so any change (by the service, a CLI in another process, or SQL typed by an
+# operator) reaches every app process's identity cache on its next request. Keep per-request
+# writes (a "last used" time, say) out of these tables: each would empty every cache.
+WATCHED_TABLES = ("users", "api_tokens", "browser_sessions")
+
+
+class AccessVersion(Base):
+    """One row: how many times users, tokens or browser sessions changed (see app/auth/cache.py).
+
+    The row may be missing (a store emptied table by table): that reads as version 0, and the
+    next change puts it back.
+    """
+
+    __tablename__ = "access_version"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    version: Mapped[int] = mapped_column(BigInteger)

@@ -130,10 +130,13 @@ def test_wrong_and_revoked_tokens_are_refused(client, app, admin, engine):
     revoked = client.post("/api/loops", json=DISCRETE_SPEC, headers=admin)
     assert revoked.status_code == 401
     after = store_contents(engine)
-    # only the revocation itself changed the store
-    assert {k: v for k, v in after.items() if k != "api_tokens"} == {
-        k: v for k, v in before.items() if k != "api_tokens"
+    # only the revocation itself changed the store: the token's row, and the access version
+    # that tells every process's identity cache about it
+    revocation = {"api_tokens", "access_version"}
+    assert {k: v for k, v in after.items() if k not in revocation} == {
+        k: v for k, v in before.items() if k not in revocation
     }
+    assert after["access_version"][0][1] > before["access_version"][0][1]
 
 
 def test_script_in_titles_and_feature_names_renders_escaped(client, admin, make_user):
