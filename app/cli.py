@@ -191,6 +191,35 @@ def loops_list() -> None:
             typer.echo(f"{loop.slug}\t{kind}\t{len(loop.features)} features\t{loop.title}")
 
 
+@loops_cli.command("log-mapping")
+def loops_log_mapping(
+    slug: str,
+    mapping_file: Annotated[
+        Path, typer.Argument(help="JSON: the mapping, or a loop spec with a log_mapping.")
+    ],
+    url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
+    token: Annotated[str, TOKEN_OPTION] = "",
+) -> None:
+    """Set or replace a loop's log mapping over HTTP (admin token); robot logs uploaded from
+    then on are read through it."""
+    try:
+        document = json.loads(mapping_file.read_text())
+    except (OSError, json.JSONDecodeError) as exc:
+        _fail(f"cannot read {mapping_file}: {exc}")
+        return
+    # a loop spec file carries the mapping under its own key; a mapping file is the mapping
+    spec_file = isinstance(document, dict) and "log_mapping" in document
+    mapping = document["log_mapping"] if spec_file else document
+    loop = _over_http(url, token, lambda client: client.set_log_mapping(slug, mapping))
+    set_to = loop["log_mapping"]
+    topics = len({s["topic"] for s in set_to["features"].values()})
+    typer.echo(
+        f"log mapping of '{slug}' set: {len(set_to['features'])} features from {topics} "
+        f"topics at {set_to['step_rate_hz']:g} steps a second; robot logs uploaded from now "
+        "on are read through it"
+    )
+
+
 @users_cli.command("add")
 def users_add(
     name: str,

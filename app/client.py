@@ -87,6 +87,10 @@ class Client:
     def loop(self, slug: str) -> Any:
         return self.request("GET", f"/api/loops/{slug}")
 
+    def set_log_mapping(self, slug: str, mapping: dict[str, Any]) -> Any:
+        """Set or replace a loop's log mapping (admin); the loop as it is now."""
+        return self.request("PUT", f"/api/loops/{slug}/log-mapping", json={"log_mapping": mapping})
+
     def rounds(self, slug: str) -> Any:
         return self.request("GET", f"/api/loops/{slug}/rounds")["items"]
 

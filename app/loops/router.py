@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, status
+from typing import Annotated
+
+from fastapi import APIRouter, Body, status
 
 from ..deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
 from ..limits import RoundNumber
 from . import service
+from .log_mapping import LogMapping
 from .schemas import LoopCreate, LoopList, LoopRead, RoundList, RoundOpen, RoundRead
 
 router = APIRouter(prefix="/api/loops", tags=["loops"])
@@ -30,6 +33,19 @@ def list_loops(session: SessionDep, _: ReaderDep) -> LoopList:
 def read_loop(slug: str, session: SessionDep, _: ReaderDep) -> LoopRead:
     """One loop's spec and settings."""
     return LoopRead.model_validate(service.get_loop(session, slug=slug))
+
+
+@router.put("/{slug}/log-mapping", response_model=LoopRead)
+def set_log_mapping(
+    slug: str,
+    log_mapping: Annotated[LogMapping, Body(embed=True)],
+    session: WriterSessionDep,
+    _: AdminDep,
+) -> LoopRead:
+    """Set or replace the loop's log mapping (admin), checked as in a new loop's spec: robot
+    logs uploaded from now on are read through it."""
+    loop = service.get_loop(session, slug=slug)
+    return LoopRead.model_validate(service.set_log_mapping(session, loop=loop, mapping=log_mapping))
 
 
 @router.get("/{slug}/rounds", response_model=RoundList)

@@ -6,9 +6,10 @@ from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from ..errors import Conflict, NotFound
+from ..errors import Conflict, InvalidInput, NotFound
 from ..ingest.models import Rollout
 from ..models import utcnow
+from .log_mapping import LogMapping, check_against_loop
 from .models import Loop, Round
 from .schemas import LoopCreate, RoundRead
 
@@ -51,6 +52,19 @@ def get_loop(session: Session, *, slug: str) -> Loop:
     loop = session.scalar(select(Loop).where(Loop.slug == slug))
     if loop is None:
         raise NotFound(f"no loop with slug '{slug}'")
+    return loop
+
+
+def set_log_mapping(session: Session, *, loop: Loop, mapping: LogMapping) -> Loop:
+    """Give the loop a log mapping, or replace its mapping: checked against the loop's features
+    and action space exactly as in a new loop's spec, refused (422) before anything is written.
+    Logs already stored keep the steps they were read into."""
+    try:
+        check_against_loop(mapping, loop.features, loop.action_space)
+    except ValueError as exc:
+        raise InvalidInput(str(exc)) from exc
+    loop.log_mapping = mapping.model_dump()
+    session.flush()
     return loop
 
 

@@ -9,6 +9,8 @@ from __future__ import annotations
 READERS = {"uploader", "annotator", "trainer"}
 
 EXTRA_ROUTE_ROLES: dict[tuple[str, str], set[str]] = {
+    # loops
+    ("PUT", "/api/loops/{slug}/log-mapping"): set(),
     # queue and bench
     ("POST", "/api/loops/{slug}/queue/claim"): {"annotator"},
     ("POST", "/api/loops/{slug}/queue/items/{item_id}/renew"): {"annotator"},

@@ -53,6 +53,39 @@ def test_rounds_open_list_close(server):
     assert code == 2 and "admin" in out
 
 
+def test_loops_log_mapping_sets_and_replaces_over_http(server, tmp_path):
+    from tests.logs.bags import MAPPING
+
+    common = ["--url", server.url, "--token", server.admin_token]
+    mapping_file = tmp_path / "mapping.json"
+    mapping_file.write_text(json.dumps(MAPPING))
+    code, out = run("loops", "log-mapping", SLUG, str(mapping_file), *common)
+    assert code == 0, out
+    assert f"log mapping of '{SLUG}' set: 3 features from 2 topics at 10 steps a second" in out
+    # a loop spec file: its log_mapping is sent
+    spec_file = tmp_path / "spec.json"
+    spec_file.write_text(
+        json.dumps({**DISCRETE_SPEC, "log_mapping": {**MAPPING, "step_rate_hz": 5}})
+    )
+    code, out = run("loops", "log-mapping", SLUG, str(spec_file), *common)
+    assert code == 0 and "at 5 steps a second" in out, out
+    with Client(server.url, server.admin_token) as client:
+        assert client.loop(SLUG)["log_mapping"]["step_rate_hz"] == 5
+    bad = tmp_path / "bad.json"
+    bad.write_text(json.dumps({**MAPPING, "features": {"gap_m": MAPPING["features"]["gap_m"]}}))
+    code, out = run("loops", "log-mapping", SLUG, str(bad), *common)
+    assert code == 2 and "refused: log_mapping.features: no source for loop feature" in out, out
+    code, out = run(
+        "loops", "log-mapping", SLUG, str(mapping_file),
+        "--url", server.url, "--token", server.annotator_token,
+    )  # fmt: skip
+    assert code == 2 and "refused" in out and "admin" in out, out
+    code, out = run("loops", "log-mapping", SLUG, str(tmp_path / "missing.json"), *common)
+    assert code == 2 and "cannot read" in out
+    with Client(server.url, server.admin_token) as client:
+        assert client.loop(SLUG)["log_mapping"]["step_rate_hz"] == 5  # refusals changed nothing
+
+
 def test_upload_checks_loop_and_round_before_sending(server, tmp_path, monkeypatch):
     common = ["--url", server.url, "--token", server.admin_token]
     demos = tmp_path / "demos.parquet"

@@ -31,6 +31,7 @@ from expertloop.db import make_engine
 from tests.conftest import PG_URL
 from tests.docs.readme import code_blocks, inline_code
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
+from tests.logs.bags import MAPPING
 from tests.packaging.hidden import hide
 from tests.serving import upgrade_empty
 
@@ -56,6 +57,7 @@ EXERCISED = {
     "snapshots list",
     "loops create",
     "loops list",
+    "loops log-mapping",
     "logs inspect",
     "serve",
     "worker",
@@ -263,6 +265,12 @@ def test_upload_rank_and_export_through_a_served_store(
     with running(script, store) as (url, _):
         _api(url, admin, "POST", "/api/loops", json=DISCRETE_SPEC)
         where = ("--loop", "aisle-crossing", "--url", url)
+        mapping = tmp_path / "mapping.json"
+        mapping.write_text(json.dumps(MAPPING))
+        setting = ("loops", "log-mapping", "aisle-crossing", str(mapping), "--url", url)
+        out = run(script, store, *setting, "--token", admin)
+        assert "log mapping of 'aisle-crossing' set: 3 features from 2 topics" in out
+        assert "refused:" in run(script, store, *setting, "--token", fleet, expect=2)
         out = run(
             script, store, "upload", str(demonstrations), "--round", "0", *where, "--token", fleet
         )
