@@ -242,9 +242,11 @@ def users_add(
         except ExpertloopError as exc:
             _fail(exc.message)
             return
+        issued = service.issue_token(session, user=user) if token else None
+        session.commit()
         typer.echo(f"created user '{user.name}' with roles {', '.join(user.roles)}")
-        if token:
-            typer.echo(f"API token (shown once): {service.issue_token(session, user=user)}")
+        if issued:
+            typer.echo(f"API token (shown once): {issued}")
 
 
 @users_cli.command("list")
@@ -324,7 +326,9 @@ def tokens_issue(name: str) -> None:
         except ExpertloopError as exc:
             _fail(exc.message)
             return
-        typer.echo(f"API token (shown once): {service.issue_token(session, user=user)}")
+        issued = service.issue_token(session, user=user)
+        session.commit()
+        typer.echo(f"API token (shown once): {issued}")
 
 
 @tokens_cli.command("revoke")
@@ -338,6 +342,7 @@ def tokens_revoke(
     with _session() as session:
         try:
             count = service.revoke_token(session, prefix=prefix)
+            session.commit()
         except ExpertloopError as exc:
             _fail(exc.message)
             return

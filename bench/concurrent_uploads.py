@@ -58,6 +58,7 @@ def prepare(url: str) -> str:
         session.commit()
         user = auth_service.create_user(session, name="bench-fleet", roles=["uploader"])
         token = auth_service.issue_token(session, user=user)
+        session.commit()
     engine.dispose()
     return token
 

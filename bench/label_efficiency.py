@@ -79,7 +79,7 @@ def _tokens(database_url: str) -> tuple[str, str]:
 
     upgrade(database_url)
     engine = make_engine(database_url)
-    with make_session_factory(engine)() as session:
+    with make_session_factory(engine).begin() as session:
         admin = auth_service.create_user(session, name="bench-admin", roles=["admin"])
         expert = auth_service.create_user(session, name="scripted-expert", roles=["annotator"])
         found = (

@@ -108,6 +108,7 @@ def prepare(url: str, data_dir: Path, n_items: int, n_clients: int) -> list[str]
         for i in range(n_clients):
             user = auth_service.create_user(session, name=f"bench-{i:02d}", roles=["annotator"])
             tokens.append(auth_service.issue_token(session, user=user))
+        session.commit()
     engine.dispose()
     return tokens
 

@@ -102,7 +102,7 @@ def make_user(app: Any) -> Callable[..., dict[str, str]]:
     from expertloop.auth import service
 
     def make(*roles: str, name: str | None = None, password: str | None = None) -> dict[str, str]:
-        with app.state.session_factory() as session:
+        with app.state.session_factory.begin() as session:
             user = service.create_user(
                 session,
                 name=name or "-".join(roles) + "-user",

@@ -5,6 +5,7 @@ from __future__ import annotations
 from datetime import timedelta
 
 from sqlalchemy import select
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from ..db import write_transaction
@@ -37,8 +38,12 @@ def create_user(
         roles=sorted(set(roles)),
         password_hash=security.hash_password(password) if password else None,
     )
-    session.add(user)
-    session.commit()
+    try:
+        # a savepoint: a concurrent create of the same name is refused, not a server error
+        with session.begin_nested():
+            session.add(user)
+    except IntegrityError as exc:
+        raise Conflict(f"user '{name}' already exists") from exc
     return user
 
 
@@ -53,7 +58,7 @@ def get_user_by_name(session: Session, *, name: str) -> User:
 def set_password(session: Session, *, user: User, password: str) -> None:
     """Replace a user's browser password."""
     user.password_hash = security.hash_password(password)
-    session.commit()
+    session.flush()
 
 
 def list_users(session: Session) -> list[User]:
@@ -67,7 +72,7 @@ def issue_token(session: Session, *, user: User) -> str:
     session.add(
         ApiToken(user_id=user.id, token_sha256=security.sha256_hex(token), prefix=token[:10])
     )
-    session.commit()
+    session.flush()
     return token
 
 
@@ -83,7 +88,7 @@ def revoke_token(session: Session, *, prefix: str) -> int:
     )
     for token in tokens:
         token.revoked_at = now
-    session.commit()
+    session.flush()
     return len(tokens)
 
 
@@ -155,7 +160,7 @@ def sign_out(session: Session, *, session_id: str) -> None:
     )
     if found is not None and found.ended_at is None:
         found.ended_at = utcnow()
-        session.commit()
+        session.flush()
 
 
 def set_roles(session: Session, *, user: User, roles: list[str]) -> None:

@@ -36,7 +36,7 @@ def local_server(settings: Settings) -> Iterator[LocalServer]:
     """Migrate the store, add a demo admin and a scripted-expert annotator, serve until exit."""
     upgrade(settings.resolved_database_url)
     app = create_app(settings)
-    with app.state.session_factory() as session:
+    with app.state.session_factory.begin() as session:
         admin = auth_service.create_user(
             session, name=f"run-admin-{time.time_ns()}", roles=["admin"]
         )

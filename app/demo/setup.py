@@ -56,6 +56,7 @@ def prepare_demo(*, host: str, port: int) -> str:
                 auth_service.create_user(session, name=name, roles=roles, password=password)
             else:
                 auth_service.set_password(session, user=user, password=password)
+        session.commit()
         try:
             loop = loops_service.get_loop(session, slug=spec.slug)
         except NotFound:

@@ -116,7 +116,7 @@ def test_a_store_without_the_row_reads_zero_and_the_next_change_restores_it(make
         conn.execute(text("DELETE FROM access_version"))
     assert version(engine) == 0
     header = make_user("annotator", name="ann")
-    with app.state.session_factory() as session:
+    with app.state.session_factory.begin() as session:
         service.revoke_token(session, prefix=header["Authorization"].split()[1][:10])
     assert version(engine) == 1
 
@@ -157,7 +157,7 @@ def test_a_revoked_token_is_refused_on_the_very_next_request_everywhere(
 def test_a_token_revoked_through_the_service_is_refused_at_once(client, other, make_user, app):
     header = make_user("annotator", name="ann")
     assert other.get("/api/me", headers=header).status_code == 200
-    with app.state.session_factory() as session:
+    with app.state.session_factory.begin() as session:
         assert service.revoke_token(session, prefix=header["Authorization"].split()[1]) == 1
     assert other.get("/api/me", headers=header).status_code == 401
 
@@ -317,7 +317,7 @@ def test_concurrent_requests_across_instances_see_a_revocation_from_the_next_one
     with ThreadPoolExecutor(len(clients)) as pool:
         runs = [pool.submit(hammer, i) for i in range(len(clients))]
         until_each_started(3, after=0.0)  # every token cached in both instances
-        with app.state.session_factory() as session:
+        with app.state.session_factory.begin() as session:
             assert service.revoke_token(session, prefix=gone["Authorization"].split()[1]) == 1
         revoked_at = time.monotonic()
         until_each_started(3, after=revoked_at)

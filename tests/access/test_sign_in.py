@@ -125,7 +125,7 @@ def test_wrong_and_revoked_tokens_are_refused(client, app, admin, engine):
         == 401
     )
     token = admin["Authorization"].split()[1]
-    with app.state.session_factory() as session:
+    with app.state.session_factory.begin() as session:
         assert service.revoke_token(session, prefix=token[:10]) == 1
     revoked = client.post("/api/loops", json=DISCRETE_SPEC, headers=admin)
     assert revoked.status_code == 401

@@ -179,7 +179,7 @@ def test_database_restart_under_labelling_loses_and_duplicates_no_label(
     port = free_port()
     base = f"http://127.0.0.1:{port}"
     engine = make_engine(url)
-    with make_session_factory(engine)() as session:
+    with make_session_factory(engine).begin() as session:
         admin_user = auth_service.create_user(session, name="root", roles=["admin"])
         admin = {"Authorization": f"Bearer {auth_service.issue_token(session, user=admin_user)}"}
         annotators = []

@@ -188,7 +188,7 @@ def test_same_content_hash_on_a_second_store(
     second_app = create_app(Settings(data_dir=tmp_path / "second", database_url=url))
     from expertloop.auth import service as auth_service
 
-    with second_app.state.session_factory() as session:
+    with second_app.state.session_factory.begin() as session:
         headers = {}
         for name, role in (("root-admin", "admin"), ("fleet-uploader", "uploader")):
             user = auth_service.create_user(session, name=name, roles=[role])

@@ -63,7 +63,7 @@ def test_a_request_past_the_bound_gets_503_and_the_next_one_succeeds(
     monkeypatch.setattr(db, "POOL_TIMEOUT_S", 0.3)
     app: Any = create_app(settings)
     with TestClient(app) as client:
-        with app.state.session_factory() as session:
+        with app.state.session_factory.begin() as session:
             user = auth_service.create_user(session, name="ana", roles=["annotator"], password=None)
             headers = {"Authorization": f"Bearer {auth_service.issue_token(session, user=user)}"}
         engine = app.state.engine
