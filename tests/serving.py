@@ -16,6 +16,7 @@ from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import httpx
 import numpy as np
@@ -64,22 +65,24 @@ def server_process(
         process = subprocess.Popen(command, env=env, stdout=sink, stderr=sink)
         try:
             url = f"http://127.0.0.1:{port}"
-            _wait_until_healthy(process, url, log_path)
+            wait_until_healthy(process, url, log_path)
             yield ServerProcess(url=url, pid=process.pid)
         finally:
-            process.terminate()
-            try:
-                process.wait(timeout=30)
-            except subprocess.TimeoutExpired:
-                process.kill()
-                process.wait()
+            stop(process)
     finally:
         if sink is not None:
             sink.close()
 
 
-def _wait_until_healthy(process: subprocess.Popen[bytes], url: str, log_path: Path | None) -> None:
-    deadline = time.monotonic() + START_SECONDS
+def wait_until_healthy(
+    process: subprocess.Popen[Any],
+    url: str,
+    log_path: Path | None,
+    seconds: float = START_SECONDS,
+) -> None:
+    """Return once `url`/healthz answers 200; fail with the log's tail if the process exits or
+    `seconds` pass first."""
+    deadline = time.monotonic() + seconds
     while True:
         if process.poll() is not None:
             raise RuntimeError(f"the server exited at start{_tail(log_path)}")
@@ -89,10 +92,18 @@ def _wait_until_healthy(process: subprocess.Popen[bytes], url: str, log_path: Pa
         except httpx.TransportError:
             pass
         if time.monotonic() > deadline:
-            raise RuntimeError(
-                f"the server did not start within {START_SECONDS} s{_tail(log_path)}"
-            )
+            raise RuntimeError(f"the server did not start within {seconds} s{_tail(log_path)}")
         time.sleep(0.1)
+
+
+def stop(process: subprocess.Popen[Any]) -> None:
+    """Terminate a server process, and kill it if it has not ended within 30 s."""
+    process.terminate()
+    try:
+        process.wait(timeout=30)
+    except subprocess.TimeoutExpired:
+        process.kill()
+        process.wait()
 
 
 def _tail(log_path: Path | None) -> str:

@@ -33,7 +33,7 @@ from tests.docs.readme import code_blocks, inline_code
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
 from tests.logs.bags import MAPPING
 from tests.packaging.hidden import hide
-from tests.serving import upgrade_empty
+from tests.serving import stop, upgrade_empty, wait_until_healthy
 
 SCRIPT = Path(sys.executable).parent / "expertloop"
 REPOSITORY = Path(__file__).resolve().parents[2]
@@ -153,19 +153,10 @@ def running(script: Path, env: dict[str, str], *args: str) -> Iterator[tuple[str
         )
         try:
             url = f"http://127.0.0.1:{port}"
-            deadline = time.monotonic() + START_SECONDS
-            while not _healthy(url):
-                assert process.poll() is None, f"serve exited: {log.read_text()[-3000:]}"
-                assert time.monotonic() < deadline, f"serve not up: {log.read_text()[-3000:]}"
-                time.sleep(0.2)
+            wait_until_healthy(process, url, log, START_SECONDS)
             yield url, log
         finally:
-            process.terminate()
-            try:
-                process.wait(timeout=30)
-            except subprocess.TimeoutExpired:
-                process.kill()
-                process.wait()
+            stop(process)
 
 
 def _healthy(url: str) -> bool:

@@ -12,7 +12,6 @@ import os
 import shutil
 import subprocess
 import sys
-import time
 import tomllib
 import venv
 import zipfile
@@ -23,6 +22,7 @@ import httpx
 import pytest
 
 from expertloop.demo.local_server import free_port
+from tests.serving import stop, wait_until_healthy
 
 REPOSITORY = Path(__file__).resolve().parents[2]
 APP = REPOSITORY / "app"
@@ -158,20 +158,10 @@ def served(installed: Path, tmp_path: Path) -> Iterator[str]:
     )
     url = f"http://127.0.0.1:{port}"
     try:
-        deadline = time.monotonic() + START_SECONDS
-        while True:
-            assert process.poll() is None, (tmp_path / "serve.log").read_text()
-            try:
-                if httpx.get(url + "/healthz", timeout=1).status_code == 200:
-                    break
-            except httpx.TransportError:
-                pass
-            assert time.monotonic() < deadline, "the installed server did not start"
-            time.sleep(0.2)
+        wait_until_healthy(process, url, tmp_path / "serve.log", START_SECONDS)
         yield url
     finally:
-        process.terminate()
-        process.wait(timeout=30)
+        stop(process)
         log.close()
 
 
