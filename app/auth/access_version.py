@@ -8,7 +8,8 @@ Every request reads it, so the read is made as cheap as the store allows and nev
   microseconds); busy timeout 0, so a locked file answers "busy" at once instead of stalling
   the loop;
 - PostgreSQL: one asynchronous psycopg connection of its own per event loop, so the request
-  waits for the round trip without a thread and without a pool checkout (and its ping).
+  waits for the round trip without a thread and without a pool checkout (and its ping);
+  requests arriving together share a read that began after they arrived.
 
 When the fast read cannot answer (busy, a dropped connection, the store down) `current()` gives
 None and the caller takes the slow path: a pooled session in the thread pool that reads the
@@ -101,38 +102,53 @@ class PostgresReader:
         )
         self._loop: asyncio.AbstractEventLoop | None = None
         self._conn: psycopg.AsyncConnection[Any] | None = None
-        self._connecting: asyncio.Lock | None = None
+        self._turn: asyncio.Lock | None = None  # one read at a time, first come first served
+        self._started = 0  # reads begun so far
+        self._last: tuple[int, int | None] = (0, None)  # the latest read: its number, its answer
         self._retry_at = 0.0
 
     async def current(self) -> int | None:
         loop = asyncio.get_running_loop()
         if loop is not self._loop:
             self._forget()  # a connection belongs to the loop that opened it
-            self._loop, self._connecting = loop, asyncio.Lock()
+            self._loop, self._turn = loop, asyncio.Lock()
+        assert self._turn is not None
+        # Requests arriving while a read is under way wait for the next one, and every one of
+        # them takes its answer: a read begun after a request arrived sees every change
+        # committed before, so one round trip serves them all (at most two per request, and one
+        # query at a time per process, however many requests come at once).
+        arrived = self._started
+        async with self._turn:
+            number, answer = self._last
+            if number > arrived:
+                return answer
+            self._started += 1
+            answer = await self._read(loop)
+            self._last = (self._started, answer)
+            return answer
+
+    async def _read(self, loop: asyncio.AbstractEventLoop) -> int | None:
         if loop.time() < self._retry_at:
             return None
         try:
             async with asyncio.timeout(READ_TIMEOUT_S):
-                conn = await self._connection()
-                cursor = await conn.execute(READ_SQL)
+                if self._conn is None or self._conn.closed:
+                    self._conn = await psycopg.AsyncConnection.connect(
+                        self._conninfo,
+                        autocommit=True,
+                        connect_timeout=CONNECT_TIMEOUT_S,
+                        application_name=APPLICATION_NAME,
+                    )
+                cursor = await self._conn.execute(READ_SQL)
                 row = await cursor.fetchone()
         except (psycopg.Error, OSError, TimeoutError):
             self._forget()
             self._retry_at = loop.time() + RETRY_AFTER_S
             return None
+        except asyncio.CancelledError:
+            self._forget()  # cut off mid-query: the connection's state is unknown
+            raise
         return int(row[0]) if row else 0
-
-    async def _connection(self) -> psycopg.AsyncConnection[Any]:
-        assert self._connecting is not None
-        async with self._connecting:
-            if self._conn is None or self._conn.closed:
-                self._conn = await psycopg.AsyncConnection.connect(
-                    self._conninfo,
-                    autocommit=True,
-                    connect_timeout=CONNECT_TIMEOUT_S,
-                    application_name=APPLICATION_NAME,
-                )
-            return self._conn
 
     def _forget(self) -> None:
         # Closing the socket needs no event loop (the connection's own loop may be gone).

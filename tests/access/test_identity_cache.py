@@ -3,6 +3,7 @@ or browser sessions, made anywhere, counts from the next request of every app in
 
 from __future__ import annotations
 
+import asyncio
 import threading
 import time
 from collections.abc import Iterator
@@ -288,6 +289,35 @@ def test_a_dropped_reader_connection_falls_back_and_reconnects(
     with engine.connect() as conn:  # by a new connection of the reader's
         again = conn.execute(text(readers), {"name": access_version.APPLICATION_NAME}).all()
     assert again == [(True,)]
+
+
+@pytest.mark.skipif(not PG_URL, reason="the reader's own connection is PostgreSQL's")
+def test_requests_arriving_together_share_a_read_begun_after_they_arrived(engine, make_user):
+    reader = access_version.PostgresReader(engine)
+    reads: list[int | None] = []
+    real = reader._read
+
+    async def counted(loop: Any) -> int | None:
+        reads.append(await real(loop))
+        return reads[-1]
+
+    reader._read = counted  # type: ignore[method-assign]
+
+    async def together() -> tuple[int | None, list[int | None], int | None]:
+        first = await reader.current()
+        make_user("annotator", name="ann")  # no change of the version: a new user
+        answers = await asyncio.gather(*(reader.current() for _ in range(20)))
+        with engine.begin() as conn:
+            conn.execute(text("UPDATE users SET active = false"))
+        after = await reader.current()
+        await reader.close()
+        return first, list(answers), after
+
+    first, answers, after = asyncio.run(together())
+    # the first of the twenty reads at once; the other nineteen arrived while it ran and share
+    # the one read begun after them
+    assert len(reads) == 4 and answers == [first] * 20
+    assert after is not None and first is not None and after > first
 
 
 # --- at the same time --------------------------------------------------------------------------
