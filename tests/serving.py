@@ -44,10 +44,17 @@ class ServerProcess:
 
 @contextmanager
 def server_process(
-    database_url: str, data_dir: Path, *, workers: int = 1, log_path: Path | None = None
+    database_url: str,
+    data_dir: Path,
+    *,
+    workers: int = 1,
+    log_path: Path | None = None,
+    app: str = "expertloop.asgi:app",
+    app_dir: Path | None = None,
 ) -> Iterator[ServerProcess]:
     """Run the app with uvicorn until the block ends; the server's output goes to `log_path`
-    (default: this process's own output)."""
+    (default: this process's own output). Another `app` (module:attribute, found in `app_dir`)
+    must answer GET /healthz too: benchmarks serve their baselines this way."""
     port = free_port()
     data_dir.mkdir(parents=True, exist_ok=True)
     env = {
@@ -56,9 +63,10 @@ def server_process(
         "EXPERTLOOP_DATA_DIR": str(data_dir),
     }
     command = [
-        *(sys.executable, "-m", "uvicorn", "expertloop.asgi:app"),
+        *(sys.executable, "-m", "uvicorn", app),
         *("--host", "127.0.0.1", "--port", str(port), "--workers", str(workers)),
         *("--log-level", "warning", "--no-access-log"),
+        *(("--app-dir", str(app_dir)) if app_dir is not None else ()),
     ]
     sink = log_path.open("wb") if log_path is not None else None
     try:
