@@ -67,7 +67,7 @@ def prepare(url: str) -> str:
 
     upgrade_empty(url)
     engine = make_engine(url)
-    with make_session_factory(engine)() as session:
+    with make_session_factory(engine).begin() as session:  # auth's functions leave the commit
         user = auth_service.create_user(session, name=USER, roles=ROLES)
         token = auth_service.issue_token(session, user=user)
     engine.dispose()
