@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import hashlib
+import os
+import secrets
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -320,9 +322,15 @@ def store_images(images: np.ndarray, blob_dir: Path) -> list[str | None]:
         target = blob_dir / digest[:2] / digest
         if not target.exists():
             target.parent.mkdir(parents=True, exist_ok=True)
-            partial = target.with_suffix(".part")
-            partial.write_bytes(image)
-            partial.replace(target)
+            # a partial file of this writer's own: two uploads holding the same image at once
+            # both write it, and the second rename replaces the first's identical file
+            partial = target.with_name(f"{digest}.{secrets.token_hex(8)}.part")
+            try:
+                partial.write_bytes(image)
+                os.replace(partial, target)
+            except BaseException:
+                partial.unlink(missing_ok=True)
+                raise
         out.append(digest)
     return out
 
