@@ -8,9 +8,11 @@ every field with a worked example.
 from __future__ import annotations
 
 import re
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+
+from ..limits import PlainText
 
 TOPIC_PATTERN = r"^/?[A-Za-z0-9_~{}][A-Za-z0-9_/~{}]{0,254}$"
 # name(.name)* with [index] after any name: twist.twist.linear.x, velocity[3], poses[0].pose
@@ -86,6 +88,69 @@ class SceneSource(_Strict):
     max_age_s: float = Field(default=1.0, gt=0, le=3600)
 
 
+class _Part(_Strict):
+    """The robot's name as a part of a longer text: split at `separator`, take part `part`
+    (from 0; -1 is the last). Without a separator, the whole text."""
+
+    separator: str | None = Field(default=None, min_length=1, max_length=8)
+    part: int = Field(default=0, ge=-16, le=15)
+
+    def pick(self, text: str) -> str:
+        """The part of `text` that names the robot; ValueError where there is none."""
+        if self.separator is None:
+            name = text
+        else:
+            parts = text.split(self.separator)
+            if not -len(parts) <= self.part < len(parts):
+                raise ValueError(
+                    f"'{text}' has {len(parts)} parts split at '{self.separator}', no part "
+                    f"{self.part}"
+                )
+            name = parts[self.part]
+        if not name.strip():
+            raise ValueError(f"'{text}' gives an empty robot name")
+        return name
+
+    def rule(self) -> str:
+        if self.separator is None:
+            return ""
+        return f", part {self.part} split at '{self.separator}'"
+
+
+class RobotFromValue(_Strict):
+    """One robot for every log of the loop, named here."""
+
+    source: Literal["value"]
+    value: PlainText = Field(min_length=1, max_length=200)
+
+    def describe(self) -> str:
+        return f"the mapping's robot '{self.value}'"
+
+
+class RobotFromFileName(_Part):
+    """The robot's name from the uploaded file's name (without its folder and log suffix)."""
+
+    source: Literal["file_name"]
+
+    def describe(self) -> str:
+        return f"the file name{self.rule()}"
+
+
+class RobotFromTopic(_Part, FieldSource):
+    """The robot's name from a text or number field of a topic (an id topic, a frame id): at
+    each rollout's first step the newest message's value (before any, the first message's)."""
+
+    source: Literal["topic"]
+
+    def describe(self) -> str:
+        return f"{super().describe()}{self.rule()}"
+
+
+RobotSource = Annotated[
+    RobotFromValue | RobotFromFileName | RobotFromTopic, Field(discriminator="source")
+]
+
+
 class TopicRule(_Strict):
     """How a topic's values are brought onto the step grid."""
 
@@ -119,6 +184,7 @@ class LogMapping(_Strict):
     control: ControlSource | None = None
     image: ImageSource | None = None
     scene: SceneSource | None = None
+    robot: RobotSource | None = None
     rollouts: RolloutSplit = Field(default_factory=RolloutSplit)
 
     @field_validator("topics")
@@ -156,6 +222,8 @@ class LogMapping(_Strict):
         for name in ("learner_probs", "learner_ensemble", "learner_std", "control"):
             if getattr(self, name) is not None:
                 out[name] = getattr(self, name)
+        if isinstance(self.robot, RobotFromTopic):
+            out["robot"] = self.robot
         return out
 
     def read_topics(self) -> set[str]:

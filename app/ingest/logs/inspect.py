@@ -35,6 +35,7 @@ class Inspection:
     topics: list[TopicSummary]
     grid_steps: int = 0
     rollouts: dict[str, int] = field(default_factory=dict)
+    robots: dict[str, str] = field(default_factory=dict)  # rollout -> robot, where mapped
     dropped: dict[str, int] = field(default_factory=dict)
     absent: dict[str, int] = field(default_factory=dict)
     short_segments: int = 0
@@ -83,6 +84,11 @@ def inspect_log(
         found.short_segments = mapped.short_segments
         keys, counts = np.unique(np.asarray(mapped.row_key, dtype=object), return_counts=True)
         found.rollouts = {str(k): int(c) for k, c in zip(keys, counts, strict=True)}
+        if mapped.table is not None and "robot" in mapped.table.column_names:
+            # a rollout's robot is its first step's, as stored
+            robots = mapped.table.column("robot").to_pylist()
+            for key, robot in zip(mapped.row_key, robots, strict=True):
+                found.robots.setdefault(key, robot)
         spec = ActionSpec.from_loop(loop["features"], loop["action_space"])
         try:
             check_mapped(mapped, spec, round_number=round_number)
@@ -115,7 +121,8 @@ def report_lines(found: Inspection, *, loop_slug: str | None) -> list[str]:
     lines.append(f"log mapping of {loop_slug or 'the spec'}:")
     lines.append(f"  step grid: {found.grid_steps} steps")
     for key, count in found.rollouts.items():
-        lines.append(f"  rollout {key}: {count} steps")
+        robot = f", robot {found.robots[key]}" if key in found.robots else ""
+        lines.append(f"  rollout {key}: {count} steps{robot}")
     for source, count in found.dropped.items():
         lines.append(f"  dropped {count} steps: no fresh value from {source}")
     if found.short_segments:

@@ -314,10 +314,11 @@ _stamp_of = attrgetter("header.stamp")
 
 def _expected_kinds(name: str, mapping: LogMapping) -> tuple[str, ...]:
     """What a source's field must hold: numbers for features and continuous actions, a list
-    of numbers for probabilities and the like, a number or text for discrete values."""
+    of numbers for probabilities and the like, a number or text for discrete values, modes and
+    robot names."""
     if name in ("learner_probs", "learner_ensemble", "learner_std"):
         return ("numbers",)
-    if name in ("control", "learner_action", "expert_action"):
+    if name in ("control", "learner_action", "expert_action", "robot"):
         return ("number", "text")
     return ("number",)
 

@@ -19,6 +19,9 @@ from ...loops.log_mapping import (
     DiscreteActionSource,
     FieldSource,
     LogMapping,
+    RobotFromFileName,
+    RobotFromValue,
+    RobotSource,
 )
 from .gridding import OnGrid, stream_onto_grid
 from .images import frame_bytes
@@ -163,6 +166,8 @@ def map_log(
         columns[name] = _fixed(values[order], present=fresh[order])
     if scene is not None:
         columns["scene"] = pa.array(scene[order].tolist(), type=pa.string())
+    if mapping.robot is not None:
+        columns["robot"] = _robot(mapping.robot, stem, on_grid, order, bag.start_ns)
     if mapping.image is not None and take_images:
         columns["image"] = _images(bag, mapping, on_grid, order, out)
     out.table = pa.table(columns)
@@ -335,6 +340,38 @@ def _images(
     return pa.array(frames, type=pa.binary())
 
 
+def _robot(
+    source: RobotSource, stem: str, on_grid: OnGrid, order: np.ndarray, start_ns: int
+) -> pa.Array:
+    """Each row's robot name: the mapping's value, a part of the file's name, or a part of a
+    topic's field held at the row's step (the first message's before any came)."""
+    if isinstance(source, RobotFromValue):
+        return pa.array(np.full(len(order), source.value, dtype=object), type=pa.string())
+    if isinstance(source, RobotFromFileName):
+        try:
+            name = source.pick(stem)
+        except ValueError as exc:
+            raise InvalidInput(f"log_mapping.robot: {source.describe()}: {exc}") from exc
+        return pa.array(np.full(len(order), name, dtype=object), type=pa.string())
+    if on_grid.topics[source.topic].taken == 0:
+        raise InvalidInput(
+            f"log_mapping.robot: topic {source.topic}: the bag holds no messages on it"
+        )
+    values, _ = on_grid.source(source.topic, "robot")
+    names: dict[str, str] = {}
+    rows: list[str] = []
+    for row in order:
+        raw = _raw_key(values[row])
+        if raw not in names:
+            try:
+                names[raw] = source.pick(raw)
+            except ValueError as exc:
+                when = describe_time(int(on_grid.steps[row]), start_ns)
+                raise InvalidInput(f"{source.describe()}, at {when}: {exc}") from exc
+        rows.append(names[raw])
+    return pa.array(rows, type=pa.string())
+
+
 def _column_sources(mapping: LogMapping) -> dict[str, str]:
     """The mapping's source of each contract column, as refusals name it."""
     out = {
@@ -356,4 +393,6 @@ def _column_sources(mapping: LogMapping) -> dict[str, str]:
         out["scene"] = f"topic {mapping.scene.topic}"
     if mapping.image is not None:
         out["image"] = f"topic {mapping.image.topic}"
+    if mapping.robot is not None:
+        out["robot"] = f"robot from {mapping.robot.describe()}"
     return out
