@@ -20,6 +20,7 @@ from .config import Settings, get_settings
 from .db import make_engine, make_session_factory, make_writer_session_factory
 from .error_pages import error_response
 from .errors import ExpertloopError
+from .ingest.image_store import PACK_SUFFIX, incoming_packs
 from .ingest.logs.archive import SPOOL_PREFIX as BAG_SPOOL_PREFIX
 from .ingest.spool import sweep_stale
 from .job_handlers import register_job_handlers
@@ -100,6 +101,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         sweep_stale(settings.upload_dir)
         sweep_stale(settings.upload_dir, pattern=f"{BAG_SPOOL_PREFIX}*")
         sweep_stale(settings.snapshot_dir, pattern=f"loop-*/*{SPOOL_SUFFIX}")
+        sweep_stale(incoming_packs(settings.blob_dir), pattern=f"*{PACK_SUFFIX}")
         runner = None
         if settings.job_mode == "thread":
             runner = JobThread(app.state.session_factory, settings)

@@ -87,3 +87,19 @@ class Step(Base):
     learner_std: Mapped[bytes | None] = mapped_column(LargeBinary, nullable=True)
     scene: Mapped[str | None] = mapped_column(Text, nullable=True)
     image_sha256: Mapped[str | None] = mapped_column(String(64), nullable=True)
+
+
+class StoredImage(Base):
+    """Where a camera image's bytes are: a range of one pack file under the blob folder.
+
+    Keyed by the image's SHA-256, so an image is stored once whatever uploads carry it; rows are
+    written in the transaction of the upload that wrote the pack (app/ingest/image_store.py).
+    Images stored before packs existed are single files and have no row here.
+    """
+
+    __tablename__ = "images"
+
+    sha256: Mapped[str] = mapped_column(String(64), primary_key=True)
+    pack: Mapped[str] = mapped_column(String(32))
+    byte_offset: Mapped[int] = mapped_column(BigInteger)
+    byte_length: Mapped[int] = mapped_column(Integer)

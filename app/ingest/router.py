@@ -6,14 +6,14 @@ from collections.abc import AsyncIterator
 from pathlib import Path
 
 from fastapi import APIRouter, Query, UploadFile, status
-from fastapi.responses import FileResponse
+from fastapi.responses import FileResponse, Response
 from starlette.concurrency import run_in_threadpool
 
 from ..deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep
 from ..errors import NotFound
 from ..limits import PageOffset, RoundNumber, StepId
 from ..loops import service as loops_service
-from . import reads, service
+from . import image_store, reads, service
 from .images import HEAD_BYTES, image_media_type
 from .limits import UploadLimits
 from .schemas import RolloutList, StateContext, StepList, UploadRead
@@ -125,16 +125,25 @@ def read_state(
     return StateContext(state=state, before=before, after=after, context_seconds=window)
 
 
-@router.get("/images/{sha256}")
-def read_image(sha256: str, settings: SettingsDep, _: AnnotatorDep) -> FileResponse:
+@router.get("/images/{sha256}", response_model=None)
+def read_image(
+    sha256: str, session: SessionDep, settings: SettingsDep, _: AnnotatorDep
+) -> Response:
     """A camera image attached to a state, by its content hash (annotator)."""
     if len(sha256) != 64 or any(c not in "0123456789abcdef" for c in sha256):
         raise NotFound("no such image")
-    path: Path = settings.blob_dir / sha256[:2] / sha256
-    if not path.exists():
+    found = image_store.read_image(session, sha256=sha256, blob_dir=settings.blob_dir)
+    if found is None:
         raise NotFound("no such image")
-    with path.open("rb") as fh:
-        media_type = image_media_type(fh.read(HEAD_BYTES))
+    if isinstance(found, Path):  # a single file, stored before packs
+        with found.open("rb") as fh:
+            head = fh.read(HEAD_BYTES)
+    else:
+        head = found[:HEAD_BYTES]
+    media_type = image_media_type(head)
     # A blob stored before images were checked may be anything: offer it only as a download.
     headers = {} if media_type else {"Content-Disposition": "attachment"}
-    return FileResponse(path, media_type=media_type or "application/octet-stream", headers=headers)
+    kind = media_type or "application/octet-stream"
+    if isinstance(found, Path):
+        return FileResponse(found, media_type=kind, headers=headers)
+    return Response(found, media_type=kind, headers=headers)

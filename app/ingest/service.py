@@ -3,14 +3,12 @@
 from __future__ import annotations
 
 import hashlib
-import os
-import secrets
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 from sqlalchemy import insert, select
-from sqlalchemy.exc import IntegrityError
+from sqlalchemy.exc import IntegrityError, InterfaceError, OperationalError
 from sqlalchemy.orm import Session
 
 from ..db import write_transaction
@@ -19,9 +17,10 @@ from ..limits import shown
 from ..loops import service as loops_service
 from ..loops.models import Loop, Round
 from ..shared.encode import rows_to_bytes
-from . import bulk
+from . import bulk, image_store
 from .columns import Vectors
 from .formats import detect_format, read_table
+from .image_store import PackWrite
 from .limits import UploadLimits
 from .logs.archive import BAG_FORMATS, DEFAULT_MAX_UNPACKED_BYTES
 from .logs.service import loop_mapping, validate_log
@@ -75,8 +74,10 @@ def ingest_file(
 ) -> UploadOutcome:
     """Validate a spooled rollout file or robot log and store it all-or-nothing.
 
-    The file is read and validated with no transaction open, so on SQLite no other writer waits
-    for it; only storing takes the write lock. The same file sent twice at once is stored once:
+    The file is read and validated, and its images hashed, with no transaction open, so on
+    SQLite no other writer waits for it; only storing takes the write lock. The images not
+    stored yet go into one pack under `blob_dir` (image_store), deleted again when the
+    transaction rolls back. The same file sent twice at once is stored once:
     on SQLite the second finds the first's upload under the write lock; on PostgreSQL the unique
     constraint stops the second, which then answers as the repeat it is.
     """
@@ -105,13 +106,14 @@ def ingest_file(
         del table
     hashes = rollout_hashes(batch)
     for attempt in range(2):
+        pack: PackWrite | None = None
         try:
             with write_transaction(session):
                 earlier = _earlier_upload(session, rnd, file_sha256)
                 if earlier is not None:
                     return _outcome_of(session, earlier, duplicate_file=True)
                 keep = _new_rollouts(session, loop, batch, hashes)
-                upload = _store(
+                upload, pack = _store(
                     session,
                     loop,
                     rnd,
@@ -129,13 +131,27 @@ def ingest_file(
             # PostgreSQL: another upload stored this file, or one of its rollouts, while this
             # one was storing. Look again: the file is then a repeat, a rollout is skipped if
             # identical and refused if not. SQLite never gets here (one writer at a time).
+            _discard(pack)
             if attempt == 1:
                 raise
+        except (OperationalError, InterfaceError):
+            # The store failed or went away, perhaps during the commit, whose outcome is then
+            # unknown: the pack stays, as its rows may have been committed (a pack no row names
+            # is never read, app/ingest/image_store.py).
+            raise
+        except BaseException:
+            _discard(pack)  # rolled back: no row names the pack
+            raise
     outcome = _outcome_of(session, upload, duplicate_file=False)
     outcome.already_stored = [
         k for k, kept in zip(batch.rollout_keys, keep, strict=True) if not kept
     ]
     return outcome
+
+
+def _discard(pack: PackWrite | None) -> None:
+    if pack is not None:
+        pack.discard()
 
 
 def _earlier_upload(session: Session, rnd: Round, file_sha256: str) -> Upload | None:
@@ -171,16 +187,18 @@ def rollout_hashes(batch: StepBatch) -> list[str]:
         h = hashlib.sha256()
         for part in _content_arrays(batch):
             h.update(np.ascontiguousarray(part[rows]).tobytes())
-        for optional in (batch.scene, batch.image):
-            if optional is not None:
-                for value in optional[rows]:
-                    h.update(
-                        b"\x00"
-                        if value is None
-                        else hashlib.sha256(
-                            value if isinstance(value, bytes) else str(value).encode()
-                        ).digest()
-                    )
+        if batch.scene is not None:
+            for value in batch.scene[rows]:
+                h.update(
+                    b"\x00"
+                    if value is None
+                    else hashlib.sha256(
+                        value if isinstance(value, bytes) else str(value).encode()
+                    ).digest()
+                )
+        if batch.image_sha256 is not None:
+            for digest in batch.image_sha256[rows]:
+                h.update(b"\x00" if digest is None else bytes.fromhex(digest))
         out.append(h.hexdigest())
     return out
 
@@ -213,7 +231,9 @@ def _store(
     file_sha256: str,
     user_id: int | None,
     blob_dir: Path,
-) -> Upload:
+) -> tuple[Upload, PackWrite | None]:
+    """Store the kept rollouts with their steps, and their images last (image_store: the pack
+    is then written as close to the commit as it can be)."""
     row_keep = keep[batch.rollout_index]
     slices = batch.rollout_slices()
     upload = Upload(
@@ -229,7 +249,7 @@ def _store(
     session.flush()
     kept = np.flatnonzero(keep)
     if len(kept) == 0:
-        return upload
+        return upload, None
     rollout_rows = [
         {
             "loop_id": loop.id,
@@ -250,23 +270,33 @@ def _store(
     rollout_id_of = np.zeros(len(batch.rollout_keys), dtype=np.int64)
     for r in kept:
         rollout_id_of[r] = id_of_key[batch.rollout_keys[r]]
-    columns = step_columns(batch, row_keep, rollout_id_of, rnd.id, blob_dir)
+    pick = _pick(row_keep)
+    columns = step_columns(batch, pick, rollout_id_of, rnd.id)
     bulk.insert_steps(session.connection(), columns, int(row_keep.sum()))
-    return upload
+    image_sha256 = columns["image_sha256"]
+    if batch.image is None or not isinstance(image_sha256, list):
+        return upload, None
+    pack = image_store.store_images(
+        session, images=batch.image[pick], sha256=image_sha256, blob_dir=blob_dir
+    )
+    return upload, pack
+
+
+def _pick(rows: np.ndarray) -> np.ndarray | slice:
+    """Index for the selected rows (`rows`: a boolean mask). Every row is new in the usual
+    upload: a full slice takes views where the mask would copy each column (some 0.6 s at a
+    million steps of 64 features)."""
+    return slice(None) if rows.all() else rows
 
 
 def step_columns(
     batch: StepBatch,
-    rows: np.ndarray,
+    pick: np.ndarray | slice,
     rollout_id_of: np.ndarray,
     round_id: int,
-    blob_dir: Path,
 ) -> dict[str, bulk.Column]:
-    """The steps table's columns for the selected rows of a batch (`rows`: a boolean mask)."""
-    n = int(rows.sum())
-    # Every row is new in the usual upload: a full slice takes views where the boolean mask
-    # would copy each column (some 0.6 s at a million steps of 64 features).
-    pick: np.ndarray | slice = slice(None) if n == len(rows) else rows
+    """The steps table's columns for the selected rows of a batch (`pick`, from `_pick`)."""
+    n = len(batch.step[pick])
 
     def vectors(value: Vectors | None) -> list[bytes | None] | None:
         if value is None or not value.present[pick].any():
@@ -307,32 +337,10 @@ def step_columns(
         else [batch.ensemble_size if b is not None else None for b in ensemble],
         "learner_std": vectors(batch.learner_std),
         "scene": None if batch.scene is None else list(batch.scene[pick]),
-        "image_sha256": None if batch.image is None else store_images(batch.image[pick], blob_dir),
+        "image_sha256": None
+        if batch.image_sha256 is None
+        else np.asarray(batch.image_sha256, dtype=object)[pick].tolist(),
     }
-
-
-def store_images(images: np.ndarray, blob_dir: Path) -> list[str | None]:
-    """Write images to the content-addressed blob folder; return their hashes."""
-    out: list[str | None] = []
-    for image in images:
-        if image is None:
-            out.append(None)
-            continue
-        digest = hashlib.sha256(image).hexdigest()
-        target = blob_dir / digest[:2] / digest
-        if not target.exists():
-            target.parent.mkdir(parents=True, exist_ok=True)
-            # a partial file of this writer's own: two uploads holding the same image at once
-            # both write it, and the second rename replaces the first's identical file
-            partial = target.with_name(f"{digest}.{secrets.token_hex(8)}.part")
-            try:
-                partial.write_bytes(image)
-                os.replace(partial, target)
-            except BaseException:
-                partial.unlink(missing_ok=True)
-                raise
-        out.append(digest)
-    return out
 
 
 def _outcome_of(session: Session, upload: Upload, *, duplicate_file: bool) -> UploadOutcome:

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -15,6 +16,7 @@ from ..limits import shown
 from ..shared.contract import CONTROL_VALUES, PROBABILITY_SUM_TOLERANCE, REQUIRED_COLUMNS
 from . import columns as col
 from . import limits as upload_limits
+from .images import content_digests
 from .models import CONTROL_EXPERT, CONTROL_LEARNER
 
 NO_ACTION = -1
@@ -86,6 +88,12 @@ class StepBatch:
     @property
     def n_steps(self) -> int:
         return len(self.step)
+
+    @cached_property
+    def image_sha256(self) -> list[str | None] | None:
+        """Each step's image hash (None where it has none), computed once for the rollouts'
+        content hashes and the image store alike."""
+        return None if self.image is None else content_digests(self.image)
 
     def rollout_slices(self) -> list[slice]:
         """The row range of each rollout (rows are sorted by rollout)."""
