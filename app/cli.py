@@ -184,11 +184,12 @@ def loops_create(spec_file: Path) -> None:
 def loops_list() -> None:
     """List loops."""
     from .loops import service
+    from .loops.spec import spec_of
 
     with _session() as session:
         for loop in service.list_loops(session):
-            kind = loop.action_space["kind"]
-            typer.echo(f"{loop.slug}\t{kind}\t{len(loop.features)} features\t{loop.title}")
+            spec = spec_of(loop)
+            typer.echo(f"{loop.slug}\t{spec.kind}\t{spec.n_features} features\t{loop.title}")
 
 
 @loops_cli.command("log-mapping")

@@ -18,6 +18,7 @@ from numpy.typing import NDArray
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.neural_network import MLPClassifier, MLPRegressor
 
+from ..loops.spec import parse_spec
 from . import scenario as sc
 
 FloatArray = NDArray[np.float64]
@@ -80,11 +81,10 @@ class Ensemble:
 
 
 def _action_bounds(kind: str) -> tuple[FloatArray, FloatArray]:
-    if kind == "discrete":
-        return np.zeros(0), np.zeros(0)
-    low = np.array([d["low"] for d in sc.CONTINUOUS_DIMENSIONS], dtype=np.float64)
-    high = np.array([d["high"] for d in sc.CONTINUOUS_DIMENSIONS], dtype=np.float64)
-    return low, high
+    """The demo loop's action bounds, read as every stage reads a loop's (empty when discrete)."""
+    spec = sc.loop_spec(kind)
+    typed = parse_spec(spec["features"], spec["action_space"])
+    return typed.low, typed.high
 
 
 def fit(

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import difflib
 import json
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -46,7 +47,7 @@ class UploadLimits:
     max_array_bytes: int = 1024 * 1024 * 1024
 
 
-def check_column_names(names: list[str], feature_names: list[str]) -> None:
+def check_column_names(names: Sequence[str], feature_names: Sequence[str]) -> None:
     """Refuse a column the contract does not know, suggesting the nearest known name."""
     known = [*REQUIRED_COLUMNS, *OPTIONAL_COLUMNS, *feature_names]
     for name in names:

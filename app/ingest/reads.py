@@ -12,10 +12,10 @@ from sqlalchemy.orm import Session
 
 from ..errors import NotFound
 from ..loops.models import Loop, Round
+from ..loops.spec import LoopSpec, spec_of
 from ..shared.encode import FLOAT32_LE
 from .models import CONTROL_EXPERT, Rollout, Step
 from .schemas import RolloutRead, StepRead
-from .validate import ActionSpec
 
 _STEP_FIELDS = (
     Step.id,
@@ -80,7 +80,7 @@ def list_steps(
         .offset(offset)
         .limit(limit)
     ).all()
-    return decode_steps(rows, ActionSpec.from_loop(loop.features, loop.action_space))
+    return decode_steps(rows, spec_of(loop))
 
 
 def state_with_context(
@@ -105,16 +105,16 @@ def state_with_context(
         )
         .order_by(Step.step_index)
     ).all()
-    steps = decode_steps(rows, ActionSpec.from_loop(loop.features, loop.action_space))
+    steps = decode_steps(rows, spec_of(loop))
     at = next(i for i, s in enumerate(steps) if s.id == step_id)
     return steps[at], steps[:at], steps[at + 1 :]
 
 
-def decode_steps(rows: Sequence[Any], spec: ActionSpec) -> list[StepRead]:
+def decode_steps(rows: Sequence[Any], spec: LoopSpec) -> list[StepRead]:
     """StepRead objects from rows selected with _STEP_FIELDS; features decoded in one call."""
     if not rows:
         return []
-    width = len(spec.feature_names)
+    width = spec.n_features
     features = np.frombuffer(b"".join(r[5] for r in rows), dtype=FLOAT32_LE).reshape(
         len(rows), width
     )
@@ -148,8 +148,8 @@ def _vector(blob: bytes | None) -> list[float] | None:
     return None if blob is None else np.frombuffer(blob, dtype=FLOAT32_LE).tolist()
 
 
-def _action(index: int | None, blob: bytes | None, spec: ActionSpec) -> str | list[float] | None:
-    if spec.kind == "discrete":
+def _action(index: int | None, blob: bytes | None, spec: LoopSpec) -> str | list[float] | None:
+    if spec.is_discrete:
         return None if index is None else spec.action_names[index]
     return _vector(blob)
 
@@ -163,5 +163,4 @@ def steps_by_id(session: Session, *, loop: Loop, step_ids: Sequence[int]) -> dic
         .join(Rollout, Rollout.id == Step.rollout_id)
         .where(Step.id.in_(list(step_ids)), Rollout.loop_id == loop.id)
     ).all()
-    spec = ActionSpec.from_loop(loop.features, loop.action_space)
-    return {s.id: s for s in decode_steps(rows, spec)}
+    return {s.id: s for s in decode_steps(rows, spec_of(loop))}

@@ -13,6 +13,7 @@ from ..deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep
 from ..errors import NotFound
 from ..limits import PageOffset, RoundNumber, StepId
 from ..loops import service as loops_service
+from ..loops.spec import spec_of
 from . import image_store, reads, service
 from .images import HEAD_BYTES, image_media_type
 from .limits import UploadLimits
@@ -118,7 +119,7 @@ def read_state(
 ) -> StateContext:
     """One state with its rollout's steps around it in time (the bench's context)."""
     loop = loops_service.get_loop(session, slug=slug)
-    window = seconds if seconds is not None else float(loop.settings["context_seconds"])
+    window = seconds if seconds is not None else spec_of(loop).settings.context_seconds
     state, before, after = reads.state_with_context(
         session, loop=loop, step_id=step_id, seconds=window
     )

@@ -16,6 +16,7 @@ from ..errors import Conflict
 from ..limits import shown
 from ..loops import service as loops_service
 from ..loops.models import Loop, Round
+from ..loops.spec import spec_of
 from ..shared.encode import rows_to_bytes
 from . import bulk, image_store
 from .columns import Vectors
@@ -25,7 +26,7 @@ from .limits import UploadLimits
 from .logs.archive import BAG_FORMATS, DEFAULT_MAX_UNPACKED_BYTES
 from .logs.service import loop_mapping, validate_log
 from .models import Rollout, Upload
-from .validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
+from .validate import DEFAULT_LIMITS, StepBatch, validate
 
 
 @dataclass
@@ -37,11 +38,6 @@ class UploadOutcome:
     n_steps: int
     rollouts: list[dict[str, object]] = field(default_factory=list)
     already_stored: list[str] = field(default_factory=list)
-
-
-def spec_of(loop: Loop) -> ActionSpec:
-    """The validation view of a loop's spec."""
-    return ActionSpec.from_loop(loop.features, loop.action_space)
 
 
 def upload_target(session: Session, *, slug: str, number: int) -> tuple[Loop, Round]:
@@ -93,7 +89,7 @@ def ingest_file(
             path,
             file_format=file_format,
             filename=filename,
-            mapping=loop_mapping(loop.slug, loop.log_mapping),
+            mapping=loop_mapping(loop.slug, spec_of(loop).log_mapping),
             spec=spec_of(loop),
             round_number=rnd.number,
             spool_dir=path.parent,

@@ -13,6 +13,7 @@ import pyarrow.compute as pc
 
 from ..errors import InvalidInput
 from ..limits import shown
+from ..loops.spec import LoopSpec
 from ..shared.contract import CONTROL_VALUES, PROBABILITY_SUM_TOLERANCE, REQUIRED_COLUMNS
 from . import columns as col
 from . import limits as upload_limits
@@ -21,40 +22,6 @@ from .models import CONTROL_EXPERT, CONTROL_LEARNER
 
 NO_ACTION = -1
 DEFAULT_LIMITS = upload_limits.UploadLimits()
-
-
-@dataclass
-class ActionSpec:
-    """The parts of a loop's spec that validation needs."""
-
-    feature_names: list[str]
-    kind: str  # "discrete" | "continuous"
-    action_names: list[str]  # discrete actions, or continuous dimension names
-    low: np.ndarray  # (n_dims,) continuous bounds; empty for discrete
-    high: np.ndarray
-    units: list[str]
-
-    @classmethod
-    def from_loop(cls, features: list[dict[str, Any]], action_space: dict[str, Any]) -> ActionSpec:
-        if action_space["kind"] == "discrete":
-            names = list(action_space["actions"])
-            return cls(
-                [f["name"] for f in features], "discrete", names, np.empty(0), np.empty(0), []
-            )
-        dims = action_space["dimensions"]
-        return cls(
-            [f["name"] for f in features],
-            "continuous",
-            [d["name"] for d in dims],
-            np.array([d["low"] for d in dims], dtype=np.float64),
-            np.array([d["high"] for d in dims], dtype=np.float64),
-            [d.get("unit", "") for d in dims],
-        )
-
-    @property
-    def action_width(self) -> int:
-        """Actions (discrete) or dimensions (continuous): the width of probabilities and vectors."""
-        return len(self.action_names)
 
 
 @dataclass
@@ -105,7 +72,7 @@ class StepBatch:
 
 def validate(
     table: pa.Table,
-    spec: ActionSpec,
+    spec: LoopSpec,
     *,
     round_number: int,
     limits: upload_limits.UploadLimits = DEFAULT_LIMITS,
@@ -192,7 +159,7 @@ def _take(value: Any, order: np.ndarray | slice) -> Any:
     return value[order]
 
 
-def _features(table: pa.Table, spec: ActionSpec) -> np.ndarray:
+def _features(table: pa.Table, spec: LoopSpec) -> np.ndarray:
     width = len(spec.feature_names)
     per_feature = [f for f in spec.feature_names if f in table.column_names]
     if "features" in table.column_names:
@@ -237,7 +204,7 @@ def _control(table: pa.Table, round_number: int) -> np.ndarray:
     return control
 
 
-def _action(table: pa.Table, name: str, spec: ActionSpec) -> np.ndarray | col.Vectors | None:
+def _action(table: pa.Table, name: str, spec: LoopSpec) -> np.ndarray | col.Vectors | None:
     if name not in table.column_names:
         return None
     column = table[name]
@@ -253,7 +220,7 @@ def _action(table: pa.Table, name: str, spec: ActionSpec) -> np.ndarray | col.Ve
                 i,
                 name,
                 f"{spec.action_names[j]} = {vectors.values[i, j]:g} is outside "
-                f"[{spec.low[j]:g}, {spec.high[j]:g}] {spec.units[j]}".rstrip(),
+                f"[{spec.low[j]:g}, {spec.high[j]:g}] {spec.action_units[j]}".rstrip(),
             )
         return vectors
     if pa.types.is_null(column.type):
@@ -303,7 +270,7 @@ def _require_expert_actions(
         raise col.fail(i, "expert_action", f"missing, but {why}")
 
 
-def _probabilities(table: pa.Table, spec: ActionSpec) -> col.Vectors | None:
+def _probabilities(table: pa.Table, spec: LoopSpec) -> col.Vectors | None:
     if "learner_probs" not in table.column_names:
         return None
     if spec.kind != "discrete":
@@ -334,7 +301,7 @@ def _check_simplex(values: np.ndarray, present: np.ndarray, name: str) -> None:
         )
 
 
-def _ensemble(table: pa.Table, spec: ActionSpec) -> tuple[col.Vectors | None, int]:
+def _ensemble(table: pa.Table, spec: LoopSpec) -> tuple[col.Vectors | None, int]:
     if "learner_ensemble" not in table.column_names:
         return None, 0
     members, size = col.float_matrices(
@@ -345,7 +312,7 @@ def _ensemble(table: pa.Table, spec: ActionSpec) -> tuple[col.Vectors | None, in
     return members, size
 
 
-def _std(table: pa.Table, spec: ActionSpec) -> col.Vectors | None:
+def _std(table: pa.Table, spec: LoopSpec) -> col.Vectors | None:
     if "learner_std" not in table.column_names:
         return None
     if spec.kind != "continuous":

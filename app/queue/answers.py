@@ -10,8 +10,8 @@ from typing import Any
 import numpy as np
 
 from ..errors import InvalidInput
-from ..ingest.validate import ActionSpec
 from ..loops.schemas import LoopSettings
+from ..loops.spec import LoopSpec
 from ..shared.encode import FLOAT32_LE
 from .models import ANSWER_ACTION, ANSWER_UNSURE, Label
 
@@ -20,7 +20,7 @@ SUBMISSION_ID = re.compile(r"^[A-Za-z0-9_-]{8,48}$")
 MAX_SECONDS_SPENT = 86_400.0
 
 
-def check_answer(spec: ActionSpec, *, answer: str, action: Any) -> tuple[int | None, bytes | None]:
+def check_answer(spec: LoopSpec, *, answer: str, action: Any) -> tuple[int | None, bytes | None]:
     """Validate an answer against the action space; returns (discrete index, continuous bytes).
 
     Raises InvalidInput naming the field: an index out of range, a vector of the wrong length,
@@ -34,7 +34,7 @@ def check_answer(spec: ActionSpec, *, answer: str, action: Any) -> tuple[int | N
         raise InvalidInput(f"answer: expected 'action' or 'unsure', got {answer!r}")
     if action is None:
         raise InvalidInput("action: required when the answer is an action")
-    if spec.kind == "discrete":
+    if spec.is_discrete:
         names = ", ".join(f"{i} {n}" for i, n in enumerate(spec.action_names))
         if isinstance(action, bool) or not isinstance(action, int):
             raise InvalidInput(f"action: a discrete action is an index ({names}); got {action!r}")
@@ -52,7 +52,7 @@ def check_answer(spec: ActionSpec, *, answer: str, action: Any) -> tuple[int | N
         )
     values = np.asarray(action, dtype=np.float64)
     for i, value in enumerate(values.tolist()):
-        name, unit = spec.action_names[i], spec.units[i]
+        name, unit = spec.action_names[i], spec.action_units[i]
         if not math.isfinite(value):
             raise InvalidInput(f"action[{i}] ({name}): must be a finite number")
         if not spec.low[i] <= value <= spec.high[i]:

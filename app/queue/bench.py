@@ -11,12 +11,12 @@ from sqlalchemy.orm import Session
 from ..ingest import reads
 from ..ingest.schemas import StepRead
 from ..loops.models import Loop
-from ..loops.schemas import LoopSettings
+from ..loops.spec import LoopSpec, spec_of
 from ..shared.current import is_current
 from ..shared.encode import FLOAT32_LE
 from .models import ANSWER_ACTION, Label
 from .schemas import BenchItem, BenchStep
-from .service import Claim, loop_settings
+from .service import Claim
 
 
 def bench_step(step: StepRead, *, commands: str = "none") -> BenchStep:
@@ -49,14 +49,14 @@ class Start:
     step: int | None = None
 
 
-def neutral_action(dimensions: list[dict[str, float]]) -> list[float]:
-    """0 in each dimension whose bounds hold it (no motion), else the middle of the range."""
-    return [0.0 if d["low"] <= 0.0 <= d["high"] else (d["low"] + d["high"]) / 2 for d in dimensions]
+def neutral_action(low: np.ndarray, high: np.ndarray) -> list[float]:
+    """0 in each dimension whose bounds (low, high: shape (n_dims,)) hold it (no motion), else
+    the middle of the range."""
+    return [float(v) for v in np.where((low <= 0.0) & (0.0 <= high), 0.0, (low + high) / 2)]
 
 
 def start_action(
-    settings: LoopSettings,
-    dimensions: list[dict[str, float]],
+    spec: LoopSpec,
     *,
     before: list[StepRead],
     learner: list[float] | None,
@@ -68,6 +68,7 @@ def start_action(
     own answer on the nearest earlier step of the context; learner: the learner's action where
     the item shows it. Anything missing falls back to neutral.
     """
+    settings = spec.settings
     if settings.continuous_start == "previous":
         last = before[-1] if before else None
         if last is not None and isinstance(last.expert_action, list):
@@ -76,7 +77,7 @@ def start_action(
             return Start(own[1], "yours", own[0])
     if settings.continuous_start == "learner" and learner is not None:
         return Start(learner, "learner")
-    return Start(neutral_action(dimensions), "neutral")
+    return Start(neutral_action(spec.low, spec.high), "neutral")
 
 
 def _own_answer(
@@ -107,16 +108,16 @@ def bench_item(session: Session, *, loop: Loop, claim: Claim, user_id: int) -> B
 
     Only steps before the state are sent: later steps would show what the learner did next.
     """
-    settings = loop_settings(loop)
+    spec = spec_of(loop)
+    settings = spec.settings
     state, before, _after = reads.state_with_context(
         session, loop=loop, step_id=claim.item.step_id, seconds=settings.context_seconds
     )
     shown = claim.item.show_learner
     start = Start(None, "")
-    if loop.action_space["kind"] == "continuous":
+    if not spec.is_discrete:
         start = start_action(
-            settings,
-            loop.action_space["dimensions"],
+            spec,
             before=before,
             learner=state.learner_action
             if shown and isinstance(state.learner_action, list)

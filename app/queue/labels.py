@@ -28,13 +28,13 @@ from sqlalchemy.orm import Session
 from ..db import write_transaction
 from ..errors import Conflict, InvalidInput
 from ..ingest.models import Step
-from ..ingest.validate import ActionSpec
 from ..loops.models import Loop
+from ..loops.spec import spec_of
 from ..shared.current import is_current
 from .answers import check_answer, check_request
 from .models import ITEM_DONE, ITEM_OPEN, Label, Lease
 from .models import QueueItem as Item
-from .rules import lock_item, loop_settings
+from .rules import lock_item
 
 
 @dataclass(frozen=True)
@@ -66,7 +66,8 @@ def submit(
     done when `labels_done` reaches `labels_needed`. With `span_steps`, the same action is also
     stored for that many steps just before (within the context window), flagged as span labels.
     """
-    settings = loop_settings(loop)
+    spec = spec_of(loop)
+    settings = spec.settings
     check_request(
         settings,
         submission_id=submission_id,
@@ -74,9 +75,7 @@ def submit(
         span_steps=span_steps,
         seconds_spent=seconds_spent,
     )
-    index, vector = check_answer(
-        ActionSpec.from_loop(loop.features, loop.action_space), answer=answer, action=action
-    )
+    index, vector = check_answer(spec, answer=answer, action=action)
     try:
         with write_transaction(session):
             item = lock_item(session, loop=loop, item_id=item_id)

@@ -9,6 +9,7 @@ from fastapi.responses import HTMLResponse
 from ..deps import AdminDep, AnnotatorDep, SessionDep
 from ..limits import RoundNumber, RowId
 from ..loops import service as loops_service
+from ..loops.spec import spec_of
 from ..models import utcnow
 from ..templating import templates
 from . import service
@@ -89,14 +90,13 @@ def submit(
         response.status_code = status.HTTP_200_OK
     label = done.label
     action = stored_action(label)
-    names = loop.action_space.get("actions")
     return LabelRead(
         id=label.id,
         item_id=item_id,
         step_id=label.step_id,
         answer=label.answer,
         action=action,
-        action_name=names[action] if names and isinstance(action, int) else None,
+        action_name=spec_of(loop).action_name(action),
         learner_shown=label.learner_shown,
         span_labels=done.span_labels,
         seconds_spent=label.seconds_spent,
@@ -126,18 +126,16 @@ def round_queue(
 def bench_page(request: Request, slug: str, session: SessionDep, caller: AnnotatorDep) -> Response:
     """The bench: label the loop's queued states, keyboard first (annotator)."""
     loop = loops_service.get_loop(session, slug=slug)
-    settings = service.loop_settings(loop)
-    names = [f["name"] for f in loop.features]
+    spec = spec_of(loop)
+    settings = spec.settings
+    names = spec.feature_names
     key = [names.index(n) for n in settings.key_features or []]
     order = key + [i for i in range(len(names)) if i not in key]
-    space = loop.action_space
-    commands = (
-        ["action"] if space["kind"] == "discrete" else [d["name"] for d in space["dimensions"]]
-    )
+    commands = ["action"] if spec.is_discrete else list(spec.action_names)
     config = {
         "slug": loop.slug,
         "features": loop.features,
-        "action_space": space,
+        "action_space": loop.action_space,
         "lease_seconds": settings.lease_seconds,
         "context_seconds": settings.context_seconds,
         "span_labels": settings.span_labels,

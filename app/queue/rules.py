@@ -29,14 +29,8 @@ from sqlalchemy.sql.dml import ReturningInsert
 from ..db import is_postgresql
 from ..errors import NotFound
 from ..loops.models import Loop, Round
-from ..loops.schemas import LoopSettings
 from ..shared.current import is_current
 from .models import ITEM_OPEN, Label, Lease, QueueItem, Skip
-
-
-def loop_settings(loop: Loop) -> LoopSettings:
-    """The loop's settings with defaults filled in."""
-    return LoopSettings.model_validate(loop.settings)
 
 
 def rounds_of(loop_id: Any = None) -> Select[Any]:

@@ -25,6 +25,7 @@ from ..db import is_postgresql, write_transaction
 from ..errors import Conflict, InvalidInput
 from ..ingest.models import Step
 from ..loops.models import Loop, Round
+from ..loops.spec import spec_of
 from ..sampler.models import SelectedState, Selection
 from ..shared.current import is_current
 from .labels import Submitted, submit
@@ -34,7 +35,6 @@ from .rules import (
     candidate_query,
     live_leases_query,
     lock_item,
-    loop_settings,
     take_lease,
 )
 
@@ -46,7 +46,6 @@ __all__ = [
     "claim_next",
     "enqueue_selection",
     "enqueue_in_order",
-    "loop_settings",
     "progress",
     "renew",
     "round_queue",
@@ -106,7 +105,7 @@ def enqueue_in_order(
     selected_ids: list[int | None],
     rng: np.random.Generator,
 ) -> int:
-    settings = loop_settings(loop)
+    settings = spec_of(loop).settings
     # One draw per state in queue order, so the shown/hidden split is reproducible from the seed.
     draws = rng.random(len(step_ids))
     with_learner = set(
@@ -164,7 +163,7 @@ def claim_next(session: Session, *, loop: Loop, user_id: int, now: datetime) -> 
     claim that committed meanwhile was judged on the older snapshot. SQLite: the whole claim runs
     under BEGIN IMMEDIATE.
     """
-    expires_at = now + timedelta(seconds=loop_settings(loop).lease_seconds)
+    expires_at = now + timedelta(seconds=spec_of(loop).settings.lease_seconds)
     postgres = is_postgresql(session)
     params: dict[str, Any] = {"user_id": user_id, "now": now}
     with write_transaction(session):
@@ -201,7 +200,7 @@ def claim_next(session: Session, *, loop: Loop, user_id: int, now: datetime) -> 
 
 def renew(session: Session, *, loop: Loop, item_id: int, user_id: int, now: datetime) -> datetime:
     """Extend the user's lease on an item; a lapsed lease is taken again if the item has room."""
-    expires_at = now + timedelta(seconds=loop_settings(loop).lease_seconds)
+    expires_at = now + timedelta(seconds=spec_of(loop).settings.lease_seconds)
     with write_transaction(session):
         lock_item(session, loop=loop, item_id=item_id)
         renewed = session.execute(

@@ -9,9 +9,10 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from ..loops.spec import LoopSpec
 from ..shared.pace import labels_per_hour
 from . import agreement, rates
-from .compute import ActionKind, LabelArrays, json_number, present
+from .compute import LabelArrays, json_number, present
 from .schemas import (
     AgreementRead,
     AlphaRead,
@@ -51,7 +52,7 @@ def _multi_votes(labels: LabelArrays) -> _MultiVotes:
     )
 
 
-def agreement_read(labels: LabelArrays, kind: ActionKind) -> AgreementRead:
+def agreement_read(labels: LabelArrays, spec: LoopSpec) -> AgreementRead:
     """Cohen, Fleiss and Krippendorff agreement on states with at least two votes.
 
     Unsure answers are not votes and are left out. Cohen's kappa is given when exactly two
@@ -63,9 +64,9 @@ def agreement_read(labels: LabelArrays, kind: ActionKind) -> AgreementRead:
     n_states, n_annotators = len(votes.states), len(votes.annotators)
     if n_states == 0:
         alphas = [AlphaRead(dimension=None, level="nominal", alpha=None)]
-        if not kind.discrete:
+        if not spec.is_discrete:
             alphas = [
-                AlphaRead(dimension=d, level="interval", alpha=None) for d in kind.dimension_names
+                AlphaRead(dimension=d, level="interval", alpha=None) for d in spec.action_names
             ]
         return AgreementRead(
             n_states=0,
@@ -78,7 +79,7 @@ def agreement_read(labels: LabelArrays, kind: ActionKind) -> AgreementRead:
         )
     per_state = np.bincount(votes.unit, minlength=n_states)
     cohen = fleiss = None
-    if kind.discrete:
+    if spec.is_discrete:
         reliability = np.full((n_annotators, n_states), np.nan)
         reliability[votes.annotator, votes.unit] = votes.action
         if n_annotators == 2:
@@ -86,13 +87,14 @@ def agreement_read(labels: LabelArrays, kind: ActionKind) -> AgreementRead:
                 agreement.cohen_kappa(
                     reliability[0].astype(np.int64),
                     reliability[1].astype(np.int64),
-                    kind.n_actions,
+                    spec.action_width,
                 )
             )
         if np.all(per_state == per_state[0]):
             table = np.bincount(
-                votes.unit * kind.n_actions + votes.action, minlength=n_states * kind.n_actions
-            ).reshape(n_states, kind.n_actions)
+                votes.unit * spec.action_width + votes.action,
+                minlength=n_states * spec.action_width,
+            ).reshape(n_states, spec.action_width)
             fleiss = json_number(agreement.fleiss_kappa(table))
         alphas = [
             AlphaRead(
@@ -103,7 +105,7 @@ def agreement_read(labels: LabelArrays, kind: ActionKind) -> AgreementRead:
         ]
     else:
         alphas = []
-        for d, name in enumerate(kind.dimension_names):
+        for d, name in enumerate(spec.action_names):
             reliability = np.full((n_annotators, n_states), np.nan)
             reliability[votes.annotator, votes.unit] = votes.action[:, d]
             alpha = agreement.krippendorff_alpha(reliability, "interval")
@@ -119,7 +121,7 @@ def agreement_read(labels: LabelArrays, kind: ActionKind) -> AgreementRead:
 
 
 def annotators_read(
-    labels: LabelArrays, kind: ActionKind, names: Mapping[int, str]
+    labels: LabelArrays, spec: LoopSpec, names: Mapping[int, str]
 ) -> list[AnnotatorRead]:
     """Per annotator: labels given, agreement with consensus on multi-vote states, pace.
 
@@ -129,8 +131,8 @@ def annotators_read(
     votes = _multi_votes(labels)
     target = labels.consensus[votes.states]
     action = votes.action
-    if not kind.discrete:  # recode as 1 = within tolerance of the median, against target 1
-        within = np.all(np.abs(votes.action - target[votes.unit]) <= kind.tolerance, axis=1)
+    if not spec.is_discrete:  # recode as 1 = within tolerance of the median, against target 1
+        within = np.all(np.abs(votes.action - target[votes.unit]) <= spec.tolerance, axis=1)
         action = within.astype(np.int64)
         target = np.where(present(target), 1, -1)
     found = agreement.agreement_with_consensus(
@@ -171,17 +173,17 @@ def pace_read(labels: LabelArrays) -> PaceRead:
     )
 
 
-def shown_hidden_read(labels: LabelArrays, kind: ActionKind) -> ShownHiddenRead:
+def shown_hidden_read(labels: LabelArrays, spec: LoopSpec) -> ShownHiddenRead:
     """Agreement with the learner's action when the bench showed it versus when it did not.
 
     Votes on states without a learner action are left out.
     """
     keep = labels.voted() & present(labels.learner_action)
     action, learner = labels.action[keep], labels.learner_action[keep]
-    if kind.discrete:
+    if spec.is_discrete:
         agree = np.asarray(action == learner)
     else:
-        agree = np.all(np.abs(action - learner) <= kind.tolerance, axis=1)
+        agree = np.all(np.abs(action - learner) <= spec.tolerance, axis=1)
     found = rates.shown_vs_hidden_effect(agree.astype(bool), labels.learner_shown[keep])
     note = None
     if found.n_shown == 0 or found.n_hidden == 0:

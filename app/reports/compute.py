@@ -21,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from ..loops.spec import LoopSpec
 from . import rates, shift
 from .schemas import (
     FeatureShiftRead,
@@ -31,16 +32,6 @@ from .schemas import (
 
 MOST_SHIFTED = 10
 """Features listed in the shift section, largest |standardised mean difference| first."""
-
-
-@dataclass(frozen=True)
-class ActionKind:
-    """What the loop's actions look like: discrete with ``n_actions``, or continuous."""
-
-    discrete: bool
-    n_actions: int
-    dimension_names: tuple[str, ...]
-    tolerance: NDArray[np.float64]  # (n_dims,), empty for discrete actions
 
 
 @dataclass(frozen=True)
@@ -163,7 +154,7 @@ def continuous_disagreement_by_change(
     return rates.DisagreementByChange(changed=parts[0], unchanged=parts[1])
 
 
-def sample_read(reason: str, arrays: SampleArrays, kind: ActionKind, minimum: int) -> SampleRead:
+def sample_read(reason: str, arrays: SampleArrays, spec: LoopSpec, minimum: int) -> SampleRead:
     """Disagreement on one sample, overall and split by change of action.
 
     States without a learner action are left out (their expert answer is treated as missing,
@@ -172,14 +163,14 @@ def sample_read(reason: str, arrays: SampleArrays, kind: ActionKind, minimum: in
     learner, expert, previous = arrays.learner, arrays.expert.copy(), arrays.previous
     missing_learner = ~present(learner)
     what = "audit labels" if reason == "audit" else "labels in the ranked sample"
-    if kind.discrete:
+    if spec.is_discrete:
         expert[missing_learner] = -1
         overall = rates.disagreement(learner, expert)
         split = rates.disagreement_by_change(learner, expert, previous)
     else:
         expert[missing_learner] = np.nan
-        overall = rates.continuous_disagreement(learner, expert, kind.tolerance)
-        split = continuous_disagreement_by_change(learner, expert, previous, kind.tolerance)
+        overall = rates.continuous_disagreement(learner, expert, spec.tolerance)
+        split = continuous_disagreement_by_change(learner, expert, previous, spec.tolerance)
     return SampleRead(
         reason="audit" if reason == "audit" else "ranked",
         biased=reason != "audit",

@@ -12,8 +12,8 @@ from typing import Any
 from markupsafe import Markup
 
 from ..loops.models import Loop
+from ..loops.spec import LoopSpec, spec_of
 from ..sampler.tuning import SIGNALS
-from ..shared.training_set import continuous_tolerance
 from . import charts
 from .schemas import RateRead, RoundReport
 from .table import loop_table
@@ -327,22 +327,21 @@ def features_figure(report: RoundReport) -> Figure:
     )
 
 
-def tolerance_text(dimensions: list[dict[str, Any]], tolerance: list[float]) -> str:
+def tolerance_text(spec: LoopSpec) -> str:
     """The per-dimension tolerance of a continuous loop, e.g. "speed_cmd ±0.2 m/s"."""
     return ", ".join(
-        f"{d['name']} ±{number(t)} {d.get('unit', '')}".rstrip()
-        for d, t in zip(dimensions, tolerance, strict=True)
+        f"{name} ±{number(t)} {unit}".rstrip()
+        for name, t, unit in zip(
+            spec.action_names, spec.tolerance.tolist(), spec.action_units, strict=True
+        )
     )
 
 
 def loop_page_context(loop: Loop, reports: list[RoundReport]) -> dict[str, Any]:
     """Everything the loop page template needs, as display-ready values."""
     table = loop_table(loop, reports)
-    tolerance = None
-    if loop.action_space["kind"] == "continuous":
-        tolerance = tolerance_text(
-            loop.action_space["dimensions"], continuous_tolerance(loop).tolist()
-        )
+    spec = spec_of(loop)
+    tolerance = None if spec.is_discrete else tolerance_text(spec)
     with_shift = [r for r in reports if r.shift.mmd2 is not None]
     latest = reports[-1] if reports else None
     rounds = [

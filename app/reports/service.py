@@ -34,6 +34,7 @@ from ..auth.models import User
 from ..ingest.models import CONTROL_LEARNER, Rollout, Step
 from ..loops import service as loops_service
 from ..loops.models import Loop, Round
+from ..loops.spec import LoopSpec, spec_of
 from ..queue.models import ANSWER_UNSURE, Label
 from ..sampler import history, tuning
 from ..sampler.models import REASON_AUDIT, SelectedState, Selection
@@ -52,24 +53,16 @@ SHIFT_SEED = 20_240_611
 _CHUNK = 5_000
 
 
-def kind_of(loop: Loop) -> compute.ActionKind:
-    """The loop's action space as the computation needs it."""
-    if ts.is_discrete(loop):
-        return compute.ActionKind(True, ts.action_width(loop), (), np.zeros(0))
-    names = tuple(d["name"] for d in loop.action_space["dimensions"])
-    return compute.ActionKind(False, 0, names, ts.continuous_tolerance(loop))
-
-
 def _chunks(ids: np.ndarray) -> list[list[int]]:
     return [ids[i : i + _CHUNK].tolist() for i in range(0, len(ids), _CHUNK)]
 
 
-def _actions(indexes: list[Any], vectors: list[Any], kind: compute.ActionKind) -> np.ndarray:
-    return stored_actions(indexes, vectors, discrete=kind.discrete, width=len(kind.dimension_names))
+def _actions(indexes: list[Any], vectors: list[Any], spec: LoopSpec) -> np.ndarray:
+    return stored_actions(indexes, vectors, discrete=spec.is_discrete, width=spec.action_width)
 
 
 def _step_actions(
-    session: Session, step_ids: np.ndarray, kind: compute.ActionKind
+    session: Session, step_ids: np.ndarray, spec: LoopSpec
 ) -> tuple[np.ndarray, np.ndarray]:
     """Learner action at each step and at the step before it in its rollout (id order in)."""
     previous = aliased(Step)
@@ -96,15 +89,15 @@ def _step_actions(
         )
     order = {row[0]: i for i, row in enumerate(rows)}
     rows = [rows[order[s]] for s in step_ids.tolist()]
-    learner = _actions([r[1] for r in rows], [r[2] for r in rows], kind)
-    before = _actions([r[3] for r in rows], [r[4] for r in rows], kind)
+    learner = _actions([r[1] for r in rows], [r[2] for r in rows], spec)
+    before = _actions([r[3] for r in rows], [r[4] for r in rows], spec)
     return learner, before
 
 
-def _expert(found: ts.Relabels, step_ids: np.ndarray, kind: compute.ActionKind) -> np.ndarray:
+def _expert(found: ts.Relabels, step_ids: np.ndarray, spec: LoopSpec) -> np.ndarray:
     """Consensus action of each step id; "none" where unlabelled or unresolved."""
     return history.expert_actions(
-        found, step_ids, discrete=kind.discrete, width=len(kind.dimension_names)
+        found, step_ids, discrete=spec.is_discrete, width=spec.action_width
     )
 
 
@@ -144,10 +137,13 @@ def _counts(session: Session, rnd: Round) -> dict[str, int]:
 def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundReport:
     """Compute the report of one round from the store (no cache)."""
     rnd = loops_service.get_round(session, loop=loop, number=number)
-    kind = kind_of(loop)
+    spec = spec_of(loop)
     counts = _counts(session, rnd)
     found = ts.relabels(
-        session, loop=loop, cutoff=ts.current_cutoff(session, loop=loop, up_to_round=number)
+        session,
+        loop=loop,
+        spec=spec,
+        cutoff=ts.current_cutoff(session, loop=loop, up_to_round=number),
     )
 
     selected = session.execute(
@@ -158,19 +154,19 @@ def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundR
     ).all()
     selected_ids = np.array([r[0] for r in selected], dtype=np.int64)
     is_audit = np.array([r[1] == REASON_AUDIT for r in selected], dtype=bool)
-    learner, before = _step_actions(session, selected_ids, kind)
-    expert = _expert(found, selected_ids, kind)
+    learner, before = _step_actions(session, selected_ids, spec)
+    expert = _expert(found, selected_ids, spec)
     samples = {
         reason: compute.sample_read(
             reason,
             compute.SampleArrays(learner[mask], expert[mask], before[mask]),
-            kind,
+            spec,
             rates.MIN_AUDIT_LABELS,
         )
         for reason, mask in (("audit", is_audit), ("ranked", ~is_audit))
     }
 
-    labels, names = _labels(session, rnd, found, kind)
+    labels, names = _labels(session, rnd, found, spec)
     voted_states = np.bincount(labels.state[labels.voted()], minlength=len(labels.consensus))
     rng = np.random.default_rng([SHIFT_SEED, number])
     shift = _shift(session, loop=loop, rnd=rnd, rng=rng)
@@ -179,7 +175,7 @@ def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundR
         round=number,
         learner_version=rnd.learner_version,
         status=rnd.status,
-        action_kind="discrete" if kind.discrete else "continuous",
+        action_kind=spec.kind,
         min_audit_labels=rates.MIN_AUDIT_LABELS,
         counts=CountsRead(
             **counts,
@@ -195,11 +191,11 @@ def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundR
         audit=samples["audit"],
         ranked=samples["ranked"],
         shift=shift,
-        agreement=annotators.agreement_read(labels, kind),
-        annotators=annotators.annotators_read(labels, kind, names),
+        agreement=annotators.agreement_read(labels, spec),
+        annotators=annotators.annotators_read(labels, spec, names),
         pace=annotators.pace_read(labels),
-        shown_vs_hidden=annotators.shown_hidden_read(labels, kind),
-        self_tuning=_self_tuning(session, rnd, learner, expert, kind),
+        shown_vs_hidden=annotators.shown_hidden_read(labels, spec),
+        self_tuning=_self_tuning(session, rnd, learner, expert, spec),
     )
 
 
@@ -208,7 +204,7 @@ def _self_tuning(
     rnd: Round,
     learner: np.ndarray,
     expert: np.ndarray,
-    kind: compute.ActionKind,
+    spec: LoopSpec,
 ) -> SelfTuningRead | None:
     """The model the round's ranking fitted, and its calibration on the round's audit sample.
 
@@ -224,7 +220,7 @@ def _self_tuning(
         model = tuning.DisagreementModel.from_record(record["model"])
         _, is_audit, signals = history.selection_states(session, selection)
         disagrees, known = tuning.disagreement_of(
-            learner, expert, None if kind.discrete else kind.tolerance
+            learner, expert, None if spec.is_discrete else spec.tolerance
         )
         audit = is_audit & known
         found |= {
@@ -241,7 +237,7 @@ def _self_tuning(
 
 
 def _labels(
-    session: Session, rnd: Round, found: ts.Relabels, kind: compute.ActionKind
+    session: Session, rnd: Round, found: ts.Relabels, spec: LoopSpec
 ) -> tuple[compute.LabelArrays, dict[int, str]]:
     rows = session.execute(
         select(
@@ -259,9 +255,9 @@ def _labels(
     step_ids = np.array([r[0] for r in rows], dtype=np.int64)
     states, state_index = np.unique(step_ids, return_inverse=True)
     unsure = np.array([r[2] == ANSWER_UNSURE for r in rows], dtype=bool)
-    action = _actions([r[3] for r in rows], [r[4] for r in rows], kind)
-    action[unsure] = -1 if kind.discrete else np.nan
-    learner, _ = _step_actions(session, states, kind)
+    action = _actions([r[3] for r in rows], [r[4] for r in rows], spec)
+    action[unsure] = -1 if spec.is_discrete else np.nan
+    learner, _ = _step_actions(session, states, spec)
     users = sorted({r[1] for r in rows})
     names = dict(session.execute(select(User.id, User.name).where(User.id.in_(users))).all())
     labels = compute.LabelArrays(
@@ -271,19 +267,20 @@ def _labels(
         created_s=np.array([r[6].timestamp() for r in rows], dtype=np.float64),
         learner_shown=np.array([bool(r[5]) for r in rows], dtype=bool),
         learner_action=learner[state_index.reshape(-1)] if len(rows) else learner,
-        consensus=_expert(found, states, kind),
+        consensus=_expert(found, states, spec),
     )
     return labels, {int(k): str(v) for k, v in names.items()}
 
 
 def _shift(session: Session, *, loop: Loop, rnd: Round, rng: np.random.Generator) -> Any:
-    names = [f["name"] for f in loop.features]
-    units = [f.get("unit", "") for f in loop.features]
+    spec = spec_of(loop)
+    names = list(spec.feature_names)
+    units = list(spec.feature_units)
     if rnd.number == 0:
         training_ids = np.zeros(0, np.int64)
     else:
         cutoff = ts.current_cutoff(session, loop=loop, up_to_round=rnd.number - 1)
-        training_ids = ts.members(session, loop=loop, cutoff=cutoff).step_id
+        training_ids = ts.members(session, loop=loop, spec=spec, cutoff=cutoff).step_id
     visited_ids = np.array(
         session.scalars(
             select(Step.id)
@@ -361,9 +358,10 @@ def _fingerprints(session: Session, *, loop: Loop) -> dict[int, str]:
         Selection.round_id,
         (SelectedState, SelectedState.selection_id == Selection.id),
     )
-    spec = json.dumps([loop.features, loop.action_space, loop.settings], sort_keys=True)
+    # the stored JSON as it is: any change to the spec gives new fingerprints
+    stored_spec = json.dumps([loop.features, loop.action_space, loop.settings], sort_keys=True)
     prints: dict[int, str] = {}
-    digest = hashlib.sha256(spec.encode())
+    digest = hashlib.sha256(stored_spec.encode())
     for round_id, number, status, version in rounds:
         digest.update(repr((number, steps.get(round_id), labels.get(round_id))).encode())
         own = digest.copy()

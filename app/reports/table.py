@@ -6,6 +6,7 @@ import csv
 import io
 
 from ..loops.models import Loop
+from ..loops.spec import spec_of
 from . import rates
 from .schemas import LoopReport, RoundReport, RoundReportRow
 
@@ -58,7 +59,7 @@ def loop_table(loop: Loop, reports: list[RoundReport]) -> LoopReport:
     return LoopReport(
         loop=loop.slug,
         title=loop.title,
-        action_kind="discrete" if loop.action_space["kind"] == "discrete" else "continuous",
+        action_kind=spec_of(loop).kind,
         min_audit_labels=rates.MIN_AUDIT_LABELS,
         items=rows,
         total=len(rows),

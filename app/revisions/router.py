@@ -8,6 +8,7 @@ from sqlalchemy.orm import Session
 from ..deps import AnnotatorDep, SessionDep
 from ..loops import service as loops_service
 from ..loops.models import Loop
+from ..loops.spec import spec_of
 from ..models import utcnow
 from ..queue.answers import stored_action
 from ..queue.bench import bench_step
@@ -30,7 +31,7 @@ MINE = "/api/loops/{slug}/queue/my-labels"
 def _read(session: Session, loop: Loop, labels: list[Label]) -> list[MyLabel]:
     states = service.states_of(session, loop=loop, labels=labels)
     held = service.first_versions(session, loop=loop, labels=labels)
-    names = loop.action_space.get("actions")
+    spec = spec_of(loop)
     out = []
     for label in labels:
         action = stored_action(label)
@@ -42,7 +43,7 @@ def _read(session: Session, loop: Loop, labels: list[Label]) -> list[MyLabel]:
                 state=bench_step(states[label.step_id]),
                 answer=label.answer,
                 action=action,
-                action_name=names[action] if names and isinstance(action, int) else None,
+                action_name=spec.action_name(action),
                 created_at=label.created_at,
                 replaces=label.supersedes_id,
                 in_snapshot=None if version is None else f"v{version}",

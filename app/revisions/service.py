@@ -20,12 +20,12 @@ from sqlalchemy.orm import Session
 from ..db import write_transaction
 from ..errors import Conflict, NotFound
 from ..ingest import reads
-from ..ingest.validate import ActionSpec
 from ..loops.models import Loop, Round
+from ..loops.spec import spec_of
 from ..queue.answers import check_answer, check_request
 from ..queue.models import ANSWER_UNDONE, ITEM_DONE, ITEM_OPEN, Label
 from ..queue.models import QueueItem as Item
-from ..queue.rules import lock_item, loop_settings, rounds_of
+from ..queue.rules import lock_item, rounds_of
 from ..shared.current import is_current
 from ..snapshots.models import Snapshot
 
@@ -108,7 +108,7 @@ def undo(
     the answer already (change it instead), or when it was undone or changed meanwhile.
     """
     check_request(
-        loop_settings(loop),
+        spec_of(loop).settings,
         submission_id=submission_id,
         answer="unsure",
         span_steps=0,
@@ -172,15 +172,13 @@ def change(
     the same submission id returns the stored answer.
     """
     check_request(
-        loop_settings(loop),
+        spec_of(loop).settings,
         submission_id=submission_id,
         answer=answer,
         span_steps=0,
         seconds_spent=None,
     )
-    index, vector = check_answer(
-        ActionSpec.from_loop(loop.features, loop.action_space), answer=answer, action=action
-    )
+    index, vector = check_answer(spec_of(loop), answer=answer, action=action)
     try:
         with write_transaction(session):
             found = _standing_label(

@@ -10,6 +10,7 @@ from sqlalchemy.orm import Session
 
 from ..ingest.models import CONTROL_EXPERT, Step
 from ..loops.models import Loop, Round
+from ..loops.spec import spec_of
 from ..shared.encode import FLOAT32_LE, nullable_rows
 
 FETCH_ROWS = 50_000
@@ -49,9 +50,8 @@ def _matrix(
 
 def load_round_steps(session: Session, *, loop: Loop, rnd: Round) -> RoundSteps:
     """All steps of a round, fetched in batches and decoded a column at a time."""
-    width = len(loop.features)
-    space = loop.action_space
-    n_actions = len(space["actions"]) if space["kind"] == "discrete" else len(space["dimensions"])
+    spec = spec_of(loop)
+    width, n_actions = spec.n_features, spec.action_width
     columns: dict[str, list] = {
         k: []
         for k in (

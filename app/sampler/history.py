@@ -14,6 +14,7 @@ from sqlalchemy.orm import Session
 
 from ..ingest.models import Step
 from ..loops.models import Loop, Round
+from ..loops.spec import spec_of
 from ..shared import training_set as ts
 from ..shared.encode import stored_actions
 from . import service
@@ -60,9 +61,8 @@ def learner_actions(session: Session, loop: Loop, step_ids: np.ndarray) -> np.nd
         ).all()
         indexes.extend(r[0] for r in rows)
         vectors.extend(r[1] for r in rows)
-    return stored_actions(
-        indexes, vectors, discrete=ts.is_discrete(loop), width=ts.action_width(loop)
-    )
+    spec = spec_of(loop)
+    return stored_actions(indexes, vectors, discrete=spec.is_discrete, width=spec.action_width)
 
 
 def expert_actions(
@@ -110,9 +110,10 @@ def labelled_states(
     session: Session, *, loop: Loop, before_round: int, cutoff: ts.Cutoff
 ) -> LabelledStates:
     """Every selected state of rounds 1..before_round-1 with a resolved label within the cut-off."""
-    found = ts.relabels(session, loop=loop, cutoff=cutoff)
-    discrete = ts.is_discrete(loop)
-    tolerance = None if discrete else ts.continuous_tolerance(loop)
+    spec = spec_of(loop)
+    found = ts.relabels(session, loop=loop, spec=spec, cutoff=cutoff)
+    discrete = spec.is_discrete
+    tolerance = None if discrete else spec.tolerance
     selections = session.scalars(
         select(Selection)
         .join(Round, Round.id == Selection.round_id)
@@ -125,7 +126,7 @@ def labelled_states(
         if len(step_ids) == 0:
             continue
         learner = learner_actions(session, loop, step_ids)
-        expert = expert_actions(found, step_ids, discrete=discrete, width=ts.action_width(loop))
+        expert = expert_actions(found, step_ids, discrete=discrete, width=spec.action_width)
         disagrees, known = disagreement_of(learner, expert, tolerance)
         # weights from the whole selection, so unlabelled picks do not inflate the audit share
         weights = stratum_weights(is_audit, chosen.n_candidates)

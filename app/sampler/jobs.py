@@ -4,12 +4,12 @@ from __future__ import annotations
 
 from typing import Any
 
-import numpy as np
 from sqlalchemy.orm import Session
 
 from ..errors import NotFound
 from ..jobs.runner import JobContext
 from ..loops.models import Loop, Round
+from ..loops.spec import spec_of
 from ..shared import training_set
 from ..shared.training_set import Cutoff
 from . import history, service, tuning
@@ -71,24 +71,19 @@ def rank_job(ctx: JobContext, *, fill_queue: service.FillQueue) -> dict[str, Any
         ctx.progress(0.02, force=True)
         steps = load_round_steps(session, loop=loop, rnd=rnd)
         cutoff = pinned_cutoff(session, loop=loop, rnd=rnd, params=params)
-        _, training = training_set.training_features(session, loop=loop, cutoff=cutoff)
+        spec = spec_of(loop)
+        _, training = training_set.training_features(session, loop=loop, spec=spec, cutoff=cutoff)
         model, tuning_record = tune(session, loop=loop, rnd=rnd, params=params, cutoff=cutoff)
         # End the read transaction: on SQLite a transaction whose snapshot predates another
         # connection's write (our own heartbeats) may not write later.
         session.commit()
         ctx.progress(0.25, force=True)
-        space = loop.action_space
-        if space["kind"] == "continuous":
-            low = np.array([d["low"] for d in space["dimensions"]], dtype=np.float64)
-            high = np.array([d["high"] for d in space["dimensions"]], dtype=np.float64)
-        else:
-            low = high = np.empty(0)
         ranking = rank_round(
             steps,
             training,
-            kind=space["kind"],
-            low=low,
-            high=high,
+            kind=spec.kind,
+            low=spec.low,
+            high=spec.high,
             params=params,
             model=model,
             progress=lambda f: ctx.progress(0.25 + 0.65 * f),

@@ -18,10 +18,11 @@ from ..ingest.models import Rollout, Step
 from ..jobs import service as jobs_service
 from ..jobs.models import Job
 from ..loops.models import Loop, Round
+from ..loops.spec import spec_of
 from ..queue.models import Label
 from ..shared import training_set
 from .models import SelectedState, Selection
-from .rank import AUTO_METHOD, Ranking, RankParams
+from .rank import Ranking, RankParams
 
 RANK_JOB = "rank"
 
@@ -34,21 +35,21 @@ def rank_params(
     loop: Loop, *, budget: int, seed: int | None, cutoff: training_set.Cutoff | None = None
 ) -> RankParams:
     """The ranking parameters from the loop's settings, with a recorded seed and cut-off."""
-    s = loop.settings
+    s = spec_of(loop).settings
     return RankParams(
         budget=budget,
         seed=seed if seed is not None else secrets.randbits(63),
-        min_gap_steps=int(s["min_gap_steps"]),
-        audit_fraction=float(s["audit_fraction"]),
-        spread=bool(s["spread"]),
-        uncertainty_weight=float(s["uncertainty_weight"]),
-        novelty_weight=float(s["novelty_weight"]),
-        novelty_k=int(s["novelty_k"]),
-        takeover_window_s=float(s["takeover_window_s"]),
-        takeover_boost=float(s["takeover_boost"]),
-        uncertainty_method=str(s.get("uncertainty_method", AUTO_METHOD)),
-        self_tuning=bool(s.get("self_tuning", True)),
-        tuning_min_disagreements=int(s.get("tuning_min_disagreements", 10)),
+        min_gap_steps=s.min_gap_steps,
+        audit_fraction=s.audit_fraction,
+        spread=s.spread,
+        uncertainty_weight=s.uncertainty_weight,
+        novelty_weight=s.novelty_weight,
+        novelty_k=s.novelty_k,
+        takeover_window_s=s.takeover_window_s,
+        takeover_boost=s.takeover_boost,
+        uncertainty_method=s.uncertainty_method,
+        self_tuning=s.self_tuning,
+        tuning_min_disagreements=s.tuning_min_disagreements,
         training_max_step_id=None if cutoff is None else cutoff.max_step_id,
         training_max_label_id=None if cutoff is None else cutoff.max_label_id,
     )

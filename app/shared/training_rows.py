@@ -13,7 +13,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from functools import reduce
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 from sqlalchemy import select
@@ -25,13 +25,22 @@ from .encode import FLOAT32_LE
 from .row_batches import SOURCES, RowBatch, merge_sorted
 
 
-@dataclass(frozen=True)
-class Shape:
-    """Widths of a loop's rows: features, and the action space."""
+class LoopShape(Protocol):
+    """What the training set needs of a loop's spec: its row widths and, for a continuous
+    action space, the tolerance of a vote. The loop's `LoopSpec` (app/loops/spec.py) is one;
+    this stage sits below app/loops, so it names the parts instead of importing the type."""
 
-    n_features: int
-    discrete: bool
-    action_width: int
+    @property
+    def n_features(self) -> int: ...
+
+    @property
+    def is_discrete(self) -> bool: ...
+
+    @property
+    def action_width(self) -> int: ...
+
+    @property
+    def tolerance(self) -> np.ndarray: ...
 
 
 @dataclass(frozen=True)
@@ -105,7 +114,7 @@ def _vectors(rows: list[tuple[Any, ...]], at: int, width: int) -> np.ndarray:
 def expert_batches(
     session: Session,
     *,
-    shape: Shape,
+    shape: LoopShape,
     rounds: RoundTable,
     up_to_round: int,
     max_step_id: int,
@@ -128,7 +137,7 @@ def expert_batches(
 
 def _expert_round(
     session: Session,
-    shape: Shape,
+    shape: LoopShape,
     rounds: RoundTable,
     round_id: int,
     number: int,
@@ -136,7 +145,7 @@ def _expert_round(
     batch: int,
     with_features: bool,
 ) -> Iterator[RowBatch]:
-    action = "expert_action" if shape.discrete else "expert_action_vec"
+    action = "expert_action" if shape.is_discrete else "expert_action_vec"
     features = ", features" if with_features else ""
     sql = (
         f"SELECT id, rollout_id, step_index, {action}{features} FROM steps "
@@ -154,7 +163,7 @@ def _expert_round(
 def _expert_page(
     session: Session,
     rows: list[tuple[Any, ...]],
-    shape: Shape,
+    shape: LoopShape,
     rounds: RoundTable,
     number: int,
     source: int,
@@ -167,7 +176,7 @@ def _expert_page(
     return RowBatch(
         step_id=_ints(rows, 0),
         source=np.full(n, source, np.int8),
-        action=_ints(rows, 3) if shape.discrete else _vectors(rows, 3, shape.action_width),
+        action=_ints(rows, 3) if shape.is_discrete else _vectors(rows, 3, shape.action_width),
         label_count=np.ones(n, np.int64),
         agreement=np.ones(n, np.float64),
         round=np.full(n, number, np.int64),
@@ -182,7 +191,7 @@ def _expert_page(
 def relabel_batches(
     session: Session,
     *,
-    shape: Shape,
+    shape: LoopShape,
     rounds: RoundTable,
     step_ids: np.ndarray,
     action: np.ndarray,
@@ -197,7 +206,7 @@ def relabel_batches(
     Labels on an expert-driven step cannot arise (such steps are never queued); if one did, the
     expert's own action wins and the step is read only by the expert stream.
     """
-    dtype = np.int64 if shape.discrete else np.float32
+    dtype = np.int64 if shape.is_discrete else np.float32
     relabel = SOURCES.index("relabel")
     columns_wanted: list[Any] = [Step.id, Step.rollout_id, Step.round_id, Step.step_index]
     if with_features:

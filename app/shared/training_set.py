@@ -30,6 +30,7 @@ from .row_batches import (
     concat,
     merge_sorted,
 )
+from .training_rows import LoopShape
 
 __all__ = [
     "SOURCES",
@@ -37,19 +38,15 @@ __all__ = [
     "SOURCE_RELABEL",
     "SOURCE_TAKEOVER",
     "Cutoff",
+    "LoopShape",
     "Members",
     "Relabels",
-    "action_width",
-    "continuous_tolerance",
     "current_cutoff",
-    "is_discrete",
     "iter_batches",
     "members",
     "relabels",
     "training_features",
 ]
-# default tolerance of a continuous disagreement, as a fraction of each dimension's range
-DEFAULT_TOLERANCE_FRACTION = 0.1
 # rows per page read from the store while streaming the training set
 DEFAULT_BATCH = 8192
 
@@ -93,25 +90,6 @@ class Members:
         return len(self.step_id)
 
 
-def is_discrete(loop: Loop) -> bool:
-    return loop.action_space["kind"] == "discrete"
-
-
-def action_width(loop: Loop) -> int:
-    """Actions of a discrete space, or dimensions of a continuous one."""
-    space = loop.action_space
-    return len(space["actions"]) if is_discrete(loop) else len(space["dimensions"])
-
-
-def continuous_tolerance(loop: Loop) -> np.ndarray:
-    """Per-dimension tolerance: the loop's setting, or 10% of each dimension's range."""
-    chosen = loop.settings.get("continuous_tolerance")
-    if chosen:
-        return np.asarray(chosen, dtype=np.float64)
-    dims = loop.action_space["dimensions"]
-    return np.array([(d["high"] - d["low"]) * DEFAULT_TOLERANCE_FRACTION for d in dims])
-
-
 def current_cutoff(session: Session, *, loop: Loop, up_to_round: int) -> Cutoff:
     """The cut-off that pins everything stored now."""
     max_step = session.scalar(
@@ -127,8 +105,8 @@ def current_cutoff(session: Session, *, loop: Loop, up_to_round: int) -> Cutoff:
     return Cutoff(up_to_round, int(max_step or 0), int(max_label or 0))
 
 
-def relabels(session: Session, *, loop: Loop, cutoff: Cutoff) -> Relabels:
-    """Consensus per labelled state from every label within the cut-off."""
+def relabels(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) -> Relabels:
+    """Consensus per labelled state from every label within the cut-off (`spec`: the loop's)."""
     rows = session.execute(
         select(Label.step_id, Label.answer, Label.action, Label.action_vec)
         .join(Round, Round.id == Label.round_id)
@@ -140,11 +118,11 @@ def relabels(session: Session, *, loop: Loop, cutoff: Cutoff) -> Relabels:
         )
         .order_by(Label.id)
     ).all()
-    width = action_width(loop)
+    width = spec.action_width
     step_ids = np.array([r[0] for r in rows], dtype=np.int64)
     unique_steps, state_index = np.unique(step_ids, return_inverse=True)
     unsure = np.array([r[1] == ANSWER_UNSURE for r in rows], dtype=bool)
-    discrete = is_discrete(loop)
+    discrete = spec.is_discrete
     actions = stored_actions(
         [r[2] for r in rows], [r[3] for r in rows], discrete=discrete, width=width
     )
@@ -154,7 +132,7 @@ def relabels(session: Session, *, loop: Loop, cutoff: Cutoff) -> Relabels:
         action = found.action
     else:
         found_c = continuous_consensus(
-            state_index, actions, unsure, len(unique_steps), continuous_tolerance(loop)
+            state_index, actions, unsure, len(unique_steps), spec.tolerance
         )
         return Relabels(
             unique_steps,
@@ -169,12 +147,12 @@ def relabels(session: Session, *, loop: Loop, cutoff: Cutoff) -> Relabels:
     )
 
 
-def members(session: Session, *, loop: Loop, cutoff: Cutoff) -> Members:
+def members(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) -> Members:
     """The training set's rows (without features), sorted by step id."""
-    parts = list(iter_batches(session, loop=loop, cutoff=cutoff, with_features=False))
+    parts = list(iter_batches(session, loop=loop, spec=spec, cutoff=cutoff, with_features=False))
     if not parts:
-        dtype = np.int64 if is_discrete(loop) else np.float32
-        shape = (0,) if is_discrete(loop) else (0, action_width(loop))
+        dtype = np.int64 if spec.is_discrete else np.float32
+        shape = (0,) if spec.is_discrete else (0, spec.action_width)
         return Members(
             step_id=np.empty(0, np.int64),
             source=np.empty(0, np.int8),
@@ -196,6 +174,7 @@ def iter_batches(
     session: Session,
     *,
     loop: Loop,
+    spec: LoopShape,
     cutoff: Cutoff,
     batch: int | None = None,
     with_features: bool = True,
@@ -211,13 +190,12 @@ def iter_batches(
     batch = DEFAULT_BATCH if batch is None else batch
     if batch < 1:
         raise ValueError(f"batch must be >= 1, got {batch}")
-    shape = rows.Shape(len(loop.features), is_discrete(loop), action_width(loop))
     rounds = rows.RoundTable.of(session, loop.id)
-    found = relabels(session, loop=loop, cutoff=cutoff)
+    found = relabels(session, loop=loop, spec=spec, cutoff=cutoff)
     keep = found.resolved
     expert = rows.expert_batches(
         session,
-        shape=shape,
+        shape=spec,
         rounds=rounds,
         up_to_round=cutoff.up_to_round,
         max_step_id=cutoff.max_step_id,
@@ -226,7 +204,7 @@ def iter_batches(
     )
     relabelled = rows.relabel_batches(
         session,
-        shape=shape,
+        shape=spec,
         rounds=rounds,
         step_ids=found.step_id[keep],
         action=found.action[keep],
@@ -239,12 +217,12 @@ def iter_batches(
 
 
 def training_features(
-    session: Session, *, loop: Loop, cutoff: Cutoff
+    session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff
 ) -> tuple[np.ndarray, np.ndarray]:
     """Step ids (n,) and float32 features (n, n_features) of the training set."""
-    parts = list(iter_batches(session, loop=loop, cutoff=cutoff))
+    parts = list(iter_batches(session, loop=loop, spec=spec, cutoff=cutoff))
     if not parts:
-        return np.empty(0, np.int64), np.empty((0, len(loop.features)), np.float32)
+        return np.empty(0, np.int64), np.empty((0, spec.n_features), np.float32)
     ids = np.concatenate([p.step_id for p in parts])
     features = np.concatenate([p.features for p in parts if p.features is not None])
     return ids, features.astype(np.float32, copy=False)

@@ -38,7 +38,6 @@ import tempfile
 import zipfile
 from collections.abc import Iterable, Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
-from dataclasses import dataclass
 from pathlib import Path
 from typing import IO, Any
 
@@ -47,6 +46,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from ..loops.spec import LoopSpec
 from ..shared.row_batches import RowBatch
 from ..shared.training_set import SOURCES
 
@@ -81,15 +81,6 @@ _ZIP_TIME = (1980, 1, 1, 0, 0, 0)
 _COPY_BYTES = 4 * 1024 * 1024
 
 
-@dataclass(frozen=True)
-class Layout:
-    """The shape of one loop's rows: feature count and action space."""
-
-    n_features: int
-    discrete: bool
-    action_width: int
-
-
 class _Sink(io.RawIOBase):
     """A write-only file that keeps what was written until `take` hands it over."""
 
@@ -110,13 +101,13 @@ class _Sink(io.RawIOBase):
         return b"".join(parts)
 
 
-def arrow_schema(layout: Layout, metadata: dict[str, Any] | None = None) -> pa.Schema:
+def arrow_schema(spec: LoopSpec, metadata: dict[str, Any] | None = None) -> pa.Schema:
     """Arrow schema of the export columns; `metadata` is stored as JSON under "expertloop"."""
-    action = pa.int64() if layout.discrete else pa.list_(pa.float32(), layout.action_width)
+    action = pa.int64() if spec.is_discrete else pa.list_(pa.float32(), spec.action_width)
     schema = pa.schema(
         [
             ("step_id", pa.int64()),
-            ("features", pa.list_(pa.float32(), layout.n_features)),
+            ("features", pa.list_(pa.float32(), spec.n_features)),
             ("expert_action", action),
             ("round", pa.int64()),
             ("source", pa.string()),
@@ -160,7 +151,7 @@ def _named(codes: np.ndarray, names: list[str | None]) -> pa.Array:
     return pc.take(table, _numeric(codes, "<i8"), memory_pool=_MEMORY_POOL)
 
 
-def to_record_batch(batch: RowBatch, layout: Layout, schema: pa.Schema) -> pa.RecordBatch:
+def to_record_batch(batch: RowBatch, spec: LoopSpec, schema: pa.Schema) -> pa.RecordBatch:
     """The export columns of a batch as an Arrow record batch."""
     if batch.features is None:
         raise ValueError("an export needs the features of every row")
@@ -168,12 +159,12 @@ def to_record_batch(batch: RowBatch, layout: Layout, schema: pa.Schema) -> pa.Re
     rounds, round_code = np.unique(batch.round, return_inverse=True)
     action = (
         _numeric(batch.action, "<i8")
-        if layout.discrete
-        else _fixed_list(batch.action, layout.action_width)
+        if spec.is_discrete
+        else _fixed_list(batch.action, spec.action_width)
     )
     columns = [
         _numeric(batch.step_id, "<i8"),
-        _fixed_list(batch.features, layout.n_features),
+        _fixed_list(batch.features, spec.n_features),
         action,
         _numeric(batch.round, "<i8"),
         _named(batch.source, list(SOURCES)),
@@ -187,7 +178,7 @@ def to_record_batch(batch: RowBatch, layout: Layout, schema: pa.Schema) -> pa.Re
 
 
 def parquet_chunks(
-    batches: Iterable[RowBatch], layout: Layout, metadata: dict[str, Any]
+    batches: Iterable[RowBatch], spec: LoopSpec, metadata: dict[str, Any]
 ) -> Iterator[bytes]:
     """A Parquet file, one row group per batch, handed over after each row group.
 
@@ -195,7 +186,7 @@ def parquet_chunks(
     releases the GIL), so reading and writing overlap on two cores. At most one batch is being
     encoded while the next is read.
     """
-    schema = arrow_schema(layout, metadata)
+    schema = arrow_schema(spec, metadata)
     sink = _Sink()
     writer = pq.ParquetWriter(
         sink,
@@ -206,7 +197,7 @@ def parquet_chunks(
     )
 
     def encode(batch: RowBatch) -> bytes:
-        writer.write_batch(to_record_batch(batch, layout, schema))
+        writer.write_batch(to_record_batch(batch, spec, schema))
         return sink.take()  # one chunk per row group: each chunk costs a trip through the server
 
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="parquet") as encoder:
@@ -230,14 +221,14 @@ def parquet_chunks(
     yield sink.take()
 
 
-def jsonl_chunks(batches: Iterable[RowBatch], layout: Layout) -> Iterator[bytes]:
+def jsonl_chunks(batches: Iterable[RowBatch], spec: LoopSpec) -> Iterator[bytes]:
     """JSON Lines, one object per row with the export columns, a batch of lines at a time."""
     for batch in batches:
         if not len(batch):
             continue
         assert batch.features is not None
         features = batch.features.astype(np.float64).tolist()
-        actions = batch.action.astype(np.int64 if layout.discrete else np.float64).tolist()
+        actions = batch.action.astype(np.int64 if spec.is_discrete else np.float64).tolist()
         sources = np.asarray(SOURCES, dtype=object)[batch.source].tolist()
         columns = zip(
             batch.step_id.tolist(),
@@ -299,17 +290,17 @@ def _npy_header(dtype: np.dtype[Any], shape: tuple[int, ...]) -> bytes:
 
 def npz_chunks(
     batches: Iterable[RowBatch],
-    layout: Layout,
+    spec: LoopSpec,
     metadata: dict[str, Any],
     spool_dir: Path | None = None,
 ) -> Iterator[bytes]:
     """A .npz archive of one .npy member per column, plus "manifest" (a 0-d JSON string)."""
-    action_dtype = "<i8" if layout.discrete else "<f4"
+    action_dtype = "<i8" if spec.is_discrete else "<f4"
     fixed = {
         "step_id": _SpooledColumn("<i8", None, spool_dir),
-        "features": _SpooledColumn("<f4", layout.n_features, spool_dir),
+        "features": _SpooledColumn("<f4", spec.n_features, spool_dir),
         "expert_action": _SpooledColumn(
-            action_dtype, None if layout.discrete else layout.action_width, spool_dir
+            action_dtype, None if spec.is_discrete else spec.action_width, spool_dir
         ),
         "round": _SpooledColumn("<i8", None, spool_dir),
         "step": _SpooledColumn("<i8", None, spool_dir),

@@ -25,6 +25,7 @@ from ..auth.models import User
 from ..errors import Conflict, InvalidInput, NotFound
 from ..loops import service as loops_service
 from ..loops.models import Loop, Round
+from ..loops.spec import spec_of
 from ..models import utcnow
 from ..safety import SAFETY_CAUTION
 from ..shared import training_set as ts
@@ -41,24 +42,15 @@ class SnapshotChanged(RuntimeError):
     """A snapshot's rows no longer hash to its manifest: the store was altered behind our back."""
 
 
-def layout_of(loop: Loop) -> export.Layout:
-    """Feature count and action space of a loop's rows."""
-    return export.Layout(
-        n_features=len(loop.features),
-        discrete=ts.is_discrete(loop),
-        action_width=ts.action_width(loop),
-    )
-
-
 def cutoff_of(snapshot: Snapshot) -> ts.Cutoff:
     """The cut-off that pins a snapshot's rows."""
     return ts.Cutoff(snapshot.up_to_round, snapshot.max_step_id, snapshot.max_label_id)
 
 
 def _hasher(loop: Loop) -> ContentHasher:
-    layout = layout_of(loop)
+    spec = spec_of(loop)
     return ContentHasher(
-        n_features=layout.n_features, discrete=layout.discrete, action_width=layout.action_width
+        n_features=spec.n_features, discrete=spec.is_discrete, action_width=spec.action_width
     )
 
 
@@ -116,7 +108,7 @@ def create_snapshot(
     session.commit()  # release the lock; the cut-off is now fixed
 
     hasher, tally = _hasher(loop), _Tally()
-    for batch in ts.iter_batches(reader, loop=loop, cutoff=cutoff):
+    for batch in ts.iter_batches(reader, loop=loop, spec=spec_of(loop), cutoff=cutoff):
         hasher.update(batch)
         tally.add(batch)
     reader.commit()  # end the read transaction: SQLite's WAL cannot be reset under it
@@ -202,7 +194,7 @@ def build_manifest(
         per_round[str(number)] = per_round.get(str(number), 0) + count
         per_source[ts.SOURCES[source]] += count
         detail.append({"round": number, "source": ts.SOURCES[source], "rows": count})
-    consensus = ts.relabels(session, loop=loop, cutoff=cutoff)
+    consensus = ts.relabels(session, loop=loop, spec=spec_of(loop), cutoff=cutoff)
     unresolved = consensus.step_id[~consensus.resolved]
     rounds = session.execute(
         select(Round.number, Round.learner_version)
@@ -295,11 +287,15 @@ def snapshot_batches(
     SnapshotChanged after the last row if the rows no longer match the hash.
     """
     rows = _verified(
-        ts.iter_batches(session, loop=loop, cutoff=cutoff_of(snapshot)), loop, snapshot
+        ts.iter_batches(session, loop=loop, spec=spec_of(loop), cutoff=cutoff_of(snapshot)),
+        loop,
+        snapshot,
     )
     if since is None:
         return rows
-    older = ts.iter_batches(session, loop=loop, cutoff=cutoff_of(since), with_features=False)
+    older = ts.iter_batches(
+        session, loop=loop, spec=spec_of(loop), cutoff=cutoff_of(since), with_features=False
+    )
     return rows_not_in(rows, older)
 
 
@@ -374,19 +370,19 @@ def _chunks_from_store(
     spool_dir: Path | None = None,
 ) -> Iterator[bytes]:
     batches = snapshot_batches(session, loop=loop, snapshot=snapshot, since=since)
-    layout = layout_of(loop)
+    spec = spec_of(loop)
     metadata = {
         "manifest": snapshot.manifest,
         "since": None if since is None else f"v{since.version}",
     }
     if file_format == "parquet":
-        return export.parquet_chunks(batches, layout, metadata)
+        return export.parquet_chunks(batches, spec, metadata)
     if file_format == "npz":
         if spool_dir is not None:  # else the system's temporary folder
             spool_dir.mkdir(parents=True, exist_ok=True)
-        return export.npz_chunks(batches, layout, metadata, spool_dir)
+        return export.npz_chunks(batches, spec, metadata, spool_dir)
     if file_format == "jsonl":
-        return export.jsonl_chunks(batches, layout)
+        return export.jsonl_chunks(batches, spec)
     raise InvalidInput(f"format must be one of {list(export.EXPORT_FORMATS)}, got '{file_format}'")
 
 

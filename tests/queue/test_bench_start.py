@@ -6,16 +6,18 @@ from __future__ import annotations
 
 import json
 
+import numpy as np
 import pytest
 
 from expertloop.ingest.schemas import StepRead
-from expertloop.loops.schemas import LoopSettings
+from expertloop.loops.spec import parse_spec
 from expertloop.queue.bench import neutral_action, start_action
 from tests.conftest import store_contents
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC, discrete_rows, parquet_bytes
 from tests.queue.conftest import continuous_rows
 
-DIMS = CONTINUOUS_SPEC["action_space"]["dimensions"]  # speed_cmd [0, 2], curvature [-0.2, 0.2]
+# speed_cmd [0, 2], curvature [-0.2, 0.2]
+SPEC = parse_spec(CONTINUOUS_SPEC["features"], CONTINUOUS_SPEC["action_space"])
 
 
 def step(index: int, expert: list[float] | None = None) -> StepRead:
@@ -27,8 +29,8 @@ def step(index: int, expert: list[float] | None = None) -> StepRead:
 
 
 def test_neutral_is_zero_where_the_bounds_allow_else_the_middle():
-    assert neutral_action(DIMS) == [0.0, 0.0]
-    assert neutral_action([{"low": 0.5, "high": 1.5}, {"low": -3, "high": -1}]) == [1.0, -2.0]
+    assert neutral_action(SPEC.low, SPEC.high) == [0.0, 0.0]
+    assert neutral_action(np.array([0.5, -3]), np.array([1.5, -1])) == [1.0, -2.0]
 
 
 @pytest.mark.parametrize(
@@ -43,9 +45,12 @@ def test_neutral_is_zero_where_the_bounds_allow_else_the_middle():
     ],
 )  # fmt: skip
 def test_start_action(setting, before, learner, own, expected):
-    start = start_action(
-        LoopSettings(continuous_start=setting), DIMS, before=before, learner=learner, own=own
+    spec = parse_spec(
+        CONTINUOUS_SPEC["features"],
+        CONTINUOUS_SPEC["action_space"],
+        {"continuous_start": setting},
     )
+    start = start_action(spec, before=before, learner=learner, own=own)
     assert (start.action, start.source) == expected
 
 

@@ -7,6 +7,7 @@ from sqlalchemy import select
 
 from expertloop.ingest.models import Step
 from expertloop.loops import service as loops_service
+from expertloop.loops.spec import spec_of
 from expertloop.queue.models import ANSWER_ACTION, ANSWER_UNSURE, Label
 from expertloop.shared import training_set as ts
 from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
@@ -66,7 +67,8 @@ def test_members_sources_actions_and_cutoff(app, client, admin, uploader, make_u
         _label(session, c, round1.id, users[0], ANSWER_UNSURE, None, 6)
         session.commit()
         cutoff = ts.current_cutoff(session, loop=loop, up_to_round=1)
-        rows = ts.members(session, loop=loop, cutoff=cutoff)
+        spec = spec_of(loop)
+        rows = ts.members(session, loop=loop, spec=spec, cutoff=cutoff)
         sources = [ts.SOURCES[i] for i in rows.source]
         # 3 demonstrations, 1 takeover, 1 relabel (a); b (tie) and c (unsure only) are left out
         assert sources.count("demonstration") == 3
@@ -81,17 +83,23 @@ def test_members_sources_actions_and_cutoff(app, client, admin, uploader, make_u
         assert rows.action[takeover_at] == 2  # "hold"
         # up to round 0 only demonstrations
         only_demos = ts.members(
-            session, loop=loop, cutoff=ts.current_cutoff(session, loop=loop, up_to_round=0)
+            session,
+            loop=loop,
+            spec=spec,
+            cutoff=ts.current_cutoff(session, loop=loop, up_to_round=0),
         )
         assert {ts.SOURCES[i] for i in only_demos.source} == {"demonstration"}
         # a later label does not change the pinned version
         _label(session, b, round1.id, users[0], ANSWER_ACTION, 0, 7)
         session.commit()
-        assert len(ts.members(session, loop=loop, cutoff=cutoff)) == len(rows)
+        assert len(ts.members(session, loop=loop, spec=spec, cutoff=cutoff)) == len(rows)
         newer = ts.members(
-            session, loop=loop, cutoff=ts.current_cutoff(session, loop=loop, up_to_round=1)
+            session,
+            loop=loop,
+            spec=spec,
+            cutoff=ts.current_cutoff(session, loop=loop, up_to_round=1),
         )
         assert len(newer) == len(rows) + 1
-        ids, features = ts.training_features(session, loop=loop, cutoff=cutoff)
+        ids, features = ts.training_features(session, loop=loop, spec=spec, cutoff=cutoff)
         assert features.shape == (5, 3) and features.dtype == np.float32
         np.testing.assert_array_equal(ids, rows.step_id)

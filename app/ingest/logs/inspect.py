@@ -11,7 +11,7 @@ import numpy as np
 
 from ...errors import ExpertloopError
 from ...loops.log_mapping import LogMapping
-from ..validate import ActionSpec
+from ...loops.spec import parse_spec
 from .archive import DEFAULT_MAX_UNPACKED_BYTES, bag_format, bag_path, log_stem
 from .reader import NS, open_bag
 from .service import check_mapped, default_control
@@ -89,7 +89,8 @@ def inspect_log(
             robots = mapped.table.column("robot").to_pylist()
             for key, robot in zip(mapped.row_key, robots, strict=True):
                 found.robots.setdefault(key, robot)
-        spec = ActionSpec.from_loop(loop["features"], loop["action_space"])
+        # what validation needs of the spec; its settings play no part in a dry run
+        spec = parse_spec(loop["features"], loop["action_space"])
         try:
             check_mapped(mapped, spec, round_number=round_number)
         except ExpertloopError as exc:

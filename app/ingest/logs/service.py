@@ -4,26 +4,26 @@ and validate with the rules every rollout file meets, naming topic, field and ti
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any
 
 from ...errors import InvalidInput
 from ...loops.log_mapping import LogMapping
+from ...loops.spec import LoopSpec
 from ..columns import CellError
 from ..limits import UploadLimits
-from ..validate import DEFAULT_LIMITS, ActionSpec, StepBatch, validate
+from ..validate import DEFAULT_LIMITS, StepBatch, validate
 from .archive import bag_path, log_stem
 from .reader import describe_time, open_bag
 from .steps import MappedLog, map_log
 
 
-def loop_mapping(slug: str, log_mapping: dict[str, Any] | None) -> LogMapping:
+def loop_mapping(slug: str, log_mapping: LogMapping | None) -> LogMapping:
     """The loop's log mapping, or a refusal saying the loop has none."""
-    if not log_mapping:
+    if log_mapping is None:
         raise InvalidInput(
             f"loop '{slug}' has no log mapping, so it cannot read robot logs; give the loop a "
             "`log_mapping` (README, 'Robot logs') or upload Parquet, .npz or JSON Lines"
         )
-    return LogMapping.model_validate(log_mapping)
+    return log_mapping
 
 
 def default_control(round_number: int) -> str:
@@ -37,7 +37,7 @@ def validate_log(
     file_format: str,
     filename: str,
     mapping: LogMapping,
-    spec: ActionSpec,
+    spec: LoopSpec,
     round_number: int,
     spool_dir: Path,
     max_unpacked_bytes: int,
@@ -59,7 +59,7 @@ def validate_log(
 
 def check_mapped(
     mapped: MappedLog,
-    spec: ActionSpec,
+    spec: LoopSpec,
     *,
     round_number: int,
     limits: UploadLimits = DEFAULT_LIMITS,
