@@ -101,9 +101,13 @@ def _read_parquet(path: Path, max_array_bytes: int) -> pa.Table:
         if declared > max_array_bytes:
             raise _too_large("the Parquet file", declared, max_array_bytes)
         # Dictionary-encoded text declares only its dictionary and indices: one long value
-        # repeated a million times is small on disk and huge once decoded. Text columns are
-        # therefore read as dictionaries, their decoded size counted, and only then decoded.
-        text = [f.name for f in parquet.schema_arrow if _is_text(f.type)]
+        # repeated a million times is small on disk and huge once decoded. Text columns that
+        # may repeat values so are therefore read as dictionaries, their decoded size counted,
+        # and only then decoded. Text stored literally (camera images, written without a
+        # dictionary) is read as it is: it declares its decoded size, checked above, and the
+        # dictionary reader would hash and copy every value (most of an image upload's time).
+        literal = _literal_columns(metadata)
+        text = [f.name for f in parquet.schema_arrow if _is_text(f.type) and f.name not in literal]
         parquet = pq.ParquetFile(path, memory_map=True, read_dictionary=text)
         groups, read_bytes = [], 0
         for i in range(metadata.num_row_groups):
@@ -115,6 +119,27 @@ def _read_parquet(path: Path, max_array_bytes: int) -> pa.Table:
         return pa.concat_tables(groups) if groups else parquet.schema_arrow.empty_table()
     except (pa.ArrowException, OSError) as exc:
         raise InvalidInput("not a readable Parquet file (truncated or damaged?)") from exc
+
+
+# Encodings that store every byte of every value in the file (RLE and BIT_PACKED only for the
+# levels that mark missing values): a column chunk declaring no others, and no dictionary page,
+# decodes to about its declared uncompressed size. DELTA_BYTE_ARRAY is not among them: a value
+# may repeat its predecessor's bytes.
+LITERAL_ENCODINGS = frozenset({"PLAIN", "RLE", "BIT_PACKED", "DELTA_LENGTH_BYTE_ARRAY"})
+
+
+def _literal_columns(metadata: pq.FileMetaData) -> set[str]:
+    """Columns every chunk of which declares a literal encoding (LITERAL_ENCODINGS)."""
+    seen: set[str] = set()
+    repeating: set[str] = set()
+    for i in range(metadata.num_row_groups):
+        group = metadata.row_group(i)
+        for j in range(group.num_columns):
+            chunk = group.column(j)
+            seen.add(chunk.path_in_schema)
+            if chunk.has_dictionary_page or not set(chunk.encodings) <= LITERAL_ENCODINGS:
+                repeating.add(chunk.path_in_schema)
+    return seen - repeating
 
 
 def _is_text(kind: pa.DataType) -> bool:
@@ -145,10 +170,23 @@ def _decoded_bytes(group: pa.Table) -> int:
 
 def _decode_dictionaries(group: pa.Table) -> pa.Table:
     columns = [
-        pc.cast(column, column.type.value_type) if pa.types.is_dictionary(column.type) else column
+        pa.chunked_array([_decoded(c) for c in column.chunks], column.type.value_type)
+        if pa.types.is_dictionary(column.type)
+        else column
         for column in group.columns
     ]
     return pa.Table.from_arrays(columns, names=group.column_names)
+
+
+def _decoded(chunk: pa.DictionaryArray) -> pa.Array:
+    """A dictionary array as plain values. Values that are all distinct and in order (camera
+    images, read through the dictionary reader) are the dictionary itself: no copy is made."""
+    dictionary = chunk.dictionary
+    if chunk.null_count == 0 and len(dictionary) == len(chunk):
+        indices = chunk.indices.to_numpy(zero_copy_only=False)
+        if np.array_equal(indices, np.arange(len(indices))):
+            return dictionary
+    return pc.cast(chunk, dictionary.type)
 
 
 # Bytes per value once decoded, by Parquet physical type; text counts its 4-byte offset at least.
