@@ -185,20 +185,6 @@ def asgi_timer(
     return run
 
 
-def _reader_roles() -> Any:
-    """The dependency behind /api/me's ReaderDep (the Roles instance)."""
-    from expertloop.deps import ReaderDep
-
-    return ReaderDep.__metadata__[0].dependency
-
-
-async def _stub_caller() -> Any:
-    from expertloop.auth.cache import Identity
-    from expertloop.deps import Caller
-
-    return Caller(user=Identity(id=1, name=USER, roles=tuple(ROLES)))
-
-
 # --- side by side ----------------------------------------------------------------------------
 
 
@@ -227,7 +213,7 @@ def report(title: str, ms: dict[str, np.ndarray]) -> float:
     print(f"  {title}")
     for name, values in ms.items():
         p50, p99 = np.percentile(values, [50, 99])
-        print(f"    {name:<26} p50 {p50:6.3f} ms   p99 {p99:6.3f} ms   ({len(values)} requests)")
+        print(f"    {name:<24} p50 {p50:6.3f} ms   p99 {p99:6.3f} ms   ({len(values)} requests)")
     ratio = float(np.median(ms["GET /api/me"]) / np.median(ms["bare FastAPI route"]))
     print(f"    ratio of medians, /api/me over bare route: {ratio:.2f}x (target <= 1.5x)")
     return ratio
@@ -270,10 +256,6 @@ def measure(url: str, backend: str, data_dir: Path, requests: int, rounds: int) 
 
     settings = Settings(data_dir=data_dir / "inproc", database_url=url, job_mode="off")
     app = create_app(settings)
-    # The same route with the caller's identification replaced by a constant: what routing
-    # through the app's routers, dependency solving and the middlewares cost by themselves.
-    stubbed = create_app(settings)
-    stubbed.dependency_overrides[_reader_roles()] = _stub_caller
     loop = new_event_loop()
     try:
         ms = side_by_side(
@@ -281,7 +263,6 @@ def measure(url: str, backend: str, data_dir: Path, requests: int, rounds: int) 
                 "bare FastAPI route": asgi_timer(bare, "/bare", {}, loop),
                 "GET /api/me": asgi_timer(app, "/api/me", auth, loop),
                 "GET /healthz": asgi_timer(app, "/healthz", {}, loop),
-                "/api/me, caller stubbed": asgi_timer(stubbed, "/api/me", auth, loop),
             },
             requests,
             rounds,
@@ -290,7 +271,6 @@ def measure(url: str, backend: str, data_dir: Path, requests: int, rounds: int) 
         loop.run_until_complete(app.state.access_version.close())
         loop.close()
         app.state.engine.dispose()
-        stubbed.state.engine.dispose()
     report("in process (ASGI call, no server)", ms)
     print(f"{backend}: load average {os.getloadavg()[0]:.2f} after the run")
 

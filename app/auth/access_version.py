@@ -7,9 +7,11 @@ Every request reads it, so the read is made as cheap as the store allows and nev
 - SQLite: one connection of its own, read on the event loop (a WAL read of one row takes
   microseconds); busy timeout 0, so a locked file answers "busy" at once instead of stalling
   the loop;
-- PostgreSQL: one asynchronous psycopg connection of its own per event loop, so the request
-  waits for the round trip without a thread and without a pool checkout (and its ping);
-  requests arriving together share a read that began after they arrived.
+- PostgreSQL: one asynchronous psycopg connection of its own per event loop, so a request
+  waits for the round trip without a thread and without a pool checkout (and its ping); a
+  read begun at most FRESH_S before a request arrived answers it too, as every change waits
+  that long after its commit (app/auth/changes.py), so a steady stream of requests costs one
+  query per FRESH_S per process, not one per request.
 
 When the fast read cannot answer (busy, a dropped connection, the store down) `current()` gives
 None and the caller takes the slow path: a pooled session in the thread pool that reads the
@@ -20,6 +22,7 @@ PostgreSQL connection is retried after RETRY_AFTER_S, not on every request of an
 from __future__ import annotations
 
 import asyncio
+import math
 import sqlite3
 import threading
 from typing import Any, Protocol
@@ -28,6 +31,7 @@ import psycopg
 from sqlalchemy import Connection, Engine, select
 from sqlalchemy.orm import Session
 
+from .changes import FRESH_S
 from .models import AccessVersion
 
 # By key, not max(version): the cheapest read there is (a missing row reads as 0)
@@ -103,8 +107,7 @@ class PostgresReader:
         self._loop: asyncio.AbstractEventLoop | None = None
         self._conn: psycopg.AsyncConnection[Any] | None = None
         self._turn: asyncio.Lock | None = None  # one read at a time, first come first served
-        self._started = 0  # reads begun so far
-        self._last: tuple[int, int | None] = (0, None)  # the latest read: its number, its answer
+        self._last: tuple[float, int | None] = (-math.inf, None)  # latest read: begun, answer
         self._retry_at = 0.0
 
     async def current(self) -> int | None:
@@ -112,19 +115,23 @@ class PostgresReader:
         if loop is not self._loop:
             self._forget()  # a connection belongs to the loop that opened it
             self._loop, self._turn = loop, asyncio.Lock()
+            self._last = (-math.inf, None)  # that loop's clock, not this one's
         assert self._turn is not None
-        # Requests arriving while a read is under way wait for the next one, and every one of
-        # them takes its answer: a read begun after a request arrived sees every change
-        # committed before, so one round trip serves them all (at most two per request, and one
-        # query at a time per process, however many requests come at once).
-        arrived = self._started
+        # A read begun at most FRESH_S before this request arrived answers it (changes wait
+        # that long after their commit: app/auth/changes.py). Requests arriving while a read is
+        # under way wait for it or for the next one: one query at a time per process, however
+        # many requests come at once.
+        oldest = loop.time() - FRESH_S
+        begun, answer = self._last
+        if begun >= oldest:
+            return answer
         async with self._turn:
-            number, answer = self._last
-            if number > arrived:
+            begun, answer = self._last
+            if begun >= oldest:  # read for a request ahead in line
                 return answer
-            self._started += 1
+            begun = loop.time()
             answer = await self._read(loop)
-            self._last = (self._started, answer)
+            self._last = (begun, answer)
             return answer
 
     async def _read(self, loop: asyncio.AbstractEventLoop) -> int | None:

@@ -12,6 +12,9 @@ from ..db import write_transaction
 from ..errors import Conflict, InvalidInput, NotFound
 from ..limits import name_problem
 from ..models import utcnow
+
+# imported for its Session hooks: changes of these tables wait out reused reads
+from . import changes as _changes  # noqa: F401
 from . import security
 from .models import ApiToken, BrowserSession, User
 

@@ -19,6 +19,7 @@ from typer.testing import CliRunner
 
 from expertloop.auth import access_version, identify, service
 from expertloop.auth.cache import Identity, IdentityCache, Known
+from expertloop.auth.changes import FRESH_S
 from expertloop.auth.identify import SESSION_COOKIE
 from expertloop.auth.models import WATCHED_TABLES, BrowserSession
 from expertloop.cli import cli
@@ -274,12 +275,14 @@ def test_a_dropped_reader_connection_falls_back_and_reconnects(
     for _ in range(2):
         assert client.get("/api/me", headers=header).status_code == 200
     assert store_reads == ["token"]
-    readers = (
-        "SELECT pg_terminate_backend(pid) FROM pg_stat_activity WHERE application_name = :name"
+    readers = (  # of this database only: other databases of the cluster have readers too
+        "SELECT pg_terminate_backend(pid) FROM pg_stat_activity "
+        "WHERE application_name = :name AND datname = current_database()"
     )
     with engine.connect() as conn:
         killed = conn.execute(text(readers), {"name": access_version.APPLICATION_NAME}).all()
     assert killed == [(True,)]
+    time.sleep(FRESH_S)  # past the last read's reuse
     assert client.get("/api/me", headers=header).status_code == 200  # the slow path answered
     assert store_reads == ["token", "token"]
     time.sleep(access_version.RETRY_AFTER_S + 0.1)
@@ -292,7 +295,7 @@ def test_a_dropped_reader_connection_falls_back_and_reconnects(
 
 
 @pytest.mark.skipif(not PG_URL, reason="the reader's own connection is PostgreSQL's")
-def test_requests_arriving_together_share_a_read_begun_after_they_arrived(engine, make_user):
+def test_reads_are_shared_by_requests_within_the_reuse_time(engine, app):
     reader = access_version.PostgresReader(engine)
     reads: list[int | None] = []
     real = reader._read
@@ -303,21 +306,63 @@ def test_requests_arriving_together_share_a_read_begun_after_they_arrived(engine
 
     reader._read = counted  # type: ignore[method-assign]
 
-    async def together() -> tuple[int | None, list[int | None], int | None]:
-        first = await reader.current()
-        make_user("annotator", name="ann")  # no change of the version: a new user
-        answers = await asyncio.gather(*(reader.current() for _ in range(20)))
-        with engine.begin() as conn:
-            conn.execute(text("UPDATE users SET active = false"))
+    async def together() -> list[int | None]:
+        return list(await asyncio.gather(*(reader.current() for _ in range(20))))
+
+    async def run() -> tuple[list[int | None], list[int | None], int | None]:
+        first = await together()  # one read for twenty requests at once
+        await asyncio.sleep(FRESH_S * 1.5)
+        second = await together()  # the first is too old now: one more
+        with app.state.session_factory.begin() as session:  # a change: it waits out reuse
+            service.set_active(
+                session,
+                user=service.create_user(session, name="ann", roles=["annotator"]),
+                active=False,
+            )
         after = await reader.current()
         await reader.close()
-        return first, list(answers), after
+        return first, second, after
 
-    first, answers, after = asyncio.run(together())
-    # the first of the twenty reads at once; the other nineteen arrived while it ran and share
-    # the one read begun after them
-    assert len(reads) == 4 and answers == [first] * 20
-    assert after is not None and first is not None and after > first
+    first, second, after = asyncio.run(run())
+    assert len(reads) == 3 and first == [first[0]] * 20 and second == [first[0]] * 20
+    assert after is not None and first[0] is not None and after > first[0]
+
+
+@pytest.mark.skipif(not PG_URL, reason="only PostgreSQL reuses reads, so only there changes wait")
+def test_a_change_returns_only_once_no_process_can_answer_from_before_it(
+    client, other, make_user, app, engine
+):
+    header = make_user("annotator", name="ann")
+    assert other.get("/api/me", headers=header).status_code == 200
+    with app.state.session_factory() as session:
+        assert service.revoke_token(session, prefix=header["Authorization"].split()[1]) == 1
+        assert other.get("/api/me", headers=header).status_code == 200  # not committed yet
+        began = time.monotonic()
+        session.commit()
+        waited = time.monotonic() - began
+    # the other instance read the version a moment ago; had the commit not waited, the request
+    # below could take that read and the cached identity with it
+    assert waited >= FRESH_S
+    assert other.get("/api/me", headers=header).status_code == 401
+
+
+def test_sql_typed_by_hand_counts_within_the_reuse_time(client, other, make_user, engine):
+    header = make_user("annotator", name="ann")
+    assert other.get("/api/me", headers=header).status_code == 200
+    with engine.begin() as conn:  # no session: nothing waits
+        conn.execute(text("UPDATE api_tokens SET revoked_at = CURRENT_TIMESTAMP"))
+    time.sleep(FRESH_S)
+    assert other.get("/api/me", headers=header).status_code == 401
+
+
+def test_changes_wait_only_where_reads_are_reused(app, make_user, engine):
+    header = make_user("annotator", name="ann")
+    with app.state.session_factory() as session:
+        service.revoke_token(session, prefix=header["Authorization"].split()[1])
+        began = time.monotonic()
+        session.commit()
+        waited = time.monotonic() - began
+    assert (waited >= FRESH_S) == (engine.dialect.name == "postgresql")
 
 
 # --- at the same time --------------------------------------------------------------------------
