@@ -29,8 +29,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from sqlalchemy import Table, bindparam, select, update
-from sqlalchemy.dialects import postgresql, sqlite
+from sqlalchemy import Table, bindparam, select, text, update
+from sqlalchemy.dialects import sqlite
 from sqlalchemy.orm import Session
 
 from .models import StoredImage
@@ -40,8 +40,9 @@ log = logging.getLogger(__name__)
 PACK_FOLDER = "packs"
 INCOMING = "incoming"  # packs being written, before their rename into place
 PACK_SUFFIX = ".pack"
-# Index rows per INSERT statement: well under both backends' limits on bound parameters.
-ROWS_PER_STATEMENT = 2000
+# Index rows per statement: SQLite binds each key of a lookup (at most 32,766 parameters);
+# PostgreSQL takes them as arrays.
+ROWS_PER_STATEMENT = 10_000
 # Direct I/O: blocks of this size (a multiple of every device's logical block), staged in a
 # buffer of this size; an upload's pack smaller than DIRECT_FROM_BYTES goes through the page cache.
 DIRECT_BLOCK = 4096
@@ -92,11 +93,13 @@ def store_images(
     sha256 : the images' hashes (`images.content_digests`), None where there is no image
 
     An image is stored once. Within the upload, repeats are dropped. Against other uploads, the
-    index rows are inserted with ON CONFLICT DO NOTHING and tell which images this upload stores:
-    a row already committed is skipped, and on PostgreSQL a row another upload is inserting
-    makes this insert wait for that upload's outcome (skipped if it commits, ours if it rolls
-    back). Rows go in hash order, so two uploads wait for each other in one order, never in a
-    cycle. Only the images this upload owns go into its pack.
+    index says which images this upload stores. On PostgreSQL, where uploads store at the same
+    time, the rows go in with ON CONFLICT DO NOTHING RETURNING: a row already committed is
+    skipped, and a row another upload is inserting makes this insert wait for that upload's
+    outcome (skipped if it commits, ours if it rolls back); rows go in hash order, so two
+    uploads wait for each other in one order, never in a cycle. On SQLite the upload holds the
+    one write lock, so what is not indexed yet is its own. Only the images this upload owns go
+    into its pack.
     """
     first: dict[str, int] = {}  # hash -> its first row, in step order
     for row, digest in enumerate(sha256):
@@ -134,18 +137,59 @@ def _claim(
     session: Session, *, name: str, offsets: dict[str, int], lengths: dict[str, int]
 ) -> set[str]:
     """Insert index rows for the images of pack `name`; return the hashes that are now ours."""
-    dialect = session.get_bind().dialect.name
-    insert = postgresql.insert if dialect == "postgresql" else sqlite.insert
-    statement = (
-        insert(IMAGES).on_conflict_do_nothing(index_elements=["sha256"]).returning(IMAGES.c.sha256)
-    )
-    rows = [
-        {"sha256": d, "pack": name, "byte_offset": offsets[d], "byte_length": lengths[d]}
-        for d in sorted(offsets)
-    ]
+    keys = sorted(offsets)
+    if session.get_bind().dialect.name == "postgresql":
+        return _claim_postgresql(session, name, keys, offsets, lengths)
+    # SQLite: the upload's transaction holds the store's one write lock (write_transaction), so
+    # what is not indexed now is this upload's to index; bulk statements, no RETURNING.
+    stored: set[str] = set()
+    for start in range(0, len(keys), ROWS_PER_STATEMENT):
+        chunk = keys[start : start + ROWS_PER_STATEMENT]
+        stored.update(session.scalars(select(IMAGES.c.sha256).where(IMAGES.c.sha256.in_(chunk))))
+    owned = [d for d in keys if d not in stored]
+    if owned:
+        session.execute(
+            sqlite.insert(IMAGES).on_conflict_do_nothing(index_elements=["sha256"]),
+            [
+                {"sha256": d, "pack": name, "byte_offset": offsets[d], "byte_length": lengths[d]}
+                for d in owned
+            ],
+        )
+    return set(owned)
+
+
+# One statement per ROWS_PER_STATEMENT rows, the values passed as arrays; rows go in hash order.
+_CLAIM_POSTGRESQL = text(
+    "INSERT INTO images (sha256, pack, byte_offset, byte_length) "
+    "SELECT t.sha256, :pack, t.byte_offset, t.byte_length "
+    "FROM unnest(CAST(:sha256 AS text[]), CAST(:byte_offset AS bigint[]), "
+    "CAST(:byte_length AS integer[])) AS t (sha256, byte_offset, byte_length) "
+    "ORDER BY t.sha256 "
+    "ON CONFLICT (sha256) DO NOTHING RETURNING sha256"
+)
+
+
+def _claim_postgresql(
+    session: Session,
+    name: str,
+    keys: list[str],
+    offsets: dict[str, int],
+    lengths: dict[str, int],
+) -> set[str]:
     owned: set[str] = set()
-    for start in range(0, len(rows), ROWS_PER_STATEMENT):
-        owned.update(session.scalars(statement, rows[start : start + ROWS_PER_STATEMENT]))
+    for start in range(0, len(keys), ROWS_PER_STATEMENT):
+        chunk = keys[start : start + ROWS_PER_STATEMENT]
+        owned.update(
+            session.scalars(
+                _CLAIM_POSTGRESQL,
+                {
+                    "pack": name,
+                    "sha256": chunk,
+                    "byte_offset": [offsets[d] for d in chunk],
+                    "byte_length": [lengths[d] for d in chunk],
+                },
+            )
+        )
     return owned
 
 
