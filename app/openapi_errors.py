@@ -51,11 +51,14 @@ CHANGES = frozenset({"POST", "PUT", "PATCH", "DELETE"})
 
 def _statuses(route: APIRoute) -> set[int]:
     found = {503}
-    if any(isinstance(d.call, Roles) for d in _walk(route.dependant.dependencies)):
+    # path and query parameters may be declared by dependencies (LoopDep takes the slug)
+    dependants = [route.dependant, *_walk(route.dependant.dependencies)]
+    path_params = any(d.path_params for d in dependants)
+    if any(isinstance(d.call, Roles) for d in dependants):
         found |= {401, 403}
-    if route.dependant.path_params:
+    if path_params:
         found.add(404)
-    if route.dependant.path_params or route.dependant.query_params:
+    if path_params or any(d.query_params for d in dependants):
         found.add(422)
     if route.body_field is not None:
         found |= {400, 422}

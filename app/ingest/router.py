@@ -11,8 +11,8 @@ from starlette.concurrency import run_in_threadpool
 
 from ..deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep
 from ..errors import NotFound
-from ..limits import PageOffset, RoundNumber, StepId
-from ..loops import service as loops_service
+from ..limits import PageOffset, StepId
+from ..loops.deps import LoopDep, RoundDep
 from ..loops.spec import spec_of
 from . import image_store, reads, service
 from .images import HEAD_BYTES, image_media_type
@@ -36,17 +36,17 @@ async def _chunks(upload: UploadFile) -> AsyncIterator[bytes]:
     status_code=status.HTTP_201_CREATED,
 )
 async def upload_rollouts(
-    slug: str,
-    number: RoundNumber,
     file: UploadFile,
     session: SessionDep,
     settings: SettingsDep,
     caller: UploaderDep,
+    loop: LoopDep,
+    rnd: RoundDep,
 ) -> UploadRead:
     """Upload one rollout file (Parquet, .npz or JSON Lines) or robot log (ROS bag) into a
     round (uploader)."""
     # Store work runs in worker threads: the event loop must stay free for other requests.
-    loop, rnd = await run_in_threadpool(service.upload_target, session, slug=slug, number=number)
+    await run_in_threadpool(service.check_upload_target, session, loop=loop, rnd=rnd)
     path, sha = await spool(_chunks(file), settings.upload_dir, settings.max_upload_bytes)
     try:
         outcome = await run_in_threadpool(
@@ -79,31 +79,27 @@ async def upload_rollouts(
 
 @router.get("/loops/{slug}/rounds/{number}/rollouts", response_model=RolloutList)
 def list_rollouts(
-    slug: str,
-    number: RoundNumber,
     session: SessionDep,
     _: ReaderDep,
+    rnd: RoundDep,
     offset: PageOffset = 0,
     limit: int = Query(100, ge=1, le=PAGE_MAX),
 ) -> RolloutList:
     """A page of a round's rollouts."""
-    loop = loops_service.get_loop(session, slug=slug)
-    rnd = loops_service.get_round(session, loop=loop, number=number)
     items, total = reads.list_rollouts(session, rnd=rnd, offset=offset, limit=limit)
     return RolloutList(items=items, total=total, offset=offset, limit=limit)
 
 
 @router.get("/loops/{slug}/rollouts/{key}/steps", response_model=StepList)
 def list_steps(
-    slug: str,
     key: str,
     session: SessionDep,
     _: ReaderDep,
+    loop: LoopDep,
     offset: PageOffset = 0,
     limit: int = Query(200, ge=1, le=PAGE_MAX),
 ) -> StepList:
     """A page of one rollout's steps."""
-    loop = loops_service.get_loop(session, slug=slug)
     rollout = reads.get_rollout(session, loop=loop, key=key)
     items = reads.list_steps(session, loop=loop, rollout=rollout, offset=offset, limit=limit)
     return StepList(items=items, total=rollout.n_steps, offset=offset, limit=limit)
@@ -111,14 +107,13 @@ def list_steps(
 
 @router.get("/loops/{slug}/states/{step_id}", response_model=StateContext)
 def read_state(
-    slug: str,
     step_id: StepId,
     session: SessionDep,
     _: ReaderDep,
+    loop: LoopDep,
     seconds: float | None = Query(None, gt=0, le=120),
 ) -> StateContext:
     """One state with its rollout's steps around it in time (the bench's context)."""
-    loop = loops_service.get_loop(session, slug=slug)
     window = seconds if seconds is not None else spec_of(loop).settings.context_seconds
     state, before, after = reads.state_with_context(
         session, loop=loop, step_id=step_id, seconds=window

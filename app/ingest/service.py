@@ -14,7 +14,6 @@ from sqlalchemy.orm import Session
 from ..db import write_transaction
 from ..errors import Conflict
 from ..limits import shown
-from ..loops import service as loops_service
 from ..loops.models import Loop, Round
 from ..loops.spec import spec_of
 from ..shared.encode import rows_to_bytes
@@ -40,14 +39,11 @@ class UploadOutcome:
     already_stored: list[str] = field(default_factory=list)
 
 
-def upload_target(session: Session, *, slug: str, number: int) -> tuple[Loop, Round]:
-    """The loop and open round an upload goes to (404 unknown, 409 closed), read before the
-    file is received; the read transaction ends here, so nothing is held while it arrives."""
-    loop = loops_service.get_loop(session, slug=slug)
-    rnd = loops_service.get_round(session, loop=loop, number=number)
+def check_upload_target(session: Session, *, loop: Loop, rnd: Round) -> None:
+    """Refuse an upload to a closed round (409) before the file is spooled; the read transaction
+    that found the loop and round ends here, so nothing is held while the file is copied."""
     _require_open(loop, rnd)
     session.commit()
-    return loop, rnd
 
 
 def _require_open(loop: Loop, rnd: Round) -> None:

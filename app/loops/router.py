@@ -5,11 +5,14 @@ from __future__ import annotations
 from typing import Annotated
 
 from fastapi import APIRouter, Body, status
+from sqlalchemy.orm import Session
 
 from ..deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
 from ..limits import RoundNumber
 from . import service
+from .deps import LoopDep, WriterLoopDep
 from .log_mapping import LogMapping
+from .models import Loop
 from .schemas import LoopCreate, LoopList, LoopRead, RoundList, RoundOpen, RoundRead
 
 router = APIRouter(prefix="/api/loops", tags=["loops"])
@@ -30,54 +33,49 @@ def list_loops(session: SessionDep, _: ReaderDep) -> LoopList:
 
 
 @router.get("/{slug}", response_model=LoopRead)
-def read_loop(slug: str, session: SessionDep, _: ReaderDep) -> LoopRead:
+def read_loop(_: ReaderDep, loop: LoopDep) -> LoopRead:
     """One loop's spec and settings."""
-    return LoopRead.model_validate(service.get_loop(session, slug=slug))
+    return LoopRead.model_validate(loop)
 
 
 @router.put("/{slug}/log-mapping", response_model=LoopRead)
 def set_log_mapping(
-    slug: str,
     log_mapping: Annotated[LogMapping, Body(embed=True)],
     session: WriterSessionDep,
     _: AdminDep,
+    loop: WriterLoopDep,
 ) -> LoopRead:
     """Set or replace the loop's log mapping (admin), checked as in a new loop's spec: robot
     logs uploaded from now on are read through it."""
-    loop = service.get_loop(session, slug=slug)
     return LoopRead.model_validate(service.set_log_mapping(session, loop=loop, mapping=log_mapping))
 
 
 @router.get("/{slug}/rounds", response_model=RoundList)
-def list_rounds(slug: str, session: SessionDep, _: ReaderDep) -> RoundList:
+def list_rounds(session: SessionDep, _: ReaderDep, loop: LoopDep) -> RoundList:
     """Rounds of a loop with rollout and step counts."""
-    loop = service.get_loop(session, slug=slug)
     items = service.round_summaries(session, loop=loop)
     return RoundList(items=items, total=len(items))
 
 
 @router.post("/{slug}/rounds", response_model=RoundRead, status_code=status.HTTP_201_CREATED)
 def open_round(
-    slug: str, body: RoundOpen, session: WriterSessionDep, caller: AdminDep
+    body: RoundOpen, session: WriterSessionDep, caller: AdminDep, loop: WriterLoopDep
 ) -> RoundRead:
     """Open the next round for rollouts of a learner version (admin)."""
-    loop = service.get_loop(session, slug=slug)
     new = service.open_round(
         session, loop=loop, learner_version=body.learner_version, user_id=caller.user_id
     )
-    return _summary(session, loop_slug=slug, number=new.number)
+    return _summary(session, loop=loop, number=new.number)
 
 
 @router.post("/{slug}/rounds/{number}/close", response_model=RoundRead)
 def close_round(
-    slug: str, number: RoundNumber, session: WriterSessionDep, _: AdminDep
+    number: RoundNumber, session: WriterSessionDep, _: AdminDep, loop: WriterLoopDep
 ) -> RoundRead:
     """Close a round: it takes no more uploads (admin)."""
-    loop = service.get_loop(session, slug=slug)
     service.close_round(session, loop=loop, number=number)
-    return _summary(session, loop_slug=slug, number=number)
+    return _summary(session, loop=loop, number=number)
 
 
-def _summary(session: SessionDep, *, loop_slug: str, number: RoundNumber) -> RoundRead:
-    loop = service.get_loop(session, slug=loop_slug)
+def _summary(session: Session, *, loop: Loop, number: int) -> RoundRead:
     return next(r for r in service.round_summaries(session, loop=loop) if r.number == number)

@@ -7,8 +7,8 @@ from fastapi import APIRouter, Request, Response, status
 from fastapi.responses import HTMLResponse
 
 from ..deps import AdminDep, AnnotatorDep, SessionDep
-from ..limits import RoundNumber, RowId
-from ..loops import service as loops_service
+from ..limits import RowId
+from ..loops.deps import LoopDep, RoundDep
 from ..loops.spec import spec_of
 from ..models import utcnow
 from ..templating import templates
@@ -30,9 +30,8 @@ QUEUE = "/api/loops/{slug}/queue"
 
 
 @router.post(QUEUE + "/claim", response_model=ClaimRead)
-def claim(slug: str, session: SessionDep, caller: AnnotatorDep) -> ClaimRead:
+def claim(session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> ClaimRead:
     """Lease the next state to label, or get back the one already held (annotator)."""
-    loop = loops_service.get_loop(session, slug=slug)
     with CLAIM_SECONDS.time():
         claimed = service.claim_next(session, loop=loop, user_id=caller.user_id, now=utcnow())
     if claimed is None:
@@ -41,9 +40,8 @@ def claim(slug: str, session: SessionDep, caller: AnnotatorDep) -> ClaimRead:
 
 
 @router.post(QUEUE + "/items/{item_id}/renew", response_model=LeaseRead)
-def renew(slug: str, item_id: RowId, session: SessionDep, caller: AnnotatorDep) -> LeaseRead:
+def renew(item_id: RowId, session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> LeaseRead:
     """Extend the lease on a held item while its annotator works (annotator)."""
-    loop = loops_service.get_loop(session, slug=slug)
     expires_at = service.renew(
         session, loop=loop, item_id=item_id, user_id=caller.user_id, now=utcnow()
     )
@@ -51,9 +49,8 @@ def renew(slug: str, item_id: RowId, session: SessionDep, caller: AnnotatorDep) 
 
 
 @router.post(QUEUE + "/items/{item_id}/skip", response_model=SkipRead)
-def skip(slug: str, item_id: RowId, session: SessionDep, caller: AnnotatorDep) -> SkipRead:
+def skip(item_id: RowId, session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> SkipRead:
     """Pass on an item; it is not offered to this annotator again (annotator)."""
-    loop = loops_service.get_loop(session, slug=slug)
     service.skip(session, loop=loop, item_id=item_id, user_id=caller.user_id, now=utcnow())
     return SkipRead(item_id=item_id, skipped=True)
 
@@ -65,15 +62,14 @@ def skip(slug: str, item_id: RowId, session: SessionDep, caller: AnnotatorDep) -
     responses={200: {"description": "a repeated submission: the label stored the first time"}},
 )
 def submit(
-    slug: str,
     item_id: RowId,
     body: LabelCreate,
     response: Response,
     session: SessionDep,
     caller: AnnotatorDep,
+    loop: LoopDep,
 ) -> LabelRead:
     """Submit an answer (an action, or unsure) for a held item; repeats are harmless (annotator)."""
-    loop = loops_service.get_loop(session, slug=slug)
     done = service.submit(
         session,
         loop=loop,
@@ -106,26 +102,20 @@ def submit(
 
 
 @router.get(QUEUE + "/progress", response_model=service.Progress)
-def progress(slug: str, session: SessionDep, caller: AnnotatorDep) -> service.Progress:
+def progress(session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> service.Progress:
     """Labelled today, left in the queue, and expected time left at today's pace (annotator)."""
-    loop = loops_service.get_loop(session, slug=slug)
     return service.progress(session, loop=loop, user_id=caller.user_id, now=utcnow())
 
 
 @router.get("/api/loops/{slug}/rounds/{number}/queue", response_model=service.RoundQueue)
-def round_queue(
-    slug: str, number: RoundNumber, session: SessionDep, _: AdminDep
-) -> service.RoundQueue:
+def round_queue(session: SessionDep, _: AdminDep, rnd: RoundDep) -> service.RoundQueue:
     """Counts of a round's queue: items, labels, live leases, skips (admin)."""
-    loop = loops_service.get_loop(session, slug=slug)
-    rnd = loops_service.get_round(session, loop=loop, number=number)
     return service.round_queue(session, rnd=rnd, now=utcnow())
 
 
 @router.get("/loops/{slug}/bench", response_class=HTMLResponse)
-def bench_page(request: Request, slug: str, session: SessionDep, caller: AnnotatorDep) -> Response:
+def bench_page(request: Request, caller: AnnotatorDep, loop: LoopDep) -> Response:
     """The bench: label the loop's queued states, keyboard first (annotator)."""
-    loop = loops_service.get_loop(session, slug=slug)
     spec = spec_of(loop)
     settings = spec.settings
     names = spec.feature_names

@@ -9,7 +9,7 @@ from fastapi.responses import HTMLResponse, Response
 
 from ..deps import ReaderDep, SessionDep
 from ..limits import RoundNumber
-from ..loops import service as loops_service
+from ..loops.deps import LoopDep
 from ..templating import templates
 from . import page, service, table
 from .schemas import LoopReport, RoundReport
@@ -31,24 +31,21 @@ CacheDep = Annotated[service.ReportCache, Depends(get_report_cache)]
 
 @router.get("/api/loops/{slug}/rounds/{number}/report", response_model=RoundReport)
 def round_report(
-    slug: str, number: RoundNumber, session: SessionDep, cache: CacheDep, _: ReaderDep
+    number: RoundNumber, session: SessionDep, cache: CacheDep, _: ReaderDep, loop: LoopDep
 ) -> RoundReport:
     """One round's report: disagreement, shift, agreement, pace (any signed-in role)."""
-    loop = loops_service.get_loop(session, slug=slug)
     return service.round_report(session, loop=loop, number=number, cache=cache)
 
 
 @router.get("/api/loops/{slug}/report", response_model=LoopReport)
-def loop_report(slug: str, session: SessionDep, cache: CacheDep, _: ReaderDep) -> LoopReport:
+def loop_report(session: SessionDep, cache: CacheDep, _: ReaderDep, loop: LoopDep) -> LoopReport:
     """The table across a loop's rounds (any signed-in role)."""
-    loop = loops_service.get_loop(session, slug=slug)
     return table.loop_table(loop, service.loop_reports(session, loop=loop, cache=cache))
 
 
 @router.get("/api/loops/{slug}/report.csv", response_class=Response)
-def loop_report_csv(slug: str, session: SessionDep, cache: CacheDep, _: ReaderDep) -> Response:
+def loop_report_csv(session: SessionDep, cache: CacheDep, _: ReaderDep, loop: LoopDep) -> Response:
     """The table across rounds as CSV, one row per round (any signed-in role)."""
-    loop = loops_service.get_loop(session, slug=slug)
     rows = table.loop_table(loop, service.loop_reports(session, loop=loop, cache=cache)).items
     return Response(
         table.rows_csv(rows),
@@ -59,10 +56,9 @@ def loop_report_csv(slug: str, session: SessionDep, cache: CacheDep, _: ReaderDe
 
 @router.get("/loops/{slug}", response_class=HTMLResponse)
 def loop_page(
-    request: Request, slug: str, session: SessionDep, cache: CacheDep, caller: ReaderDep
+    request: Request, session: SessionDep, cache: CacheDep, caller: ReaderDep, loop: LoopDep
 ) -> Response:
     """The loop page: rounds table, charts across rounds, shifted features (any signed-in role)."""
-    loop = loops_service.get_loop(session, slug=slug)
     reports = service.loop_reports(session, loop=loop, cache=cache)
     context = page.loop_page_context(loop, reports)
     return templates.TemplateResponse(

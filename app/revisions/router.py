@@ -6,7 +6,7 @@ from fastapi import APIRouter, Response, status
 from sqlalchemy.orm import Session
 
 from ..deps import AnnotatorDep, SessionDep
-from ..loops import service as loops_service
+from ..loops.deps import LoopDep
 from ..loops.models import Loop
 from ..loops.spec import spec_of
 from ..models import utcnow
@@ -54,9 +54,8 @@ def _read(session: Session, loop: Loop, labels: list[Label]) -> list[MyLabel]:
 
 
 @router.get(MINE, response_model=MyLabelList)
-def my_labels(slug: str, session: SessionDep, caller: AnnotatorDep) -> MyLabelList:
+def my_labels(session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> MyLabelList:
     """Your last 20 standing answers on this loop, newest first, with their states (annotator)."""
-    loop = loops_service.get_loop(session, slug=slug)
     labels = service.recent(session, loop=loop, user_id=caller.user_id)
     items = _read(session, loop, labels)
     return MyLabelList(items=items, total=len(items))
@@ -64,11 +63,10 @@ def my_labels(slug: str, session: SessionDep, caller: AnnotatorDep) -> MyLabelLi
 
 @router.post(MINE + "/{label_id}/undo", response_model=UndoRead)
 def undo(
-    slug: str, label_id: int, body: UndoCreate, session: SessionDep, caller: AnnotatorDep
+    label_id: int, body: UndoCreate, session: SessionDep, caller: AnnotatorDep, loop: LoopDep
 ) -> UndoRead:
     """Take back your answer while no snapshot holds it; the state returns to the queue
     (annotator)."""
-    loop = loops_service.get_loop(session, slug=slug)
     done = service.undo(
         session,
         loop=loop,
@@ -87,16 +85,15 @@ def undo(
     responses={200: {"description": "a repeated request: the answer stored the first time"}},
 )
 def change(
-    slug: str,
     label_id: int,
     body: ChangeCreate,
     response: Response,
     session: SessionDep,
     caller: AnnotatorDep,
+    loop: LoopDep,
 ) -> ChangeRead:
     """Replace your answer on a state; once a snapshot holds the old one, the new one is a
     correction used from the next snapshot on (annotator)."""
-    loop = loops_service.get_loop(session, slug=slug)
     done = service.change(
         session,
         loop=loop,

@@ -6,8 +6,8 @@ from fastapi import APIRouter, Query, status
 
 from ..deps import AdminDep, ReaderDep, SessionDep, WriterSessionDep
 from ..jobs.schemas import JobRead
-from ..limits import PageOffset, RoundNumber
-from ..loops import service as loops_service
+from ..limits import PageOffset
+from ..loops.deps import RoundDep, WriterLoopDep, WriterRoundDep
 from . import service
 from .schemas import RankingRequest, RankingStarted, SelectedStateRead, SelectionRead
 
@@ -16,15 +16,13 @@ router = APIRouter(prefix="/api/loops/{slug}/rounds/{number}", tags=["sampler"])
 
 @router.post("/ranking", response_model=RankingStarted, status_code=status.HTTP_202_ACCEPTED)
 def start_ranking(
-    slug: str,
-    number: RoundNumber,
     body: RankingRequest,
     session: WriterSessionDep,
     caller: AdminDep,
+    loop: WriterLoopDep,
+    rnd: WriterRoundDep,
 ) -> RankingStarted:
     """Rank the round's states in the background and fill its queue (admin); follow the job."""
-    loop = loops_service.get_loop(session, slug=slug)
-    rnd = loops_service.get_round(session, loop=loop, number=number)
     job = service.request_ranking(
         session, loop=loop, rnd=rnd, budget=body.budget, seed=body.seed, user_id=caller.user_id
     )
@@ -33,16 +31,13 @@ def start_ranking(
 
 @router.get("/selection", response_model=SelectionRead)
 def read_selection(
-    slug: str,
-    number: RoundNumber,
     session: SessionDep,
     _: ReaderDep,
+    rnd: RoundDep,
     offset: PageOffset = 0,
     limit: int = Query(200, ge=1, le=1000),
 ) -> SelectionRead:
     """The chosen states with their scores and the reason each was chosen (ranked or audit)."""
-    loop = loops_service.get_loop(session, slug=slug)
-    rnd = loops_service.get_round(session, loop=loop, number=number)
     selection = service.get_selection(session, rnd=rnd)
     items, total = service.selected_states(session, selection=selection, offset=offset, limit=limit)
     return SelectionRead(

@@ -6,7 +6,7 @@ from fastapi import APIRouter, Query, Response, status
 from fastapi.responses import StreamingResponse
 
 from ..deps import SessionDep, SettingsDep, TrainerDep, WriterSessionDep
-from ..loops import service as loops_service
+from ..loops.deps import LoopDep, WriterLoopDep
 from . import service
 from .export import MEDIA_TYPES
 from .schemas import (
@@ -28,20 +28,19 @@ router = APIRouter(prefix="/api/loops", tags=["snapshots"])
     responses={200: {"model": SnapshotCreated, "description": "An identical version existed."}},
 )
 def create_snapshot(
-    slug: str,
     body: SnapshotCreate,
     response: Response,
     session: WriterSessionDep,
     reader: SessionDep,
     settings: SettingsDep,
     caller: TrainerDep,
+    loop: WriterLoopDep,
 ) -> SnapshotCreated:
     """Make the next immutable version up to a round; 200 with the existing one if identical.
 
     The version's Parquet export is written to its file before the answer, so that the first
     pull is served from the file too.
     """
-    loop = loops_service.get_loop(session, slug=slug)
     snapshot, created = service.create_snapshot(
         session, loop=loop, up_to_round=body.up_to_round, user_id=caller.user_id, reader=reader
     )
@@ -52,34 +51,33 @@ def create_snapshot(
 
 
 @router.get("/{slug}/snapshots", response_model=SnapshotList)
-def list_snapshots(slug: str, session: SessionDep, _: TrainerDep) -> SnapshotList:
+def list_snapshots(session: SessionDep, _: TrainerDep, loop: LoopDep) -> SnapshotList:
     """A loop's snapshots, newest first."""
-    loop = loops_service.get_loop(session, slug=slug)
     items = [SnapshotRead.of(s) for s in service.list_snapshots(session, loop=loop)]
     return SnapshotList(items=items, total=len(items))
 
 
 @router.get("/{slug}/snapshots/{version}", response_model=SnapshotDetail)
-def read_snapshot(slug: str, version: str, session: SessionDep, _: TrainerDep) -> SnapshotDetail:
+def read_snapshot(
+    version: str, session: SessionDep, _: TrainerDep, loop: LoopDep
+) -> SnapshotDetail:
     """One snapshot ("vN" or "latest") with its manifest."""
-    loop = loops_service.get_loop(session, slug=slug)
     return SnapshotDetail.of(service.get_snapshot(session, loop=loop, version=version))
 
 
 @router.get("/{slug}/snapshots/{version}/export")
 def export_snapshot(
-    slug: str,
     version: str,
     session: SessionDep,
     settings: SettingsDep,
     _: TrainerDep,
+    loop: LoopDep,
     format: ExportFormat = Query("parquet", description="parquet, npz or jsonl"),
     since: str | None = Query(
         None, description="An earlier version (vN): only rows not identical in it."
     ),
 ) -> StreamingResponse:
     """Stream a snapshot's rows as Parquet, .npz or JSON Lines."""
-    loop = loops_service.get_loop(session, slug=slug)
     snapshot, older = service.resolve_export(session, loop=loop, version=version, since=since)
     exported = service.export_chunks(
         session,
