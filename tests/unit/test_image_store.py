@@ -76,9 +76,10 @@ def test_a_pack_holds_the_images_back_to_back(tmp_path, small_staging):
     assert path == tmp_path / "packs" / "ab" / f"ab{'0' * 30}.pack"
     assert path.read_bytes() == b"".join(data)
     assert list(image_store.incoming_packs(tmp_path).iterdir()) == []
-    if not direct_io_works(tmp_path):
-        pytest.skip("this file system refuses direct I/O: the pack went through the page cache")
-    assert buffered.call_count == 0  # every block went out directly
+    if direct_io_works(tmp_path):
+        assert buffered.call_count == 0  # every block went out directly
+    else:  # the file system refuses direct I/O: the whole pack goes through the page cache
+        assert buffered.call_count >= 1
 
 
 class FakeDirect:
