@@ -240,11 +240,9 @@ class Bag:
                     f"topic {plan.topic}, field {name}: not in the message at "
                     f"{describe_time(plan.times[-1], self.start_ns)} ({exc})"
                 ) from exc
-            except ExpertloopError:
+            except (ExpertloopError, MemoryError):
                 raise
-            except MemoryError:
-                raise
-            except Exception as exc:  # any failure of the third-party decoder: a damaged file
+            except Exception as exc:  # as in damaged_file_errors(), inside this hot loop
                 raise UnreadableBag(
                     f"the bag could not be read (truncated or damaged?): {exc}"
                 ) from exc
@@ -256,7 +254,7 @@ class Bag:
         reading only until every one of them has spoken."""
         conns = [c for topic in sorted(topics) for c in self.connections(topic)]
         found: dict[str, int] = {}
-        try:
+        with damaged_file_errors():
             for connection, log_ns, raw in self.reader.messages(connections=conns):
                 if connection.topic in found:
                     continue
@@ -268,31 +266,15 @@ class Bag:
                 )
                 if len(found) == len(topics):
                     break
-        except ExpertloopError:
-            raise
-        except MemoryError:
-            raise
-        except Exception as exc:  # as in stream(): a decoder failure means a damaged file
-            raise UnreadableBag(
-                f"the bag could not be read (truncated or damaged?): {exc}"
-            ) from exc
         return found
 
     def frames(self, topic: str, wanted: dict[int, list[int]]) -> Iterator[tuple[int, Any]]:
         """(message number, decoded message) of the topic's messages whose number is wanted."""
         conns = self.connections(topic)
-        try:
+        with damaged_file_errors():
             for number, (connection, _, raw) in enumerate(self.reader.messages(connections=conns)):
                 if number in wanted:
                     yield number, self.reader.deserialize(raw, connection.msgtype)
-        except ExpertloopError:
-            raise
-        except MemoryError:
-            raise
-        except Exception as exc:  # as in stream(): a decoder failure means a damaged file
-            raise UnreadableBag(
-                f"the bag could not be read (truncated or damaged?): {exc}"
-            ) from exc
 
     def log_spans(self) -> dict[str, tuple[int, int, int]]:
         """Every topic's message count and first and last log time (ns), read without decoding
@@ -365,18 +347,24 @@ def describe_time(ns: int, start_ns: int) -> str:
 
 
 @contextmanager
+def damaged_file_errors() -> Iterator[None]:
+    """Any failure of the third-party reader or decoder inside the block means a damaged file
+    (our own refusals and running out of memory pass through as they are)."""
+    try:
+        yield
+    except (ExpertloopError, MemoryError):
+        raise
+    except Exception as exc:
+        raise UnreadableBag(f"the bag could not be read (truncated or damaged?): {exc}") from exc
+
+
+@contextmanager
 def open_bag(path: Path) -> Iterator[Bag]:
     """Open a ROS 1 .bag, a ROS 2 bag folder, or a bare .mcap/.db3 file for reading."""
     ros1 = path.suffix == ".bag"
-    try:
+    with damaged_file_errors():
         reader = AnyReader([path], default_typestore=standard_types(ros1))
         reader.open()
-    except ExpertloopError:
-        raise
-    except MemoryError:
-        raise
-    except Exception as exc:  # any failure of the third-party reader means a damaged file
-        raise UnreadableBag(f"the bag could not be read (truncated or damaged?): {exc}") from exc
     try:
         yield Bag(reader)
     finally:
