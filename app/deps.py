@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Iterator
+from contextlib import contextmanager
 from typing import Annotated
 
 from fastapi import Depends, Request
@@ -17,7 +18,8 @@ CSRF_HEADER = "x-csrf-token"
 CSRF_FIELD = "csrf_token"
 
 
-def _session_for_request(factory: sessionmaker[Session]) -> Iterator[Session]:
+@contextmanager
+def _request_session(factory: sessionmaker[Session]) -> Iterator[Session]:
     session = factory()
     try:
         yield session
@@ -26,9 +28,10 @@ def _session_for_request(factory: sessionmaker[Session]) -> Iterator[Session]:
             session.close()
         except (OperationalError, InterfaceError) as exc:
             # The store went away during the request, so closing (a ROLLBACK) failed on a dead
-            # connection, which SQLAlchemy has already dropped from the pool. This runs after
-            # the answer was sent: raising here would cut the client's connection instead of
-            # leaving it the answer it got (or the 503 for the error the request itself met).
+            # connection, which SQLAlchemy has already dropped from the pool. For a read
+            # session this runs after the answer was sent: raising here would cut the client's
+            # connection instead of leaving it the answer it got (or the 503 for the error the
+            # request itself met).
             if not exc.connection_invalidated:
                 raise
 
@@ -36,7 +39,8 @@ def _session_for_request(factory: sessionmaker[Session]) -> Iterator[Session]:
 def get_session(request: Request) -> Iterator[Session]:
     """A store session for one request: for reads, and for services that open their own write
     transactions (`write_transaction`)."""
-    yield from _session_for_request(request.app.state.session_factory)
+    with _request_session(request.app.state.session_factory) as session:
+        yield session
 
 
 def get_app_settings(request: Request) -> Settings:
@@ -51,7 +55,7 @@ def get_writer_session(request: Request) -> Iterator[Session]:
     transactions take SQLite's write lock at BEGIN (see app.db.make_writer_session_factory).
     Services only flush; contended writes (queue claims, submits) frame their own short
     transactions with `write_transaction` instead."""
-    for session in _session_for_request(request.app.state.writer_session_factory):
+    with _request_session(request.app.state.writer_session_factory) as session:
         yield session
         session.commit()
 
