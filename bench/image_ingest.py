@@ -35,14 +35,11 @@ import pyarrow.parquet as pq
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+from bench.ingest import ACTIONS, N_FEATURES, open_bench_round  # noqa: E402
 from expertloop.db import make_engine, make_session_factory  # noqa: E402
 from expertloop.ingest import image_store, service  # noqa: E402
-from expertloop.loops import service as loops_service  # noqa: E402
-from expertloop.loops.schemas import LoopCreate  # noqa: E402
 from tests.serving import upgrade_empty  # noqa: E402
 
-N_FEATURES = 64
-ACTIONS = ["a0", "a1", "a2", "a3"]
 STEPS_PER_ROLLOUT = 1000
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
@@ -90,18 +87,8 @@ def service_ingest(url: str, path: Path, blob_dir: Path) -> tuple[float, float]:
     upgrade_empty(url)
     engine = make_engine(url)
     factory = make_session_factory(engine)
-    spec = LoopCreate.model_validate(
-        {
-            "slug": "bench",
-            "title": "bench",
-            "features": [{"name": f"f{i}", "unit": ""} for i in range(N_FEATURES)],
-            "action_space": {"kind": "discrete", "actions": ACTIONS},
-        }
-    )
     with factory() as session:
-        loop = loops_service.create_loop(session, spec=spec, user_id=None)
-        rnd = loops_service.open_round(session, loop=loop, learner_version="v1", user_id=None)
-        session.commit()
+        loop, rnd = open_bench_round(session)
         gc.collect()
         started, cpu_started = time.perf_counter(), time.process_time()
         service.ingest_file(

@@ -22,10 +22,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 from sqlalchemy import text
+from sqlalchemy.orm import Session
 
 from expertloop.db import make_engine, make_session_factory
 from expertloop.ingest import bulk, service
 from expertloop.loops import service as loops_service
+from expertloop.loops.models import Loop, Round
 from expertloop.loops.schemas import LoopCreate
 from expertloop.migrations_state import upgrade
 from expertloop.shared.encode import rows_to_bytes
@@ -80,9 +82,8 @@ def prepare_store(url: str) -> None:
     upgrade(url)
 
 
-def service_ingest(url: str, path: Path) -> float:
-    engine = make_engine(url)
-    factory = make_session_factory(engine)
+def open_bench_round(session: Session) -> tuple[Loop, Round]:
+    """The benchmarks' loop (N_FEATURES features, ACTIONS) with round 1 open, committed."""
     spec = LoopCreate.model_validate(
         {
             "slug": "bench",
@@ -91,10 +92,17 @@ def service_ingest(url: str, path: Path) -> float:
             "action_space": {"kind": "discrete", "actions": ACTIONS},
         }
     )
+    loop = loops_service.create_loop(session, spec=spec, user_id=None)
+    rnd = loops_service.open_round(session, loop=loop, learner_version="v1", user_id=None)
+    session.commit()
+    return loop, rnd
+
+
+def service_ingest(url: str, path: Path) -> float:
+    engine = make_engine(url)
+    factory = make_session_factory(engine)
     with factory() as session:
-        loop = loops_service.create_loop(session, spec=spec, user_id=None)
-        rnd = loops_service.open_round(session, loop=loop, learner_version="v1", user_id=None)
-        session.commit()
+        loop, rnd = open_bench_round(session)
         started = time.perf_counter()
         service.ingest_file(
             session,
