@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from alembic import context
 
-from expertloop.db import make_engine
+from expertloop.db import SQLITE_BEGIN_IMMEDIATE, make_engine
 from expertloop.models import Base, import_all_tables
 
 import_all_tables()
@@ -23,6 +23,11 @@ def run_migrations_online() -> None:
     assert url, "sqlalchemy.url must be set"
     engine = make_engine(url)
     with engine.connect() as conn:
+        if conn.dialect.name == "sqlite":
+            # Take the write lock at BEGIN: a deferred transaction that reads and then writes
+            # fails at once ("database is locked") when another process (a worker beside the
+            # server) committed in between, whereas BEGIN IMMEDIATE waits its turn.
+            conn.execution_options(**{SQLITE_BEGIN_IMMEDIATE: True})
         context.configure(
             connection=conn,
             target_metadata=target_metadata,
