@@ -75,6 +75,20 @@ def upload(base: str, token: str, path: Path, number: int = 1) -> tuple[int, flo
     return response.status_code, time.perf_counter() - started
 
 
+def stored_steps(url: str) -> int:
+    """Steps in the store: the timed answers are only worth reading if every step landed."""
+    from sqlalchemy import func, select
+
+    from expertloop.db import make_engine, make_session_factory
+    from expertloop.ingest.models import Step
+
+    engine = make_engine(url)
+    with make_session_factory(engine)() as session:
+        count = int(session.scalar(select(func.count()).select_from(Step)) or 0)
+    engine.dispose()
+    return count
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--postgres", help="PostgreSQL URL of a database to empty and use")
@@ -123,12 +137,14 @@ def main() -> None:
             concurrent_s = time.perf_counter() - started
             done.set()
             prober.join()
+        stored = stored_steps(url)
 
     print(f"files: {size_mb:.1f} MB each, {args.rollouts * args.steps} steps")
     print(
         f"sequential pair (baseline): {sequential_s:.2f} s, statuses {[s for s, _ in sequential]}"
     )
     print(f"concurrent pair: {concurrent_s:.2f} s, statuses {[s for s, _ in concurrent]}")
+    print(f"steps stored: {stored} (expected {5 * args.rollouts * args.steps})")
     print(f"ratio concurrent / sequential: {concurrent_s / sequential_s:.2f}")
     print(f"slowest /healthz during the concurrent pair: {max(health) * 1000:.0f} ms")
 
