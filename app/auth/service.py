@@ -102,9 +102,9 @@ def user_for_token(session: Session, *, token: str) -> User | None:
         .join(ApiToken, ApiToken.user_id == User.id)
         .where(ApiToken.token_sha256 == security.sha256_hex(token))
     ).first()
-    if row is None or row[1] is not None or not row[0].active:
+    if row is None or row.revoked_at is not None or not row.User.active:
         return None
-    return row[0]
+    return row.User
 
 
 def sign_in(session: Session, *, name: str, password: str, hours: float) -> tuple[str, str] | None:

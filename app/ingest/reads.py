@@ -19,7 +19,7 @@ from .schemas import RolloutRead, StepRead
 
 _STEP_FIELDS = (
     Step.id,
-    Rollout.key,
+    Rollout.key.label("rollout"),
     Step.step_index,
     Step.time_s,
     Step.control,
@@ -115,30 +115,30 @@ def decode_steps(rows: Sequence[Any], spec: LoopSpec) -> list[StepRead]:
     if not rows:
         return []
     width = spec.n_features
-    features = np.frombuffer(b"".join(r[5] for r in rows), dtype=FLOAT32_LE).reshape(
+    features = np.frombuffer(b"".join(r.features for r in rows), dtype=FLOAT32_LE).reshape(
         len(rows), width
     )
     out = []
     r: Any
     for r, feats in zip(rows, features.tolist(), strict=True):
-        members = _vector(r[11])
+        members = _vector(r.learner_ensemble)
         out.append(
             StepRead(
-                id=r[0],
-                rollout=r[1],
-                step=r[2],
-                time_s=r[3],
-                control="expert" if r[4] == CONTROL_EXPERT else "learner",
+                id=r.id,
+                rollout=r.rollout,
+                step=r.step_index,
+                time_s=r.time_s,
+                control="expert" if r.control == CONTROL_EXPERT else "learner",
                 features=feats,
-                learner_action=_action(r[6], r[7], spec),
-                expert_action=_action(r[8], r[9], spec),
-                learner_probs=_vector(r[10]),
+                learner_action=_action(r.learner_action, r.learner_action_vec, spec),
+                expert_action=_action(r.expert_action, r.expert_action_vec, spec),
+                learner_probs=_vector(r.learner_probs),
                 learner_ensemble=None
                 if members is None
-                else np.reshape(np.asarray(members), (r[12], -1)).tolist(),
-                learner_std=_vector(r[13]),
-                scene=json.loads(r[14]) if r[14] else None,
-                image_sha256=r[15],
+                else np.reshape(np.asarray(members), (r.ensemble_size, -1)).tolist(),
+                learner_std=_vector(r.learner_std),
+                scene=json.loads(r.scene) if r.scene else None,
+                image_sha256=r.image_sha256,
             )
         )
     return out

@@ -95,7 +95,9 @@ def _own_answer(
             is_current(),
         )
     ).all()
-    answered: dict[int, bytes] = {int(r[0]): r[1] for r in rows if r[1] is not None}
+    answered: dict[int, bytes] = {
+        int(r.step_id): r.action_vec for r in rows if r.action_vec is not None
+    }
     for step in reversed(before):
         if step.id in answered:
             vector = np.frombuffer(answered[step.id], dtype=FLOAT32_LE).astype(float)

@@ -74,8 +74,8 @@ def _step_actions(
                     Step.id,
                     Step.learner_action,
                     Step.learner_action_vec,
-                    previous.learner_action,
-                    previous.learner_action_vec,
+                    previous.learner_action.label("before_action"),
+                    previous.learner_action_vec.label("before_action_vec"),
                 )
                 .outerjoin(
                     previous,
@@ -87,10 +87,10 @@ def _step_actions(
                 .where(Step.id.in_(chunk))
             ).all()
         )
-    order = {row[0]: i for i, row in enumerate(rows)}
+    order = {row.id: i for i, row in enumerate(rows)}
     rows = [rows[order[s]] for s in step_ids.tolist()]
-    learner = _actions([r[1] for r in rows], [r[2] for r in rows], spec)
-    before = _actions([r[3] for r in rows], [r[4] for r in rows], spec)
+    learner = _actions([r.learner_action for r in rows], [r.learner_action_vec for r in rows], spec)
+    before = _actions([r.before_action for r in rows], [r.before_action_vec for r in rows], spec)
     return learner, before
 
 
@@ -152,8 +152,8 @@ def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundR
         .where(Selection.round_id == rnd.id)
         .order_by(SelectedState.step_id)
     ).all()
-    selected_ids = np.array([r[0] for r in selected], dtype=np.int64)
-    is_audit = np.array([r[1] == REASON_AUDIT for r in selected], dtype=bool)
+    selected_ids = np.array([r.step_id for r in selected], dtype=np.int64)
+    is_audit = np.array([r.reason == REASON_AUDIT for r in selected], dtype=bool)
     learner, before = _step_actions(session, selected_ids, spec)
     expert = _expert(found, selected_ids, spec)
     samples = {
@@ -252,20 +252,20 @@ def _labels(
         .where(Label.round_id == rnd.id, is_current())
         .order_by(Label.id)
     ).all()
-    step_ids = np.array([r[0] for r in rows], dtype=np.int64)
+    step_ids = np.array([r.step_id for r in rows], dtype=np.int64)
     states, state_index = np.unique(step_ids, return_inverse=True)
-    unsure = np.array([r[2] == ANSWER_UNSURE for r in rows], dtype=bool)
-    action = _actions([r[3] for r in rows], [r[4] for r in rows], spec)
+    unsure = np.array([r.answer == ANSWER_UNSURE for r in rows], dtype=bool)
+    action = _actions([r.action for r in rows], [r.action_vec for r in rows], spec)
     action[unsure] = -1 if spec.is_discrete else np.nan
     learner, _ = _step_actions(session, states, spec)
-    users = sorted({r[1] for r in rows})
+    users = sorted({r.user_id for r in rows})
     names = dict(session.execute(select(User.id, User.name).where(User.id.in_(users))).all())
     labels = compute.LabelArrays(
-        annotator=np.array([r[1] for r in rows], dtype=np.int64),
+        annotator=np.array([r.user_id for r in rows], dtype=np.int64),
         state=state_index.astype(np.int64).reshape(-1),
         action=action,
-        created_s=np.array([r[6].timestamp() for r in rows], dtype=np.float64),
-        learner_shown=np.array([bool(r[5]) for r in rows], dtype=bool),
+        created_s=np.array([r.created_at.timestamp() for r in rows], dtype=np.float64),
+        learner_shown=np.array([bool(r.learner_shown) for r in rows], dtype=bool),
         learner_action=learner[state_index.reshape(-1)] if len(rows) else learner,
         consensus=_expert(found, states, spec),
     )
@@ -342,14 +342,16 @@ def _fingerprints(session: Session, *, loop: Loop) -> dict[int, str]:
         .where(Round.loop_id == loop.id)
         .order_by(Round.number)
     ).all()
-    ids = [r[0] for r in rounds]
+    ids = [r.id for r in rounds]
 
     def grouped(column: Any, key: Any, *joins: Any) -> dict[int, tuple[int, int]]:
-        query = select(key, func.count(), func.max(column))
+        query = select(
+            key.label("round_id"), func.count().label("n"), func.max(column).label("last_id")
+        )
         for target, on in joins:
             query = query.join(target, on)
         rows = session.execute(query.where(key.in_(ids)).group_by(key)).all()
-        return {int(r[0]): (int(r[1]), int(r[2] or 0)) for r in rows}
+        return {int(r.round_id): (int(r.n), int(r.last_id or 0)) for r in rows}
 
     steps = grouped(Step.id, Step.round_id)
     labels = grouped(Label.id, Label.round_id)

@@ -49,54 +49,6 @@ def _rbf(d2: FloatArray, bandwidth: float) -> FloatArray:
     return np.exp(-d2 / (2.0 * bandwidth * bandwidth))
 
 
-def rbf_kernel_matrix(A: ArrayLike, B: ArrayLike, bandwidth: float) -> FloatArray:
-    """Gaussian kernel ``exp(-|a - b|^2 / (2 bandwidth^2))`` between rows of A and B.
-
-    Returns an ndarray of shape (len(A), len(B)); sklearn's ``rbf_kernel`` with
-    ``gamma = 1 / (2 bandwidth^2)``.
-    """
-    a, b = _as_samples(A, B, minimum=0)
-    return _rbf(_squared_distances(a, b), bandwidth)
-
-
-def _mmd2_terms(X: ArrayLike, Y: ArrayLike, bandwidth: float) -> tuple[FloatArray, ...]:
-    x, y = _as_samples(X, Y, minimum=2)
-    k_xx = _rbf(_squared_distances(x, x), bandwidth)
-    k_yy = _rbf(_squared_distances(y, y), bandwidth)
-    np.fill_diagonal(k_xx, 1.0)  # exact self-similarity; the expansion can leave 1 - 1e-16
-    np.fill_diagonal(k_yy, 1.0)
-    return k_xx, k_yy, _rbf(_squared_distances(x, y), bandwidth)
-
-
-def mmd2_unbiased(X: ArrayLike, Y: ArrayLike, bandwidth: float) -> float:
-    """Unbiased squared MMD with an RBF kernel (Gretton et al. 2012, Lemma 6).
-
-    Parameters
-    ----------
-    X : array-like of shape (m, n_features), m >= 2
-    Y : array-like of shape (n, n_features), n >= 2
-    bandwidth : float
-        Kernel length scale l in ``exp(-|x - y|^2 / (2 l^2))``.
-
-    Returns
-    -------
-    float
-        Within-sample means leave out i == j; can be slightly negative (do not clamp).
-        Memory is O((m + n)^2).
-    """
-    k_xx, k_yy, k_xy = _mmd2_terms(X, Y, bandwidth)
-    m, n = len(k_xx), len(k_yy)
-    within_x = (k_xx.sum() - m) / (m * (m - 1))
-    within_y = (k_yy.sum() - n) / (n * (n - 1))
-    return float(within_x + within_y - 2.0 * k_xy.mean())
-
-
-def mmd2_biased(X: ArrayLike, Y: ArrayLike, bandwidth: float) -> float:
-    """Biased (V-statistic) squared MMD: plain kernel means, diagonals included."""
-    k_xx, k_yy, k_xy = _mmd2_terms(X, Y, bandwidth)
-    return float(k_xx.mean() + k_yy.mean() - 2.0 * k_xy.mean())
-
-
 def median_heuristic(Z: ArrayLike) -> float:
     """Kernel bandwidth: median Euclidean distance over distinct pairs of the pooled sample.
 
@@ -156,6 +108,7 @@ def mmd_permutation_test(
     n_permutations: int,
     rng: np.random.Generator,
     max_samples: int = 1000,
+    bandwidth: float | None = None,
 ) -> MMDTest:
     """Permutation test of "X and Y come from one distribution" by unbiased squared MMD.
 
@@ -173,12 +126,17 @@ def mmd_permutation_test(
         permutation.
     max_samples : int, default 1000
         Cap on rows taken from each of X and Y; memory is O((m' + n')^2).
+    bandwidth : float, optional
+        Kernel length scale l in ``exp(-|x - y|^2 / (2 l^2))``; by default the median heuristic
+        on the pooled subsamples. The round report leaves it to the heuristic; a fixed scale
+        makes values comparable across calls.
 
     Returns
     -------
     MMDTest
-        ``mmd2`` (unbiased, on the subsamples), ``bandwidth`` (median heuristic on the pooled
-        subsamples) and ``p_value = (1 + #{permuted mmd2 >= observed}) / (1 + n_permutations)``.
+        ``mmd2``: the unbiased squared MMD on the subsamples (Gretton et al. 2012, Lemma 6;
+        within-sample means leave out i == j, so it can be slightly negative), ``bandwidth``
+        and ``p_value = (1 + #{permuted mmd2 >= observed}) / (1 + n_permutations)``.
     """
     x, y = _check_pair(X, Y, minimum=2)
     if n_permutations < 1 or max_samples < 2:
@@ -190,7 +148,8 @@ def mmd_permutation_test(
     x, y = _centre(x, y)
     pooled = np.vstack([x, y])
     m, size = len(x), len(pooled)
-    bandwidth = median_heuristic(pooled)
+    if bandwidth is None:
+        bandwidth = median_heuristic(pooled)
     kernel = _rbf(_squared_distances(pooled, pooled), bandwidth)
     np.fill_diagonal(kernel, 1.0)
     row_sums = kernel.sum(axis=1)

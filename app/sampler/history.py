@@ -59,8 +59,8 @@ def learner_actions(session: Session, loop: Loop, step_ids: np.ndarray) -> np.nd
             .where(Step.id.in_(step_ids[i : i + CHUNK].tolist()))
             .order_by(Step.id)
         ).all()
-        indexes.extend(r[0] for r in rows)
-        vectors.extend(r[1] for r in rows)
+        indexes.extend(r.learner_action for r in rows)
+        vectors.extend(r.learner_action_vec for r in rows)
     spec = spec_of(loop)
     return stored_actions(indexes, vectors, discrete=spec.is_discrete, width=spec.action_width)
 
@@ -98,10 +98,13 @@ def selection_states(
         .where(SelectedState.selection_id == selection.id)
         .order_by(SelectedState.step_id)
     ).all()
-    step_ids = np.array([r[0] for r in rows], dtype=np.int64)
-    is_audit = np.array([r[1] == REASON_AUDIT for r in rows], dtype=bool)
-    u_pct = np.array([NEUTRAL_PERCENTILE if r[2] is None else r[2] for r in rows], np.float64)
-    n_pct = np.array([r[3] for r in rows], dtype=np.float64)
+    step_ids = np.array([r.step_id for r in rows], dtype=np.int64)
+    is_audit = np.array([r.reason == REASON_AUDIT for r in rows], dtype=bool)
+    u_pct = np.array(
+        [NEUTRAL_PERCENTILE if r.uncertainty_pct is None else r.uncertainty_pct for r in rows],
+        np.float64,
+    )
+    n_pct = np.array([r.novelty_pct for r in rows], dtype=np.float64)
     near = near_takeover_of(selection, step_ids).astype(np.float64)
     return step_ids, is_audit, np.column_stack([u_pct, n_pct, near]).reshape(-1, 3)
 

@@ -119,12 +119,12 @@ def relabels(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) -
         .order_by(Label.id)
     ).all()
     width = spec.action_width
-    step_ids = np.array([r[0] for r in rows], dtype=np.int64)
+    step_ids = np.array([r.step_id for r in rows], dtype=np.int64)
     unique_steps, state_index = np.unique(step_ids, return_inverse=True)
-    unsure = np.array([r[1] == ANSWER_UNSURE for r in rows], dtype=bool)
+    unsure = np.array([r.answer == ANSWER_UNSURE for r in rows], dtype=bool)
     discrete = spec.is_discrete
     actions = stored_actions(
-        [r[2] for r in rows], [r[3] for r in rows], discrete=discrete, width=width
+        [r.action for r in rows], [r.action_vec for r in rows], discrete=discrete, width=width
     )
     actions[unsure] = -1 if discrete else np.nan  # unsure answers do not vote
     if discrete:
