@@ -445,9 +445,6 @@ def logs_inspect(
         except ExpertloopError as exc:
             _fail(exc.message)
             return
-        except ValidationError as exc:
-            _fail(f"the loop's log_mapping is not valid:\n{exc}")
-            return
     for line in report_lines(found, loop_slug=loop):
         typer.echo(line)
 

@@ -57,3 +57,29 @@ def test_inspect_with_the_loops_mapping_and_upload_over_http(tmp_path):
         assert code == 0 and "stored 1 rollouts, 41 steps" in out, out
         code, out = run("logs", "inspect", str(path), "--loop", "no-such-loop", *common)
         assert code == 2 and "cannot fetch loop 'no-such-loop'" in out
+
+
+def test_inspect_names_the_part_of_a_spec_file_that_is_not_valid(tmp_path):
+    # The log mapping is fine; the features are not: the message must say so, not blame the
+    # mapping (and a spec that is not an object, or lacks its features, is refused by name too).
+    path, _ = build(tmp_path, "mcap")
+    spec = tmp_path / "spec.json"
+    broken_features = [{"name": "", "unit": "m"}]
+    spec.write_text(
+        json.dumps({**DISCRETE_SPEC, "features": broken_features, "log_mapping": MAPPING})
+    )
+    code, out = run("logs", "inspect", str(path), "--spec", str(spec))
+    assert code == 2 and "features or action_space are not valid" in out, out
+    assert "log_mapping is not valid" not in out
+
+    spec.write_text(json.dumps({**DISCRETE_SPEC, "log_mapping": {**MAPPING, "step_rate_hz": "fast"}}))
+    code, out = run("logs", "inspect", str(path), "--spec", str(spec))
+    assert code == 2 and "the log_mapping is not valid" in out, out
+
+    spec.write_text(json.dumps({"log_mapping": MAPPING}))
+    code, out = run("logs", "inspect", str(path), "--spec", str(spec))
+    assert code == 2 and "features or action_space are not valid" in out, out
+
+    spec.write_text(json.dumps([MAPPING]))
+    code, out = run("logs", "inspect", str(path), "--spec", str(spec))
+    assert code == 2 and "a loop spec is a JSON object" in out, out

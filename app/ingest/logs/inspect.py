@@ -8,10 +8,11 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from pydantic import ValidationError
 
 from ...errors import ExpertloopError
 from ...loops.log_mapping import LogMapping
-from ...loops.spec import parse_spec
+from ...loops.spec import LoopSpec, parse_spec
 from .archive import DEFAULT_MAX_UNPACKED_BYTES, bag_format, bag_path, log_stem
 from .reader import NS, open_bag
 from .service import check_mapped, default_control
@@ -51,8 +52,13 @@ def inspect_log(
     spool_dir: Path,
     max_unpacked_bytes: int = DEFAULT_MAX_UNPACKED_BYTES,
 ) -> Inspection:
-    """Read a log (and, given a loop spec with a log mapping, map and validate it)."""
+    """Read a log (and, given a loop spec with a log mapping, map and validate it).
+
+    Raises ExpertloopError naming the part of `loop` that is not valid (its log mapping, or the
+    features and action space the mapped steps are checked against) before the log is read.
+    """
     name = filename or path.name
+    parsed = _mapping_and_spec(loop)
     file_format = bag_format(path, name)
     if file_format is None:
         raise ExpertloopError(f"'{name}' is not a robot log (.mcap, .db3, .bag, .zip or .tar)")
@@ -64,10 +70,9 @@ def inspect_log(
                 for topic, (msgtype, count) in sorted(bag.topics().items())
             ]
             found = Inspection(file_format, bag.reader.duration / NS, topics)
-            mapping = (loop or {}).get("log_mapping")
-            if loop is None or not mapping:
+            if parsed is None:
                 return found
-            log_mapping = LogMapping.model_validate(mapping)
+            log_mapping, spec = parsed
             try:
                 mapped = map_log(
                     bag,
@@ -89,8 +94,6 @@ def inspect_log(
             robots = mapped.table.column("robot").to_pylist()
             for key, robot in zip(mapped.row_key, robots, strict=True):
                 found.robots.setdefault(key, robot)
-        # what validation needs of the spec; its settings play no part in a dry run
-        spec = parse_spec(loop["features"], loop["action_space"])
         try:
             check_mapped(mapped, spec, round_number=round_number)
         except ExpertloopError as exc:
@@ -98,6 +101,29 @@ def inspect_log(
         else:
             found.verdict = "accepted"
     return found
+
+
+def _mapping_and_spec(loop: dict[str, Any] | None) -> tuple[LogMapping, LoopSpec] | None:
+    """The log mapping and the spec parts validation needs (its settings play no part in a dry
+    run); None when no mapping is given."""
+    if loop is None:
+        return None
+    if not isinstance(loop, dict):
+        raise ExpertloopError("a loop spec is a JSON object with features and action_space")
+    mapping = loop.get("log_mapping")
+    if not mapping:
+        return None
+    try:
+        log_mapping = LogMapping.model_validate(mapping)
+    except ValidationError as exc:
+        raise ExpertloopError(f"the log_mapping is not valid:\n{exc}") from None
+    try:
+        spec = parse_spec(loop.get("features") or [], loop.get("action_space") or {})
+    except ValidationError as exc:
+        raise ExpertloopError(
+            f"the loop's features or action_space are not valid:\n{exc}"
+        ) from None
+    return log_mapping, spec
 
 
 def _rate(count: int, first_ns: int, last_ns: int) -> float | None:
