@@ -35,6 +35,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from expertloop.sampler import novelty as nv  # noqa: E402
 from expertloop.sampler import selection  # noqa: E402
+from tests.helpers import recall_at_k  # noqa: E402
 
 K = 10
 N_FEATURES = 64
@@ -139,7 +140,7 @@ def run_size(
         ours_s=ours_s,
         sklearn_s=sklearn_s,
         numpy_s=numpy_s,
-        recall=nv.recall_at_k(idx[sub], exact_idx),
+        recall=recall_at_k(idx[sub], exact_idx),
         overlap=len(top_ours & top_exact) / top,
         spearman=float(spearmanr(ours_sub, exact_novelty).statistic),
         memory_after_ours_gb=memory_after_ours_gb,

@@ -338,27 +338,6 @@ def approximate_knn_distances(
     return distances, indices
 
 
-def recall_at_k(approx_idx: ArrayLike, exact_idx: ArrayLike) -> float:
-    """Fraction of the exact k nearest neighbours that the approximate search found.
-
-    Parameters
-    ----------
-    approx_idx, exact_idx : array_like of shape (n_queries, k)
-
-    Returns
-    -------
-    float
-        ``mean over queries of |approx ∩ exact| / k``.
-    """
-    a = np.asarray(approx_idx)
-    e = np.asarray(exact_idx)
-    if a.shape != e.shape or a.ndim != 2 or a.shape[1] == 0:
-        raise ValueError(f"recall_at_k: shapes differ or empty: {a.shape} vs {e.shape}")
-    # k is small (tens), so the (n, k, k) comparison is cheap and fully vectorised.
-    hits = (a[:, :, None] == e[:, None, :]).any(axis=2)
-    return float(hits.sum() / a.size)
-
-
 def novelty(
     candidates: ArrayLike,
     training: ArrayLike,

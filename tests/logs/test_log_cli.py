@@ -72,7 +72,9 @@ def test_inspect_names_the_part_of_a_spec_file_that_is_not_valid(tmp_path):
     assert code == 2 and "features or action_space are not valid" in out, out
     assert "log_mapping is not valid" not in out
 
-    spec.write_text(json.dumps({**DISCRETE_SPEC, "log_mapping": {**MAPPING, "step_rate_hz": "fast"}}))
+    spec.write_text(
+        json.dumps({**DISCRETE_SPEC, "log_mapping": {**MAPPING, "step_rate_hz": "fast"}})
+    )
     code, out = run("logs", "inspect", str(path), "--spec", str(spec))
     assert code == 2 and "the log_mapping is not valid" in out, out
 

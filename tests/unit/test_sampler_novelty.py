@@ -6,6 +6,7 @@ from numpy.testing import assert_allclose, assert_array_equal
 from sklearn.neighbors import NearestNeighbors
 
 from expertloop.sampler import novelty as nv
+from tests.helpers import recall_at_k
 
 
 def references_data():
@@ -140,7 +141,7 @@ def test_recall_at_k_by_hand():
     approx = np.array([[1, 2, 3], [4, 5, 6]])
     exact = np.array([[3, 2, 9], [6, 5, 4]])
     # hand-checkable: 2 of 3 found in row 0, 3 of 3 in row 1 -> 5/6
-    assert nv.recall_at_k(approx, exact) == pytest.approx(5 / 6)
+    assert recall_at_k(approx, exact) == pytest.approx(5 / 6)
 
 
 def test_approximate_recall_on_clustered_data():
@@ -156,7 +157,7 @@ def test_approximate_recall_on_clustered_data():
         q32, t32, 10, rng=np.random.default_rng(0)
     )
     exact_dist, exact_idx = nv.exact_knn_distances(q32, t32, 10)
-    assert nv.recall_at_k(approx_idx, exact_idx) >= 0.95
+    assert recall_at_k(approx_idx, exact_idx) >= 0.95
     # Distances of the neighbours found are true distances (IVF-Flat), so never below exact.
     assert np.all(approx_dist.mean(axis=1) >= exact_dist.mean(axis=1) - 1e-4)
 
