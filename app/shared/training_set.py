@@ -18,6 +18,7 @@ from ..ingest.models import Step
 from ..loops.models import Loop, Round
 from ..queue.models import ANSWER_UNSURE, Label
 from . import training_rows as rows
+from .bulk_reads import bulk_reader
 from .consensus import continuous_consensus, discrete_consensus
 from .current import is_current
 from .encode import stored_actions
@@ -182,7 +183,7 @@ def iter_batches(
     """The training set's rows in step-id order, a bounded number of rows at a time.
 
     Expert-driven steps (demonstrations in round 0, takeovers later) are read `batch` rows at a
-    time from one driver cursor per round; relabelled states (resolved consensus on a
+    time per round, as columns (app.shared.bulk_reads); relabelled states (resolved consensus on a
     learner-driven step) `batch` ids at a time; the sorted streams are merged. A yielded batch
     holds at most (rounds + 1) x `batch` rows and usually about `batch`. Memory holds one page
     per stream plus the consensus arrays, which grow with the number of labels, not of steps.
@@ -192,28 +193,42 @@ def iter_batches(
         raise ValueError(f"batch must be >= 1, got {batch}")
     rounds = rows.RoundTable.of(session, loop.id)
     found = relabels(session, loop=loop, spec=spec, cutoff=cutoff)
+    return _merged(session, spec, cutoff, rounds, found, batch, with_features)
+
+
+def _merged(
+    session: Session,
+    spec: LoopShape,
+    cutoff: Cutoff,
+    rounds: rows.RoundTable,
+    found: Relabels,
+    batch: int,
+    with_features: bool,
+) -> Iterator[RowBatch]:
+    """The two sorted streams merged, read on one bulk reader closed when the stream ends."""
     keep = found.resolved
-    expert = rows.expert_batches(
-        session,
-        shape=spec,
-        rounds=rounds,
-        up_to_round=cutoff.up_to_round,
-        max_step_id=cutoff.max_step_id,
-        batch=batch,
-        with_features=with_features,
-    )
-    relabelled = rows.relabel_batches(
-        session,
-        shape=spec,
-        rounds=rounds,
-        step_ids=found.step_id[keep],
-        action=found.action[keep],
-        label_count=found.label_count[keep],
-        agreement=found.agreement[keep],
-        batch=batch,
-        with_features=with_features,
-    )
-    return merge_sorted(expert, relabelled)
+    with bulk_reader(session) as reader:
+        expert = rows.expert_batches(
+            reader,
+            shape=spec,
+            rounds=rounds,
+            up_to_round=cutoff.up_to_round,
+            max_step_id=cutoff.max_step_id,
+            batch=batch,
+            with_features=with_features,
+        )
+        relabelled = rows.relabel_batches(
+            reader,
+            shape=spec,
+            rounds=rounds,
+            step_ids=found.step_id[keep],
+            action=found.action[keep],
+            label_count=found.label_count[keep],
+            agreement=found.agreement[keep],
+            batch=batch,
+            with_features=with_features,
+        )
+        yield from merge_sorted(expert, relabelled)
 
 
 def training_features(

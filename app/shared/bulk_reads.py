@@ -1,0 +1,173 @@
+"""Pages of query results as numpy columns, without a Python object per row.
+
+A Python database driver builds a tuple of Python objects for every row fetched, about 2 µs a
+row, which bounded how fast a training set could leave the store. Here a page of rows (a query
+bounded by LIMIT) arrives as a few large values that numpy decodes whole:
+
+- PostgreSQL: Apache Arrow's ADBC driver (`adbc-driver-postgresql`) reads the page by binary
+  COPY into Arrow columns, in C, on a connection of its own in autocommit. Each page is read
+  whole, so several row streams can take turns on the connection (it serves one COPY at a time).
+- SQLite: the page is folded into one row by aggregates on the session's own connection:
+  integers as one comma-separated text, blobs concatenated into one blob (group_concat keeps a
+  blob's bytes as they are in a UTF-8 database; the CAST hands them back as a blob). All
+  aggregates of a query consume the rows in the same order, so the columns stay aligned. ADBC's
+  SQLite driver is not used: it links its own copy of SQLite, and two copies of SQLite in one
+  process release each other's POSIX file locks (SQLite's "How To Corrupt An SQLite Database
+  File", section 2.2.1), which showed here as "database is locked" on the session's next write.
+
+Callers read only rows that cannot change (pinned by a cut-off on ids), so a PostgreSQL page read
+outside the session's transaction is safe. Values go into the SQL text only as integers formatted
+by `int_list`: nothing a user typed reaches a query.
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from collections.abc import Iterable, Iterator, Mapping
+from contextlib import closing, contextmanager
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+from sqlalchemy import text
+from sqlalchemy.engine import URL
+from sqlalchemy.orm import Session
+
+from .encode import FLOAT32_LE
+
+# A column of a page: None for an integer column (int64, shape (n,)), or the width of a column
+# of little-endian float32 vectors stored as blobs (float32, shape (n, width)).
+ColumnKinds = Mapping[str, int | None]
+
+
+class BulkReader(ABC):
+    """Reads pages of a query as numpy columns; `session` serves everything else."""
+
+    def __init__(self, session: Session) -> None:
+        self.session = session
+
+    @abstractmethod
+    def page(self, sql: str, columns: ColumnKinds) -> dict[str, np.ndarray]:
+        """The rows of `sql` (a SELECT naming exactly `columns`, bounded by LIMIT) by column.
+
+        Raises ValueError naming the column when a value is missing or a vector has another
+        width (a damaged store).
+        """
+
+
+class _PostgresReader(BulkReader):
+    def __init__(self, session: Session, connection: Any) -> None:
+        super().__init__(session)
+        self._connection = connection
+
+    def page(self, sql: str, columns: ColumnKinds) -> dict[str, np.ndarray]:
+        with closing(self._connection.cursor()) as cursor:
+            cursor.execute(sql)
+            table: pa.Table = cursor.fetch_arrow_table()
+        return {
+            name: _arrow_ints(table, name) if width is None else _arrow_vectors(table, name, width)
+            for name, width in columns.items()
+        }
+
+
+class _SqliteReader(BulkReader):
+    def page(self, sql: str, columns: ColumnKinds) -> dict[str, np.ndarray]:
+        # group_concat skips NULLs, so a missing value shows as a short column; a vector of
+        # another width shows as a blob of another total length
+        folded = ", ".join(
+            f"group_concat({name})" if width is None else f"CAST(group_concat({name}, '') AS BLOB)"
+            for name, width in columns.items()
+        )
+        found = self.session.execute(text(f"SELECT count(*), {folded} FROM ({sql})")).one()
+        rows = int(found[0])
+        out: dict[str, np.ndarray] = {}
+        for (name, width), joined in zip(columns.items(), found[1:], strict=True):
+            values: np.ndarray
+            if width is None:
+                values = (
+                    np.fromstring(joined, dtype=np.int64, sep=",")
+                    if joined
+                    else np.empty(0, np.int64)
+                )
+                if len(values) != rows:
+                    raise ValueError(f"column {name} has {rows - len(values)} missing values")
+            else:
+                blob = joined or b""
+                if len(blob) != rows * width * FLOAT32_LE.itemsize:
+                    raise ValueError(
+                        f"column {name} holds a missing vector or one of other than {width} values"
+                    )
+                values = np.frombuffer(blob, dtype=FLOAT32_LE).reshape(rows, width)
+            out[name] = values
+        return out
+
+
+def _pg_connect(url: URL) -> Any:
+    import adbc_driver_postgresql.dbapi
+
+    libpq = url.set(drivername="postgresql").render_as_string(hide_password=False)
+    connection = adbc_driver_postgresql.dbapi.connect(libpq, autocommit=True)
+    try:
+        with closing(connection.cursor()) as cursor:
+            # Pages are read along the (round_id, id) index. A freshly filled table has no
+            # statistics yet, and the planner may then guess a bitmap scan plus a sort of every
+            # remaining row for each page; this connection only ever reads ordered pages.
+            cursor.execute("SET enable_bitmapscan = off")
+            cursor.execute("SET enable_sort = off")
+    except Exception:
+        connection.close()
+        raise
+    return connection
+
+
+@contextmanager
+def bulk_reader(session: Session) -> Iterator[BulkReader]:
+    """A reader of the session's database, open for the block."""
+    bind = session.get_bind()
+    if bind.dialect.name != "postgresql":
+        encoding = session.execute(text("PRAGMA encoding")).scalar_one()
+        if encoding != "UTF-8":  # group_concat would convert the blobs' bytes
+            raise ValueError(f"bulk reads need a UTF-8 SQLite database, not {encoding}")
+        yield _SqliteReader(session)
+        return
+    connection = _pg_connect(bind.engine.url)
+    try:
+        yield _PostgresReader(session, connection)
+    finally:
+        connection.close()
+
+
+def int_list(values: Iterable[int]) -> str:
+    """Integers as SQL text for an IN (...) list: "1,2,3"."""
+    return ",".join(str(int(v)) for v in values)
+
+
+def _arrow_ints(table: pa.Table, name: str) -> np.ndarray:
+    column = table.column(name)
+    if column.null_count:
+        raise ValueError(f"column {name} has {column.null_count} missing values")
+    return np.asarray(column.to_numpy(), dtype=np.int64)
+
+
+def _arrow_vectors(table: pa.Table, name: str, width: int) -> np.ndarray:
+    """Blobs of `width` float32 values each, read from the Arrow data buffer, (n, width)."""
+    out = np.empty((table.num_rows, width), dtype=FLOAT32_LE)
+    at = 0
+    for chunk in table.column(name).chunks:
+        rows = len(chunk)
+        if not rows:
+            continue
+        if chunk.null_count:
+            raise ValueError(f"column {name} has {chunk.null_count} missing values")
+        offset_type = np.int64 if pa.types.is_large_binary(chunk.type) else np.int32
+        _, offsets_buffer, data = chunk.buffers()
+        offsets = np.frombuffer(offsets_buffer, dtype=offset_type)[
+            chunk.offset : chunk.offset + rows + 1
+        ]
+        if not np.all(np.diff(offsets) == width * FLOAT32_LE.itemsize):
+            raise ValueError(f"column {name} holds a vector of other than {width} values")
+        out[at : at + rows] = np.frombuffer(
+            data, dtype=FLOAT32_LE, count=rows * width, offset=int(offsets[0])
+        ).reshape(rows, width)
+        at += rows
+    return out
