@@ -4,7 +4,7 @@ Each writer takes an iterator of RowBatch and yields the file's bytes a piece at
 response can stream any number of rows in bounded memory:
 
 - Parquet: one row group per batch, written by pyarrow's ParquetWriter into a sink that hands
-  over its bytes after every row group; the footer follows the last batch.
+  over its bytes after every row group; the footer, with the metadata, follows the last batch.
 - .npz: a zip of .npy members, one per column. A zip holds its members one after another, so the
   single pass over the rows spools each column to a temporary file first (bounded memory, disk
   proportional to the rows); the members are then copied out in chunks. Text columns are spooled
@@ -32,11 +32,12 @@ Columns, in this order, in every format:
 
 from __future__ import annotations
 
+import base64
 import io
 import json
 import tempfile
 import zipfile
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from typing import IO, Any
@@ -73,6 +74,8 @@ PARQUET_COMPRESSION = "snappy"
 # dictionary page, give up and fall back, costing time and bytes.
 PARQUET_DICTIONARY_COLUMNS = ["source", "learner_version", "rollout"]
 METADATA_KEY = "expertloop"
+# where Arrow keeps a file's Arrow schema in Parquet key-value metadata
+_ARROW_SCHEMA_KEY = "ARROW:schema"
 # Exports allocate through the C library's allocator: pyarrow's default pool keeps freed pages
 # for reuse, which leaves a server's resident memory some 40 MB higher after each export.
 _MEMORY_POOL = pa.system_memory_pool()
@@ -177,29 +180,61 @@ def to_record_batch(batch: RowBatch, spec: LoopSpec, schema: pa.Schema) -> pa.Re
     return pa.RecordBatch.from_arrays(columns, schema=schema)
 
 
-def parquet_chunks(
-    batches: Iterable[RowBatch], spec: LoopSpec, metadata: dict[str, Any]
-) -> Iterator[bytes]:
-    """A Parquet file, one row group per batch, handed over after each row group.
+class ParquetRows:
+    """A Parquet file written a row group per batch, its metadata given only at the end.
 
-    Encoding runs in a helper thread while the next batch is read from the store (pyarrow
-    releases the GIL), so reading and writing overlap on two cores. At most one batch is being
-    encoded while the next is read.
+    The manifest of a new version (its content hash, row counts) is known only after its last
+    row, so the file can be written in the same pass that hashes the rows only if the metadata
+    waits for the footer. Parquet keeps key-value metadata in the footer anyway; pyarrow's
+    writer takes it with the schema up front, so here the schema goes in without it
+    (`store_schema=False`) and the footer gets both entries pyarrow would have written: our
+    key, and under "ARROW:schema" the schema with that metadata, serialized as Arrow IPC and
+    base64-encoded (the Arrow/Parquet convention readers restore types from). The bytes equal
+    pyarrow's own writer given the metadata up front (tests/snapshots/test_export.py).
     """
-    schema = arrow_schema(spec, metadata)
-    sink = _Sink()
-    writer = pq.ParquetWriter(
-        sink,
-        schema,
-        compression=PARQUET_COMPRESSION,
-        use_dictionary=PARQUET_DICTIONARY_COLUMNS,
-        memory_pool=_MEMORY_POOL,
-    )
 
-    def encode(batch: RowBatch) -> bytes:
-        writer.write_batch(to_record_batch(batch, spec, schema))
-        return sink.take()  # one chunk per row group: each chunk costs a trip through the server
+    def __init__(self, spec: LoopSpec) -> None:
+        self._spec = spec
+        self._schema = arrow_schema(spec)
+        self._sink = _Sink()
+        self._writer = pq.ParquetWriter(
+            self._sink,
+            self._schema,
+            compression=PARQUET_COMPRESSION,
+            use_dictionary=PARQUET_DICTIONARY_COLUMNS,
+            memory_pool=_MEMORY_POOL,
+            store_schema=False,
+        )
 
+    def write(self, batch: RowBatch) -> bytes:
+        """Encode a batch as one row group; the bytes written (one chunk per row group: each
+        chunk costs a trip through the server)."""
+        self._writer.write_batch(to_record_batch(batch, self._spec, self._schema))
+        return self._sink.take()
+
+    def close(self, metadata: dict[str, Any]) -> bytes:
+        """The footer, carrying `metadata` as JSON under "expertloop"; the file is complete."""
+        full = arrow_schema(self._spec, metadata)
+        assert full.metadata is not None
+        self._writer.add_key_value_metadata(
+            {
+                METADATA_KEY: full.metadata[METADATA_KEY.encode()].decode("utf-8"),
+                _ARROW_SCHEMA_KEY: base64.b64encode(full.serialize().to_pybytes()).decode(),
+            }
+        )
+        self._writer.close()
+        return self._sink.take()
+
+
+def encoded_ahead(
+    batches: Iterable[RowBatch], encode: Callable[[RowBatch], bytes]
+) -> Iterator[bytes]:
+    """`encode` of every non-empty batch, in order, run in a helper thread one batch ahead.
+
+    Encoding runs while the next batch is read from the store (pyarrow releases the GIL), so
+    reading and writing overlap on two cores. At most one batch is being encoded while the next
+    is read.
+    """
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="parquet") as encoder:
         pending: Future[bytes] | None = None
         try:
@@ -216,9 +251,16 @@ def parquet_chunks(
         finally:
             if pending is not None:  # stopped early: let the encoder finish, drop its bytes
                 pending.exception()
+
+
+def parquet_chunks(
+    batches: Iterable[RowBatch], spec: LoopSpec, metadata: dict[str, Any]
+) -> Iterator[bytes]:
+    """A Parquet file, one row group per batch, handed over after each row group."""
+    rows = ParquetRows(spec)
+    yield from encoded_ahead(batches, rows.write)
     # no footer unless every batch arrived: a reader then sees a broken file, not a short one
-    writer.close()
-    yield sink.take()
+    yield rows.close(metadata)
 
 
 def jsonl_chunks(batches: Iterable[RowBatch], spec: LoopSpec) -> Iterator[bytes]:

@@ -2,7 +2,8 @@
 
 A version is immutable, so its full Parquet export is the same bytes every time; training jobs
 pull the same version many times (seeds, nodes, reruns). The file is written when the version is
-created (or by the first export that finds it missing) and kept in the data folder:
+created, in the same pass over the rows that computes its content hash (or by the first export
+that finds it missing), and kept in the data folder:
 
     <data>/snapshots/loop-<id>/v<N>-<key>.parquet        the export's bytes
     <data>/snapshots/loop-<id>/v<N>-<key>.parquet.sha256 their SHA-256, hex
@@ -40,11 +41,16 @@ class StoredFileDamaged(RuntimeError):
     """A stored export file no longer matches the hash written beside it."""
 
 
+def loop_folder(folder: Path, loop_id: int) -> Path:
+    """Where the files of a loop's versions are kept under `folder`."""
+    return folder / f"loop-{loop_id}"
+
+
 def parquet_path(folder: Path, snapshot: Snapshot) -> Path:
     """Where the full Parquet export of a snapshot is kept under `folder`."""
     manifest = json.dumps(snapshot.manifest, sort_keys=True).encode("utf-8")
     key = hashlib.sha256(manifest).hexdigest()[:16]
-    return folder / f"loop-{snapshot.loop_id}" / f"v{snapshot.version}-{key}{SUFFIX}"
+    return loop_folder(folder, snapshot.loop_id) / f"v{snapshot.version}-{key}{SUFFIX}"
 
 
 def _hash_path(path: Path) -> Path:
@@ -83,29 +89,86 @@ def read_chunks(path: Path, digest: str) -> Iterator[bytes]:
         yield held
 
 
+class Spool:
+    """A file being written in a folder of stored files, under a temporary name.
+
+    `keep` moves it into place with its SHA-256 beside it; until then no reader can see it. A
+    disk that refuses the file is logged once and the spool goes on taking writes, unstored:
+    storing the file never stops the stream it is written from.
+    """
+
+    def __init__(self, folder: Path, prefix: str) -> None:
+        self._hasher = hashlib.sha256()
+        self._handle: IO[bytes] | None = None
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+            self._handle = tempfile.NamedTemporaryFile(  # noqa: SIM115 - closed by keep/discard
+                dir=folder, prefix=prefix, suffix=SPOOL_SUFFIX, delete=False
+            )
+        except OSError as exc:
+            log.warning("cannot store the export file in %s: %s", folder, exc)
+
+    @property
+    def writing(self) -> bool:
+        """Whether the spool still stores what it is given."""
+        return self._handle is not None
+
+    def write(self, chunk: bytes) -> None:
+        if self._handle is None:
+            return
+        try:
+            self._handle.write(chunk)
+            self._hasher.update(chunk)
+        except OSError as exc:
+            log.warning("cannot store the export file %s: %s", self._handle.name, exc)
+            self.discard()
+
+    def keep(self, path: Path) -> bool:
+        """Move the spooled file to `path`, its hash first (a reader needs both); whether it
+        is stored now. The spool is closed either way."""
+        if self._handle is None:
+            return False
+        spooled = Path(self._handle.name)
+        try:
+            self._handle.close()
+            hash_spool = _hash_path(spooled)
+            hash_spool.write_text(self._hasher.hexdigest() + "\n")
+            os.replace(hash_spool, _hash_path(path))
+            os.replace(spooled, path)
+            return True
+        except OSError as exc:
+            log.warning("cannot store the export file %s: %s", path, exc)
+            return False
+        finally:
+            self._handle = None
+            for leftover in (_hash_path(spooled), spooled):
+                leftover.unlink(missing_ok=True)
+
+    def discard(self) -> None:
+        """Close and remove the spooled file (nothing happens once it was kept)."""
+        if self._handle is None:
+            return
+        self._handle.close()
+        Path(self._handle.name).unlink(missing_ok=True)
+        self._handle = None
+
+
 def write_through(chunks: Iterable[bytes], path: Path) -> Iterator[bytes]:
     """Pass `chunks` on while writing them to `path`; the file appears only once all arrived.
 
-    The bytes go to a temporary file beside `path`, which is renamed into place when the stream
-    ends; a stream that fails or is abandoned leaves nothing behind. Several writers of the same
-    file are harmless (same bytes, atomic rename). A disk that refuses the file does not stop
-    the stream: it is logged and the chunks flow on unstored.
+    The bytes go to a spool beside `path`, which is moved into place when the stream ends; a
+    stream that fails or is abandoned leaves nothing behind. Several writers of the same file
+    are harmless (same bytes, atomic rename). A disk that refuses the file does not stop the
+    stream: it is logged and the chunks flow on unstored.
     """
-    spool = _open_spool(path)
-    hasher = hashlib.sha256()
-    finished = False
+    spool = Spool(path.parent, prefix=path.name + ".")
     try:
         for chunk in chunks:
-            if spool is not None:
-                spool = _write(spool, chunk, path)
-                hasher.update(chunk)
+            spool.write(chunk)
             yield chunk
-        finished = True
+        spool.keep(path)
     finally:
-        if spool is not None:
-            spool.close()
-            if not (finished and _keep(Path(spool.name), path, hasher.hexdigest())):
-                Path(spool.name).unlink(missing_ok=True)
+        spool.discard()
 
 
 def store(chunks: Iterable[bytes], path: Path) -> bool:
@@ -119,38 +182,3 @@ def discard(path: Path) -> None:
     """Remove a stored file and its hash."""
     for target in (_hash_path(path), path):
         target.unlink(missing_ok=True)
-
-
-def _open_spool(path: Path) -> IO[bytes] | None:
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        return tempfile.NamedTemporaryFile(  # noqa: SIM115 - closed by write_through
-            dir=path.parent, prefix=path.name + ".", suffix=SPOOL_SUFFIX, delete=False
-        )
-    except OSError as exc:
-        log.warning("cannot store the export file %s: %s", path, exc)
-        return None
-
-
-def _write(spool: IO[bytes], chunk: bytes, path: Path) -> IO[bytes] | None:
-    try:
-        spool.write(chunk)
-        return spool
-    except OSError as exc:
-        log.warning("cannot store the export file %s: %s", path, exc)
-        spool.close()
-        Path(spool.name).unlink(missing_ok=True)
-        return None
-
-
-def _keep(spooled: Path, path: Path, digest: str) -> bool:
-    """Move a finished spool into place, its hash first (a reader needs both)."""
-    try:
-        hash_spool = _hash_path(spooled)
-        hash_spool.write_text(digest + "\n")
-        os.replace(hash_spool, _hash_path(path))
-        os.replace(spooled, path)
-        return True
-    except OSError as exc:
-        log.warning("cannot store the export file %s: %s", path, exc)
-        return False

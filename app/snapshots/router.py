@@ -42,9 +42,13 @@ def create_snapshot(
     pull is served from the file too.
     """
     snapshot, created = service.create_snapshot(
-        session, loop=loop, up_to_round=body.up_to_round, user_id=caller.user_id, reader=reader
+        session,
+        loop=loop,
+        up_to_round=body.up_to_round,
+        user_id=caller.user_id,
+        reader=reader,
+        files_dir=settings.snapshot_dir,
     )
-    service.store_parquet(reader, loop=loop, snapshot=snapshot, files_dir=settings.snapshot_dir)
     if not created:
         response.status_code = status.HTTP_200_OK
     return SnapshotCreated.made(snapshot, created=created)

@@ -4,7 +4,7 @@ A snapshot stores only its cut-off (round, largest step id, largest label id), i
 the content hash: steps and labels are never changed, so its rows can be rebuilt from the cut-off
 at any time, and every export rebuilt from the store re-checks them against the hash. The full
 Parquet export, the one training jobs pull again and again, is also kept as a file per version
-(app.snapshots.files), written when the version is made.
+(app.snapshots.files), written in the same pass over the rows that makes the version.
 """
 
 from __future__ import annotations
@@ -89,14 +89,18 @@ def create_snapshot(
     up_to_round: int | None,
     user_id: int | None,
     reader: Session,
+    files_dir: Path,
 ) -> tuple[Snapshot, bool]:
     """Make the next version of the training set up to a round, or return an identical one.
 
     Returns the snapshot and whether it was created (False: the newest version with the same
-    round and content hash already existed). The pass over the rows runs on `reader`, a plain
-    read session: a writer session on SQLite would hold the write lock (BEGIN IMMEDIATE) for the
-    whole pass, stalling uploads and labels; the cut-off pins the rows, so a separate read is
-    safe.
+    round and content hash already existed). One pass over the rows computes the content hash
+    and writes the version's Parquet file under `files_dir` (its footer, which carries the
+    manifest, once the hash is known); the file is moved into place after the version is
+    committed. When an identical version exists, the file is kept for it if it has none. The
+    pass runs on `reader`, a plain read session: a writer session on SQLite would hold the write
+    lock (BEGIN IMMEDIATE) for the whole pass, stalling uploads and labels; the cut-off pins the
+    rows, so a separate read is safe.
     """
     if up_to_round is None:
         up_to_round = int(
@@ -107,21 +111,71 @@ def create_snapshot(
     cutoff = ts.current_cutoff(session, loop=loop, up_to_round=up_to_round)
     session.commit()  # release the lock; the cut-off is now fixed
 
+    spec = spec_of(loop)
     hasher, tally = _hasher(loop), _Tally()
-    for batch in ts.iter_batches(reader, loop=loop, spec=spec_of(loop), cutoff=cutoff):
-        hasher.update(batch)
-        tally.add(batch)
-    reader.commit()  # end the read transaction: SQLite's WAL cannot be reset under it
-    if hasher.rows == 0:
-        raise InvalidInput(
-            f"nothing to snapshot: loop '{loop.slug}' has no demonstrations, takeovers or "
-            f"resolved relabels up to round {up_to_round}"
-        )
-    content = hasher.hexdigest()
-    existing = _identical(session, loop=loop, up_to_round=up_to_round, content=content)
-    if existing is not None:
-        return existing, False
 
+    def counted() -> Iterator[RowBatch]:
+        for batch in ts.iter_batches(reader, loop=loop, spec=spec, cutoff=cutoff):
+            hasher.update(batch)
+            tally.add(batch)
+            yield batch
+
+    parquet = export.ParquetRows(spec)
+    spool = files.Spool(files.loop_folder(files_dir, loop.id), prefix="new.")
+    try:
+        for chunk in export.encoded_ahead(counted(), parquet.write):
+            spool.write(chunk)
+        reader.commit()  # end the read transaction: SQLite's WAL cannot be reset under it
+        if hasher.rows == 0:
+            raise InvalidInput(
+                f"nothing to snapshot: loop '{loop.slug}' has no demonstrations, takeovers or "
+                f"resolved relabels up to round {up_to_round}"
+            )
+        content = hasher.hexdigest()
+        existing = _identical(session, loop=loop, up_to_round=up_to_round, content=content)
+        if existing is not None:
+            _keep_file(spool, parquet, existing, files_dir)
+            return existing, False
+        snapshot = _add_version(
+            session, loop=loop, cutoff=cutoff, tally=tally, content=content, user_id=user_id
+        )
+        spool.write(parquet.close(export_metadata(snapshot, None)))
+        try:
+            session.commit()
+        except IntegrityError as exc:  # another request took this version number first
+            session.rollback()
+            existing = _identical(session, loop=loop, up_to_round=up_to_round, content=content)
+            if existing is not None:
+                return existing, False
+            raise Conflict(
+                f"another snapshot of '{loop.slug}' was created at the same moment; try again"
+            ) from exc
+        spool.keep(files.parquet_path(files_dir, snapshot))
+        return snapshot, True
+    finally:
+        spool.discard()
+
+
+def _keep_file(
+    spool: files.Spool, parquet: export.ParquetRows, snapshot: Snapshot, files_dir: Path
+) -> None:
+    """Store the spooled rows as `snapshot`'s file, unless it has one (its rows are the same)."""
+    path = files.parquet_path(files_dir, snapshot)
+    if spool.writing and files.stored(path) is None:
+        spool.write(parquet.close(export_metadata(snapshot, None)))
+        spool.keep(path)
+
+
+def _add_version(
+    session: Session,
+    *,
+    loop: Loop,
+    cutoff: ts.Cutoff,
+    tally: _Tally,
+    content: str,
+    user_id: int | None,
+) -> Snapshot:
+    """The next version of the loop with its manifest, added to the session (not committed)."""
     version = int(
         session.scalar(select(func.max(Snapshot.version)).where(Snapshot.loop_id == loop.id)) or 0
     )
@@ -139,27 +193,17 @@ def create_snapshot(
     snapshot = Snapshot(
         loop_id=loop.id,
         version=version + 1,
-        up_to_round=up_to_round,
+        up_to_round=cutoff.up_to_round,
         max_step_id=cutoff.max_step_id,
         max_label_id=cutoff.max_label_id,
-        row_count=hasher.rows,
+        row_count=sum(tally.counts.values()),
         content_sha256=content,
         manifest=manifest,
         created_at=created_at,
         created_by=user_id,
     )
     session.add(snapshot)
-    try:
-        session.commit()
-    except IntegrityError as exc:  # another request took this version number first
-        session.rollback()
-        existing = _identical(session, loop=loop, up_to_round=up_to_round, content=content)
-        if existing is not None:
-            return existing, False
-        raise Conflict(
-            f"another snapshot of '{loop.slug}' was created at the same moment; try again"
-        ) from exc
-    return snapshot, True
+    return snapshot
 
 
 def _identical(session: Session, *, loop: Loop, up_to_round: int, content: str) -> Snapshot | None:
@@ -312,6 +356,11 @@ def _verified(batches: Iterator[RowBatch], loop: Loop, snapshot: Snapshot) -> It
         )
 
 
+def export_metadata(snapshot: Snapshot, since: Snapshot | None) -> dict[str, Any]:
+    """What an export file carries besides its rows: the manifest, and the version `since`."""
+    return {"manifest": snapshot.manifest, "since": None if since is None else f"v{since.version}"}
+
+
 @dataclass(frozen=True)
 class ExportBytes:
     """An export's bytes as they stream, and their total when known beforehand (stored file)."""
@@ -347,20 +396,6 @@ def export_chunks(
     return ExportBytes(_chunks_from_store(session, loop, snapshot, since, file_format, spool_dir))
 
 
-def store_parquet(session: Session, *, loop: Loop, snapshot: Snapshot, files_dir: Path) -> bool:
-    """Write the version's full Parquet export to its file unless it is there; whether it is.
-
-    Read on `session`; give a read session (a writer session on SQLite would hold the write
-    lock while every row is read).
-    """
-    path = files.parquet_path(files_dir, snapshot)
-    if files.stored(path) is not None:
-        return True
-    stored = files.store(_chunks_from_store(session, loop, snapshot, None, "parquet"), path)
-    session.commit()  # end the read transaction
-    return stored
-
-
 def _chunks_from_store(
     session: Session,
     loop: Loop,
@@ -371,10 +406,7 @@ def _chunks_from_store(
 ) -> Iterator[bytes]:
     batches = snapshot_batches(session, loop=loop, snapshot=snapshot, since=since)
     spec = spec_of(loop)
-    metadata = {
-        "manifest": snapshot.manifest,
-        "since": None if since is None else f"v{since.version}",
-    }
+    metadata = export_metadata(snapshot, since)
     if file_format == "parquet":
         return export.parquet_chunks(batches, spec, metadata)
     if file_format == "npz":
