@@ -5,7 +5,8 @@ row, which bounded how fast a training set could leave the store. Here a page of
 bounded by LIMIT) arrives as a few large values that numpy decodes whole:
 
 - PostgreSQL: Apache Arrow's ADBC driver (`adbc-driver-postgresql`) reads the page by binary
-  COPY into Arrow columns, in C, on a connection of its own in autocommit. Each page is read
+  COPY into Arrow columns, in C, on a connection of its own in autocommit (one more connection
+  per export in flight, beside the pool). Each page is read
   whole, so several row streams can take turns on the connection (it serves one COPY at a time).
 - SQLite: the page is folded into one row by aggregates on the session's own connection:
   integers as one comma-separated text, blobs concatenated into one blob (group_concat keeps a
@@ -27,10 +28,11 @@ from collections.abc import Iterable, Iterator, Mapping
 from contextlib import closing, contextmanager
 from typing import Any
 
+import adbc_driver_manager
+import adbc_driver_postgresql
 import numpy as np
 import pyarrow as pa
 from sqlalchemy import text
-from sqlalchemy.engine import URL
 from sqlalchemy.orm import Session
 
 from .encode import FLOAT32_LE
@@ -60,10 +62,23 @@ class _PostgresReader(BulkReader):
         super().__init__(session)
         self._connection = connection
 
+    def run(self, sql: str) -> None:
+        """Run a statement that returns no rows."""
+        statement = adbc_driver_manager.AdbcStatement(self._connection)
+        try:
+            statement.set_sql_query(sql)
+            statement.execute_update()
+        finally:
+            statement.close()
+
     def page(self, sql: str, columns: ColumnKinds) -> dict[str, np.ndarray]:
-        with closing(self._connection.cursor()) as cursor:
-            cursor.execute(sql)
-            table: pa.Table = cursor.fetch_arrow_table()
+        statement = adbc_driver_manager.AdbcStatement(self._connection)
+        try:
+            statement.set_sql_query(sql)
+            stream, _ = statement.execute_query()
+            table = pa.RecordBatchReader.from_stream(stream).read_all()
+        finally:
+            statement.close()
         return {
             name: _arrow_ints(table, name) if width is None else _arrow_vectors(table, name, width)
             for name, width in columns.items()
@@ -78,7 +93,13 @@ class _SqliteReader(BulkReader):
             f"group_concat({name})" if width is None else f"CAST(group_concat({name}, '') AS BLOB)"
             for name, width in columns.items()
         )
-        found = self.session.execute(text(f"SELECT count(*), {folded} FROM ({sql})")).one()
+        # as driver SQL: every page has its own text, which SQLAlchemy's statement cache would
+        # otherwise keep
+        found = (
+            self.session.connection()
+            .exec_driver_sql(f"SELECT count(*), {folded} FROM ({sql})")
+            .one()
+        )
         rows = int(found[0])
         out: dict[str, np.ndarray] = {}
         for (name, width), joined in zip(columns.items(), found[1:], strict=True):
@@ -102,24 +123,6 @@ class _SqliteReader(BulkReader):
         return out
 
 
-def _pg_connect(url: URL) -> Any:
-    import adbc_driver_postgresql.dbapi
-
-    libpq = url.set(drivername="postgresql").render_as_string(hide_password=False)
-    connection = adbc_driver_postgresql.dbapi.connect(libpq, autocommit=True)
-    try:
-        with closing(connection.cursor()) as cursor:
-            # Pages are read along the (round_id, id) index. A freshly filled table has no
-            # statistics yet, and the planner may then guess a bitmap scan plus a sort of every
-            # remaining row for each page; this connection only ever reads ordered pages.
-            cursor.execute("SET enable_bitmapscan = off")
-            cursor.execute("SET enable_sort = off")
-    except Exception:
-        connection.close()
-        raise
-    return connection
-
-
 @contextmanager
 def bulk_reader(session: Session) -> Iterator[BulkReader]:
     """A reader of the session's database, open for the block."""
@@ -130,11 +133,19 @@ def bulk_reader(session: Session) -> Iterator[BulkReader]:
             raise ValueError(f"bulk reads need a UTF-8 SQLite database, not {encoding}")
         yield _SqliteReader(session)
         return
-    connection = _pg_connect(bind.engine.url)
-    try:
-        yield _PostgresReader(session, connection)
-    finally:
-        connection.close()
+    libpq = bind.engine.url.set(drivername="postgresql").render_as_string(hide_password=False)
+    # the driver's low-level API: its DB-API module imports pandas, some 50 MB of a server
+    with (
+        closing(adbc_driver_postgresql.connect(libpq)) as database,
+        closing(adbc_driver_manager.AdbcConnection(database)) as connection,
+    ):  # ADBC connections start in autocommit
+        reader = _PostgresReader(session, connection)
+        # Pages are read along the (round_id, id) index. A freshly filled table has no
+        # statistics yet, and the planner may then guess a bitmap scan plus a sort of every
+        # remaining row for each page; this connection only ever reads ordered pages.
+        reader.run("SET enable_bitmapscan = off")
+        reader.run("SET enable_sort = off")
+        yield reader
 
 
 def int_list(values: Iterable[int]) -> str:

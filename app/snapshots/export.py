@@ -254,13 +254,30 @@ def encoded_ahead(
 
 
 def parquet_chunks(
-    batches: Iterable[RowBatch], spec: LoopSpec, metadata: dict[str, Any]
+    batches: Iterable[RowBatch],
+    spec: LoopSpec,
+    metadata: dict[str, Any],
+    copy_to: Callable[[bytes], None] | None = None,
 ) -> Iterator[bytes]:
-    """A Parquet file, one row group per batch, handed over after each row group."""
+    """A Parquet file, one row group per batch, handed over after each row group.
+
+    `copy_to` is given every chunk too, in the encoding thread (a stored file written on the
+    way: the thread reading the rows then has only the rows to read and hash).
+    """
     rows = ParquetRows(spec)
-    yield from encoded_ahead(batches, rows.write)
+
+    def encode(batch: RowBatch) -> bytes:
+        chunk = rows.write(batch)
+        if copy_to is not None:
+            copy_to(chunk)
+        return chunk
+
+    yield from encoded_ahead(batches, encode)
     # no footer unless every batch arrived: a reader then sees a broken file, not a short one
-    yield rows.close(metadata)
+    footer = rows.close(metadata)
+    if copy_to is not None:
+        copy_to(footer)
+    yield footer
 
 
 def jsonl_chunks(batches: Iterable[RowBatch], spec: LoopSpec) -> Iterator[bytes]:

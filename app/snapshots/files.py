@@ -23,7 +23,7 @@ import json
 import logging
 import os
 import tempfile
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterator
 from pathlib import Path
 from typing import IO
 
@@ -151,31 +151,6 @@ class Spool:
         self._handle.close()
         Path(self._handle.name).unlink(missing_ok=True)
         self._handle = None
-
-
-def write_through(chunks: Iterable[bytes], path: Path) -> Iterator[bytes]:
-    """Pass `chunks` on while writing them to `path`; the file appears only once all arrived.
-
-    The bytes go to a spool beside `path`, which is moved into place when the stream ends; a
-    stream that fails or is abandoned leaves nothing behind. Several writers of the same file
-    are harmless (same bytes, atomic rename). A disk that refuses the file does not stop the
-    stream: it is logged and the chunks flow on unstored.
-    """
-    spool = Spool(path.parent, prefix=path.name + ".")
-    try:
-        for chunk in chunks:
-            spool.write(chunk)
-            yield chunk
-        spool.keep(path)
-    finally:
-        spool.discard()
-
-
-def store(chunks: Iterable[bytes], path: Path) -> bool:
-    """Write a whole stream to `path` (see `write_through`); whether the file is now stored."""
-    for _ in write_through(chunks, path):
-        pass
-    return stored(path) is not None
 
 
 def discard(path: Path) -> None:

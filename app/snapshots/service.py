@@ -391,9 +391,24 @@ def export_chunks(
         if found is not None:
             size, digest = found
             return ExportBytes(files.read_chunks(path, digest), size)
-        from_store = _chunks_from_store(session, loop, snapshot, None, "parquet")
-        return ExportBytes(files.write_through(from_store, path))
+        return ExportBytes(_stored_on_the_way(session, loop, snapshot, path))
     return ExportBytes(_chunks_from_store(session, loop, snapshot, since, file_format, spool_dir))
+
+
+def _stored_on_the_way(
+    session: Session, loop: Loop, snapshot: Snapshot, path: Path
+) -> Iterator[bytes]:
+    """A full Parquet export rebuilt from the store, stored at `path` as it streams.
+
+    The file is moved into place only once the last chunk was taken: a stream that fails or is
+    abandoned leaves nothing behind, and a disk that refuses the file does not stop it.
+    """
+    spool = files.Spool(path.parent, prefix=path.name + ".")
+    try:
+        yield from _chunks_from_store(session, loop, snapshot, None, "parquet", copy_to=spool)
+        spool.keep(path)
+    finally:
+        spool.discard()
 
 
 def _chunks_from_store(
@@ -403,12 +418,15 @@ def _chunks_from_store(
     since: Snapshot | None,
     file_format: str,
     spool_dir: Path | None = None,
+    copy_to: files.Spool | None = None,
 ) -> Iterator[bytes]:
     batches = snapshot_batches(session, loop=loop, snapshot=snapshot, since=since)
     spec = spec_of(loop)
     metadata = export_metadata(snapshot, since)
     if file_format == "parquet":
-        return export.parquet_chunks(batches, spec, metadata)
+        return export.parquet_chunks(
+            batches, spec, metadata, None if copy_to is None else copy_to.write
+        )
     if file_format == "npz":
         if spool_dir is not None:  # else the system's temporary folder
             spool_dir.mkdir(parents=True, exist_ok=True)

@@ -16,10 +16,11 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 from fastapi.testclient import TestClient
-from sqlalchemy import text
+from sqlalchemy import select, text
 
 from expertloop.client import Client
-from expertloop.snapshots import files
+from expertloop.loops.models import Loop
+from expertloop.snapshots import files, service
 from expertloop.snapshots.files import StoredFileDamaged
 from expertloop.snapshots.models import Snapshot
 from expertloop.snapshots.service import SnapshotChanged
@@ -120,22 +121,55 @@ def test_the_file_name_follows_the_manifest(tmp_path):
     assert files.parquet_path(tmp_path, first) == files.parquet_path(tmp_path, first)
 
 
-def test_an_abandoned_stream_stores_nothing(tmp_path):
-    target = tmp_path / "loop-1" / "v1-x.parquet"
-    stream = files.write_through(iter([b"a" * 10, b"b" * 10, b"c" * 10]), target)
-    assert next(stream) == b"a" * 10
-    stream.close()  # the client went away
-    assert list((tmp_path / "loop-1").iterdir()) == []
-    assert files.store(iter([b"a", b"b"]), target)
+def _store(content: bytes, target: Path) -> None:
+    spool = files.Spool(target.parent, prefix="new.")
+    spool.write(content)
+    assert spool.keep(target)
+
+
+def test_a_spool_is_seen_only_once_kept(tmp_path):
+    folder = tmp_path / "loop-1"
+    target = folder / "v1-x.parquet"
+    spool = files.Spool(folder, prefix=target.name + ".")
+    spool.write(b"a" * 10)
+    assert files.stored(target) is None and not target.exists()
+    spool.discard()  # the stream it was written from was abandoned
+    assert list(folder.iterdir()) == []
+    spool = files.Spool(folder, prefix="new.")
+    for piece in (b"a", b"b"):
+        spool.write(piece)
+    assert spool.keep(target)
     assert target.read_bytes() == b"ab"
     assert list(files.read_chunks(target, hashlib.sha256(b"ab").hexdigest())) == [b"ab"]
+    assert sorted(p.name for p in folder.iterdir()) == [target.name, target.name + ".sha256"]
+
+
+def test_an_abandoned_rebuild_stores_nothing(app, client, settings, discrete_loop, trainer):
+    _create(client, trainer)
+    [path] = _stored(settings)
+    files.discard(path)
+    with app.state.session_factory() as session:
+        loop = session.scalar(select(Loop).where(Loop.slug == SLUG))
+        snapshot = service.get_snapshot(session, loop=loop, version="v1")
+        exported = service.export_chunks(
+            session,
+            loop=loop,
+            snapshot=snapshot,
+            since=None,
+            file_format="parquet",
+            spool_dir=settings.data_dir / "exports",
+            files_dir=settings.snapshot_dir,
+        )
+        assert next(exported.chunks).startswith(b"PAR1")
+        exported.chunks.close()  # the client went away
+    assert _stored(settings) == [] and _leftovers(settings) == []
 
 
 def test_the_last_piece_waits_for_the_hash(tmp_path, monkeypatch):
     monkeypatch.setattr(files, "READ_BYTES", 4)
     target = tmp_path / "v1-x.parquet"
     content = bytes(range(10))
-    assert files.store(iter([content]), target)
+    _store(content, target)
     assert list(files.read_chunks(target, hashlib.sha256(content).hexdigest())) == [
         content[0:4],
         content[4:8],
