@@ -10,7 +10,10 @@ with the same writer options (compression, dictionary columns), run between the 
 best of --repeat runs of each is kept, since other work on the machine skews single runs. Two
 export paths are timed: the version's Parquet file, written when the snapshot was created, and
 a rebuild from the store after that file was deleted (the path of a version whose file is
-missing). The server's peak memory covers the snapshot creation and every export.
+missing). The server's peak memory covers the snapshot creation and every export. The server's
+CPU time (/proc/<pid>/stat) for each pull and pyarrow's own CPU time are printed too: on a
+machine shared with other work, wall-clock ratios depend on how many cores are free, CPU
+seconds much less.
 
     python bench/export.py                          # 100k and 1M rows on SQLite
     python bench/export.py --rows 100000 --database-url postgresql+psycopg://u@host/scratch
@@ -173,13 +176,27 @@ def _download(api: httpx.Client, target: Path) -> float:
     return time.perf_counter() - started
 
 
-def _pyarrow_write(table: pa.Table, target: Path) -> float:
-    """Seconds for pyarrow to write the table from memory with the export's writer options."""
-    started = time.perf_counter()
+def _pyarrow_write(table: pa.Table, target: Path) -> tuple[float, float]:
+    """Seconds, and CPU seconds of this process, for pyarrow to write the table from memory
+    with the export's writer options."""
+    started, cpu = time.perf_counter(), time.process_time()
     pq.write_table(
         table, target, compression=PARQUET_COMPRESSION, use_dictionary=PARQUET_DICTIONARY_COLUMNS
     )
-    return time.perf_counter() - started
+    return time.perf_counter() - started, time.process_time() - cpu
+
+
+def cpu_seconds(pid: int) -> float:
+    """CPU time (user + system) a process has used so far, from /proc/<pid>/stat."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def _timed_download(api: httpx.Client, target: Path, pid: int) -> tuple[float, float]:
+    """Seconds of a download, and CPU seconds the server spent on it (load-independent)."""
+    cpu = cpu_seconds(pid)
+    seconds = _download(api, target)
+    return seconds, cpu_seconds(pid) - cpu
 
 
 def peak_rss_mb(pid: int) -> float:
@@ -203,9 +220,10 @@ def run_once(
         headers = {"Authorization": f"Bearer {token}"}
         timeout = httpx.Timeout(600.0)
         with httpx.Client(base_url=server.url, headers=headers, timeout=timeout) as api:
-            started = time.perf_counter()
+            started, cpu = time.perf_counter(), cpu_seconds(server.pid)
             made = api.post(f"/api/loops/{SLUG}/snapshots", json={})
             create_s = time.perf_counter() - started
+            create_cpu = cpu_seconds(server.pid) - cpu
             made.raise_for_status()
             created_mb = peak_rss_mb(server.pid)
             assert made.json()["row_count"] == n_rows, made.json()["row_count"]
@@ -214,7 +232,7 @@ def run_once(
             stored = sorted((workdir / "data" / "snapshots").rglob("*.parquet"))
             assert len(stored) == 1, stored  # written when the version was made
             for _ in range(repeat):
-                export_times.append(_download(api, target))
+                export_times.append(_timed_download(api, target, server.pid))
                 # the baseline runs between exports, under the same load on the machine
                 table = pq.read_table(target)
                 assert table.num_rows == n_rows
@@ -223,19 +241,30 @@ def run_once(
                 # the path without the stored file: rows read from the store (and stored again)
                 for path in stored[0].parent.iterdir():
                     path.unlink()
-                rebuild_times.append(_download(api, target))
+                rebuild_times.append(_timed_download(api, target, server.pid))
                 assert stored[0].exists()
         server_mb = peak_rss_mb(server.pid)
-    export_s, pyarrow_s, rebuild_s = min(export_times), min(pyarrow_times), min(rebuild_times)
+    (export_s, _), (pyarrow_s, _), (rebuild_s, _) = (
+        min(export_times),
+        min(pyarrow_times),
+        min(rebuild_times),
+    )
+    # CPU seconds: the least of the runs, like the times
+    pyarrow_cpu = min(cpu for _, cpu in pyarrow_times)
+    rebuild_cpu = min(cpu for _, cpu in rebuild_times)
     return {
         "rows": n_rows,
         "fill_s": fill_s,
         "create_s": create_s,
+        "create_cpu": create_cpu,
         "export_s": export_s,
         "rebuild_s": rebuild_s,
         "pyarrow_s": pyarrow_s,
         "ratio": pyarrow_s / export_s,
         "rebuild_ratio": pyarrow_s / rebuild_s,
+        "pyarrow_cpu": pyarrow_cpu,
+        "rebuild_cpu": rebuild_cpu,
+        "cpu_ratio": pyarrow_cpu / rebuild_cpu,
         "idle_mb": idle_mb,
         "created_mb": created_mb,
         "peak_mb": server_mb,
@@ -272,9 +301,9 @@ def main() -> None:
             results.append(result)
             print(
                 f"{n_rows:>9} rows x {args.features} features: store filled in "
-                f"{result['fill_s']:.1f} s; snapshot created (hash pass, then its Parquet file "
-                f"written) in {result['create_s']:.2f} s; server peak then "
-                f"{result['created_mb']:.0f} MB",
+                f"{result['fill_s']:.1f} s; snapshot created (one pass: content hash and its "
+                f"Parquet file) in {result['create_s']:.2f} s, {result['create_cpu']:.2f} s of "
+                f"server CPU; server peak then {result['created_mb']:.0f} MB",
                 flush=True,
             )
     backend = "PostgreSQL" if (args.database_url or "").startswith("postgresql") else "SQLite"
@@ -284,20 +313,23 @@ def main() -> None:
     )
     print(
         f"{'rows':>9}  {'export s':>9}  {'rows/s':>10}  {'pyarrow s':>9}  {'speed':>7}"
-        f"  {'rebuilt s':>9}  {'speed':>7}  {'server idle MB':>14}  {'server peak MB':>14}"
-        f"  {'file MB':>8}  {'load avg':>8}"
+        f"  {'rebuilt s':>9}  {'speed':>7}  {'CPU s':>6}  {'pyarrow':>7}  {'by CPU':>7}"
+        f"  {'server idle MB':>14}  {'server peak MB':>14}  {'file MB':>8}  {'load avg':>8}"
     )
     for r in results:
         print(
             f"{r['rows']:>9}  {r['export_s']:>9.2f}  {r['rows'] / r['export_s']:>10.0f}  "
             f"{r['pyarrow_s']:>9.2f}  {r['ratio']:>6.2f}x  {r['rebuild_s']:>9.2f}  "
-            f"{r['rebuild_ratio']:>6.2f}x  {r['idle_mb']:>14.0f}  {r['peak_mb']:>14.0f}  "
+            f"{r['rebuild_ratio']:>6.2f}x  {r['rebuild_cpu']:>6.2f}  {r['pyarrow_cpu']:>7.2f}  "
+            f"{r['cpu_ratio']:>6.2f}x  {r['idle_mb']:>14.0f}  {r['peak_mb']:>14.0f}  "
             f"{r['file_mb']:>8.0f}  {r['load']:>8.1f}"
         )
     print(
         "export: the version's stored Parquet file streamed through the API; rebuilt: the same "
         "export with the file deleted first (rows read from the store, file stored again); "
-        "speed: pyarrow's time over ours"
+        "speed: pyarrow's time over ours; CPU s: server CPU time of the rebuilt pull, against "
+        "pyarrow's CPU time for its write (by CPU: their ratio, which other work on the machine "
+        "does not skew)"
     )
     print("targets: speed >= 0.5x pyarrow; server peak < 300 MB and not growing with rows")
 

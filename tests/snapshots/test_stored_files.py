@@ -9,10 +9,12 @@ from __future__ import annotations
 
 import hashlib
 import io
+import json
 import os
 import time
 from pathlib import Path
 
+import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 from fastapi.testclient import TestClient
@@ -20,7 +22,7 @@ from sqlalchemy import select, text
 
 from expertloop.client import Client
 from expertloop.loops.models import Loop
-from expertloop.snapshots import files, service
+from expertloop.snapshots import export, files, service
 from expertloop.snapshots.files import StoredFileDamaged
 from expertloop.snapshots.models import Snapshot
 from expertloop.snapshots.service import SnapshotChanged
@@ -216,3 +218,40 @@ def test_the_client_learns_the_size_of_a_stored_file_before_the_bytes(
         api.export(SLUG, tmp_path / "b.parquet", size=sizes.append)
     assert sizes == [path.stat().st_size] and sum(received) == sizes[0]
     assert (tmp_path / "a.parquet").read_bytes() == (tmp_path / "b.parquet").read_bytes()
+
+
+def test_the_file_has_the_bytes_of_pyarrows_own_writer(client, settings, discrete_loop, trainer):
+    """The file is written with its manifest added to the footer after the last row group;
+    pyarrow's ParquetWriter, given the schema with the manifest up front and the same row
+    groups, writes the very same bytes (docs/references.md, "Parquet footer metadata")."""
+    snapshot = _create(client, trainer)
+    [path] = _stored(settings)
+    parquet = pq.ParquetFile(path)
+    metadata = {"manifest": snapshot["manifest"], "since": None}
+    assert json.loads(parquet.schema_arrow.metadata[b"expertloop"]) == metadata
+    # the export's columns as the README lists them (3 features, a discrete action)
+    schema = pa.schema(
+        [
+            ("step_id", pa.int64()),
+            ("features", pa.list_(pa.float32(), 3)),
+            ("expert_action", pa.int64()),
+            ("round", pa.int64()),
+            ("source", pa.string()),
+            ("learner_version", pa.string()),
+            ("rollout", pa.string()),
+            ("step", pa.int64()),
+            ("label_count", pa.int64()),
+            ("agreement", pa.float64()),
+        ],
+        metadata={"expertloop": json.dumps(metadata, sort_keys=True)},
+    )
+    sink = io.BytesIO()
+    with pq.ParquetWriter(
+        sink,
+        schema,
+        compression=export.PARQUET_COMPRESSION,
+        use_dictionary=export.PARQUET_DICTIONARY_COLUMNS,
+    ) as writer:
+        for group in range(parquet.metadata.num_row_groups):
+            writer.write_table(parquet.read_row_group(group).cast(schema))
+    assert sink.getvalue() == path.read_bytes()
