@@ -25,6 +25,10 @@ SQLITE_POOL_OVERFLOW = -1
 POSTGRES_POOL_SIZE = 10
 POSTGRES_MAX_OVERFLOW = 20
 POOL_TIMEOUT_S = 30.0
+# PostgreSQL: bulk reads of training-set pages (app/shared/bulk_reads.py) open connections of
+# their own beside the pool, at most this many at a time per process; one more waits up to
+# POOL_TIMEOUT_S, like a pool checkout.
+POSTGRES_BULK_READERS = 10
 
 
 def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:

@@ -23,6 +23,7 @@ by `int_list`: nothing a user typed reaches a query.
 
 from __future__ import annotations
 
+import threading
 from abc import ABC, abstractmethod
 from collections.abc import Iterable, Iterator, Mapping
 from contextlib import closing, contextmanager
@@ -33,9 +34,14 @@ import adbc_driver_postgresql
 import numpy as np
 import pyarrow as pa
 from sqlalchemy import text
+from sqlalchemy.engine import URL
+from sqlalchemy.exc import TimeoutError as PoolTimeout
 from sqlalchemy.orm import Session
 
+from ..db import POOL_TIMEOUT_S, POSTGRES_BULK_READERS
 from .encode import FLOAT32_LE
+
+_bulk_connections = threading.BoundedSemaphore(POSTGRES_BULK_READERS)
 
 # A column of a page: None for an integer column (int64, shape (n,)), or the width of a column
 # of little-endian float32 vectors stored as blobs (float32, shape (n, width)).
@@ -133,7 +139,19 @@ def bulk_reader(session: Session) -> Iterator[BulkReader]:
             raise ValueError(f"bulk reads need a UTF-8 SQLite database, not {encoding}")
         yield _SqliteReader(session)
         return
-    libpq = bind.engine.url.set(drivername="postgresql").render_as_string(hide_password=False)
+    if not _bulk_connections.acquire(timeout=POOL_TIMEOUT_S):
+        # the pool's own timeout error: the app answers 503 with Retry-After
+        raise PoolTimeout(f"no bulk-read connection came free within {POOL_TIMEOUT_S:.0f} s")
+    try:
+        with _pg_reader(session, bind.engine.url) as reader:
+            yield reader
+    finally:
+        _bulk_connections.release()
+
+
+@contextmanager
+def _pg_reader(session: Session, url: URL) -> Iterator[BulkReader]:
+    libpq = url.set(drivername="postgresql").render_as_string(hide_password=False)
     # the driver's low-level API: its DB-API module imports pandas, some 50 MB of a server
     with (
         closing(adbc_driver_postgresql.connect(libpq)) as database,
@@ -154,16 +172,31 @@ def int_list(values: Iterable[int]) -> str:
 
 
 def _arrow_ints(table: pa.Table, name: str) -> np.ndarray:
-    column = table.column(name)
-    if column.null_count:
-        raise ValueError(f"column {name} has {column.null_count} missing values")
-    return np.asarray(column.to_numpy(), dtype=np.int64)
+    """An integer column as int64, read from its Arrow data buffers.
+
+    Not Array.to_numpy: pyarrow imports pandas on the way, some 45 MB of a server.
+    """
+    parts = [np.empty(0, np.int64)]
+    for chunk in table.column(name).chunks:
+        if not len(chunk):
+            continue
+        if chunk.null_count:
+            raise ValueError(f"column {name} has {chunk.null_count} missing values")
+        if not pa.types.is_integer(chunk.type):
+            raise ValueError(f"column {name} holds {chunk.type}, not integers")
+        kind = "i" if pa.types.is_signed_integer(chunk.type) else "u"
+        dtype = np.dtype(f"{kind}{chunk.type.bit_width // 8}")  # Arrow buffers: native order
+        values = np.frombuffer(chunk.buffers()[1], dtype=dtype)
+        parts.append(values[chunk.offset : chunk.offset + len(chunk)].astype(np.int64))
+    return np.concatenate(parts)
 
 
 def _arrow_vectors(table: pa.Table, name: str, width: int) -> np.ndarray:
-    """Blobs of `width` float32 values each, read from the Arrow data buffer, (n, width)."""
-    out = np.empty((table.num_rows, width), dtype=FLOAT32_LE)
-    at = 0
+    """Blobs of `width` float32 values each, read from the Arrow data buffers, (n, width).
+
+    A column of one chunk (a page) is read in place, without a copy.
+    """
+    parts = []
     for chunk in table.column(name).chunks:
         rows = len(chunk)
         if not rows:
@@ -177,8 +210,11 @@ def _arrow_vectors(table: pa.Table, name: str, width: int) -> np.ndarray:
         ]
         if not np.all(np.diff(offsets) == width * FLOAT32_LE.itemsize):
             raise ValueError(f"column {name} holds a vector of other than {width} values")
-        out[at : at + rows] = np.frombuffer(
-            data, dtype=FLOAT32_LE, count=rows * width, offset=int(offsets[0])
-        ).reshape(rows, width)
-        at += rows
-    return out
+        parts.append(
+            np.frombuffer(
+                data, dtype=FLOAT32_LE, count=rows * width, offset=int(offsets[0])
+            ).reshape(rows, width)
+        )
+    if len(parts) == 1:
+        return parts[0]
+    return np.concatenate(parts) if parts else np.empty((0, width), dtype=FLOAT32_LE)

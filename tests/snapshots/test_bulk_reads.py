@@ -6,6 +6,7 @@ aggregates on SQLite); these tests run on whichever store the suite runs on.
 
 from __future__ import annotations
 
+import threading
 import tracemalloc
 from typing import Any
 
@@ -17,6 +18,7 @@ from expertloop.loops import service as loops_service
 from expertloop.loops.spec import spec_of
 from expertloop.shared import bulk_reads
 from expertloop.shared import training_set as ts
+from tests.conftest import PG_URL
 from tests.helpers import DISCRETE_SPEC, parquet_bytes
 from tests.snapshots.conftest import BASE, SLUG
 
@@ -113,3 +115,20 @@ def test_a_vector_of_another_width_is_named(app, client, engine, discrete_loop, 
         )
     with pytest.raises(ValueError, match="features"):
         client.get(f"{BASE}/snapshots/v1/export", params={"format": "jsonl"}, headers=trainer)
+
+
+@pytest.mark.skipif(not PG_URL, reason="bulk-read connections beside the pool: PostgreSQL only")
+def test_no_bulk_read_connection_free_is_a_503_and_changes_nothing(
+    client, engine, discrete_loop, trainer, monkeypatch
+):
+    monkeypatch.setattr(bulk_reads, "_bulk_connections", threading.BoundedSemaphore(1))
+    monkeypatch.setattr(bulk_reads, "POOL_TIMEOUT_S", 0.05)
+    bulk_reads._bulk_connections.acquire()  # another export holds the only one
+    response = client.post(f"{BASE}/snapshots", json={}, headers=trainer)
+    assert response.status_code == 503, response.text
+    assert response.headers["Retry-After"] == "2"
+    assert "no database connection came free" in response.json()["detail"]
+    with engine.connect() as conn:
+        assert conn.execute(text("SELECT count(*) FROM snapshots")).scalar_one() == 0
+    bulk_reads._bulk_connections.release()
+    assert client.post(f"{BASE}/snapshots", json={}, headers=trainer).status_code == 201
