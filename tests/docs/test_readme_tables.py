@@ -125,15 +125,18 @@ def test_readme_connection_bound_is_the_pool_of_the_code() -> None:
     # README, "Scaling": the figures are prose, read here from their one sentence.
     text = " ".join(README.read_text(encoding="utf-8").split())
     found = re.search(
-        r"opens up to (\d+) connections \(a pool of (\d+) plus (\d+) overflow\).*?"
+        r"opens up to (\d+) connections \(a pool of (\d+) plus (\d+) overflow\), and up to "
+        r"(\d+) more of its own while it reads training sets in bulk.*?"
         r"keep `max_connections` above (\d+) × app processes.*?"
         r"finds all of its process's connections busy waits up to (\d+) s for one",
         text,
     )
     assert found, "the README's connection bound sentences are gone"
-    total, size, overflow, per_process, wait_s = map(int, found.groups())
+    total, size, overflow, bulk, per_process, wait_s = map(int, found.groups())
     assert (size, overflow) == (db.POSTGRES_POOL_SIZE, db.POSTGRES_MAX_OVERFLOW)
-    assert total == per_process == size + overflow
+    assert total == size + overflow
+    assert bulk == db.POSTGRES_BULK_READERS
+    assert per_process == total + bulk
     assert wait_s == db.POOL_TIMEOUT_S
 
 
