@@ -35,6 +35,7 @@ import numpy as np
 import pyarrow as pa
 from sqlalchemy import text
 from sqlalchemy.engine import URL
+from sqlalchemy.exc import OperationalError as DBAPIOperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeout
 from sqlalchemy.orm import Session
 
@@ -150,10 +151,20 @@ def bulk_reader(session: Session) -> Iterator[BulkReader]:
 
 
 @contextmanager
+def _unreachable_as_sqlalchemy() -> Iterator[None]:
+    """The driver's connection failures as SQLAlchemy's, which the app answers with 503."""
+    try:
+        yield
+    except adbc_driver_manager.OperationalError as exc:
+        raise DBAPIOperationalError("bulk read (ADBC)", None, exc) from exc
+
+
+@contextmanager
 def _pg_reader(session: Session, url: URL) -> Iterator[BulkReader]:
     libpq = url.set(drivername="postgresql").render_as_string(hide_password=False)
     # the driver's low-level API: its DB-API module imports pandas, some 50 MB of a server
     with (
+        _unreachable_as_sqlalchemy(),
         closing(adbc_driver_postgresql.connect(libpq)) as database,
         closing(adbc_driver_manager.AdbcConnection(database)) as connection,
     ):  # ADBC connections start in autocommit

@@ -10,13 +10,14 @@ import threading
 import tracemalloc
 from typing import Any
 
+import adbc_driver_manager
 import numpy as np
 import pytest
 from sqlalchemy import select, text
 
 from expertloop.loops import service as loops_service
 from expertloop.loops.spec import spec_of
-from expertloop.shared import bulk_reads
+from expertloop.shared import bulk_reads, training_rows
 from expertloop.shared import training_set as ts
 from tests.conftest import PG_URL
 from tests.helpers import DISCRETE_SPEC, parquet_bytes
@@ -132,3 +133,29 @@ def test_no_bulk_read_connection_free_is_a_503_and_changes_nothing(
         assert conn.execute(text("SELECT count(*) FROM snapshots")).scalar_one() == 0
     bulk_reads._bulk_connections.release()
     assert client.post(f"{BASE}/snapshots", json={}, headers=trainer).status_code == 201
+
+
+@pytest.mark.skipif(not PG_URL, reason="the bulk-read connection of PostgreSQL")
+def test_a_bulk_read_connection_that_fails_is_a_503_and_changes_nothing(
+    client, engine, discrete_loop, trainer, monkeypatch
+):
+    def refused(uri: str) -> None:
+        raise adbc_driver_manager.OperationalError(
+            "IO: connection refused", status_code=adbc_driver_manager.AdbcStatusCode.IO
+        )
+
+    monkeypatch.setattr(bulk_reads.adbc_driver_postgresql, "connect", refused)
+    response = client.post(f"{BASE}/snapshots", json={}, headers=trainer)
+    assert response.status_code == 503, response.text
+    assert "the database is unreachable" in response.json()["detail"]
+    with engine.connect() as conn:
+        assert conn.execute(text("SELECT count(*) FROM snapshots")).scalar_one() == 0
+
+
+def test_an_aggregated_page_is_put_in_id_order():
+    """SQLite does not promise the order in which an aggregate sees its rows; a page whose ids
+    come out of order is sorted, every column alike."""
+    page = {"id": np.array([5, 3, 9]), "features": np.array([[5.0], [3.0], [9.0]])}
+    ordered = training_rows._in_id_order(page)
+    np.testing.assert_array_equal(ordered["id"], [3, 5, 9])
+    np.testing.assert_array_equal(ordered["features"], [[3.0], [5.0], [9.0]])
