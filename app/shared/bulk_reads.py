@@ -29,8 +29,6 @@ from collections.abc import Iterable, Iterator, Mapping
 from contextlib import closing, contextmanager
 from typing import Any
 
-import adbc_driver_manager
-import adbc_driver_postgresql
 import numpy as np
 import pyarrow as pa
 from sqlalchemy import text
@@ -71,6 +69,8 @@ class _PostgresReader(BulkReader):
 
     def run(self, sql: str) -> None:
         """Run a statement that returns no rows."""
+        import adbc_driver_manager
+
         statement = adbc_driver_manager.AdbcStatement(self._connection)
         try:
             statement.set_sql_query(sql)
@@ -79,6 +79,8 @@ class _PostgresReader(BulkReader):
             statement.close()
 
     def page(self, sql: str, columns: ColumnKinds) -> dict[str, np.ndarray]:
+        import adbc_driver_manager
+
         statement = adbc_driver_manager.AdbcStatement(self._connection)
         try:
             statement.set_sql_query(sql)
@@ -153,6 +155,8 @@ def bulk_reader(session: Session) -> Iterator[BulkReader]:
 @contextmanager
 def _unreachable_as_sqlalchemy() -> Iterator[None]:
     """The driver's connection failures as SQLAlchemy's, which the app answers with 503."""
+    import adbc_driver_manager
+
     try:
         yield
     except adbc_driver_manager.OperationalError as exc:
@@ -161,6 +165,10 @@ def _unreachable_as_sqlalchemy() -> Iterator[None]:
 
 @contextmanager
 def _pg_reader(session: Session, url: URL) -> Iterator[BulkReader]:
+    # imported here: a server on SQLite never loads the PostgreSQL driver
+    import adbc_driver_manager
+    import adbc_driver_postgresql
+
     libpq = url.set(drivername="postgresql").render_as_string(hide_password=False)
     # the driver's low-level API: its DB-API module imports pandas, some 50 MB of a server
     with (

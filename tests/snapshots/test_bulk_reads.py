@@ -11,6 +11,7 @@ import tracemalloc
 from typing import Any
 
 import adbc_driver_manager
+import adbc_driver_postgresql
 import numpy as np
 import pytest
 from sqlalchemy import select, text
@@ -144,7 +145,7 @@ def test_a_bulk_read_connection_that_fails_is_a_503_and_changes_nothing(
             "IO: connection refused", status_code=adbc_driver_manager.AdbcStatusCode.IO
         )
 
-    monkeypatch.setattr(bulk_reads.adbc_driver_postgresql, "connect", refused)
+    monkeypatch.setattr(adbc_driver_postgresql, "connect", refused)
     response = client.post(f"{BASE}/snapshots", json={}, headers=trainer)
     assert response.status_code == 503, response.text
     assert "the database is unreachable" in response.json()["detail"]
