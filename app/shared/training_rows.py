@@ -59,9 +59,9 @@ class RoundTable:
             .order_by(Round.id)
         ).all()
         return cls(
-            ids=np.array([r[0] for r in rows], dtype=np.int64),
-            numbers=np.array([r[1] for r in rows], dtype=np.int64),
-            learner_versions={int(r[1]): r[2] for r in rows},
+            ids=np.array([r.id for r in rows], dtype=np.int64),
+            numbers=np.array([r.number for r in rows], dtype=np.int64),
+            learner_versions={int(r.number): r.learner_version for r in rows},
         )
 
     def number_of(self, round_ids: np.ndarray) -> np.ndarray:
@@ -71,7 +71,7 @@ class RoundTable:
 def _rollout_keys(session: Session, rollout_id: np.ndarray) -> dict[int, str]:
     wanted = np.unique(rollout_id).tolist()
     rows = session.execute(select(Rollout.id, Rollout.key).where(Rollout.id.in_(wanted))).all()
-    return {int(r[0]): r[1] for r in rows}
+    return {int(r.id): r.key for r in rows}
 
 
 def _in_id_order(page: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
