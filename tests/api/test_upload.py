@@ -160,6 +160,24 @@ def test_state_with_context(client, loop, uploader, admin):
     assert [s["step"] for s in ctx["after"]] == list(range(21, 31))
 
 
+def test_state_of_another_loop_or_none_is_404(client, loop, uploader, admin):
+    """The window is read in one query that also checks the loop: another loop's state, or no
+    state at all, is the 404 naming it, never another loop's steps."""
+    upload(client, uploader, parquet_bytes(discrete_rows(1, 5)))
+    step_id = client.get("/api/loops/aisle-crossing/rollouts/r0/steps", headers=admin).json()[
+        "items"
+    ][2]["id"]
+    client.post("/api/loops", json=CONTINUOUS_SPEC, headers=admin)
+    elsewhere = client.get(f"/api/loops/aisle-speed/states/{step_id}", headers=admin)
+    assert elsewhere.status_code == 404
+    assert f"loop 'aisle-speed' has no state {step_id}" in elsewhere.json()["detail"]
+    missing = client.get("/api/loops/aisle-crossing/states/999999", headers=admin)
+    assert missing.status_code == 404 and "no state 999999" in missing.json()["detail"]
+    here = client.get(f"/api/loops/aisle-crossing/states/{step_id}?seconds=0.1", headers=admin)
+    ctx = here.json()
+    assert [s["step"] for s in ctx["before"] + [ctx["state"]] + ctx["after"]] == [1, 2, 3]
+
+
 def test_paging(client, loop, uploader, admin):
     upload(client, uploader, parquet_bytes(discrete_rows(5, 2)))
     page = client.get(
