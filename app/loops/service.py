@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
-from sqlalchemy import func, select
+from functools import cache
+
+from sqlalchemy import Select, bindparam, func, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
@@ -49,10 +51,17 @@ def list_loops(session: Session) -> list[Loop]:
 
 def get_loop(session: Session, *, slug: str) -> Loop:
     """The loop with this slug, or NotFound."""
-    loop = session.scalar(select(Loop).where(Loop.slug == slug))
+    loop = session.scalar(_loop_by_slug(), {"slug": slug})
     if loop is None:
         raise NotFound(f"no loop with slug '{slug}'")
     return loop
+
+
+@cache
+def _loop_by_slug() -> Select[Loop]:
+    """The loop named :slug; built once, as every request whose path names a loop runs it
+    (building the statement cost about as much as running it)."""
+    return select(Loop).where(Loop.slug == bindparam("slug"))
 
 
 def set_log_mapping(session: Session, *, loop: Loop, mapping: LogMapping) -> Loop:

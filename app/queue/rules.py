@@ -13,6 +13,7 @@ from typing import Any
 from sqlalchemy import (
     ColumnElement,
     DateTime,
+    Delete,
     Integer,
     Select,
     Table,
@@ -138,6 +139,15 @@ def _lease_if_room() -> ReturningInsert[int]:
     return insert(leases).from_select(columns, source).returning(leases.c.id)
 
 
+@cache
+def _clear_leases() -> Delete:
+    """Delete the leases on item :item_id that are :user_id's or lapsed at :now."""
+    return delete(Lease).where(
+        Lease.item_id == bindparam("item_id"),
+        or_(Lease.user_id == bindparam("user_id"), Lease.expires_at <= bindparam("now")),
+    )
+
+
 def take_lease(
     session: Session, *, item_id: int, user_id: int, now: datetime, expires_at: datetime
 ) -> bool:
@@ -147,12 +157,8 @@ def take_lease(
     INSERT itself, a statement of its own: on PostgreSQL a row just unlocked by a claim that
     committed meanwhile was judged on an older snapshot by the query that found it.
     """
-    session.execute(
-        delete(Lease).where(
-            Lease.item_id == item_id, or_(Lease.user_id == user_id, Lease.expires_at <= now)
-        )
-    )
     params = {"item_id": item_id, "user_id": user_id, "expires_at": expires_at, "now": now}
+    session.execute(_clear_leases(), params)
     # RETURNING, not rowcount: drivers need not count the rows of INSERT ... SELECT
     return session.execute(_lease_if_room(), params).first() is not None
 

@@ -14,10 +14,11 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from datetime import datetime, timedelta
+from functools import cache
 from typing import Any
 
 import numpy as np
-from sqlalchemy import delete, func, insert, or_, select, update
+from sqlalchemy import Select, Update, bindparam, delete, func, insert, or_, select, update
 from sqlalchemy.orm import Session
 
 from ..auth.models import User
@@ -168,17 +169,11 @@ def claim_next(session: Session, *, loop: Loop, user_id: int, now: datetime) -> 
     params: dict[str, Any] = {"user_id": user_id, "now": now}
     with write_transaction(session):
         if postgres:  # one claim at a time per annotator, so a double click takes one lease
-            session.execute(
-                select(User.id).where(User.id == user_id).with_for_update(key_share=True)
-            )
-        round_ids = list(
-            session.scalars(select(Round.id).where(Round.loop_id == loop.id).order_by(Round.number))
-        )
+            session.execute(_lock_annotator(), params)
+        round_ids = list(session.scalars(_loop_rounds(), {"loop_id": loop.id}))
         for held in session.execute(live_leases_query(), params):
             if held.status == ITEM_OPEN and held.round_id in round_ids:
-                session.execute(
-                    update(Lease).where(Lease.id == held.id).values(expires_at=expires_at)
-                )
+                session.execute(_extend_lease(), {"lease_id": held.id, "expires_at": expires_at})
                 item = lock_item(session, loop=loop, item_id=held.item_id, lock=False)
                 return Claim(item=item, expires_at=expires_at)
         for round_id in round_ids:
@@ -196,6 +191,28 @@ def claim_next(session: Session, *, loop: Loop, user_id: int, now: datetime) -> 
                     return Claim(item=candidate, expires_at=expires_at)
                 passed.append(candidate.id)  # judged on a stale snapshot (PostgreSQL): next one
         return None
+
+
+# Statements of the claim path, built once (see app/queue/rules.py for why).
+@cache
+def _lock_annotator() -> Select[int]:
+    return select(User.id).where(User.id == bindparam("user_id")).with_for_update(key_share=True)
+
+
+@cache
+def _loop_rounds() -> Select[int]:
+    return select(Round.id).where(Round.loop_id == bindparam("loop_id")).order_by(Round.number)
+
+
+@cache
+def _extend_lease() -> Update:
+    # :lease_id, not :id: an UPDATE reads a key named like a column as a value to SET
+    return (
+        update(Lease)
+        .where(Lease.id == bindparam("lease_id"))
+        .values(expires_at=bindparam("expires_at"))
+        .execution_options(synchronize_session=False)
+    )
 
 
 def renew(session: Session, *, loop: Loop, item_id: int, user_id: int, now: datetime) -> datetime:
