@@ -7,6 +7,7 @@ from fastapi import APIRouter, Request, Response, status
 from fastapi.responses import HTMLResponse
 
 from ..deps import AdminDep, AnnotatorDep, SessionDep
+from ..json_answers import json_answer
 from ..limits import RowId
 from ..loops.deps import LoopDep, RoundDep
 from ..loops.spec import spec_of
@@ -30,13 +31,14 @@ QUEUE = "/api/loops/{slug}/queue"
 
 
 @router.post(QUEUE + "/claim", response_model=ClaimRead)
-def claim(session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> ClaimRead:
+def claim(session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> Response:
     """Lease the next state to label, or get back the one already held (annotator)."""
     with CLAIM_SECONDS.time():
         claimed = service.claim_next(session, loop=loop, user_id=caller.user_id, now=utcnow())
     if claimed is None:
-        return ClaimRead(item=None)
-    return ClaimRead(item=bench_item(session, loop=loop, claim=claimed, user_id=caller.user_id))
+        return json_answer(ClaimRead(item=None))
+    item = bench_item(session, loop=loop, claim=claimed, user_id=caller.user_id)
+    return json_answer(ClaimRead(item=item))
 
 
 @router.post(QUEUE + "/items/{item_id}/renew", response_model=LeaseRead)
@@ -64,11 +66,10 @@ def skip(item_id: RowId, session: SessionDep, caller: AnnotatorDep, loop: LoopDe
 def submit(
     item_id: RowId,
     body: LabelCreate,
-    response: Response,
     session: SessionDep,
     caller: AnnotatorDep,
     loop: LoopDep,
-) -> LabelRead:
+) -> Response:
     """Submit an answer (an action, or unsure) for a held item; repeats are harmless (annotator)."""
     done = service.submit(
         session,
@@ -82,11 +83,9 @@ def submit(
         seconds_spent=body.seconds_spent,
         now=utcnow(),
     )
-    if done.repeated:
-        response.status_code = status.HTTP_200_OK
     label = done.label
     action = stored_action(label)
-    return LabelRead(
+    answer = LabelRead(
         id=label.id,
         item_id=item_id,
         step_id=label.step_id,
@@ -99,6 +98,7 @@ def submit(
         created_at=label.created_at,
         repeated=done.repeated,
     )
+    return json_answer(answer, status_code=200 if done.repeated else 201)
 
 
 @router.get(QUEUE + "/progress", response_model=service.Progress)

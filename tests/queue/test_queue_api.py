@@ -5,10 +5,13 @@ from __future__ import annotations
 
 import json
 from html.parser import HTMLParser
+from typing import Any
 
 import pytest
+from pydantic import TypeAdapter
 
 from expertloop.deps import SESSION_COOKIE
+from expertloop.queue.schemas import ClaimRead, LabelRead
 from tests.conftest import store_contents
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC, sign_in_form
 
@@ -118,6 +121,41 @@ def test_continuous_submit_and_bounds(continuous_loop, client, ann):
     body["action"] = [0.75, 0.125]
     stored = submit(client, ann, item["item_id"], body, "aisle-speed").json()
     assert stored["action"] == [0.75, 0.125] and stored["action_name"] is None
+
+
+@pytest.mark.parametrize("slug", ["aisle-crossing", "aisle-speed"])
+def test_claim_and_submit_answers_are_their_schemas_json(
+    discrete_loop, continuous_loop, client, ann, slug
+):
+    """The claim and submit routes encode their answers themselves (app/json_answers.py): the
+    bytes must be what FastAPI sends for the declared model (pydantic's JSON of it, by alias),
+    with its content type and status, and the schema must still name the models."""
+    claims = TypeAdapter(ClaimRead)
+    labels = TypeAdapter(LabelRead)
+
+    def canonical(adapter: TypeAdapter[Any], body: bytes) -> bytes:
+        return adapter.dump_json(adapter.validate_json(body), by_alias=True)
+
+    got = client.post(Q.format(slug=slug) + "/claim", headers=ann)
+    assert got.status_code == 200 and got.headers["content-type"] == "application/json"
+    assert got.content == canonical(claims, got.content)
+    item = got.json()["item"]
+    assert item["lease_expires_at"].endswith("Z")  # the zone, as UtcDatetime answers carry it
+    action = 1 if slug == "aisle-crossing" else [0.75, 0.125]
+    body = {"submission_id": f"json-{slug}", "answer": "action", "action": action}
+    for status in (201, 200):  # stored, then the repeat
+        sent = submit(client, ann, item["item_id"], body, slug)
+        assert sent.status_code == status and sent.headers["content-type"] == "application/json"
+        assert sent.content == canonical(labels, sent.content)
+        assert sent.json()["repeated"] is (status == 200)
+    paths = client.get("/openapi.json").json()["paths"]
+    declared = {
+        "/claim": ("200", "ClaimRead"),
+        "/items/{item_id}/labels": ("201", "LabelRead"),
+    }
+    for path, (status, model) in declared.items():
+        content = paths["/api/loops/{slug}/queue" + path]["post"]["responses"][status]["content"]
+        assert content["application/json"]["schema"]["$ref"].endswith("/" + model)
 
 
 def test_skip_renew_and_progress(discrete_loop, client, ann):
