@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterator
-from contextlib import contextmanager
+from collections.abc import AsyncIterator, Callable
+from contextlib import asynccontextmanager
 from typing import Annotated
 
+from anyio import CancelScope, CapacityLimiter, to_thread
 from fastapi import Depends, Request
 from sqlalchemy.exc import InterfaceError, OperationalError
 from sqlalchemy.orm import Session, sessionmaker
@@ -18,28 +19,45 @@ CSRF_HEADER = "x-csrf-token"
 CSRF_FIELD = "csrf_token"
 
 
-@contextmanager
-def _request_session(factory: sessionmaker[Session]) -> Iterator[Session]:
+def _close(session: Session) -> None:
+    try:
+        session.close()
+    except (OperationalError, InterfaceError) as exc:
+        # The store went away during the request, so closing (a ROLLBACK) failed on a dead
+        # connection, which SQLAlchemy has already dropped from the pool. For a read session
+        # this runs after the answer was sent: raising here would cut the client's connection
+        # instead of leaving it the answer it got (or the 503 for the error the request itself
+        # met).
+        if not exc.connection_invalidated:
+            raise
+
+
+async def _in_thread_shielded(work: Callable[[Session], None], session: Session) -> None:
+    """Run work on the session in the thread pool even if the request is being cancelled, with
+    a limiter of its own (as FastAPI does for a sync dependency's exit): a pool whose threads
+    all wait for store connections must not keep the session that would free one from
+    committing or closing."""
+    with CancelScope(shield=True):
+        await to_thread.run_sync(work, session, limiter=CapacityLimiter(1))
+
+
+@asynccontextmanager
+async def _request_session(factory: sessionmaker[Session]) -> AsyncIterator[Session]:
+    # Made on the event loop: a new session holds no connection until its first statement, so
+    # making one does no I/O, and a sync dependency's entry would cost a trip through the thread
+    # pool on every request. Closing it (a ROLLBACK, the connection back to the pool) is I/O and
+    # runs in the pool.
     session = factory()
     try:
         yield session
     finally:
-        try:
-            session.close()
-        except (OperationalError, InterfaceError) as exc:
-            # The store went away during the request, so closing (a ROLLBACK) failed on a dead
-            # connection, which SQLAlchemy has already dropped from the pool. For a read
-            # session this runs after the answer was sent: raising here would cut the client's
-            # connection instead of leaving it the answer it got (or the 503 for the error the
-            # request itself met).
-            if not exc.connection_invalidated:
-                raise
+        await _in_thread_shielded(_close, session)
 
 
-def get_session(request: Request) -> Iterator[Session]:
+async def get_session(request: Request) -> AsyncIterator[Session]:
     """A store session for one request: for reads, and for services that open their own write
     transactions (`write_transaction`)."""
-    with _request_session(request.app.state.session_factory) as session:
+    async with _request_session(request.app.state.session_factory) as session:
         yield session
 
 
@@ -49,15 +67,16 @@ def get_app_settings(request: Request) -> Settings:
     return settings
 
 
-def get_writer_session(request: Request) -> Iterator[Session]:
+async def get_writer_session(request: Request) -> AsyncIterator[Session]:
     """The unit of work of a route that writes: committed when the route returns, before the
     answer is sent (so a failed commit is the answer), rolled back when it raises. Its
     transactions take SQLite's write lock at BEGIN (see app.db.make_writer_session_factory).
     Services only flush; contended writes (queue claims, submits) frame their own short
-    transactions with `write_transaction` instead."""
-    with _request_session(request.app.state.writer_session_factory) as session:
+    transactions with `write_transaction` instead. The commit runs in the thread pool: it is
+    I/O, and a commit that changed who may sign in waits there (app/auth/changes.py)."""
+    async with _request_session(request.app.state.writer_session_factory) as session:
         yield session
-        session.commit()
+        await _in_thread_shielded(Session.commit, session)
 
 
 SessionDep = Annotated[Session, Depends(get_session)]
