@@ -45,13 +45,17 @@ async def _in_thread_shielded(work: Callable[[Session], None], session: Session)
 async def _request_session(factory: sessionmaker[Session]) -> AsyncIterator[Session]:
     # Made on the event loop: a new session holds no connection until its first statement, so
     # making one does no I/O, and a sync dependency's entry would cost a trip through the thread
-    # pool on every request. Closing it (a ROLLBACK, the connection back to the pool) is I/O and
-    # runs in the pool.
+    # pool on every request. Closing a session in a transaction (a ROLLBACK, the connection back
+    # to the pool) is I/O and runs in the pool; one whose work ended with a commit (a queue
+    # submit's write transaction) holds no connection, and closing it only forgets its objects.
     session = factory()
     try:
         yield session
     finally:
-        await _in_thread_shielded(_close, session)
+        if session.in_transaction():
+            await _in_thread_shielded(_close, session)
+        else:
+            session.close()
 
 
 async def get_session(request: Request) -> AsyncIterator[Session]:
