@@ -94,8 +94,10 @@ def submit(
                 raise Conflict(f"you already labelled item {item_id}")
             if item.status != ITEM_OPEN:
                 raise Conflict(f"item {item_id} already has all its labels")
-            # the lease is returned here; finding none live refuses the submit (and rolls back)
-            if session.execute(_return_lease(), params).rowcount == 0:  # type: ignore[attr-defined]
+            # the lease is returned here; finding none live refuses the submit (and rolls back).
+            # Statements without ORM objects run on the connection (see app/queue/rules.py).
+            connection = session.connection()
+            if connection.execute(_return_lease(), params).rowcount == 0:
                 raise Conflict(
                     f"you hold no live claim on item {item_id} (it lapsed or was never taken); "
                     "claim the next item"
@@ -145,7 +147,7 @@ def submit(
                 )
             done = item.labels_done + 1 >= item.labels_needed
             # only :item_id: an UPDATE reads other keys named like columns as values to SET
-            session.execute(_count_label(), {"item_id": item.id})
+            connection.execute(_count_label(), {"item_id": item.id})
             if done and item.labels_needed > 1:  # lapsed leases of others may be left
                 session.execute(delete(Lease).where(Lease.item_id == item.id))
             return Submitted(label=label, span_labels=len(earlier), repeated=False)

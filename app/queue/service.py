@@ -168,12 +168,14 @@ def claim_next(session: Session, *, loop: Loop, user_id: int, now: datetime) -> 
     postgres = is_postgresql(session)
     params: dict[str, Any] = {"user_id": user_id, "now": now}
     with write_transaction(session):
+        # statements without ORM objects run on the connection (see app/queue/rules.py)
+        connection = session.connection()
         if postgres:  # one claim at a time per annotator, so a double click takes one lease
-            session.execute(_lock_annotator(), params)
-        round_ids = list(session.scalars(_loop_rounds(), {"loop_id": loop.id}))
-        for held in session.execute(live_leases_query(), params):
+            connection.execute(_lock_annotator(), params)
+        round_ids = list(connection.scalars(_loop_rounds(), {"loop_id": loop.id}))
+        for held in connection.execute(live_leases_query(), params).all():
             if held.status == ITEM_OPEN and held.round_id in round_ids:
-                session.execute(_extend_lease(), {"lease_id": held.id, "expires_at": expires_at})
+                connection.execute(_extend_lease(), {"lease_id": held.id, "expires_at": expires_at})
                 item = lock_item(session, loop=loop, item_id=held.item_id, lock=False)
                 return Claim(item=item, expires_at=expires_at)
         for round_id in round_ids:
