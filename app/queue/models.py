@@ -82,7 +82,9 @@ class Label(Base):
     __tablename__ = "labels"
     __table_args__ = (
         Index("ix_labels_round_id_id", "round_id", "id"),
-        Index("ix_labels_step_id", "step_id"),
+        # a state's labels, and one annotator's answer on it (the submit's repeat check): with
+        # the user id in the key the planner never scans an annotator's every label instead
+        Index("ix_labels_step_id_user_id", "step_id", "user_id"),
         # an annotator's labels of the day (progress, pace) without reading every label
         Index("ix_labels_user_id_created_at", "user_id", "created_at"),
         # a label is superseded at most once: by its annotator's correction, or their undo
