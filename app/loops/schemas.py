@@ -86,6 +86,11 @@ class LoopSettings(RequestBody):
     )
     audit_fraction: float = Field(default=0.1, ge=0.0, le=1.0)
     spread: bool = False
+    stratify: bool = Field(
+        default=True,
+        description="Share the ranked picks among k-means cells of the round's states in "
+        "proportion to each cell's total score, best-scored first within a cell.",
+    )
     takeover_window_s: float = Field(default=3.0, ge=0.0)
     takeover_boost: float = Field(default=0.25, ge=0.0, le=1.0)
     uncertainty_method: Literal["auto", "entropy", "margin", "least_confidence"] = Field(

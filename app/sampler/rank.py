@@ -43,6 +43,8 @@ class RankParams:
     uncertainty_method: str = AUTO_METHOD
     self_tuning: bool = True
     tuning_min_disagreements: int = 10
+    # recorded jobs from before this setting ranked without strata: a rerun must too
+    stratify: bool = False
     # the training set's cut-off when the ranking was requested: a rerun reads the same one
     training_max_step_id: int | None = None
     training_max_label_id: int | None = None
@@ -213,9 +215,10 @@ def rank_round(
         min_gap=params.min_gap_steps,
         audit_fraction=params.audit_fraction,
         rng=np.random.default_rng(params.seed),
-        features=steps.features[candidates] if params.spread else None,
+        features=steps.features[candidates] if params.spread or params.stratify else None,
         spread=params.spread,
         takeover_boost=boost,
+        stratify=params.stratify,
     )
     notes.extend(result.notes)
     progress(0.9)
@@ -240,6 +243,7 @@ def rank_round(
             "min_gap_steps": params.min_gap_steps,
             "gap_steps_used": result.final_gap,
             "spread": params.spread,
+            "stratify": params.stratify,
         },
         notes=notes,
     )

@@ -9,7 +9,12 @@ Rules (the README's "Ranking a round (the sampler)"; docs/references.md, "Select
    steps) of a state already taken from the same rollout, audit picks included. Plain top-B picks
    near-duplicates; the gap spreads labels across time. Counting in steps, not seconds, keeps
    the rule's effect the same at any control rate.
-3. Optionally (``spread=True``) the ranked part is chosen by k-center greedy (farthest-first)
+3. With ``stratify=True`` the ranked part is taken in another order: the candidates are split
+   into k-means cells in standardised feature space, and the cells share the picks in
+   proportion to their total score, each cell best-scored first (app/sampler/strata.py), so
+   the picks follow where the learner spent its time instead of one corner of the score. A
+   round too short for the gap to leave room for every ranked pick goes in score order.
+   Optionally (``spread=True``) the ranked part is chosen by k-center greedy (farthest-first)
    in standardised feature space from a pool of the best gap-respecting candidates.
 4. The budget is always spent when there are at least ``budget`` candidates: where the gap
    leaves too few eligible states, it is halved step by step, then dropped, and the fill goes on
@@ -32,6 +37,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from .novelty import Standardiser
+from .strata import strata, stratified_order
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -164,6 +170,7 @@ def _validate(
     spread: bool,
     spread_pool_factor: int,
     boost: ArrayLike | None,
+    stratify: bool = False,
 ) -> tuple[FloatArray, FloatArray, NDArray[np.float64] | None]:
     s = np.asarray(scores, dtype=np.float64)
     t = np.asarray(positions, dtype=np.float64)
@@ -184,11 +191,11 @@ def _validate(
             raise ValueError("takeover_boost must be a finite array of the same length as scores")
         s = s + b
     f = None
-    if spread:
+    if spread and spread_pool_factor < 1:
+        raise ValueError(f"spread_pool_factor must be >= 1, got {spread_pool_factor}")
+    if spread or stratify:
         if features is None:
-            raise ValueError("spread=True needs features")
-        if spread_pool_factor < 1:
-            raise ValueError(f"spread_pool_factor must be >= 1, got {spread_pool_factor}")
+            raise ValueError("spread=True and stratify=True need features")
         f = np.asarray(features, dtype=np.float64)
         if f.ndim != 2 or f.shape[0] != n:
             raise ValueError(f"features: expected shape ({n}, n_features), got {f.shape}")
@@ -280,6 +287,7 @@ def select(
     spread: bool = False,
     spread_pool_factor: int = 5,
     takeover_boost: ArrayLike | None = None,
+    stratify: bool = False,
 ) -> SelectionResult:
     """Choose ``min(budget, n_candidates)`` candidate states: an audit sample, then the best.
 
@@ -315,6 +323,10 @@ def select(
         Pool size as a multiple of the ranked budget.
     takeover_boost : array_like of shape (n_candidates,), optional
         Added to ``scores`` before ranking; see :func:`takeover_boost`.
+    stratify : bool
+        Take the ranked part in the order of :func:`app.sampler.strata.stratified_order` over
+        ``min(n_ranked, MAX_STRATA)`` k-means cells of the standardised ``features`` (needed),
+        drawn from ``rng`` after the audit sample; scores must be non-negative.
 
     Returns
     -------
@@ -331,6 +343,7 @@ def select(
         spread,
         spread_pool_factor,
         takeover_boost,
+        stratify,
     )
     n = s.size
     notes: list[str] = []
@@ -352,7 +365,20 @@ def select(
     n_ranked = min(budget, n) - n_audit
     target = n_ranked * spread_pool_factor if spread else n_ranked
     accepted: list[int] = []
-    _fill(by_score, blocked, lo, hi, target, accepted)
+    if stratify and n_ranked > 1:
+        assert f is not None
+        cells = strata(Standardiser.fit(f).transform(f[order]), n_ranked, rng)
+        _fill(stratified_order(c_scores, cells), blocked.copy(), lo, hi, target, accepted)
+        if len(accepted) < target:
+            # A round too short for the gap: the gap already spreads the few picks it allows
+            # over the whole round, and strata would only take places from the best states.
+            notes.append(
+                f"{_gap_words(min_gap)} left room for {len(accepted)} of {target} ranked "
+                "states: ranked in score order, without strata"
+            )
+            accepted = []
+    if not accepted:
+        _fill(by_score, blocked, lo, hi, target, accepted)
     ranked = np.asarray(accepted, dtype=np.int64)
     if spread and ranked.size > n_ranked:
         assert f is not None

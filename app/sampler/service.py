@@ -42,6 +42,7 @@ def rank_params(
         min_gap_steps=s.min_gap_steps,
         audit_fraction=s.audit_fraction,
         spread=s.spread,
+        stratify=s.stratify,
         uncertainty_weight=s.uncertainty_weight,
         novelty_weight=s.novelty_weight,
         novelty_k=s.novelty_k,

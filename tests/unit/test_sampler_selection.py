@@ -11,6 +11,7 @@ from scipy.spatial.distance import cdist
 from scipy.stats import chisquare
 
 from expertloop.sampler import selection as sel
+from expertloop.sampler import strata
 
 
 def make_round(rng, n=3000, n_rollouts=40, step_s=0.1):
@@ -158,12 +159,14 @@ def test_same_seed_same_selection_different_seed_different_audit():
     assert set(a.indices[: a.n_audit]) != set(c.indices[: c.n_audit])
 
 
-@pytest.mark.parametrize("spread", [False, True])
-def test_shuffling_candidates_does_not_change_the_states_chosen(spread):
+@pytest.mark.parametrize("spread,stratify", [(False, False), (True, False), (False, True)])
+def test_shuffling_candidates_does_not_change_the_states_chosen(spread, stratify):
     rng = np.random.default_rng(5)
     scores, rollout, times = make_round(rng, n=2000)
     features = rng.standard_normal((2000, 6))
-    kwargs = dict(min_gap=0.35, audit_fraction=0.1, features=features, spread=spread)
+    kwargs = dict(
+        min_gap=0.35, audit_fraction=0.1, features=features, spread=spread, stratify=stratify
+    )
     base = sel.select(scores, rollout, times, 100, rng=np.random.default_rng(11), **kwargs)
     perm = rng.permutation(2000)
     kwargs["features"] = features[perm]
@@ -237,6 +240,105 @@ def test_spread_covers_more_clusters_than_plain_ranking():
     assert len(set(label[plain.indices])) == 1
     assert len(set(label[spread.indices])) == 5
     assert spread.indices[0] == plain.indices[0]  # seeded from the top-scored state
+
+
+def lingering_round(rng):
+    """A learner that spent most of the round in one stretch: 1000 states in a tight blob with
+    middling scores, 30 outlying states with the highest scores, one rollout each."""
+    blob = rng.standard_normal((1000, 4)) * 0.3
+    outliers = rng.standard_normal((30, 4)) * 3.0 + 6.0
+    features = np.concatenate([blob, outliers])
+    scores = np.concatenate([0.2 + 0.4 * rng.random(1000), 0.9 + 0.1 * rng.random(30)])
+    return scores, features, np.arange(1030), np.zeros(1030)
+
+
+def slow_sainte_lague(scores, cells, seats):
+    """Obvious reference: seat by seat, the cell with the highest total / (2 * seats so far + 1)
+    takes its best state not yet taken (docs/references.md, "k-means strata")."""
+    members = {c: sorted(np.flatnonzero(cells == c), key=lambda i: -scores[i]) for c in set(cells)}
+    total = {c: scores[m].sum() for c, m in members.items()}
+    taken = {c: 0 for c in members}
+    chosen = []
+    for _ in range(seats):
+        c = max(members, key=lambda c: total[c] / (2 * taken[c] + 1) if members[c] else -1)
+        chosen.append(members[c].pop(0))
+        taken[c] += 1
+    return chosen
+
+
+def test_strata_give_the_bulk_of_the_round_its_share():
+    rng = np.random.default_rng(31)
+    scores, features, rollout, times = lingering_round(rng)
+    kwargs = dict(min_gap=0, audit_fraction=0, features=features)
+    plain = sel.select(scores, rollout, times, 20, rng=np.random.default_rng(0), **kwargs)
+    split = sel.select(
+        scores, rollout, times, 20, rng=np.random.default_rng(0), stratify=True, **kwargs
+    )
+    assert (plain.indices >= 1000).all()  # top-B: every pick an outlier
+    # the blob holds 400 of the total score 428 (94%), split among most of the cells
+    assert (split.indices < 1000).sum() >= 15
+    # the same cells as select draws them (after its empty audit draw), then the slow rule
+    draw = np.random.default_rng(0)
+    draw.choice(1030, size=0, replace=False)
+    z = (features - features.mean(axis=0)) / features.std(axis=0)
+    cells = strata.strata(z, 20, draw)
+    assert_array_equal(split.indices, slow_sainte_lague(scores, cells, 20))
+    assert split.notes == []
+
+
+def test_strata_keep_the_audit_sample_and_the_gap():
+    rng = np.random.default_rng(32)
+    scores, rollout, times = make_round(rng, n=2000)
+    features = rng.standard_normal((2000, 3))
+    kwargs = dict(min_gap=0.35, audit_fraction=0.2, features=features)
+    plain = sel.select(scores, rollout, times, 60, rng=np.random.default_rng(4), **kwargs)
+    split = sel.select(
+        scores, rollout, times, 60, rng=np.random.default_rng(4), stratify=True, **kwargs
+    )
+    # the audit is drawn first from the same generator: the same states
+    assert_array_equal(split.indices[: split.n_audit], plain.indices[: plain.n_audit])
+    assert split.n_audit == 12 and len(split.indices) == 60
+    assert_gap_respected(split, rollout, times, 0.35)
+    assert split.final_gap == 0.35 and split.notes == []
+
+
+def test_strata_step_aside_in_a_round_too_short_for_the_gap():
+    rng = np.random.default_rng(33)
+    scores, rollout, times = make_round(rng, n=300, n_rollouts=3)
+    features = rng.standard_normal((300, 3))
+    kwargs = dict(min_gap=40, audit_fraction=0, features=features)
+    plain = sel.select(scores, rollout, times, 12, rng=np.random.default_rng(0), **kwargs)
+    split = sel.select(
+        scores, rollout, times, 12, rng=np.random.default_rng(0), stratify=True, **kwargs
+    )
+    assert_array_equal(split.indices, plain.indices)
+    assert split.notes[0].endswith("ranked in score order, without strata")
+    assert split.notes[1:] == plain.notes
+
+
+def test_strata_need_features_and_non_negative_scores():
+    with pytest.raises(ValueError, match="need features"):
+        sel.select(
+            [0.5, 0.2, 0.1],
+            [0, 1, 2],
+            [0, 0, 0],
+            2,
+            min_gap=0,
+            rng=np.random.default_rng(0),
+            stratify=True,
+        )
+    with pytest.raises(ValueError, match="non-negative"):
+        sel.select(
+            [0.5, -0.2, 0.1],
+            [0, 1, 2],
+            [0, 0, 0],
+            3,
+            min_gap=0,
+            audit_fraction=0,
+            rng=np.random.default_rng(0),
+            features=np.eye(3),
+            stratify=True,
+        )
 
 
 def test_takeover_boost_by_hand():
