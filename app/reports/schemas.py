@@ -165,6 +165,8 @@ class SelfTuningRead(BaseModel):
     n_labelled: int | None = None
     n_disagreements: int | None = None
     effective_n: float | None = None
+    effective_disagreements: float | None = None
+    effective_agreements: float | None = None
     audit_calibration: CalibrationRead | None = None
 
 

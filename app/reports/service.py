@@ -229,6 +229,8 @@ def _self_tuning(
             "n_labelled": model.n_labelled,
             "n_disagreements": model.n_disagreements,
             "effective_n": model.effective_n,
+            "effective_disagreements": model.effective_disagreements,
+            "effective_agreements": model.effective_agreements,
             "audit_calibration": tuning.calibration(
                 model.predict(signals[audit]), disagrees[audit]
             ),

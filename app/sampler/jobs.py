@@ -39,11 +39,14 @@ def tune(
     if len(found) == 0:
         return None, {"used": False, "why": "no labelled states in earlier rounds yet"}
     model = tuning.fit_disagreement_model(found.signals, found.disagrees, found.weights)
-    used = tuning.enough_to_rank(model, params.tuning_min_disagreements)
+    used = tuning.enough_to_rank(
+        model, params.tuning_min_disagreements, effective=params.tuning_effective_counts
+    )
+    counted = "effective " if params.tuning_effective_counts else ""
     why = (
         "ranked by the predicted probability of disagreement"
         if used
-        else f"fewer than {params.tuning_min_disagreements} disagreements or agreements "
+        else f"fewer than {params.tuning_min_disagreements} {counted}disagreements or agreements "
         "among labelled states: ranked by the weighted mean"
     )
     audit = found.is_audit

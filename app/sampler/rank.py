@@ -43,8 +43,10 @@ class RankParams:
     uncertainty_method: str = AUTO_METHOD
     self_tuning: bool = True
     tuning_min_disagreements: int = 10
-    # recorded jobs from before this setting ranked without strata: a rerun must too
+    # recorded jobs from before these existed ranked without strata and gated the self-tuned
+    # model on row counts: a rerun must too
     stratify: bool = False
+    tuning_effective_counts: bool = False
     # the training set's cut-off when the ranking was requested: a rerun reads the same one
     training_max_step_id: int | None = None
     training_max_label_id: int | None = None

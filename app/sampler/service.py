@@ -51,6 +51,7 @@ def rank_params(
         uncertainty_method=s.uncertainty_method,
         self_tuning=s.self_tuning,
         tuning_min_disagreements=s.tuning_min_disagreements,
+        tuning_effective_counts=True,
         training_max_step_id=None if cutoff is None else cutoff.max_step_id,
         training_max_label_id=None if cutoff is None else cutoff.max_label_id,
     )

@@ -46,6 +46,10 @@ class DisagreementModel:
     n_labelled: int
     n_disagreements: int
     effective_n: float
+    # Kish effective counts of the disagreeing and agreeing rows (None: fitted before they
+    # were recorded); see enough_to_rank
+    effective_disagreements: float | None = None
+    effective_agreements: float | None = None
 
     def predict(self, signals: ArrayLike) -> FloatArray:
         """Predicted probability of disagreement for rows of signals (n, len(SIGNALS))."""
@@ -169,12 +173,35 @@ def fit_disagreement_model(
         weights={name: float(v) for name, v in zip(SIGNALS, coef, strict=True)},
         n_labelled=int(len(y)),
         n_disagreements=int(y.sum()),
-        effective_n=float(w.sum() ** 2 / (w @ w)),
+        effective_n=effective_count(w),
+        effective_disagreements=effective_count(w[y]),
+        effective_agreements=effective_count(w[~y]),
     )
 
 
-def enough_to_rank(model: DisagreementModel, minimum: int) -> bool:
-    """Rank by the model only with at least `minimum` disagreements and agreements behind it."""
+def effective_count(weights: ArrayLike) -> float:
+    """Kish's effective sample size ``(sum w)^2 / sum w^2`` of weighted rows (0 for none).
+
+    Equal weights give the number of rows; one row weighing far more than the rest counts as
+    about one.
+    """
+    w = np.asarray(weights, dtype=np.float64)
+    return float(w.sum() ** 2 / (w @ w)) if w.size and (w @ w) > 0 else 0.0
+
+
+def enough_to_rank(model: DisagreementModel, minimum: int, *, effective: bool = True) -> bool:
+    """Rank by the model only with at least `minimum` disagreements and agreements behind it.
+
+    Counted as the fit sees them (``effective``): an audit row stands for many candidates and
+    weighs accordingly, so a fit over a few audit rows and many ranked ones rests on about as
+    many observations as there are audit rows, however many ranked rows it holds. Counting rows
+    (``effective=False``, how rankings requested before the effective counts were recorded
+    decided) let a model fitted on some eight effective observations rank rounds, and it ranked
+    them worse than its own uncertainty input (README, "Self-tuning").
+    """
+    if effective and model.effective_disagreements is not None:
+        assert model.effective_agreements is not None
+        return min(model.effective_disagreements, model.effective_agreements) >= minimum
     return min(model.n_disagreements, model.n_labelled - model.n_disagreements) >= minimum
 
 

@@ -33,7 +33,9 @@ def test_labelled_round_tunes_the_next_ranking(
         **DISCRETE_SPEC,
         "settings": {
             "audit_fraction": 0.5,
-            "tuning_min_disagreements": 3,
+            # counted as the fit weighs them: the first round's 6 disagreements (2 of them
+            # audit rows, which stand for the unchosen candidates) count as 2.3
+            "tuning_min_disagreements": 2,
             "self_tuning": enabled,
         },
     }
@@ -64,6 +66,7 @@ def test_labelled_round_tunes_the_next_ranking(
     assert second["result"]["methods"]["score"] == "predicted disagreement"
     model = record["model"]
     assert model["n_labelled"] == 12 and 3 <= model["n_disagreements"] <= 9
+    assert 2 <= min(model["effective_disagreements"], model["effective_agreements"]) < 3
     assert set(model["weights"]) == {"uncertainty_pct", "novelty_pct", "near_takeover"}
     # every chosen state's score is a probability now, and no boost is added on top
     assert all(0 < i["score"] < 1 and i["boost"] == 0 for i in selection["items"])

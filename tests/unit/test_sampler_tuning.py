@@ -84,6 +84,35 @@ def test_enough_to_rank_needs_both_outcomes():
     assert not tuning.enough_to_rank(lopsided, 10)  # only 5 agreements
 
 
+def test_effective_counts_by_hand():
+    # Kish's effective sample size (sum w)^2 / sum w^2 (L. Kish, 1965, Survey Sampling, from
+    # memory; docs/references.md, "Logistic regression"): equal weights count every row, one
+    # heavy row counts as about one
+    assert tuning.effective_count([1.0, 1.0, 1.0]) == 3.0
+    assert_allclose(tuning.effective_count([31.0, 1.0, 1.0]), 33.0**2 / 963.0)  # 1.13
+    assert tuning.effective_count([]) == 0.0
+
+
+def test_enough_to_rank_counts_what_the_fit_sees():
+    # one round of 100 candidates: 2 audit rows (weight (100 - 18) / 2 = 41) and 18 ranked; 12
+    # disagreements among the ranked rows and one among the audit rows
+    is_audit = np.array([True, True] + [False] * 18)
+    weights = tuning.stratum_weights(is_audit, 100)
+    disagrees = np.array([True, False] + [True] * 12 + [False] * 6)
+    signals = np.random.default_rng(0).random((20, 3))
+    model = tuning.fit_disagreement_model(signals, disagrees, weights)
+    assert model.n_disagreements == 13 and model.n_labelled - model.n_disagreements == 7
+    # disagreements: weights 41 and twelve 1s -> 53^2 / (1681 + 12) = 1.66; agreements 41 and
+    # six 1s -> 47^2 / 1687 = 1.31 (the fit's rescaling of the weights changes neither)
+    assert_allclose(model.effective_disagreements, 53.0**2 / 1693.0)
+    assert_allclose(model.effective_agreements, 47.0**2 / 1687.0)
+    assert not tuning.enough_to_rank(model, 2)
+    assert tuning.enough_to_rank(model, 2, effective=False)  # by rows: 13 and 7
+    # a model recorded before the effective counts were: rows decide
+    old = tuning.DisagreementModel(0.0, dict.fromkeys(tuning.SIGNALS, 0.0), 30, 12, 30.0)
+    assert tuning.enough_to_rank(old, 10)
+
+
 def test_model_record_round_trips():
     model = tuning.DisagreementModel(
         -1.5, {"uncertainty_pct": 2.0, "novelty_pct": 0.5, "near_takeover": 1.0}, 40, 12, 33.3
