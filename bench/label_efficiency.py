@@ -56,6 +56,7 @@ class Run:
     selection: str
     labels: list[int] = field(default_factory=list)
     scores: list[float] = field(default_factory=list)
+    trace: list[dict[str, Any]] = field(default_factory=list)
 
     def reach(self) -> float:
         """Labels when the score first reached the target (inf: never)."""
@@ -99,12 +100,14 @@ def _upload(client: Client, slug: str, number: int, columns: dict[str, Any], fol
     client.upload(slug, number, path)
 
 
-def _answer(client: Client, slug: str, task: tasks.GymTask) -> int:
+def _answer(client: Client, slug: str, task: tasks.GymTask, seen: list[Any]) -> int:
+    """Answer the queue as the scripted expert; append each labelled state's features."""
     answered = 0
     while True:
         item = client.request("POST", f"/api/loops/{slug}/queue/claim")["item"]
         if item is None:
             return answered
+        seen.append(item["state"]["features"])
         action = task.expert(np.asarray([item["state"]["features"]], np.float64))[0]
         payload: Any = int(action) if task.kind == "discrete" else [float(action[0])]
         client.request(
@@ -129,6 +132,8 @@ def run_gym(
     settings: dict[str, Any] = {"audit_fraction": 1.0} if run.selection == "uniform" else {}
     if args.gap_steps is not None:
         settings["min_gap_steps"] = args.gap_steps
+    if run.selection == "ranked":
+        settings.update(args.setting)
     admin.create_loop(task.spec(slug, settings))
     base = 1_000_000 + 10_000 * run.seed
     eval_seeds = [base + 9_000 + i for i in range(args.eval_episodes)]
@@ -150,14 +155,71 @@ def run_gym(
                 f"/api/loops/{slug}/rounds/{number}/ranking",
                 json={"budget": run.budget, "seed": run.seed * 100 + number},
             )
-            loop_run._wait(admin, started["job"])
-            labels += _answer(annotator, slug, task)
+            job = loop_run._wait(admin, started["job"])
+            seen: list[Any] = []
+            labels += _answer(annotator, slug, task, seen)
             admin.create_snapshot(slug, up_to_round=number)
+            if args.trace:
+                record = admin.request(
+                    "GET", f"/api/loops/{slug}/rounds/{number}/selection?limit=1"
+                )["params"]["self_tuning"]
+                run.trace.append(_trace(task, policy, visited, np.asarray(seen), job, record))
             policy = _train(admin, slug, task, run.seed * 100 + number)
-        achieved = tasks.run_episodes(task, policy, eval_seeds, "eval").returns.mean()
+        evaluated = tasks.run_episodes(task, policy, eval_seeds, "eval")
         run.labels.append(labels)
-        run.scores.append(float((achieved - floor) / (expert - floor)))
+        run.scores.append(float((evaluated.returns.mean() - floor) / (expert - floor)))
+        if args.trace and number:
+            run.trace[-1]["eval_error"] = _error_rate(task, policy, evaluated)
     return run
+
+
+def _error_rate(task: tasks.GymTask, policy: tasks.Ensemble, episodes: tasks.Episodes) -> float:
+    """Share of the learner's steps where the expert would have acted otherwise."""
+    features = np.asarray(episodes.columns["features"], np.float64)
+    return float(_disagrees(task, policy.act(features)[0], features).mean())
+
+
+def _disagrees(task: tasks.GymTask, learner: Any, features: Any) -> Any:
+    expert = task.expert(features)
+    if task.kind == "discrete":
+        return np.asarray(learner) != expert
+    # continuous: the service's default tolerance, 10% of the action range
+    tolerance = 0.1 * (task.high - task.low)
+    return np.abs(np.asarray(learner).reshape(expert.shape) - expert).max(axis=1) > tolerance
+
+
+def _trace(
+    task: tasks.GymTask,
+    policy: tasks.Ensemble,
+    visited: tasks.Episodes,
+    labelled: Any,
+    job: dict[str, Any],
+    tuning: dict[str, Any],
+) -> dict[str, Any]:
+    """What a round's selection picked, against the round's candidates (--trace): the
+    learner's error rate on each, how spread out the picks are, and what ranked them."""
+    features = np.asarray(visited.columns["features"], np.float64)
+    mean, scale = features.mean(axis=0), features.std(axis=0)
+    scale[scale == 0] = 1.0
+    picks = (labelled - mean) / scale
+    gaps = np.sqrt(((picks[:, None, :] - picks[None, :, :]) ** 2).sum(axis=2))
+    np.fill_diagonal(gaps, np.inf)
+    counts = (
+        np.bincount(task.expert(labelled), minlength=len(task.actions)).tolist()
+        if task.kind == "discrete"
+        else None
+    )
+    result = job["result"]
+    return {
+        "candidates": len(features),
+        "candidate_error": _error_rate(task, policy, visited),
+        "pick_error": float(_disagrees(task, policy.act(labelled)[0], labelled).mean()),
+        "pick_nearest_median": float(np.median(gaps.min(axis=1))),
+        "expert_actions": counts,
+        "score": result["methods"]["score"],
+        "self_tuning": result["self_tuning"]["used"],
+        "tuning_effective_n": tuning.get("model", {}).get("effective_n"),
+    }
 
 
 def run_demo(admin: Client, annotator: Client, run: Run, args: argparse.Namespace) -> Run:
@@ -302,6 +364,11 @@ def save(runs: list[Run], args: argparse.Namespace) -> None:
     )
 
 
+def _setting(text: str) -> tuple[str, Any]:
+    name, _, value = text.partition("=")
+    return name, json.loads(value)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--tasks", default="demo,acrobot,mountain-car")
@@ -313,7 +380,20 @@ def main() -> None:
     parser.add_argument("--demos", type=int, default=2, help="demonstration episodes")
     parser.add_argument("--eval-episodes", type=int, default=10)
     parser.add_argument("--gap-steps", type=int, default=None, help="override min_gap_steps")
+    parser.add_argument(
+        "--setting",
+        type=_setting,
+        action="append",
+        default=[],
+        help="NAME=JSON: a loop setting for the ranked loops (gym tasks), e.g. self_tuning=false",
+    )
     parser.add_argument("--out", type=Path, default=RESULTS / "label_efficiency")
+    parser.add_argument(
+        "--trace",
+        action="store_true",
+        help="record per round what the selection picked (gym tasks): the learner's error on "
+        "the picks and on all candidates, the picks' spread and label mix, in the saved runs",
+    )
     parser.add_argument(
         "--from-json",
         type=Path,
