@@ -303,6 +303,52 @@ def print_summary(lines: list[dict[str, Any]]) -> None:
         )
 
 
+def print_trace(runs: list[Run]) -> None:
+    """What the selections picked (runs with --trace), by selection, over groups of rounds:
+    the learner's error on the round's candidates and on the picks, the median distance from a
+    pick to the nearest other pick (features standardised over the round's candidates), the
+    share of the rarer expert action among the picks (discrete tasks) and the effective sample
+    size of the self-tuned model where one ranked."""
+    traced = [r for r in runs if r.trace]
+    if not traced:
+        return
+    groups = {
+        "all rounds": lambda t: True,
+        "learner failing (error > 0.25)": lambda t: t["candidate_error"] > 0.25,
+        "ranked by the self-tuned model": lambda t: t["self_tuning"],
+    }
+    print(
+        f"\n{'task':<13}{'B':>4} {'selection':<8} {'rounds':<31}{'n':>4}  {'err cand':>8}  "
+        f"{'err picks':>9}  {'nearest':>7}  {'rarer':>5}  {'eff n':>5}"
+    )
+    for task in dict.fromkeys(r.task for r in traced):
+        for budget in dict.fromkeys(r.budget for r in traced if r.task == task):
+            for selection in SELECTIONS:
+                rounds = [
+                    t
+                    for r in traced
+                    if (r.task, r.budget, r.selection) == (task, budget, selection)
+                    for t in r.trace
+                ]
+                for name, keep in groups.items():
+                    chosen = [t for t in rounds if keep(t)]
+                    if not chosen:
+                        continue
+                    mixes = [t["expert_actions"] for t in chosen if t["expert_actions"]]
+                    rarer = (
+                        f"{np.mean([sorted(m)[-2] / sum(m) for m in mixes]):.2f}" if mixes else "-"
+                    )
+                    eff = [t["tuning_effective_n"] for t in chosen if t.get("tuning_effective_n")]
+                    print(
+                        f"{task:<13}{budget:>4} {selection:<8} {name:<31}{len(chosen):>4}  "
+                        f"{np.mean([t['candidate_error'] for t in chosen]):>8.3f}  "
+                        f"{np.mean([t['pick_error'] for t in chosen]):>9.3f}  "
+                        f"{np.median([t['pick_nearest_median'] for t in chosen]):>7.2f}  "
+                        f"{rarer:>5}  "
+                        f"{(f'{np.median(eff):.1f}' if eff and selection == 'ranked' else '-'):>5}"
+                    )
+
+
 def plot(runs: list[Run], path: Path) -> None:
     """Median score (bars: lowest to highest seed) by round, ranked and uniform, per task and
     budget, stacked in one SVG drawn with the service's own chart code."""
@@ -379,6 +425,12 @@ def main() -> None:
     parser.add_argument("--episodes", type=int, default=8, help="learner rollouts per round")
     parser.add_argument("--demos", type=int, default=2, help="demonstration episodes")
     parser.add_argument("--eval-episodes", type=int, default=10)
+    parser.add_argument(
+        "--selections",
+        default=",".join(SELECTIONS),
+        choices=[",".join(SELECTIONS), *SELECTIONS],
+        help="run both (default) or one; uniform does not depend on --gap-steps or --setting",
+    )
     parser.add_argument("--gap-steps", type=int, default=None, help="override min_gap_steps")
     parser.add_argument(
         "--setting",
@@ -405,6 +457,7 @@ def main() -> None:
         saved = json.loads(args.from_json.read_text())
         runs = [Run(**r) for r in saved["runs"]]
         print_summary(summarise(runs, int(saved["args"]["rounds"])))
+        print_trace(runs)
         plot(runs, args.from_json.with_suffix(".svg"))
         return
     budgets = [int(b) for b in args.budgets.split(",")]
@@ -424,7 +477,7 @@ def main() -> None:
             for name in names:
                 for budget in budgets:
                     for seed in range(args.first_seed, args.first_seed + args.seeds):
-                        for selection in SELECTIONS:
+                        for selection in args.selections.split(","):
                             run = Run(name, budget, seed, selection)
                             if name == "demo":
                                 run_demo(admin, annotator, run, args)
@@ -441,6 +494,7 @@ def main() -> None:
     lines = summarise(runs, args.rounds)
     print()
     print_summary(lines)
+    print_trace(runs)
     print(f"\n{time.monotonic() - started:.0f} s; load average at end: {os.getloadavg()}")
     plot(runs, args.out.with_suffix(".svg"))
     save(runs, args)
