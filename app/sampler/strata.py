@@ -7,17 +7,18 @@ is highest (the learner's errors sit where it spends its time, and DAgger's erro
 over those states). A stretch the learner lingered in gets several picks, a few outlying states
 one.
 
-Pure functions over numpy arrays. Seeding is k-means++ (D. Arthur and S. Vassilvitskii, 2007,
-*k-means++: the advantages of careful seeding*), then Lloyd's iterations; see
-docs/references.md, "k-means strata".
+Pure functions over numpy arrays. The cells are scipy's k-means (`scipy.cluster.vq.kmeans2`
+with k-means++ seeding, then Lloyd's iterations); see docs/references.md, "k-means strata".
 """
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
+from scipy.cluster.vq import kmeans2, vq
 
-FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
 MAX_STRATA = 256
@@ -27,91 +28,6 @@ FIT_ROWS_PER_STRATUM = 50
 """The cells are fitted on a seeded sample of at most this many candidates per cell, then every
 candidate goes to its nearest centre."""
 LLOYD_ITERATIONS = 20
-_ASSIGN_CHUNK = 8192
-
-
-def _sq_distances(points: FloatArray, centres: FloatArray) -> FloatArray:
-    """Squared distances (n, k), by the expansion (points are standardised, hence centred)."""
-    d2 = (
-        np.einsum("ij,ij->i", points, points)[:, None]
-        - 2.0 * points @ centres.T
-        + np.einsum("ij,ij->i", centres, centres)[None, :]
-    )
-    return np.maximum(d2, 0.0)
-
-
-def nearest_centre(points: ArrayLike, centres: ArrayLike) -> IntArray:
-    """Index of the nearest centre of each point (ties to the smaller index).
-
-    Parameters
-    ----------
-    points : array_like of shape (n, d)
-    centres : array_like of shape (k, d)
-
-    Returns
-    -------
-    ndarray of shape (n,)
-    """
-    p = np.asarray(points, dtype=np.float64)
-    c = np.asarray(centres, dtype=np.float64)
-    out = np.empty(p.shape[0], dtype=np.int64)
-    for start in range(0, p.shape[0], _ASSIGN_CHUNK):
-        out[start : start + _ASSIGN_CHUNK] = _sq_distances(
-            p[start : start + _ASSIGN_CHUNK], c
-        ).argmin(axis=1)
-    return out
-
-
-def kmeans_plus_plus(points: ArrayLike, k: int, rng: np.random.Generator) -> FloatArray:
-    """k-means++ seeding: the first centre uniformly, each next one with probability
-    proportional to the squared distance to the nearest centre chosen so far.
-
-    Parameters
-    ----------
-    points : array_like of shape (n, d)
-    k : int
-        1 <= k <= number of distinct points.
-    rng : numpy.random.Generator
-
-    Returns
-    -------
-    ndarray of shape (k, d)
-    """
-    p = np.asarray(points, dtype=np.float64)
-    centres = np.empty((k, p.shape[1]))
-    centres[0] = p[rng.integers(p.shape[0])]
-    nearest = _sq_distances(p, centres[:1])[:, 0]
-    for i in range(1, k):
-        total = nearest.sum()
-        centres[i] = p[rng.choice(p.shape[0], p=nearest / total)]
-        np.minimum(nearest, _sq_distances(p, centres[i : i + 1])[:, 0], out=nearest)
-    return centres
-
-
-def lloyd(points: ArrayLike, centres: ArrayLike, iterations: int = LLOYD_ITERATIONS) -> FloatArray:
-    """Lloyd's iterations from the given centres: assign, move each centre to its cell's mean.
-
-    A cell left empty keeps its centre. Stops early when no assignment changes.
-
-    Returns
-    -------
-    ndarray of shape (k, d)
-        The final centres.
-    """
-    p = np.asarray(points, dtype=np.float64)
-    c = np.array(centres, dtype=np.float64)
-    labels = None
-    for _ in range(iterations):
-        new = nearest_centre(p, c)
-        if labels is not None and np.array_equal(new, labels):
-            break
-        labels = new
-        counts = np.bincount(labels, minlength=c.shape[0])
-        sums = np.zeros_like(c)
-        np.add.at(sums, labels, p)
-        filled = counts > 0
-        c[filled] = sums[filled] / counts[filled, None]
-    return c
 
 
 def strata(points: ArrayLike, n_strata: int, rng: np.random.Generator) -> IntArray:
@@ -142,8 +58,12 @@ def strata(points: ArrayLike, n_strata: int, rng: np.random.Generator) -> IntArr
     k = min(k, np.unique(sample, axis=0).shape[0])
     if k <= 1:
         return np.zeros(n, dtype=np.int64)
-    centres = lloyd(sample, kmeans_plus_plus(sample, k, rng))
-    return nearest_centre(p, centres)
+    with warnings.catch_warnings():
+        # a cell that ends empty keeps its centre and simply takes no candidates
+        warnings.filterwarnings("ignore", "One of the clusters is empty", UserWarning)
+        centres, _ = kmeans2(sample, k, iter=LLOYD_ITERATIONS, minit="++", rng=rng)
+    cells, _ = vq(p, centres, check_finite=False)
+    return cells.astype(np.int64)
 
 
 def stratified_order(scores: ArrayLike, cells: ArrayLike) -> IntArray:
