@@ -387,6 +387,17 @@ def plot(runs: list[Run], path: Path) -> None:
     )
 
 
+def _recorded(value: object) -> str:
+    """An argument as the results record it: a path inside the repository relative to it, so a
+    saved run names no folder of the machine it ran on."""
+    if isinstance(value, Path):
+        try:
+            return str(value.resolve().relative_to(RESULTS.parent.parent))
+        except ValueError:
+            pass
+    return str(value)
+
+
 def save(runs: list[Run], args: argparse.Namespace) -> None:
     """Write every finished run and the summary so far (an interrupted benchmark keeps them)."""
     lines = summarise(runs, args.rounds)
@@ -394,7 +405,7 @@ def save(runs: list[Run], args: argparse.Namespace) -> None:
     args.out.with_suffix(".json").write_text(
         json.dumps(
             {
-                "args": {k: str(v) for k, v in vars(args).items()},
+                "args": {k: _recorded(v) for k, v in vars(args).items()},
                 # never held or reached: null (JSON has no infinity)
                 "summary": [
                     {
