@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import fcntl
+import os
 import threading
 import weakref
 from collections.abc import Iterator
@@ -11,6 +13,7 @@ from typing import Any
 
 from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.orm import Session, sessionmaker
+from sqlalchemy.pool import Pool
 
 SQLITE_BUSY_TIMEOUT_MS = 30_000
 # SQLite: no cap on pooled connections to the local file (beyond the pool's size they are closed
@@ -103,10 +106,54 @@ def make_writer_session_factory(engine: Engine) -> sessionmaker[Session]:
     return make_session_factory(engine.execution_options(**{SQLITE_BEGIN_IMMEDIATE: True}))
 
 
-# One lock per SQLite engine. SQLite has one writer at a time anyway; waiting on this lock hands
-# the turn over at once, whereas SQLite's own busy handler sleeps in growing steps (up to 100 ms)
-# and lets 32 waiting writers convoy. BEGIN IMMEDIATE still guards against other processes.
-_sqlite_writers: weakref.WeakKeyDictionary[Engine, threading.Lock] = weakref.WeakKeyDictionary()
+# One writer lock per SQLite engine, held around every write_transaction. SQLite has one writer
+# at a time anyway; waiting on a lock hands the turn over at once, whereas SQLite's own busy
+# handler sleeps in growing steps (up to 100 ms) and lets waiting writers convoy. The lock has
+# two parts: a thread lock for the process's own threads, then an exclusive flock(2) on a file
+# beside the database for the other processes on the same file (a second uvicorn worker, the
+# CLI). The kernel wakes a process waiting on flock as soon as the holder lets go. BEGIN
+# IMMEDIATE still guards against writers that take neither (sessions of WriterSessionDep).
+WRITER_LOCK_SUFFIX = "-writer.lock"
+
+
+class _SqliteWriterLock:
+    """The thread lock, then (for a database file) the cross-process file lock."""
+
+    def __init__(self, database: str | None) -> None:
+        self._threads = threading.Lock()
+        self._path = None if not database or database == ":memory:" else database
+        self._fd: int | None = None
+
+    def __enter__(self) -> None:
+        self._threads.acquire()
+        if self._path is None:
+            return
+        try:
+            # Opened for each transaction (some microseconds) rather than kept, so that engines
+            # made and dropped (tests, CLI commands) leave no descriptor behind; closing it
+            # releases the lock too.
+            self._fd = os.open(self._path + WRITER_LOCK_SUFFIX, os.O_RDWR | os.O_CREAT, 0o600)
+            fcntl.flock(self._fd, fcntl.LOCK_EX)
+        except BaseException:
+            self._close()
+            self._threads.release()
+            raise
+
+    def __exit__(self, *exc: object) -> None:
+        try:
+            self._close()
+        finally:
+            self._threads.release()
+
+    def _close(self) -> None:
+        if self._fd is not None:
+            fd, self._fd = self._fd, None
+            os.close(fd)
+
+
+# Keyed by the pool: an engine with execution options (the writer sessions') shares its pool,
+# and so its lock, with the engine it was made from.
+_sqlite_writers: weakref.WeakKeyDictionary[Pool, _SqliteWriterLock] = weakref.WeakKeyDictionary()
 _registry_lock = threading.Lock()
 
 
@@ -115,13 +162,16 @@ def is_postgresql(session: Session) -> bool:
     return session.get_bind().dialect.name == "postgresql"
 
 
-def _writer_lock(session: Session) -> threading.Lock | None:
+def _writer_lock(session: Session) -> _SqliteWriterLock | None:
     bind = session.get_bind()
     if bind.dialect.name != "sqlite":
         return None
     engine = bind if isinstance(bind, Engine) else bind.engine
     with _registry_lock:
-        return _sqlite_writers.setdefault(engine, threading.Lock())
+        lock = _sqlite_writers.get(engine.pool)
+        if lock is None:
+            lock = _sqlite_writers[engine.pool] = _SqliteWriterLock(engine.url.database)
+        return lock
 
 
 @contextmanager
