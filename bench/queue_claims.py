@@ -1,6 +1,7 @@
 """Queue benchmark: annotator clients doing claim + submit against a live server on loopback.
 
     python bench/queue_claims.py                      # SQLite in a temporary folder, 1 server worker
+    python bench/queue_claims.py --workers 2          # SQLite, 2 server processes on one file
     python bench/queue_claims.py --postgres postgresql+psycopg://postgres@127.0.0.1:5432/DBNAME
                                                # PostgreSQL, 2 workers; DBNAME IS EMPTIED
 
@@ -8,8 +9,10 @@ Two phases with the same 32 clients. "paced": each annotator looks at a state fo
 (uniform 0.5 to 1.5 s by default, `--think`; real experts take longer) before submitting, and
 they start at random moments within the first pause: the load the bench puts on the server. "flat out": no pause at all, which finds the throughput
 ceiling; there, latency is mostly waiting in line (32 clients / throughput, by Little's law).
-Prints p50/p99 round-trip latency of claims and submits, throughput in labels per second, and
-the count of double assignments. Baseline, measured in the same run with the same clients:
+Prints p50/p99 round-trip latency of claims and submits, throughput in labels per second, the
+CPU time per label of the server processes and of the clients (this process: on a shared machine
+these move far less than the clock does; a PostgreSQL server's own processes are not counted),
+and the count of double assignments. Baseline, measured in the same run with the same clients:
 `GET /api/me` (sign-in check and one query), so the ratio shows what the queue adds to the
 cheapest authenticated request.
 """
@@ -18,18 +21,20 @@ from __future__ import annotations
 
 import argparse
 import hashlib
+import http.client
+import json
 import os
 import random
 import sys
 import tempfile
 import threading
 import time
+import urllib.parse
 import uuid
 from collections import Counter
 from pathlib import Path
 from typing import Any
 
-import httpx
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -113,6 +118,34 @@ def prepare(url: str, data_dir: Path, n_items: int, n_clients: int) -> list[str]
     return tokens
 
 
+class Annotator:
+    """One annotator's kept-alive connection (the standard library's http.client).
+
+    The clients share the machine's two cores with the server: httpx took about 1.9 ms of CPU
+    a request here under load, a third of all the CPU a label cost, where http.client takes a
+    fraction of that. The server's CPU per label is printed either way.
+    """
+
+    def __init__(self, base: str, token: str) -> None:
+        address = urllib.parse.urlsplit(base)
+        self._connection = http.client.HTTPConnection(address.hostname, address.port, timeout=60)
+        self._headers = {"Authorization": f"Bearer {token}"}
+
+    def request(self, method: str, path: str, body: Any = None) -> tuple[int, Any]:
+        headers = dict(self._headers)
+        data = None
+        if body is not None:
+            data = json.dumps(body).encode()
+            headers["Content-Type"] = "application/json"
+        self._connection.request(method, path, body=data, headers=headers)
+        answer = self._connection.getresponse()
+        raw = answer.read()
+        return answer.status, json.loads(raw) if raw else None
+
+    def close(self) -> None:
+        self._connection.close()
+
+
 def run_clients(base: str, tokens: list[str], work: Any) -> tuple[float, list[list[Any]]]:
     """Run `work(client, results, i)` in one thread per token, all released at once."""
     start = threading.Barrier(len(tokens) + 1)
@@ -120,14 +153,16 @@ def run_clients(base: str, tokens: list[str], work: Any) -> tuple[float, list[li
     failures: list[BaseException] = []
 
     def body(i: int) -> None:
-        headers = {"Authorization": f"Bearer {tokens[i]}"}
-        with httpx.Client(base_url=base, headers=headers, timeout=60) as client:
-            client.get("/api/me")  # open the connection before the clock starts
+        client = Annotator(base, tokens[i])
+        try:
+            client.request("GET", "/api/me")  # open the connection before the clock starts
             start.wait()
             try:
                 work(client, results[i], i)
             except BaseException as exc:  # reported after the run
                 failures.append(exc)
+        finally:
+            client.close()
 
     threads = [threading.Thread(target=body, args=(i,)) for i in range(len(tokens))]
     for t in threads:
@@ -141,15 +176,15 @@ def run_clients(base: str, tokens: list[str], work: Any) -> tuple[float, list[li
     return time.perf_counter() - began, results
 
 
-def baseline(client: httpx.Client, out: list[Any], _: int, rounds: int = 40) -> None:
+def baseline(client: Annotator, out: list[Any], _: int, rounds: int = 40) -> None:
     for _ in range(rounds):
         t = time.perf_counter()
-        assert client.get("/api/me").status_code == 200
+        assert client.request("GET", "/api/me")[0] == 200
         out.append(time.perf_counter() - t)
 
 
 def claim_and_submit(
-    client: httpx.Client, out: list[Any], *, think: float, quota: int | None, seed: int
+    client: Annotator, out: list[Any], *, think: float, quota: int | None, seed: int
 ) -> None:
     """Claim, look for `think` seconds on average, submit; until `quota` labels or none left."""
     rng = random.Random(seed)
@@ -158,21 +193,21 @@ def claim_and_submit(
         time.sleep(rng.uniform(0, think))
     while quota is None or len(out) < quota:
         t = time.perf_counter()
-        got = client.post(queue + "/claim")
+        status, got = client.request("POST", queue + "/claim")
         claim_s = time.perf_counter() - t
-        if got.status_code != 200:
-            raise SystemExit(f"claim failed: {got.status_code} {got.text}")
-        item = got.json()["item"]
+        if status != 200:
+            raise SystemExit(f"claim failed: {status} {got}")
+        item = got["item"]
         if item is None:
             return
         if think > 0:
             time.sleep(rng.uniform(0.5 * think, 1.5 * think))
         body = {"submission_id": uuid.uuid4().hex, "answer": "action", "action": rng.randrange(3)}
         t = time.perf_counter()
-        sent = client.post(f"{queue}/items/{item['item_id']}/labels", json=body)
+        status, sent = client.request("POST", f"{queue}/items/{item['item_id']}/labels", body)
         submit_s = time.perf_counter() - t
-        if sent.status_code != 201:
-            raise SystemExit(f"submit failed: {sent.status_code} {sent.text}")
+        if status != 201:
+            raise SystemExit(f"submit failed: {status} {sent}")
         out.append((item["item_id"], claim_s, submit_s))
 
 
@@ -203,17 +238,46 @@ def double_assignments(url: str, results: list[list[Any]], k: int) -> int:
     return int(over + stored_over + twice)
 
 
+def process_tree_cpu(pid: int) -> float:
+    """CPU seconds (user + system) used so far by a process and its descendants still running
+    (a server's workers), from /proc. A database server's own processes are not counted."""
+    ticks = os.sysconf("SC_CLK_TCK")
+    total, stack = 0.0, [pid]
+    while stack:
+        current = stack.pop()
+        try:
+            fields = Path(f"/proc/{current}/stat").read_text().rsplit(")", 1)[1].split()
+            for task in Path(f"/proc/{current}/task").iterdir():
+                stack += [int(c) for c in (task / "children").read_text().split()]
+        except (FileNotFoundError, ProcessLookupError):
+            continue
+        total += (int(fields[11]) + int(fields[12])) / ticks  # utime, stime
+    return total
+
+
+def cpu_meter(server_pid: int) -> Any:
+    """A function returning (server, clients) CPU seconds since it was made."""
+    server0, clients0 = process_tree_cpu(server_pid), time.process_time()
+    return lambda: (process_tree_cpu(server_pid) - server0, time.process_time() - clients0)
+
+
 def percentile_ms(values: list[float], q: float) -> float:
     return float(np.percentile(np.asarray(values), q) * 1000)
 
 
-def report(name: str, rows: list[list[Any]], wall: float, me: list[float]) -> None:
+def report(
+    name: str, rows: list[list[Any]], wall: float, me: list[float], cpu: tuple[float, float]
+) -> None:
     claims = [c for r in rows for _, c, _ in r]
     submits = [s for r in rows for _, _, s in r]
     both = claims + submits
     print(
         f"-- {name}: {len(claims)} labels in {wall:.1f} s, "
         f"{len(claims) / wall:.1f} labels/s ({len(both) / wall:.0f} requests/s)"
+    )
+    per_label = 1000 / max(1, len(claims))
+    print(
+        f"   CPU per label: server {cpu[0] * per_label:.2f} ms, clients {cpu[1] * per_label:.2f} ms"
     )
     print(f"   {'request':<22}{'p50 ms':>9}{'p99 ms':>9}")
     for label, values in (("claim", claims), ("submit", submits), ("claim or submit", both)):
@@ -241,6 +305,7 @@ def main() -> None:
         with server_process(url, data_dir, workers=workers) as server:
             base = server.url
             _, base_rows = run_clients(base, tokens, baseline)
+            meter = cpu_meter(server.pid)
             paced_wall, paced = run_clients(
                 base,
                 tokens,
@@ -248,11 +313,14 @@ def main() -> None:
                     c, out, think=args.think, quota=args.paced_labels, seed=i
                 ),
             )
+            paced_cpu = meter()
+            meter = cpu_meter(server.pid)
             flat_wall, flat = run_clients(
                 base,
                 tokens,
                 lambda c, out, i: claim_and_submit(c, out, think=0.0, quota=None, seed=1000 + i),
             )
+            flat_cpu = meter()
         doubles = double_assignments(url, paced + flat, k=1)
     me = [x for r in base_rows for x in r]
     backend = "PostgreSQL" if args.postgres else "SQLite"
@@ -266,8 +334,8 @@ def main() -> None:
         f"-- baseline GET /api/me: p50 {percentile_ms(me, 50):.1f} ms, "
         f"p99 {percentile_ms(me, 99):.1f} ms"
     )
-    report(f"paced (think {args.think:g} s on average)", paced, paced_wall, me)
-    report("flat out (no think time)", flat, flat_wall, me)
+    report(f"paced (think {args.think:g} s on average)", paced, paced_wall, me, paced_cpu)
+    report("flat out (no think time)", flat, flat_wall, me, flat_cpu)
     print(f"double assignments: {doubles}")
     if labelled != args.items:
         raise SystemExit(f"only {labelled} of {args.items} items were labelled")
