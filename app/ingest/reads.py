@@ -86,13 +86,15 @@ def list_steps(
 
 
 def state_with_context(
-    session: Session, *, loop: Loop, step_id: int, seconds: float
+    session: Session, *, loop: Loop, step_id: int, seconds: float, after: bool = True
 ) -> tuple[StepRead, list[StepRead], list[StepRead]]:
-    """One state of a loop with its rollout's steps within `seconds` before and after it."""
+    """One state of a loop with its rollout's steps within `seconds` before and after it (none
+    after it with `after` False: the bench shows only what came before, and decoding the steps
+    after would be half of its read)."""
     params = {"step_id": step_id, "loop_id": loop.id, "seconds": seconds}
     # plain rows, no ORM objects: on the session's connection the ORM's per-statement work
     # (a quarter of this read) is skipped
-    rows = session.connection().execute(_window_query(), params).all()
+    rows = session.connection().execute(_window_query(after), params).all()
     if not rows:
         raise NotFound(f"loop '{loop.slug}' has no state {step_id}")
     steps = decode_steps(rows, spec_of(loop))
@@ -101,11 +103,15 @@ def state_with_context(
 
 
 @cache
-def _window_query() -> Select[*tuple[Any, ...]]:
-    """The steps of :step_id's rollout within :seconds of it, in step order, if the rollout
-    belongs to loop :loop_id (else none): one round trip, built once (every claim runs it)."""
+def _window_query(after: bool) -> Select[*tuple[Any, ...]]:
+    """The steps of :step_id's rollout within :seconds of it (`after`: on both sides; else up
+    to it), in step order, if the rollout belongs to loop :loop_id (else none): one round trip,
+    built once (every claim runs it)."""
     anchor = aliased(Step)
     seconds = bindparam("seconds", type_=Float)
+    until = (
+        Step.time_s <= anchor.time_s + seconds if after else Step.step_index <= anchor.step_index
+    )
     return (
         select(*_STEP_FIELDS)
         .join(Rollout, Rollout.id == Step.rollout_id)
@@ -114,7 +120,7 @@ def _window_query() -> Select[*tuple[Any, ...]]:
             anchor.id == bindparam("step_id", type_=Integer),
             Rollout.loop_id == bindparam("loop_id", type_=Integer),
             Step.time_s >= anchor.time_s - seconds,
-            Step.time_s <= anchor.time_s + seconds,
+            until,
         )
         .order_by(Step.step_index)
     )

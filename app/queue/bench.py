@@ -112,8 +112,12 @@ def bench_item(session: Session, *, loop: Loop, claim: Claim, user_id: int) -> B
     """
     spec = spec_of(loop)
     settings = spec.settings
-    state, before, _after = reads.state_with_context(
-        session, loop=loop, step_id=claim.item.step_id, seconds=settings.context_seconds
+    state, before, _ = reads.state_with_context(
+        session,
+        loop=loop,
+        step_id=claim.item.step_id,
+        seconds=settings.context_seconds,
+        after=False,
     )
     shown = claim.item.show_learner
     start = Start(None, "")
