@@ -8,11 +8,12 @@ retrain a bootstrap ensemble, and score the new learner on fixed evaluation epis
 
 Tasks: ``demo`` (the invented tow-tractor scenario, discrete; score = 1 - conflicts per
 crossing, the expert scores 1), and gymnasium tasks from bench/label_tasks.py (``acrobot``,
-``mountain-car``; score normalised so that a random policy is 0 and the expert 1). Reported per
+``taxi``, ``mountain-car``, ``reacher``; score normalised so that a random policy is 0 and the
+expert 1). Reported per
 task and budget: labels to first reach and to hold (every later round too) 95% of the expert's
 score; a seed that never holds counts as above the cap (rounds x B). Medians, paired wins
 (ranked holds with fewer labels than uniform on the same seed) and the ratio of medians
-(uniform / ranked). Needs the ``bench`` extra (gymnasium).
+(uniform / ranked). Needs the ``bench`` extra (gymnasium, with MuJoCo for ``reacher``).
 
     python bench/label_efficiency.py --tasks demo,acrobot,mountain-car --budgets 20,50 \\
         --seeds 10 --rounds 8
@@ -109,7 +110,7 @@ def _answer(client: Client, slug: str, task: tasks.GymTask, seen: list[Any]) -> 
             return answered
         seen.append(item["state"]["features"])
         action = task.expert(np.asarray([item["state"]["features"]], np.float64))[0]
-        payload: Any = int(action) if task.kind == "discrete" else [float(action[0])]
+        payload: Any = int(action) if task.kind == "discrete" else [float(v) for v in action]
         client.request(
             "POST",
             f"/api/loops/{slug}/queue/items/{item['item_id']}/labels",
@@ -248,11 +249,14 @@ def _text(value: float, cap: int) -> str:
     return f">{cap}" if math.isinf(value) else f"{value:g}"
 
 
-def summarise(runs: list[Run], rounds: int) -> list[dict[str, Any]]:
-    """One line per task and budget: medians, paired wins and the ratio of medians."""
+def summarise(runs: list[Run]) -> list[dict[str, Any]]:
+    """One line per task and budget: medians, paired wins and the ratio of medians. The cap
+    (labels a seed that never held counts above) is the budget times the most rounds any run
+    of the task and budget had: merged runs may differ in rounds from task to task."""
     lines = []
     for task in dict.fromkeys(r.task for r in runs):
         for budget in dict.fromkeys(r.budget for r in runs if r.task == task):
+            rounds = max(len(r.labels) - 1 for r in runs if (r.task, r.budget) == (task, budget))
             pick = {
                 s: sorted(
                     (r for r in runs if (r.task, r.budget, r.selection) == (task, budget, s)),
@@ -400,12 +404,16 @@ def _recorded(value: object) -> str:
 
 def save(runs: list[Run], args: argparse.Namespace) -> None:
     """Write every finished run and the summary so far (an interrupted benchmark keeps them)."""
-    lines = summarise(runs, args.rounds)
     args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.with_suffix(".json").write_text(
+    _write(args.out, {k: _recorded(v) for k, v in vars(args).items()}, runs)
+
+
+def _write(out: Path, recorded: dict[str, Any], runs: list[Run]) -> None:
+    lines = summarise(runs)
+    out.with_suffix(".json").write_text(
         json.dumps(
             {
-                "args": {k: _recorded(v) for k, v in vars(args).items()},
+                "args": recorded,
                 # never held or reached: null (JSON has no infinity)
                 "summary": [
                     {
@@ -419,6 +427,42 @@ def save(runs: list[Run], args: argparse.Namespace) -> None:
             indent=1,
         )
     )
+
+
+def _outside(value: str) -> str:
+    """A recorded path outside the repository by its name only: no folder of the machine."""
+    return Path(value).name if Path(value).is_absolute() else value
+
+
+def merge(paths: list[Path]) -> tuple[list[Run], dict[str, Any]]:
+    """The runs saved in several files, one per task, budget, seed and selection (a run in a
+    later file replaces the same run of an earlier one, and is reported), and what each file
+    recorded of its arguments, under ``merged_from``."""
+    found: dict[tuple[str, int, int, str], Run] = {}
+    sources = []
+    for path in paths:
+        saved = json.loads(path.read_text())
+        named = _recorded(path.resolve())
+        sources.append(
+            {
+                "file": _outside(named),
+                **{k: _outside(v) if k == "out" else v for k, v in saved["args"].items()},
+            }
+        )
+        for record in saved["runs"]:
+            run = Run(**record)
+            key = (run.task, run.budget, run.seed, run.selection)
+            if key in found:
+                print(f"{path.name} replaces the run {key}")
+            found[key] = run
+    rounds: dict[tuple[str, int], set[int]] = {}
+    for run in found.values():
+        rounds.setdefault((run.task, run.budget), set()).add(len(run.labels) - 1)
+    mixed = {key: sorted(n) for key, n in rounds.items() if len(n) > 1}
+    if mixed:
+        # the medians, the cap and the plot compare runs round by round
+        raise SystemExit(f"runs of one task and budget differ in rounds: {mixed}")
+    return list(found.values()), {"merged_from": sources}
 
 
 def _setting(text: str) -> tuple[str, Any]:
@@ -450,7 +494,9 @@ def main() -> None:
         default=[],
         help="NAME=JSON: a loop setting for the ranked loops (gym tasks), e.g. self_tuning=false",
     )
-    parser.add_argument("--out", type=Path, default=RESULTS / "label_efficiency")
+    parser.add_argument(
+        "--out", type=Path, default=None, help="default: bench/results/label_efficiency"
+    )
     parser.add_argument(
         "--trace",
         action="store_true",
@@ -460,16 +506,27 @@ def main() -> None:
     parser.add_argument(
         "--from-json",
         type=Path,
+        nargs="+",
         default=None,
-        help="summarise and plot the runs saved in this file (e.g. of an interrupted run)",
+        help="summarise and plot the runs saved in these files (e.g. of an interrupted run): "
+        "one file is plotted beside itself; several are merged and written to --out, which "
+        "must then be given",
     )
     args = parser.parse_args()
+    if args.from_json is not None and len(args.from_json) > 1 and args.out is None:
+        parser.error("merging several --from-json files needs --out")
+    args.out = args.out or RESULTS / "label_efficiency"
     if args.from_json is not None:
-        saved = json.loads(args.from_json.read_text())
-        runs = [Run(**r) for r in saved["runs"]]
-        print_summary(summarise(runs, int(saved["args"]["rounds"])))
+        runs, recorded = merge(args.from_json)
+        print_summary(summarise(runs))
         print_trace(runs)
-        plot(runs, args.from_json.with_suffix(".svg"))
+        if len(args.from_json) == 1:
+            plot(runs, args.from_json[0].with_suffix(".svg"))
+            return
+        args.out.parent.mkdir(parents=True, exist_ok=True)
+        plot(runs, args.out.with_suffix(".svg"))
+        _write(args.out, recorded, runs)
+        print(f"wrote {args.out.with_suffix('.svg')} and .json")
         return
     budgets = [int(b) for b in args.budgets.split(",")]
     names = args.tasks.split(",")
@@ -502,7 +559,7 @@ def main() -> None:
                                 flush=True,
                             )
                             save(runs, args)
-    lines = summarise(runs, args.rounds)
+    lines = summarise(runs)
     print()
     print_summary(lines)
     print_trace(runs)
