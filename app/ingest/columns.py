@@ -181,7 +181,13 @@ def float_vectors(
 
 
 def float_matrices(column: pa.ChunkedArray, name: str, width: int) -> tuple[Vectors, int]:
-    """A list-of-lists column (members x width) as float32 arrays; all rows share the member count."""
+    """A list-of-lists column (members x width) as float32 arrays; all rows share the member count.
+
+    A column of nulls only (JSON Lines whose lines all leave it empty) has no ensemble."""
+    if pa.types.is_null(column.type):
+        return Vectors(
+            np.zeros((len(column), 1, width), np.float32), np.zeros(len(column), bool)
+        ), 0
     if not _is_list(column.type) or not _is_list(column.type.value_type):
         raise InvalidInput(
             f"column {name}: expected a list of lists of numbers, got {shown(str(column.type))}"

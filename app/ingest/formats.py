@@ -390,9 +390,15 @@ def _kind(value: Any, depth: int = 0) -> str:
     return "list"
 
 
-def _mixed_types(rows: list[dict[str, Any]], line_of_row: list[int]) -> str:
-    """Name the first line whose value does not fit its column (Arrow's message names none)."""
-    first: dict[str, tuple[str, int]] = {}
+def _mixed_types(
+    rows: list[dict[str, Any]],
+    line_of_row: list[int],
+    first: dict[str, tuple[str, int]] | None = None,
+) -> str:
+    """Name the first line whose value does not fit its column (Arrow's message names none).
+    `first`: each column's kind of value and line as earlier lines set them (a file read in
+    groups of lines)."""
+    first = {} if first is None else first
     for row, line in zip(rows, line_of_row, strict=True):
         for name, value in row.items():
             if value is None:

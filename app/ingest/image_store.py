@@ -20,11 +20,12 @@ from __future__ import annotations
 
 import errno
 import fcntl
+import itertools
 import logging
 import mmap
 import os
 import uuid
-from collections.abc import Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -47,6 +48,8 @@ ROWS_PER_STATEMENT = 10_000
 # buffer of this size; an upload's pack smaller than DIRECT_FROM_BYTES goes through the page cache.
 DIRECT_BLOCK = 4096
 STAGING_BYTES = 8 << 20
+# Bytes of images a buffered write takes from its source at a time.
+BUFFERED_BYTES = 8 << 20
 DIRECT_FROM_BYTES = 1 << 20
 # Buffers per writev call: the system's limit (IOV_MAX), or POSIX's minimum.
 _IOV_MAX = os.sysconf("SC_IOV_MAX") if "SC_IOV_MAX" in os.sysconf_names else 1024
@@ -105,16 +108,36 @@ def store_images(
     for row, digest in enumerate(sha256):
         if digest is not None and digest not in first:
             first[digest] = row
-    if not first:
+    return store_image_rows(
+        session,
+        lengths={digest: len(images[row]) for digest, row in first.items()},
+        read=lambda digest: images[first[digest]],
+        blob_dir=blob_dir,
+    )
+
+
+def store_image_rows(
+    session: Session,
+    *,
+    lengths: dict[str, int],
+    read: Callable[[str], bytes],
+    blob_dir: Path,
+) -> PackWrite | None:
+    """store_images for images read one at a time (an upload staged on disk).
+
+    lengths : each distinct image's length by its hash, in the order of their first steps
+    read : an image's bytes by its hash; called once for each image this upload stores, in
+        that order, while the pack is written (so no more than one is held at a time)
+    """
+    if not lengths:
         return None
     name = uuid.uuid4().hex
-    lengths = {digest: len(images[row]) for digest, row in first.items()}
-    planned = _offsets(list(first), lengths)
+    planned = _offsets(list(lengths), lengths)
     owned = _claim(session, name=name, offsets=planned, lengths=lengths)
     if not owned:
         return None
-    order = [digest for digest in first if digest in owned]
-    if len(order) < len(first):
+    order = [digest for digest in lengths if digest in owned]
+    if len(order) < len(lengths):
         # Some were stored already, or by an upload that committed first: close the gaps.
         offsets = _offsets(order, lengths)
         moved = [{"key": d, "offset": offsets[d]} for d in order if offsets[d] != planned[d]]
@@ -124,7 +147,8 @@ def store_images(
             .values(byte_offset=bindparam("offset")),
             moved,
         )
-    return PackWrite(write_pack(blob_dir, name, [images[first[digest]] for digest in order]))
+    total = sum(lengths[d] for d in order)
+    return PackWrite(write_pack(blob_dir, name, (read(d) for d in order), total=total))
 
 
 def _offsets(order: list[str], lengths: dict[str, int]) -> dict[str, int]:
@@ -193,9 +217,17 @@ def _claim_postgresql(
     return owned
 
 
-def write_pack(blob_dir: Path, name: str, images: Sequence[bytes]) -> Path:
+def write_pack(
+    blob_dir: Path, name: str, images: Iterable[bytes], *, total: int | None = None
+) -> Path:
     """Write images back to back into a new pack: under `incoming/`, fsync'd once, then renamed
-    into place (the folder fsync'd too, so the name survives a power cut). Returns its path."""
+    into place (the folder fsync'd too, so the name survives a power cut). Returns its path.
+
+    `images` may be a generator (taken once, in order) when `total`, their summed length, is
+    given."""
+    if total is None:
+        images = list(images)
+        total = sum(len(b) for b in images)
     final = pack_path(blob_dir, name)
     incoming = incoming_packs(blob_dir)
     incoming.mkdir(parents=True, exist_ok=True)
@@ -204,7 +236,7 @@ def write_pack(blob_dir: Path, name: str, images: Sequence[bytes]) -> Path:
     fd = os.open(partial, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
     try:
         try:
-            _write_all(fd, images)
+            _write_all(fd, images, total)
             os.fsync(fd)
         finally:
             os.close(fd)
@@ -216,7 +248,7 @@ def write_pack(blob_dir: Path, name: str, images: Sequence[bytes]) -> Path:
     return final
 
 
-def _write_all(fd: int, buffers: Sequence[bytes]) -> None:
+def _write_all(fd: int, buffers: Iterable[bytes], total: int) -> None:
     """Write the buffers back to back from the file's start.
 
     Direct I/O where the file system offers it: a pack is written once and read rarely (only the
@@ -226,31 +258,32 @@ def _write_all(fd: int, buffers: Sequence[bytes]) -> None:
     reused staging buffer; where they are refused (tmpfs, some network file systems), the rest
     is written through the page cache.
     """
-    total = sum(len(b) for b in buffers)
+    pending = iter(buffers)
     if total >= DIRECT_FROM_BYTES and _set_direct(fd, True):
         try:
-            _write_direct(fd, buffers, total)
+            _write_direct(fd, pending, total)
             return
         except _DirectRefused as refused:
             _set_direct(fd, False)
             os.lseek(fd, refused.position, os.SEEK_SET)
-            buffers = [refused.pending, *buffers[refused.next_buffer :]]
-    _write_buffered(fd, buffers)
+            # the buffers not taken yet are still in `pending`
+            pending = itertools.chain([refused.pending], pending)
+    _write_buffered(fd, pending)
 
 
 class _DirectRefused(Exception):
     """A direct write was refused: where the file stands, and what is left to write."""
 
-    def __init__(self, position: int, pending: bytes, next_buffer: int) -> None:
-        self.position, self.pending, self.next_buffer = position, pending, next_buffer
+    def __init__(self, position: int, pending: bytes) -> None:
+        self.position, self.pending = position, pending
 
 
-def _write_direct(fd: int, buffers: Sequence[bytes], total: int) -> None:
+def _write_direct(fd: int, buffers: Iterator[bytes], total: int) -> None:
     staging = mmap.mmap(-1, STAGING_BYTES)  # page-aligned, so aligned for direct I/O
     view = memoryview(staging)
     try:
         position = filled = 0
-        for index, buffer in enumerate(buffers):
+        for buffer in buffers:
             data = memoryview(buffer)
             while data:
                 take = min(len(data), STAGING_BYTES - filled)
@@ -258,13 +291,13 @@ def _write_direct(fd: int, buffers: Sequence[bytes], total: int) -> None:
                 filled += take
                 data = data[take:]
                 if filled == STAGING_BYTES:
-                    _flush(fd, view, filled, filled, position, data, index + 1)
+                    _flush(fd, view, filled, filled, position, data)
                     position += filled
                     filled = 0
         if filled:
             padded = filled + (-filled) % DIRECT_BLOCK  # whole blocks; the padding is cut below
             view[filled:padded] = bytes(padded - filled)
-            _flush(fd, view, padded, filled, position, memoryview(b""), len(buffers))
+            _flush(fd, view, padded, filled, position, memoryview(b""))
             os.ftruncate(fd, total)
     finally:
         view.release()
@@ -278,7 +311,6 @@ def _flush(
     filled: int,
     position: int,
     rest: memoryview,
-    next_buffer: int,
 ) -> None:
     """Write the first `size` bytes of the staging buffer (`filled` of them data) directly; on a
     refusal or a short write, say where the file stands and what is left."""
@@ -290,13 +322,27 @@ def _flush(
         written = 0
     if written < filled:
         pending = bytes(view[written:filled]) + bytes(rest)
-        raise _DirectRefused(position + written, pending, next_buffer)
+        raise _DirectRefused(position + written, pending)
 
 
-def _write_buffered(fd: int, buffers: Sequence[bytes]) -> None:
+def _write_buffered(fd: int, buffers: Iterator[bytes]) -> None:
     """Write the buffers in order with as few system calls as the system allows (writev, which
-    may write less than asked: the rest is written by the next call)."""
-    views = [memoryview(b) for b in buffers]
+    may write less than asked: the rest is written by the next call). Buffers are taken from
+    the iterator at most IOV_MAX or BUFFERED_BYTES at a time, so a generator reading images
+    from disk is never drained into memory."""
+    views: list[memoryview] = []
+    held = 0
+    for buffer in itertools.chain(buffers, [None]):
+        if buffer is not None:
+            views.append(memoryview(buffer))
+            held += len(buffer)
+            if len(views) < _IOV_MAX and held < BUFFERED_BYTES:
+                continue
+        _writev_all(fd, views)
+        views, held = [], 0
+
+
+def _writev_all(fd: int, views: list[memoryview]) -> None:
     i = 0
     while i < len(views):
         batch = views[i : i + _IOV_MAX]

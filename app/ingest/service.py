@@ -19,13 +19,14 @@ from ..loops.spec import spec_of
 from ..shared.encode import rows_to_bytes
 from . import bulk, image_store
 from .columns import Vectors
-from .formats import detect_format, read_table
+from .formats import detect_format
 from .image_store import PackWrite
 from .limits import UploadLimits
 from .logs.archive import BAG_FORMATS, DEFAULT_MAX_UNPACKED_BYTES
 from .logs.service import loop_mapping, validate_log
 from .models import Rollout, Upload
-from .validate import DEFAULT_LIMITS, StepBatch, validate
+from .staging import StagedUpload, stage_file
+from .validate import DEFAULT_LIMITS, StepBatch
 
 
 @dataclass
@@ -80,6 +81,7 @@ def ingest_file(
     session.commit()  # end the read: parsing below may take seconds
 
     file_format = detect_format(path, filename)
+    batch: StepBatch | StagedUpload
     if file_format in BAG_FORMATS:
         batch = validate_log(
             path,
@@ -93,9 +95,29 @@ def ingest_file(
             limits=limits,
         )
     else:
-        table = read_table(path, file_format, max_array_bytes=limits.max_array_bytes)
-        batch = validate(table, spec_of(loop), round_number=rnd.number, limits=limits)
-        del table
+        # Rollout files stream through a staging folder in bounded memory (app/ingest/staging).
+        batch = stage_file(path, file_format, spec_of(loop), round_number=rnd.number, limits=limits)
+    try:
+        return _store_validated(
+            session, loop, rnd, batch, filename, file_format, file_sha256, user_id, blob_dir
+        )
+    finally:
+        if isinstance(batch, StagedUpload):
+            batch.close()
+
+
+def _store_validated(
+    session: Session,
+    loop: Loop,
+    rnd: Round,
+    batch: StepBatch | StagedUpload,
+    filename: str,
+    file_format: str,
+    file_sha256: str,
+    user_id: int | None,
+    blob_dir: Path,
+) -> UploadOutcome:
+    """Store a validated upload in one write transaction (see ingest_file)."""
     hashes = rollout_hashes(batch)
     for attempt in range(2):
         pack: PackWrite | None = None
@@ -152,7 +174,9 @@ def _earlier_upload(session: Session, rnd: Round, file_sha256: str) -> Upload | 
     )
 
 
-def _new_rollouts(session: Session, loop: Loop, batch: StepBatch, hashes: list[str]) -> np.ndarray:
+def _new_rollouts(
+    session: Session, loop: Loop, batch: StepBatch | StagedUpload, hashes: list[str]
+) -> np.ndarray:
     """Which of the batch's rollouts are new; a stored key with other content is a conflict."""
     stored = dict(
         session.execute(
@@ -172,8 +196,10 @@ def _new_rollouts(session: Session, loop: Loop, batch: StepBatch, hashes: list[s
     return np.array([k not in stored for k in batch.rollout_keys], dtype=bool)
 
 
-def rollout_hashes(batch: StepBatch) -> list[str]:
+def rollout_hashes(batch: StepBatch | StagedUpload) -> list[str]:
     """SHA-256 of each rollout's canonical content (rows in step order)."""
+    if isinstance(batch, StagedUpload):
+        return batch.rollout_hashes()  # the same bytes, read from the staged columns
     out = []
     for rows in batch.rollout_slices():
         h = hashlib.sha256()
@@ -215,7 +241,7 @@ def _store(
     session: Session,
     loop: Loop,
     rnd: Round,
-    batch: StepBatch,
+    batch: StepBatch | StagedUpload,
     hashes: list[str],
     keep: np.ndarray,
     filename: str,
@@ -226,15 +252,17 @@ def _store(
 ) -> tuple[Upload, PackWrite | None]:
     """Store the kept rollouts with their steps, and their images last (image_store: the pack
     is then written as close to the commit as it can be)."""
-    row_keep = keep[batch.rollout_index]
-    slices = batch.rollout_slices()
+    if isinstance(batch, StagedUpload):
+        counts = batch.counts
+    else:
+        counts = np.array([s.stop - s.start for s in batch.rollout_slices()], dtype=np.int64)
     upload = Upload(
         round_id=rnd.id,
         file_sha256=file_sha256,
         filename=filename[:300],
         file_format=file_format,
         n_rollouts=int(keep.sum()),
-        n_steps=int(row_keep.sum()),
+        n_steps=int(counts[keep].sum()),
         uploaded_by=user_id,
     )
     session.add(upload)
@@ -249,7 +277,7 @@ def _store(
             "upload_id": upload.id,
             "key": batch.rollout_keys[r],
             "robot": batch.robot[r],
-            "n_steps": slices[r].stop - slices[r].start,
+            "n_steps": int(counts[r]),
             "content_sha256": hashes[r],
             "uploaded_by": user_id,
         }
@@ -262,6 +290,9 @@ def _store(
     rollout_id_of = np.zeros(len(batch.rollout_keys), dtype=np.int64)
     for r in kept:
         rollout_id_of[r] = id_of_key[batch.rollout_keys[r]]
+    if isinstance(batch, StagedUpload):
+        return upload, _store_staged_steps(session, batch, keep, rollout_id_of, rnd.id, blob_dir)
+    row_keep = keep[batch.rollout_index]
     pick = _pick(row_keep)
     columns = step_columns(batch, pick, rollout_id_of, rnd.id)
     bulk.insert_steps(session.connection(), columns, int(row_keep.sum()))
@@ -272,6 +303,43 @@ def _store(
         session, images=batch.image[pick], sha256=image_sha256, blob_dir=blob_dir
     )
     return upload, pack
+
+
+def _store_staged_steps(
+    session: Session,
+    staged: StagedUpload,
+    keep: np.ndarray,
+    rollout_id_of: np.ndarray,
+    round_id: int,
+    blob_dir: Path,
+) -> PackWrite | None:
+    """Insert the kept rollouts' steps of a staged upload a chunk at a time, then its images
+    into one pack, each image read from the staging folder only while the pack is written."""
+    connection = session.connection()
+    lengths: dict[str, int] = {}  # each new image's length, in the order of its first step
+    where: dict[str, int] = {}  # and where it starts in the staged image data
+    for start, stop in staged.chunks():
+        chunk = staged.batch(start, stop)
+        row_keep = keep[chunk.rollout_index]
+        if not row_keep.any():
+            continue
+        pick = _pick(row_keep)
+        columns = step_columns(chunk, pick, rollout_id_of, round_id)
+        bulk.insert_steps(connection, columns, int(row_keep.sum()))
+        digests = columns["image_sha256"]
+        if isinstance(digests, list):
+            spans = staged.image_spans(start, stop)[pick]
+            for digest, (offset, length) in zip(digests, spans.tolist(), strict=True):
+                if digest is not None and digest not in lengths:
+                    lengths[digest], where[digest] = length, offset
+    if not lengths:
+        return None
+    return image_store.store_image_rows(
+        session,
+        lengths=lengths,
+        read=lambda digest: staged.read_image(where[digest], lengths[digest]),
+        blob_dir=blob_dir,
+    )
 
 
 def _pick(rows: np.ndarray) -> np.ndarray | slice:

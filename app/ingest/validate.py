@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import cached_property
 from typing import Any
@@ -70,14 +71,41 @@ class StepBatch:
         return [slice(int(a), int(b)) for a, b in zip(starts, stops, strict=True)]
 
 
-def validate(
+@dataclass
+class RowColumns:
+    """One table's validated columns in the table's own row order (unsorted).
+
+    keys : ndarray of shape (n,), object: the rollout keys
+    robot, scene, image : ndarray of shape (n,), object (None where absent), or None when the
+        table has no such column
+    The other fields are as in StepBatch; an optional column the table lacks is None.
+    """
+
+    keys: np.ndarray
+    step: np.ndarray
+    time_s: np.ndarray
+    control: np.ndarray
+    features: np.ndarray
+    learner_action: np.ndarray | col.Vectors | None
+    expert_action: np.ndarray | col.Vectors | None
+    learner_probs: col.Vectors | None
+    learner_ensemble: col.Vectors | None
+    ensemble_size: int
+    learner_std: col.Vectors | None
+    robot: np.ndarray | None
+    scene: np.ndarray | None
+    image: np.ndarray | None
+
+
+def validate_rows(
     table: pa.Table,
     spec: LoopSpec,
     *,
     round_number: int,
     limits: upload_limits.UploadLimits = DEFAULT_LIMITS,
-) -> StepBatch:
-    """Check a rollout table against the loop spec; return its arrays sorted by (rollout, step)."""
+) -> RowColumns:
+    """Check every value of a rollout table against the loop spec, row by row (rows named from
+    1 at the table's first row); the checks across rows (order, repeats) are not made here."""
     repeated = sorted({n for n in table.column_names if table.column_names.count(n) > 1})
     if repeated:
         raise InvalidInput(f"column '{shown(repeated[0])}' appears more than once")
@@ -103,16 +131,9 @@ def validate(
     learner_ensemble, ensemble_size = _ensemble(table, spec)
     learner_std = _std(table, spec)
 
-    rollout_keys, rollout_index = np.unique(keys.astype(str), return_inverse=True)
-    order = np.lexsort((step, rollout_index))
-    # Files usually arrive sorted: then a full slice takes views where the permutation would
-    # copy every column (a quarter of a second at a million steps of 64 features).
-    pick: np.ndarray | slice = slice(None) if _is_identity(order) else order
-    _check_order(rollout_index[pick], step[pick], time_s[pick], order, rollout_keys)
-
-    robot_col = None
+    robot = None
     if "robot" in names:
-        robot_col = col.strings(table["robot"], "robot", allow_null=True)
+        robot = col.strings(table["robot"], "robot", allow_null=True)
         upload_limits.check_names(table["robot"], "robot", slash=True)
     scene = (
         upload_limits.check_scenes(table["scene"], limits.max_scene_bytes)
@@ -122,23 +143,56 @@ def validate(
     image = _optional_bytes(table, "image")
     if image is not None:
         upload_limits.check_images(image, limits.max_image_bytes)
+    return RowColumns(
+        keys=keys,
+        step=step,
+        time_s=time_s,
+        control=control,
+        features=features,
+        learner_action=learner_action,
+        expert_action=expert_action,
+        learner_probs=learner_probs,
+        learner_ensemble=learner_ensemble,
+        ensemble_size=ensemble_size,
+        learner_std=learner_std,
+        robot=robot,
+        scene=scene,
+        image=image,
+    )
+
+
+def validate(
+    table: pa.Table,
+    spec: LoopSpec,
+    *,
+    round_number: int,
+    limits: upload_limits.UploadLimits = DEFAULT_LIMITS,
+) -> StepBatch:
+    """Check a rollout table against the loop spec; return its arrays sorted by (rollout, step)."""
+    rows = validate_rows(table, spec, round_number=round_number, limits=limits)
+    rollout_keys, rollout_index = np.unique(rows.keys.astype(str), return_inverse=True)
+    order = np.lexsort((rows.step, rollout_index))
+    # Files usually arrive sorted: then a full slice takes views where the permutation would
+    # copy every column (a quarter of a second at a million steps of 64 features).
+    pick: np.ndarray | slice = slice(None) if _is_identity(order) else order
+    check_order(rollout_index[pick], rows.step[pick], rows.time_s[pick], order, rollout_keys)
     return StepBatch(
         rollout_keys=[str(k) for k in rollout_keys],
         rollout_index=rollout_index[pick],
         row_number=order + 1,
-        step=step[pick],
-        time_s=time_s[pick],
-        control=control[pick],
-        features=features[pick],
-        learner_action=_take(learner_action, pick),
-        expert_action=_take(expert_action, pick),
-        learner_probs=_take(learner_probs, pick),
-        learner_ensemble=_take(learner_ensemble, pick),
-        ensemble_size=ensemble_size,
-        learner_std=_take(learner_std, pick),
-        robot=_robot_per_rollout(robot_col, rollout_index, len(rollout_keys)),
-        scene=None if scene is None else scene[pick],
-        image=None if image is None else image[pick],
+        step=rows.step[pick],
+        time_s=rows.time_s[pick],
+        control=rows.control[pick],
+        features=rows.features[pick],
+        learner_action=_take(rows.learner_action, pick),
+        expert_action=_take(rows.expert_action, pick),
+        learner_probs=_take(rows.learner_probs, pick),
+        learner_ensemble=_take(rows.learner_ensemble, pick),
+        ensemble_size=rows.ensemble_size,
+        learner_std=_take(rows.learner_std, pick),
+        robot=_robot_per_rollout(rows.robot, rollout_index, len(rollout_keys)),
+        scene=None if rows.scene is None else rows.scene[pick],
+        image=None if rows.image is None else rows.image[pick],
     )
 
 
@@ -324,32 +378,42 @@ def _std(table: pa.Table, spec: LoopSpec) -> col.Vectors | None:
     return std
 
 
-def _check_order(
+def check_order(
     rollout_index: np.ndarray,
     step: np.ndarray,
     time_s: np.ndarray,
     order: np.ndarray,
-    keys: np.ndarray,
+    keys: Sequence[str] | np.ndarray,
 ) -> None:
     """Sorted by (rollout, step): no step twice, and time increasing with step."""
     same_rollout = rollout_index[1:] == rollout_index[:-1]
     duplicate = same_rollout & (step[1:] == step[:-1])
     if duplicate.any():
         i = int(np.flatnonzero(duplicate)[0]) + 1
-        raise col.fail(
-            int(order[i]),
-            "step",
-            f"rollout '{shown(keys[rollout_index[i]])}' has step {step[i]} twice",
-        )
+        raise repeated_step(int(order[i]), keys[rollout_index[i]], step[i])
     backwards = same_rollout & (time_s[1:] <= time_s[:-1])
     if backwards.any():
         i = int(np.flatnonzero(backwards)[0]) + 1
-        raise col.fail(
-            int(order[i]),
-            "time_s",
-            f"rollout '{shown(keys[rollout_index[i]])}' step {step[i]} has time {time_s[i]:g} s, "
-            f"not after step {step[i - 1]} at {time_s[i - 1]:g} s",
+        raise time_not_after(
+            int(order[i]), keys[rollout_index[i]], step[i], time_s[i], step[i - 1], time_s[i - 1]
         )
+
+
+def repeated_step(row: int, key: str, step: Any) -> col.CellError:
+    """The refusal of a step given twice in a rollout (`row`: the later one, 0-based)."""
+    return col.fail(row, "step", f"rollout '{shown(key)}' has step {step} twice")
+
+
+def time_not_after(
+    row: int, key: str, step: Any, time_s: Any, prev_step: Any, prev_time_s: Any
+) -> col.CellError:
+    """The refusal of a step whose time is not after its predecessor's (`row`: 0-based)."""
+    return col.fail(
+        row,
+        "time_s",
+        f"rollout '{shown(key)}' step {step} has time {time_s:g} s, "
+        f"not after step {prev_step} at {prev_time_s:g} s",
+    )
 
 
 def _optional_bytes(table: pa.Table, name: str) -> np.ndarray | None:

@@ -8,6 +8,7 @@ from concurrent.futures import ThreadPoolExecutor
 from unittest import mock
 
 from expertloop.ingest import service as ingest_service
+from expertloop.ingest import staging
 from tests.helpers import discrete_rows, parquet_bytes
 from tests.hostile.conftest import row_counts
 
@@ -46,7 +47,7 @@ def test_a_file_being_validated_blocks_no_other_upload(client, loops, uploader, 
     slow = parquet_bytes(discrete_rows(1, 5, prefix="slow"))
     quick = parquet_bytes(discrete_rows(1, 5, prefix="quick"))
     validating, release = threading.Event(), threading.Event()
-    real = ingest_service.validate
+    real = staging.validate_rows  # each table of a file read in batches is validated here
 
     def held_validate(table, *args, **kwargs):
         if "slow0" in table["rollout"].to_pylist():
@@ -55,7 +56,7 @@ def test_a_file_being_validated_blocks_no_other_upload(client, loops, uploader, 
         return real(table, *args, **kwargs)
 
     with (
-        mock.patch.object(ingest_service, "validate", held_validate),
+        mock.patch.object(staging, "validate_rows", held_validate),
         ThreadPoolExecutor(1) as pool,
     ):
         slow_answer = pool.submit(post, client, uploader, slow)

@@ -1,0 +1,610 @@
+"""An upload validated in bounded batches and staged on disk, then read back sorted.
+
+Pass 1 (`stage_file`, no transaction open) reads the file a table of a few MB at a time
+(`stream_read`), validates each table's values (`validate.validate_rows`, rows named as in the
+file) and appends the validated columns to one file each in a folder beside the spooled upload;
+images go to a data file with their content hashes beside. In memory stay only what the checks
+across rows need: each rollout's key, step count and robot, and whether the rows arrived sorted
+by (rollout, step). A sorted file (the usual case) is checked for repeated steps and times going
+backwards as it streams past; an unsorted one has its rollout, step and time columns read back
+once, sorted (20 bytes a row, and an 8-byte permutation kept for pass 2), and checked as the
+whole-file path does. The refusals are the whole-file path's, with the same messages.
+
+Pass 2 reads the staged columns in (rollout, step) order, in chunks (`StagedUpload.batch`): the
+rollouts' content hashes (`StagedUpload.rollout_hashes`, byte for byte those of
+`service.rollout_hashes` on the whole file) and the rows to insert.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import mmap
+import os
+import shutil
+import tempfile
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import IO, Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from ..errors import InvalidInput
+from ..loops.spec import LoopSpec
+from . import columns as col
+from . import stream_read
+from .images import content_digests
+from .limits import UploadLimits
+from .spool import UPLOAD_PREFIX
+from .validate import (
+    DEFAULT_LIMITS,
+    NO_ACTION,
+    RowColumns,
+    StepBatch,
+    check_order,
+    repeated_step,
+    time_not_after,
+    validate_rows,
+)
+
+# Rows read back at a time in pass 2 (fewer for wide rows: about BATCH_BYTES of columns).
+CHUNK_ROWS = 16_384
+DIGEST_BYTES = 32
+# The optional per-step columns, in the order of the rollout content hash.
+OPTIONAL = ("learner_action", "expert_action", "learner_probs", "learner_ensemble", "learner_std")
+
+
+class _Column:
+    """One fixed-width column written row by row to a file, read back by row ranges."""
+
+    def __init__(self, folder: Path, name: str, dtype: Any, shape: tuple[int, ...]) -> None:
+        self.path = folder / f"{name}.bin"
+        self.dtype = np.dtype(dtype)
+        self.shape = shape
+        self.items = int(np.prod(shape, dtype=np.int64))
+        self.row_bytes = self.items * self.dtype.itemsize
+        self.rows = 0
+        self._out: IO[bytes] | None = self.path.open("wb")
+        self._in: IO[bytes] | None = None
+        self._map: mmap.mmap | None = None
+        self._view: np.ndarray | None = None
+
+    def append(self, values: np.ndarray) -> None:
+        assert self._out is not None
+        values = np.ascontiguousarray(values, dtype=self.dtype)
+        self._out.write(values.reshape(-1).view(np.uint8).data)
+        self.rows += len(values)
+
+    def fill(self, rows: int, value: Any) -> None:
+        if rows > 0:
+            self.append(np.full((rows, *self.shape), value, dtype=self.dtype))
+
+    def finish(self) -> None:
+        if self._out is not None:
+            self._out.close()
+            self._out = None
+
+    def read(self, start: int, stop: int, order: np.ndarray | None) -> np.ndarray:
+        """Rows start..stop of the sorted upload: of the file, or through `order`."""
+        if order is None:
+            if self._in is None:
+                self._in = self.path.open("rb")
+            self._in.seek(start * self.row_bytes)
+            count = (stop - start) * self.items
+            return np.fromfile(self._in, self.dtype, count=count).reshape(
+                (stop - start, *self.shape)
+            )
+        if self._view is None:
+            fd = os.open(self.path, os.O_RDONLY)
+            try:
+                self._map = mmap.mmap(fd, 0, access=mmap.ACCESS_READ)
+            finally:
+                os.close(fd)
+            self._view = np.frombuffer(self._map, self.dtype).reshape((-1, *self.shape))
+        out = self._view[order[start:stop]]
+        # The mapped pages count as this process's memory until given back: the file's pages
+        # stay in the page cache, only this process lets go of them.
+        assert self._map is not None
+        self._map.madvise(mmap.MADV_DONTNEED)
+        return out
+
+    def close(self) -> None:
+        self.finish()
+        if self._in is not None:
+            self._in.close()
+            self._in = None
+        self._view = None
+        if self._map is not None:
+            self._map.close()
+            self._map = None
+
+
+class _Blobs:
+    """Values of varying length (scene text, images): one data file, and each row's span."""
+
+    def __init__(self, folder: Path, name: str) -> None:
+        self.data_path = folder / f"{name}.data"
+        self.spans = _Column(folder, f"{name}.spans", np.int64, (2,))  # start, length (-1: none)
+        self._out: IO[bytes] | None = self.data_path.open("wb")
+        self._fd: int | None = None
+        self.size = 0
+
+    def append(self, values: np.ndarray | list[Any]) -> None:
+        assert self._out is not None
+        spans = np.full((len(values), 2), -1, dtype=np.int64)
+        for i, value in enumerate(values):
+            if value is None:
+                continue
+            data = value.encode() if isinstance(value, str) else value
+            spans[i] = (self.size, len(data))
+            self._out.write(data)
+            self.size += len(data)
+        self.spans.append(spans)
+
+    def fill(self, rows: int) -> None:
+        self.spans.fill(rows, -1)
+
+    def finish(self) -> None:
+        self.spans.finish()
+        if self._out is not None:
+            self._out.close()
+            self._out = None
+
+    def read_span(self, start: int, length: int) -> bytes:
+        if self._fd is None:
+            self._fd = os.open(self.data_path, os.O_RDONLY)
+        parts, got = [], 0
+        while got < length:
+            part = os.pread(self._fd, length - got, start + got)
+            if not part:
+                raise OSError(f"staged data ends early: {self.data_path.name}")
+            parts.append(part)
+            got += len(part)
+        return b"".join(parts)
+
+    def read(self, spans: np.ndarray) -> list[bytes | None]:
+        """The values of the given spans (rows of `spans.read`), None where there is none."""
+        present = spans[:, 1] >= 0
+        if not present.any():
+            return [None] * len(spans)
+        lo = int(spans[present, 0].min())
+        hi = int((spans[present, 0] + spans[present, 1]).max())
+        if hi - lo <= 2 * int(spans[present, 1].sum()) + 4096:  # close together: one read
+            block = self.read_span(lo, hi - lo)
+            return [
+                None if length < 0 else block[start - lo : start - lo + length]
+                for start, length in spans.tolist()
+            ]
+        return [None if length < 0 else self.read_span(start, length) for start, length in spans]
+
+    def close(self) -> None:
+        self.finish()
+        self.spans.close()
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None
+
+
+@dataclass
+class _Order:
+    """Pass 1's running checks of row order, while the rows still arrive sorted."""
+
+    sorted: bool = True
+    last: tuple[str, Any, Any] | None = None  # the previous row's key, step and time
+    repeated: col.CellError | None = None
+    backwards: col.CellError | None = None
+
+    def add(
+        self, keys: list[str], rank: np.ndarray, step: np.ndarray, time_s: np.ndarray, offset: int
+    ) -> None:
+        """rank: each row's key's rank among this table's keys (sorted as strings)."""
+        if not self.sorted:
+            return
+        key_step = np.diff(rank)
+        in_order = (key_step > 0) | ((key_step == 0) & (np.diff(step) >= 0))
+        first_key = keys[rank[0]]
+        if not in_order.all() or (
+            self.last is not None and (self.last[0], self.last[1]) > (first_key, step[0])
+        ):
+            self.sorted = False
+            return
+        same = np.empty(len(step), dtype=bool)
+        same[1:] = key_step == 0
+        prev_step = np.empty_like(step)
+        prev_step[1:] = step[:-1]
+        prev_time = np.empty_like(time_s)
+        prev_time[1:] = time_s[:-1]
+        if self.last is None:
+            same[0] = False
+        else:
+            same[0] = self.last[0] == first_key
+            prev_step[0], prev_time[0] = self.last[1], self.last[2]
+        if self.repeated is None:
+            hits = np.flatnonzero(same & (step == prev_step))
+            if len(hits):
+                i = int(hits[0])
+                self.repeated = repeated_step(offset + i, keys[rank[i]], step[i])
+        if self.backwards is None:
+            hits = np.flatnonzero(same & (time_s <= prev_time))
+            if len(hits):
+                i = int(hits[0])
+                self.backwards = time_not_after(
+                    offset + i, keys[rank[i]], step[i], time_s[i], prev_step[i], prev_time[i]
+                )
+        self.last = (keys[rank[-1]], step[-1], time_s[-1])
+
+
+@dataclass
+class StagedUpload:
+    """A validated upload on disk, read back in (rollout, step) order.
+
+    rollout_keys : the distinct rollout keys, sorted
+    counts : ndarray of shape (n_rollouts,), steps of each rollout
+    order : ndarray of shape (n_steps,), the file row of each sorted position; None when the
+        file was sorted already
+    """
+
+    folder: Path
+    spec: LoopSpec
+    n_steps: int
+    rollout_keys: list[str]
+    robot: list[str | None]
+    counts: np.ndarray
+    order: np.ndarray | None
+    columns: dict[str, _Column]
+    present: dict[str, bool]
+    ensemble_size: int
+    scene: _Blobs | None
+    image: _Blobs | None
+    starts: np.ndarray = field(init=False)
+
+    def __post_init__(self) -> None:
+        self.starts = np.concatenate([[0], np.cumsum(self.counts)]).astype(np.int64)
+
+    @property
+    def has_images(self) -> bool:
+        return self.image is not None
+
+    def chunks(self) -> Iterator[tuple[int, int]]:
+        """Ranges of sorted positions of a bounded number of rows and bytes."""
+        row_bytes = sum(c.row_bytes for c in self.columns.values()) + 64
+        rows = int(max(1, min(CHUNK_ROWS, stream_read.BATCH_BYTES // row_bytes)))
+        for start in range(0, self.n_steps, rows):
+            yield start, min(self.n_steps, start + rows)
+
+    def rollout_index(self, start: int, stop: int) -> np.ndarray:
+        return np.searchsorted(self.starts, np.arange(start, stop), side="right") - 1
+
+    def _read(self, name: str, start: int, stop: int) -> np.ndarray:
+        return self.columns[name].read(start, stop, self.order)
+
+    def _optional(self, name: str, start: int, stop: int) -> np.ndarray | col.Vectors | None:
+        if not self.present.get(name):
+            return None
+        values = self._read(name, start, stop)
+        if f"{name}.present" in self.columns:
+            return col.Vectors(values, self._read(f"{name}.present", start, stop))
+        return values
+
+    def hash_parts(self) -> list[str]:
+        """The staged columns in the order of the content hash (service._content_arrays)."""
+        parts = ["step", "time_s", "control", "features"]
+        for name in OPTIONAL:
+            if self.present.get(name):
+                parts.append(name)
+                if f"{name}.present" in self.columns:
+                    parts.append(f"{name}.present")
+        return parts
+
+    def scenes(self, start: int, stop: int) -> np.ndarray | None:
+        if self.scene is None:
+            return None
+        values = self.scene.read(self.scene.spans.read(start, stop, self.order))
+        return np.array([None if v is None else v.decode() for v in values], dtype=object)
+
+    def image_digests(self, start: int, stop: int) -> list[str | None] | None:
+        if self.image is None:
+            return None
+        spans = self.image.spans.read(start, stop, self.order)
+        digests = self._read("image.sha256", start, stop)
+        return [
+            None if length < 0 else digest.tobytes().hex()
+            for (_, length), digest in zip(spans.tolist(), digests, strict=True)
+        ]
+
+    def image_spans(self, start: int, stop: int) -> np.ndarray:
+        assert self.image is not None
+        return self.image.spans.read(start, stop, self.order)
+
+    def read_image(self, start: int, length: int) -> bytes:
+        assert self.image is not None
+        return self.image.read_span(start, length)
+
+    def batch(self, start: int, stop: int) -> StepBatch:
+        """Sorted positions start..stop as a StepBatch (rollout indexes into all the keys)."""
+        batch = StepBatch(
+            rollout_keys=self.rollout_keys,
+            rollout_index=self.rollout_index(start, stop),
+            row_number=np.arange(start, stop) + 1,
+            step=self._read("step", start, stop),
+            time_s=self._read("time_s", start, stop),
+            control=self._read("control", start, stop),
+            features=self._read("features", start, stop),
+            learner_action=self._optional("learner_action", start, stop),
+            expert_action=self._optional("expert_action", start, stop),
+            learner_probs=self._optional("learner_probs", start, stop),  # type: ignore[arg-type]
+            learner_ensemble=self._optional("learner_ensemble", start, stop),  # type: ignore[arg-type]
+            ensemble_size=self.ensemble_size,
+            learner_std=self._optional("learner_std", start, stop),  # type: ignore[arg-type]
+            robot=self.robot,
+            scene=self.scenes(start, stop),
+            image=None,
+        )
+        # the images stay on disk: their hashes are all the rows need
+        batch.__dict__["image_sha256"] = self.image_digests(start, stop)
+        return batch
+
+    def rollout_hashes(self) -> list[str]:
+        """SHA-256 of each rollout's canonical content, as service.rollout_hashes computes it
+        on the whole file: each rollout's rows of one column after another, so every rollout
+        has its own running hash and the columns are read one at a time."""
+        hashers = [hashlib.sha256() for _ in self.rollout_keys]
+        chunks = list(self.chunks())
+
+        def feed(parts: Iterator[tuple[int, int, list[bytes]]]) -> None:
+            for start, stop, rows in parts:
+                index = self.rollout_index(start, stop)
+                bounds = np.flatnonzero(np.diff(index)) + 1
+                for a, b in zip(
+                    [0, *bounds.tolist()], [*bounds.tolist(), stop - start], strict=True
+                ):
+                    hashers[index[a]].update(b"".join(rows[a:b]))
+
+        for name in self.hash_parts():
+            for start, stop in chunks:
+                values = self._read(name, start, stop)
+                index = self.rollout_index(start, stop)
+                bounds = np.flatnonzero(np.diff(index)) + 1
+                for a, b in zip(
+                    [0, *bounds.tolist()], [*bounds.tolist(), stop - start], strict=True
+                ):
+                    hashers[index[a]].update(np.ascontiguousarray(values[a:b]).tobytes())
+        if self.scene is not None:
+            feed(
+                (start, stop, [_scene_digest(v) for v in self.scenes(start, stop)])  # type: ignore[union-attr]
+                for start, stop in chunks
+            )
+        if self.image is not None:
+            feed(
+                (
+                    start,
+                    stop,
+                    [
+                        b"\x00" if d is None else bytes.fromhex(d)
+                        for d in self.image_digests(start, stop)  # type: ignore[union-attr]
+                    ],
+                )
+                for start, stop in chunks
+            )
+        return [h.hexdigest() for h in hashers]
+
+    def close(self) -> None:
+        """Close the staged files and delete their folder."""
+        for column in self.columns.values():
+            column.close()
+        for blobs in (self.scene, self.image):
+            if blobs is not None:
+                blobs.close()
+        shutil.rmtree(self.folder, ignore_errors=True)
+
+
+def _scene_digest(value: str | None) -> bytes:
+    return b"\x00" if value is None else hashlib.sha256(value.encode()).digest()
+
+
+class _Stager:
+    """Pass 1: validated tables in, staged columns out."""
+
+    def __init__(self, folder: Path, spec: LoopSpec) -> None:
+        self.folder = folder
+        self.spec = spec
+        self.rows = 0
+        self.index: dict[str, int] = {}  # rollout key -> its number, by first appearance
+        self.counts = np.zeros(0, dtype=np.int64)
+        self.robot: list[str | None] = []
+        self.order = _Order()
+        width = len(spec.feature_names)
+        self.columns: dict[str, _Column] = {
+            "rollout": _Column(folder, "rollout", np.int32, ()),
+            "step": _Column(folder, "step", np.int64, ()),
+            "time_s": _Column(folder, "time_s", np.float64, ()),
+            "control": _Column(folder, "control", np.int8, ()),
+            "features": _Column(folder, "features", np.float32, (width,)),
+        }
+        self.present: dict[str, bool] = {}
+        self.ensemble_size = 0
+        self.scene: _Blobs | None = None
+        self.image: _Blobs | None = None
+
+    def add(self, table: pa.Table, rows: RowColumns) -> None:
+        n = len(rows.step)
+        offset = self.rows
+        encoded = pc.dictionary_encode(table["rollout"]).combine_chunks()
+        keys: list[str] = encoded.dictionary.to_pylist()
+        indices = encoded.indices.to_numpy(zero_copy_only=False)
+        number = np.array([self.index.setdefault(k, len(self.index)) for k in keys], np.int32)
+        local = number[indices]
+        new = len(self.index) - len(self.counts)
+        if new:
+            self.counts = np.concatenate([self.counts, np.zeros(new, dtype=np.int64)])
+            first_row = np.full(len(keys), -1)
+            first_row[indices[::-1]] = np.arange(n)[::-1]
+            fresh = [j for j in range(len(keys)) if number[j] >= len(self.robot)]
+            for j in sorted(fresh, key=lambda j: number[j]):
+                self.robot.append(None if rows.robot is None else rows.robot[first_row[j]])
+        self.counts += np.bincount(local, minlength=len(self.counts))
+        by_key = sorted(range(len(keys)), key=keys.__getitem__)
+        rank_of = np.empty(len(keys), dtype=np.int64)
+        rank_of[by_key] = np.arange(len(keys))
+        sorted_keys = [keys[j] for j in by_key]
+        self.order.add(sorted_keys, rank_of[indices], rows.step, rows.time_s, offset)
+
+        c = self.columns
+        c["rollout"].append(local)
+        c["step"].append(rows.step)
+        c["time_s"].append(rows.time_s)
+        c["control"].append(rows.control)
+        c["features"].append(rows.features)
+        for name in OPTIONAL:
+            self._add_optional(name, getattr(rows, name), rows.ensemble_size, offset, n)
+        if rows.scene is not None and self.scene is None:
+            self.scene = _Blobs(self.folder, "scene")
+            self.scene.fill(offset)
+        if self.scene is not None:
+            if rows.scene is None:
+                self.scene.fill(n)
+            else:
+                self.scene.append(rows.scene)
+        if rows.image is not None and self.image is None:
+            self.image = _Blobs(self.folder, "image")
+            self.image.fill(offset)
+            c["image.sha256"] = _Column(self.folder, "image.sha256", np.uint8, (DIGEST_BYTES,))
+            c["image.sha256"].fill(offset, 0)
+        if self.image is not None:
+            if rows.image is None:
+                self.image.fill(n)
+                c["image.sha256"].fill(n, 0)
+            else:
+                digests = content_digests(rows.image)
+                raw = np.zeros((n, DIGEST_BYTES), dtype=np.uint8)
+                for i, digest in enumerate(digests):
+                    if digest is not None:
+                        raw[i] = np.frombuffer(bytes.fromhex(digest), np.uint8)
+                self.image.append(rows.image)
+                c["image.sha256"].append(raw)
+        self.rows += n
+
+    def _add_optional(
+        self, name: str, value: np.ndarray | col.Vectors | None, size: int, offset: int, n: int
+    ) -> None:
+        c = self.columns
+        if isinstance(value, col.Vectors):
+            if name == "learner_ensemble":
+                if size == 0:  # no row of this table has an ensemble
+                    value = None
+                elif self.ensemble_size and size != self.ensemble_size:
+                    raise InvalidInput(
+                        f"column {name}: every row must have the same number of members"
+                    )
+                else:
+                    self.ensemble_size = size
+        if value is not None and name not in c:
+            if isinstance(value, col.Vectors):
+                c[name] = _Column(self.folder, name, np.float32, value.values.shape[1:])
+                c[f"{name}.present"] = _Column(self.folder, f"{name}.present", np.bool_, ())
+            else:
+                c[name] = _Column(self.folder, name, np.int32, ())
+            self._fill(name, offset)
+        if name not in c:
+            return
+        if value is None:
+            self._fill(name, n)
+        elif isinstance(value, col.Vectors):
+            c[name].append(value.values)
+            c[f"{name}.present"].append(value.present)
+            self.present[name] = self.present.get(name, False) or bool(value.present.any())
+        else:
+            c[name].append(value)
+            self.present[name] = self.present.get(name, False) or bool((value != NO_ACTION).any())
+
+    def _fill(self, name: str, rows: int) -> None:
+        c = self.columns
+        if f"{name}.present" in c:
+            c[name].fill(rows, 0)
+            c[f"{name}.present"].fill(rows, False)
+        else:
+            c[name].fill(rows, NO_ACTION)
+
+    def finish(self) -> StagedUpload:
+        for column in self.columns.values():
+            column.finish()
+        for blobs in (self.scene, self.image):
+            if blobs is not None:
+                blobs.finish()
+        keys = list(self.index)
+        by_key = sorted(range(len(keys)), key=keys.__getitem__)
+        rank_of = np.empty(len(keys), dtype=np.int64)
+        rank_of[by_key] = np.arange(len(keys))
+        rollout_keys = [keys[j] for j in by_key]
+        order: np.ndarray | None = None
+        if self.order.sorted:
+            if self.order.repeated is not None:
+                raise self.order.repeated
+            if self.order.backwards is not None:
+                raise self.order.backwards
+        else:
+            order = self._sort(rank_of, rollout_keys)
+        columns = {k: v for k, v in self.columns.items() if k != "rollout"}
+        self.columns["rollout"].close()
+        return StagedUpload(
+            folder=self.folder,
+            spec=self.spec,
+            n_steps=self.rows,
+            rollout_keys=rollout_keys,
+            robot=[self.robot[j] for j in by_key],
+            counts=self.counts[by_key],
+            order=order,
+            columns=columns,
+            present=self.present,
+            ensemble_size=self.ensemble_size,
+            scene=self.scene,
+            image=self.image,
+        )
+
+    def _sort(self, rank_of: np.ndarray, rollout_keys: list[str]) -> np.ndarray:
+        """The permutation sorting the file by (rollout, step), after the whole-file checks."""
+        everything = (0, self.rows, None)
+        rank = rank_of[self.columns["rollout"].read(*everything)]
+        step = self.columns["step"].read(*everything)
+        order = np.lexsort((step, rank))
+        time_s = self.columns["time_s"].read(*everything)
+        check_order(rank[order], step[order], time_s[order], order, rollout_keys)
+        return order
+
+
+def stage_file(
+    path: Path,
+    file_format: str,
+    spec: LoopSpec,
+    *,
+    round_number: int,
+    limits: UploadLimits = DEFAULT_LIMITS,
+) -> StagedUpload:
+    """Pass 1: read and validate a rollout file in bounded batches, staging its columns in a new
+    folder beside `path` (named as spooled uploads are, so a crash's leftovers are swept).
+    Refusals are the whole-file path's; the folder is deleted on a refusal, and by
+    `StagedUpload.close` otherwise."""
+    folder = Path(tempfile.mkdtemp(dir=path.parent, prefix=UPLOAD_PREFIX))
+    stager = _Stager(folder, spec)
+    try:
+        for table in stream_read.iter_tables(
+            path, file_format, max_array_bytes=limits.max_array_bytes
+        ):
+            try:
+                rows = validate_rows(table, spec, round_number=round_number, limits=limits)
+            except col.CellError as exc:
+                if stager.rows == 0:
+                    raise
+                raise col.fail(exc.row + stager.rows, exc.column, exc.reason) from exc
+            stager.add(table, rows)
+        return stager.finish()
+    except BaseException:
+        for column in stager.columns.values():
+            column.close()
+        for blobs in (stager.scene, stager.image):
+            if blobs is not None:
+                blobs.close()
+        shutil.rmtree(folder, ignore_errors=True)
+        raise

@@ -1,0 +1,293 @@
+"""Read a rollout file of any accepted format as a stream of Arrow tables of bounded size.
+
+The whole-file reader (`formats.read_table`) holds every row at once; this one yields tables of
+about `batch_bytes` decoded (and at most `max_rows` rows), so an upload's memory does not grow
+with its size. The checks and messages are the whole-file reader's: the declared decoded size
+of Parquet and `.npz` files (413) before anything is decompressed, dictionary-encoded text
+counted as decoded, JSON Lines refused by the line. Every table has the same columns in the
+same order, except for JSON Lines, whose lines may name columns first seen late in the file.
+"""
+
+from __future__ import annotations
+
+import codecs
+import zipfile
+import zlib
+from collections.abc import Iterator
+from pathlib import Path
+from typing import IO, Any
+
+import numpy as np
+import numpy.lib.format as npformat
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from ..errors import InvalidInput
+from ..limits import shown
+from ..shared.contract import FORMATS
+from .formats import (
+    DEFAULT_MAX_ARRAY_BYTES,
+    NPY_MAX_HEADER_BYTES,
+    _declared_parquet_bytes,
+    _decode_dictionaries,
+    _decoded_bytes,
+    _is_text,
+    _jsonl_row,
+    _kind,
+    _literal_columns,
+    _mixed_types,
+    _npz_column,
+    _too_large,
+    npz_headers,
+)
+
+# A table of about this many bytes once decoded: large enough that per-table costs vanish,
+# small enough that a few of them (read, validated, written) stay far below the memory bound.
+BATCH_BYTES = 4 << 20
+MAX_BATCH_ROWS = 32_768
+# Parquet read buffer for all columns together (pyarrow otherwise reads a whole column chunk,
+# which a file written as one row group makes as large as the file).
+PARQUET_BUFFER_BYTES = 8 << 20
+
+
+def iter_tables(
+    path: Path,
+    file_format: str,
+    *,
+    max_array_bytes: int = DEFAULT_MAX_ARRAY_BYTES,
+    batch_bytes: int | None = None,
+    max_rows: int | None = None,
+) -> Iterator[pa.Table]:
+    """The file's rows as tables of bounded size, in file order; refusals as `read_table`'s.
+    `batch_bytes` and `max_rows` default to BATCH_BYTES and MAX_BATCH_ROWS."""
+    batch_bytes = BATCH_BYTES if batch_bytes is None else batch_bytes
+    max_rows = MAX_BATCH_ROWS if max_rows is None else max_rows
+    if path.stat().st_size == 0:
+        raise InvalidInput("the file is empty")
+    if file_format == "parquet":
+        tables = _parquet_tables(path, max_array_bytes, batch_bytes, max_rows)
+    elif file_format == "npz":
+        tables = _npz_tables(path, max_array_bytes, batch_bytes, max_rows)
+    elif file_format == "jsonl":
+        tables = _jsonl_tables(path, batch_bytes, max_rows)
+    else:
+        raise InvalidInput(f"unknown format '{shown(file_format)}'; use one of {list(FORMATS)}")
+    rows = 0
+    for table in tables:
+        if table.num_rows:
+            rows += table.num_rows
+            yield table
+    if rows == 0:
+        raise InvalidInput("the file holds no rows")
+
+
+def _parquet_tables(
+    path: Path, max_array_bytes: int, batch_bytes: int, max_rows: int
+) -> Iterator[pa.Table]:
+    # As formats._read_parquet: messages never repeat pyarrow's. Not memory-mapped: a mapped
+    # file's pages count as the server's resident memory.
+    try:
+        parquet = pq.ParquetFile(path, memory_map=False)
+        metadata = parquet.metadata
+        declared = _declared_parquet_bytes(metadata)
+        if declared > max_array_bytes:
+            raise _too_large("the Parquet file", declared, max_array_bytes)
+        literal = _literal_columns(metadata)
+        text = [f.name for f in parquet.schema_arrow if _is_text(f.type) and f.name not in literal]
+        columns = max(1, metadata.num_columns)
+        parquet = pq.ParquetFile(
+            path,
+            memory_map=False,
+            read_dictionary=text,
+            buffer_size=max(64 << 10, PARQUET_BUFFER_BYTES // columns),
+            pre_buffer=False,
+        )
+        rows = _parquet_batch_rows(metadata, batch_bytes, max_rows)
+        read_bytes = 0
+        for batch in parquet.iter_batches(batch_size=rows, use_threads=False):
+            table = pa.Table.from_batches([batch])
+            read_bytes += _decoded_bytes(table)
+            if read_bytes > max_array_bytes:
+                raise _too_large("the Parquet file", read_bytes, max_array_bytes)
+            yield from _decoded_slices(table, batch_bytes)
+    except (pa.ArrowException, OSError) as exc:
+        raise InvalidInput("not a readable Parquet file (truncated or damaged?)") from exc
+
+
+def _parquet_batch_rows(metadata: pq.FileMetaData, batch_bytes: int, max_rows: int) -> int:
+    """Rows a batch may have so that its declared size is about `batch_bytes`, judged by the
+    row group declaring the most bytes a row."""
+    widest = 1.0
+    for i in range(metadata.num_row_groups):
+        group = metadata.row_group(i)
+        if group.num_rows:
+            size = sum(
+                max(group.column(j).total_uncompressed_size, group.column(j).num_values * 4)
+                for j in range(group.num_columns)
+            )
+            widest = max(widest, size / group.num_rows)
+    return int(min(max_rows, max(1, batch_bytes // widest)))
+
+
+def _decoded_slices(table: pa.Table, batch_bytes: int) -> Iterator[pa.Table]:
+    """The table with its dictionary columns decoded, in row slices of about `batch_bytes`:
+    a few rows of one long value repeated decode to far more than they take as a dictionary."""
+    dictionaries = [c for c in table.columns if pa.types.is_dictionary(c.type)]
+    if not dictionaries or _decoded_bytes(table) <= 2 * batch_bytes:
+        yield _decode_dictionaries(table)
+        return
+    per_row = np.full(table.num_rows, 0.0)
+    for column in table.columns:
+        if not pa.types.is_dictionary(column.type):
+            per_row += column.nbytes / max(1, table.num_rows)
+            continue
+        chunk = column.combine_chunks()
+        lengths = pc.binary_length(chunk.dictionary).to_numpy(zero_copy_only=False)
+        indices = chunk.indices.fill_null(0).to_numpy(zero_copy_only=False)
+        per_row += 4 + (lengths[indices] if len(lengths) else 0)
+    ends = np.cumsum(per_row)
+    start = 0
+    while start < table.num_rows:
+        base = ends[start - 1] if start else 0.0
+        stop = int(np.searchsorted(ends, base + batch_bytes, side="right"))
+        stop = min(table.num_rows, max(stop, start + 1))
+        yield _decode_dictionaries(table.slice(start, stop - start))
+        start = stop
+
+
+def _npz_tables(
+    path: Path, max_array_bytes: int, batch_bytes: int, max_rows: int
+) -> Iterator[pa.Table]:
+    """Row slices of every member at once, each member read as a stream of its .npy data (a
+    member whose rows are not contiguous, Fortran-ordered with 2 or 3 dimensions, is read
+    whole)."""
+    try:
+        with zipfile.ZipFile(path) as archive:
+            headers = npz_headers(archive)
+            if not headers:
+                raise InvalidInput("the .npz file holds no arrays")
+            lengths = {h.name: h.shape[0] for h in headers}
+            if len(set(lengths.values())) != 1:
+                shown_lengths = shown(", ".join(f"{k}: {v}" for k, v in lengths.items()), 200)
+                raise InvalidInput(
+                    f".npz arrays must all have one row per step; lengths: {shown_lengths}"
+                )
+            declared = sum(h.n_bytes for h in headers)
+            if declared > max_array_bytes:
+                raise _too_large("the .npz file's arrays", declared, max_array_bytes)
+            n_rows = headers[0].shape[0]
+            row_bytes = max(1, sum(h.n_bytes // max(1, h.shape[0]) for h in headers))
+            rows = int(min(max_rows, max(1, batch_bytes // row_bytes)))
+            members = [_NpyMember(archive, h.name) for h in headers]
+            try:
+                for start in range(0, n_rows, rows):
+                    take = min(rows, n_rows - start)
+                    yield pa.table({m.name: _npz_column(m.name, m.read(take)) for m in members})
+            finally:
+                for member in members:
+                    member.close()
+    except (ValueError, OSError, zipfile.BadZipFile, EOFError, zlib.error) as exc:
+        raise InvalidInput(
+            "not a readable .npz file (truncated, damaged or not a zip of .npy)"
+        ) from exc
+
+
+class _NpyMember:
+    """One .npy member of an open .npz, read a number of rows at a time."""
+
+    def __init__(self, archive: zipfile.ZipFile, name: str) -> None:
+        self.name = name
+        self.stream: IO[bytes] = archive.open(name + ".npy")
+        version = npformat.read_magic(self.stream)
+        read_header = (
+            npformat.read_array_header_1_0 if version == (1, 0) else npformat.read_array_header_2_0
+        )
+        shape, fortran, dtype = read_header(self.stream, NPY_MAX_HEADER_BYTES)
+        self.shape: tuple[int, ...] = tuple(shape)
+        self.dtype: np.dtype[Any] = dtype
+        self.row_items = int(np.prod(self.shape[1:], dtype=np.int64))
+        self.whole: np.ndarray | None = None
+        self.position = 0
+        if fortran and len(self.shape) > 1:
+            count = int(np.prod(self.shape, dtype=np.int64))
+            data = self._read_exactly(count * dtype.itemsize)
+            self.whole = np.frombuffer(data, dtype).reshape(self.shape, order="F")
+
+    def _read_exactly(self, n_bytes: int) -> bytes:
+        data = self.stream.read(n_bytes)
+        if len(data) != n_bytes:
+            raise EOFError("the member ends early")
+        return data
+
+    def read(self, rows: int) -> np.ndarray:
+        if self.whole is not None:
+            part = self.whole[self.position : self.position + rows]
+            self.position += rows
+            return np.ascontiguousarray(part)
+        data = self._read_exactly(rows * self.row_items * self.dtype.itemsize)
+        return np.frombuffer(data, self.dtype).reshape((rows, *self.shape[1:]))
+
+    def close(self) -> None:
+        self.stream.close()
+
+
+def _jsonl_tables(path: Path, batch_bytes: int, max_rows: int) -> Iterator[pa.Table]:
+    """Lines in groups of at most `max_rows` rows or about `batch_bytes` of text. Every table
+    has every column named so far (in order of first appearance, null where a line leaves it
+    out), as the whole file's table would; a column whose kind of value differs from an
+    earlier group's is refused as the whole-file reader refuses it, naming the line."""
+    names: dict[str, None] = {}
+    first: dict[str, tuple[str, int]] = {}  # column -> kind of its first value, and its line
+    types: dict[str, pa.DataType] = {}  # column -> its first non-null Arrow type
+    rows: list[dict[str, Any]] = []
+    lines: list[int] = []
+    held = 0
+    with path.open("rb") as fh:
+        if fh.read(2) in (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE):
+            raise InvalidInput("line 1: the file is UTF-16 text; save it as UTF-8")
+        fh.seek(0)
+        for line_number, raw in enumerate(fh, start=1):
+            row = _jsonl_row(raw, line_number)
+            if row is None:
+                continue
+            rows.append(row)
+            lines.append(line_number)
+            held += len(raw)
+            if len(rows) >= max_rows or held >= batch_bytes:
+                yield _jsonl_table(rows, lines, names, first, types)
+                rows, lines, held = [], [], 0
+    if rows:
+        yield _jsonl_table(rows, lines, names, first, types)
+
+
+def _jsonl_table(
+    rows: list[dict[str, Any]],
+    lines: list[int],
+    names: dict[str, None],
+    first: dict[str, tuple[str, int]],
+    types: dict[str, pa.DataType],
+) -> pa.Table:
+    for row in rows:
+        names.update(dict.fromkeys(row))
+    try:
+        table = pa.Table.from_pydict({name: [row.get(name) for row in rows] for name in names})
+    except (pa.ArrowException, TypeError, OverflowError) as exc:
+        raise InvalidInput(_mixed_types(rows, lines, dict(first))) from exc
+    for name in names:
+        column = table[name]
+        if column.null_count == len(column):
+            known = types.get(name)
+            if known is not None and pa.types.is_null(column.type):
+                # the whole file's column has the type earlier lines gave it
+                table = table.set_column(
+                    table.column_names.index(name), name, pa.nulls(len(column), known)
+                )
+            continue
+        types.setdefault(name, column.type)
+        i = int(pc.index(column.is_valid(), True).as_py())
+        kind = _kind(rows[i][name])
+        seen = first.setdefault(name, (kind, lines[i]))
+        if kind != seen[0] and not (kind == "list" or seen[0] == "list"):
+            raise InvalidInput(_mixed_types(rows, lines, dict(first)))
+    return table
