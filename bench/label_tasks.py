@@ -36,9 +36,9 @@ demonstrations of 50 steps do not pin down.
 Scores are normalised per task: (mean return - random policy's) / (expert's - random policy's),
 each measured on the same evaluation episodes, so 1.0 is the expert and 0.95 the target. On
 reacher the random policy's torques cost it 0.67 a step in control penalty (about -33 of its
--43), so an arm left still (zero torque, return about -9.8 against the expert's -3.9) scores
-about 0.85: the target asks for a return within about 2 of the expert's, a third of the way
-from the expert to the still arm.
+-43), so an arm left still (zero torque) scores 0.77 to 0.87 by seed: the target asks for a
+return a fifth to two fifths of the way from the expert to the still arm (on seed 0's evaluation
+episodes within 2 of the expert's -3.9, the still arm at -9.8).
 """
 
 from __future__ import annotations
