@@ -116,31 +116,58 @@ def store_images(
     )
 
 
+@dataclass(frozen=True)
+class StagedImages:
+    """An upload's images already written back to back in one file (its staging folder).
+
+    path : the file; size : its length in bytes
+    starts : where each image starts in it, by hash
+    """
+
+    path: Path
+    size: int
+    starts: dict[str, int]
+
+
 def store_image_rows(
     session: Session,
     *,
     lengths: dict[str, int],
     read: Callable[[str], bytes],
     blob_dir: Path,
+    staged: StagedImages | None = None,
 ) -> PackWrite | None:
     """store_images for images read one at a time (an upload staged on disk).
 
     lengths : each distinct image's length by its hash, in the order of their first steps
     read : an image's bytes by its hash; called once for each image this upload stores, in
         that order, while the pack is written (so no more than one is held at a time)
+    staged : the file the images were staged in. When it holds exactly these images, each once
+        (the usual upload: fresh camera frames), and all of them are new, the file becomes the
+        pack: linked into place instead of copied, which saves reading and writing every
+        image's bytes once more.
     """
     if not lengths:
         return None
     name = uuid.uuid4().hex
-    planned = _offsets(list(lengths), lengths)
+    # The staged file holds nothing else exactly when the distinct images fill it.
+    whole = staged is not None and sum(lengths.values()) == staged.size
+    planned = (
+        dict(staged.starts) if whole and staged is not None else _offsets(list(lengths), lengths)
+    )
     owned = _claim(session, name=name, offsets=planned, lengths=lengths)
     if not owned:
         return None
     order = [digest for digest in lengths if digest in owned]
-    if len(order) < len(lengths):
-        # Some were stored already, or by an upload that committed first: close the gaps.
-        offsets = _offsets(order, lengths)
-        moved = [{"key": d, "offset": offsets[d]} for d in order if offsets[d] != planned[d]]
+    if whole and staged is not None and len(order) == len(lengths):
+        adopted = adopt_pack(blob_dir, name, staged.path)
+        if adopted is not None:
+            return PackWrite(adopted)
+    offsets = _offsets(order, lengths)
+    # Some were stored already, or by an upload that committed first, or the staged file
+    # could not be moved: the pack is written back to back, so close the gaps.
+    moved = [{"key": d, "offset": offsets[d]} for d in order if offsets[d] != planned[d]]
+    if moved:
         session.execute(
             update(IMAGES)
             .where(IMAGES.c.sha256 == bindparam("key"))
@@ -149,6 +176,32 @@ def store_image_rows(
         )
     total = sum(lengths[d] for d in order)
     return PackWrite(write_pack(blob_dir, name, (read(d) for d in order), total=total))
+
+
+# Why a hard link may be refused: another file system, or one without hard links.
+_NO_LINK = frozenset({errno.EXDEV, errno.EPERM, errno.ENOTSUP, errno.EMLINK})
+
+
+def adopt_pack(blob_dir: Path, name: str, source: Path) -> Path | None:
+    """Make a complete file the pack `name` as well: fsync'd, hard-linked into place, the
+    folder fsync'd. A link, not a rename: the file stays where it was too, so a store that is
+    retried (PostgreSQL, app/ingest/service.py) after the pack was discarded finds its images
+    again. None when the file system refuses the link (the caller copies the images)."""
+    final = pack_path(blob_dir, name)
+    final.parent.mkdir(parents=True, exist_ok=True)
+    fd = os.open(source, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+    try:
+        os.link(source, final)
+    except OSError as exc:
+        if exc.errno in _NO_LINK:
+            return None
+        raise
+    _fsync_folder(final.parent)
+    return final
 
 
 def _offsets(order: list[str], lengths: dict[str, int]) -> dict[str, int]:

@@ -334,11 +334,13 @@ def _store_staged_steps(
                     lengths[digest], where[digest] = length, offset
     if not lengths:
         return None
+    path, size = staged.image_file()
     return image_store.store_image_rows(
         session,
         lengths=lengths,
         read=lambda digest: staged.read_image(where[digest], lengths[digest]),
         blob_dir=blob_dir,
+        staged=image_store.StagedImages(path, size, where),
     )
 
 

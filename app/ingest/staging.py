@@ -322,6 +322,13 @@ class StagedUpload:
         assert self.image is not None
         return self.image.read_span(start, length)
 
+    def image_file(self) -> tuple[Path, int]:
+        """The staged images' data file (every image back to back, in file order) and its
+        size: the pack itself when every image in it is new and distinct (image_store)."""
+        assert self.image is not None
+        self.image.finish()
+        return self.image.data_path, self.image.size
+
     def batch(self, start: int, stop: int) -> StepBatch:
         """Sorted positions start..stop as a StepBatch (rollout indexes into all the keys)."""
         batch = StepBatch(

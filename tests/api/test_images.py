@@ -8,6 +8,7 @@ a refused or failed upload leaves no row, no pack and no image to serve.
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import os
 import threading
@@ -130,6 +131,52 @@ def test_an_uploads_images_go_into_one_pack_and_come_back_byte_for_byte(
         served(client, admin, image)
     steps = client.get(f"/api/loops/{SLUG}/rollouts/r0/steps", headers=admin).json()["items"]
     assert [s["image_sha256"] for s in steps] == [None if i is None else sha(i) for i in images[:4]]
+
+
+def test_an_upload_of_new_distinct_images_links_its_staged_file_as_the_pack(
+    client, loop, uploader, admin, engine, settings, monkeypatch
+):
+    """The usual camera upload: the images staged in pass 1 already lie back to back, so the
+    staged file becomes the pack and nothing is copied (a copy would fail here)."""
+
+    def no_copy(*args, **kwargs):
+        raise AssertionError("the images were copied into a new pack")
+
+    monkeypatch.setattr(image_store, "write_pack", no_copy)
+    images = [png("a"), jpeg("b"), None, webp("c"), png("d", 5000), None, jpeg("e"), png("f")]
+    assert send(client, uploader, file_with(images)).status_code == 201
+    [pack] = placed_packs(settings)
+    distinct = [i for i in images if i is not None]
+    assert pack.read_bytes() == b"".join(distinct)
+    assert pack.stat().st_nlink == 1  # the staging folder, and its name for the file, are gone
+    for image in distinct:
+        served(client, admin, image)
+
+
+def test_images_are_copied_back_to_back_when_the_staged_file_cannot_be_linked(
+    client, loop, uploader, admin, engine, settings, monkeypatch
+):
+    """Staging on another file system than the packs: the link is refused (EXDEV), the images
+    are copied in step order, and the index rows, planned at their staged places (file order,
+    here the reverse of step order), move to where the copy put them."""
+
+    def refuse(*args, **kwargs):
+        raise OSError(errno.EXDEV, "Invalid cross-device link")
+
+    monkeypatch.setattr(image_store.os, "link", refuse)
+    images = [png("a"), png("b", 900), None, jpeg("c"), png("d"), webp("e"), png("f", 50), None]
+    columns = discrete_rows(2, 4)
+    columns["image"] = images
+    reversed_rows = {name: values[::-1] for name, values in columns.items()}
+    assert send(client, uploader, parquet_bytes(reversed_rows)).status_code == 201
+    [pack] = placed_packs(settings)
+    distinct = [i for i in images if i is not None]
+    assert pack.read_bytes() == b"".join(distinct)  # step order, not the file's order
+    rows = index_rows(engine)
+    for image in distinct:
+        _, offset, length = rows[sha(image)]
+        assert pack.read_bytes()[offset : offset + length] == image
+        served(client, admin, image)
 
 
 def test_an_image_repeated_within_an_upload_is_stored_once(
