@@ -121,6 +121,14 @@ class _Column:
             self._map = None
 
 
+# Staged values (camera images) are handed to the disk every this many bytes: the kernel is
+# asked to start writing them back at once (POSIX_FADV_DONTNEED starts writeback of a file's
+# dirty pages on Linux, and lets go of those already written), so that the disk writes while
+# the rest of the upload is read and hashed, instead of all of it at the fsync that makes the
+# staged images a pack (image_store.adopt_pack).
+WRITEBACK_BYTES = 32 << 20
+
+
 class _Blobs:
     """Values of varying length (scene text, images): one data file, and each row's span."""
 
@@ -130,6 +138,7 @@ class _Blobs:
         self._out: IO[bytes] | None = self.data_path.open("wb")
         self._fd: int | None = None
         self.size = 0
+        self._written_back = 0
 
     def append(self, values: np.ndarray | list[Any]) -> None:
         assert self._out is not None
@@ -142,6 +151,10 @@ class _Blobs:
             self._out.write(data)
             self.size += len(data)
         self.spans.append(spans)
+        if self.size - self._written_back >= WRITEBACK_BYTES:
+            self._out.flush()
+            os.posix_fadvise(self._out.fileno(), 0, 0, os.POSIX_FADV_DONTNEED)
+            self._written_back = self.size
 
     def fill(self, rows: int) -> None:
         self.spans.fill(rows, -1)
