@@ -127,6 +127,7 @@ class _Column:
 # the rest of the upload is read and hashed, instead of all of it at the fsync that makes the
 # staged images a pack (image_store.adopt_pack).
 WRITEBACK_BYTES = 32 << 20
+_ADVISE = getattr(os, "posix_fadvise", None)  # not on every system (macOS has none)
 
 
 class _Blobs:
@@ -151,9 +152,9 @@ class _Blobs:
             self._out.write(data)
             self.size += len(data)
         self.spans.append(spans)
-        if self.size - self._written_back >= WRITEBACK_BYTES:
+        if self.size - self._written_back >= WRITEBACK_BYTES and _ADVISE is not None:
             self._out.flush()
-            os.posix_fadvise(self._out.fileno(), 0, 0, os.POSIX_FADV_DONTNEED)
+            _ADVISE(self._out.fileno(), 0, 0, os.POSIX_FADV_DONTNEED)
             self._written_back = self.size
 
     def fill(self, rows: int) -> None:
