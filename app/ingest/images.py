@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import threading
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
@@ -16,9 +17,13 @@ JPEG_SIGNATURE = b"\xff\xd8\xff"
 IMAGE_TYPES = ("image/png", "image/jpeg", "image/webp")
 HEAD_BYTES = 12
 # Hashing threads: one per core this process may run on (at most 4), each given at least this
-# many images, so small uploads hash on the calling thread alone.
+# many bytes of images, so a few small images hash on the calling thread alone. Counted in
+# bytes, not images: an upload streams through in tables of a few MB (stream_read), which hold a
+# couple of hundred camera frames, enough to share among threads.
 HASH_THREADS = min(4, len(os.sched_getaffinity(0)))
-HASH_ROWS_PER_THREAD = 2048
+HASH_BYTES_PER_THREAD = 1 << 20
+_pool: ThreadPoolExecutor | None = None
+_pool_lock = threading.Lock()
 
 
 def image_media_type(head: bytes) -> str | None:
@@ -41,12 +46,21 @@ def content_digests(images: np.ndarray) -> list[str | None]:
     Many images are hashed on several threads: hashlib lets go of the GIL while it hashes, and
     hashing is a large share of what an upload with a camera image per step costs.
     """
-    threads = min(HASH_THREADS, len(images) // HASH_ROWS_PER_THREAD)
+    total = sum(len(image) for image in images if image is not None)
+    threads = min(HASH_THREADS, total // HASH_BYTES_PER_THREAD)
     if threads < 2:
         return _digests(images)
     parts = np.array_split(images, threads)
-    with ThreadPoolExecutor(threads) as pool:
-        return [digest for part in pool.map(_digests, parts) for digest in part]
+    return [digest for part in _hash_pool().map(_digests, parts) for digest in part]
+
+
+def _hash_pool() -> ThreadPoolExecutor:
+    """One pool for the process: made once, as a table's images take only milliseconds."""
+    global _pool
+    with _pool_lock:
+        if _pool is None:
+            _pool = ThreadPoolExecutor(HASH_THREADS, thread_name_prefix="image-hash")
+        return _pool
 
 
 def _digests(images: np.ndarray) -> list[str | None]:

@@ -32,7 +32,7 @@ def test_hashing_on_threads_gives_each_image_its_own_hash_in_order():
     )
     with (
         mock.patch.object(images, "HASH_THREADS", 3),
-        mock.patch.object(images, "HASH_ROWS_PER_THREAD", 10),
+        mock.patch.object(images, "HASH_BYTES_PER_THREAD", 100_000),
         mock.patch.object(images, "_digests", wraps=images._digests) as part,
     ):
         got = images.content_digests(column)
