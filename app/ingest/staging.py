@@ -144,13 +144,17 @@ class _Blobs:
     def append(self, values: np.ndarray | list[Any]) -> None:
         assert self._out is not None
         spans = np.full((len(values), 2), -1, dtype=np.int64)
+        parts = []
         for i, value in enumerate(values):
             if value is None:
                 continue
             data = value.encode() if isinstance(value, str) else value
             spans[i] = (self.size, len(data))
-            self._out.write(data)
+            parts.append(data)
             self.size += len(data)
+        # one write for the table: a camera frame is larger than the file's buffer, so each
+        # would otherwise be a system call of its own
+        self._out.write(b"".join(parts))
         self.spans.append(spans)
         if self.size - self._written_back >= WRITEBACK_BYTES and _ADVISE is not None:
             self._out.flush()
