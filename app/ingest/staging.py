@@ -7,8 +7,9 @@ images go to a data file with their content hashes beside. In memory stay only w
 across rows need: each rollout's key, step count and robot, and whether the rows arrived sorted
 by (rollout, step). A sorted file (the usual case) is checked for repeated steps and times going
 backwards as it streams past; an unsorted one has its rollout, step and time columns read back
-once, sorted (20 bytes a row, and an 8-byte permutation kept for pass 2), and checked as the
-whole-file path does. The refusals are the whole-file path's, with the same messages.
+once, sorted and checked as the whole-file path does (about 36 bytes a row at the peak), and its
+staged columns rewritten so that each pass-2 chunk's rows lie together (2 bytes a row kept:
+where each row is in its chunk). The refusals are the whole-file path's, with the same messages.
 
 Pass 2 reads the staged columns in (rollout, step) order, in chunks (`StagedUpload.batch`): the
 rollouts' content hashes (`StagedUpload.rollout_hashes`, byte for byte those of
@@ -18,11 +19,10 @@ rollouts' content hashes (`StagedUpload.rollout_hashes`, byte for byte those of
 from __future__ import annotations
 
 import hashlib
-import mmap
 import os
 import shutil
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, Any
@@ -68,8 +68,6 @@ class _Column:
         self.rows = 0
         self._out: IO[bytes] | None = self.path.open("wb")
         self._in: IO[bytes] | None = None
-        self._map: mmap.mmap | None = None
-        self._view: np.ndarray | None = None
 
     def append(self, values: np.ndarray) -> None:
         assert self._out is not None
@@ -86,39 +84,50 @@ class _Column:
             self._out.close()
             self._out = None
 
-    def read(self, start: int, stop: int, order: np.ndarray | None) -> np.ndarray:
-        """Rows start..stop of the sorted upload: of the file, or through `order`."""
-        if order is None:
-            if self._in is None:
-                self._in = self.path.open("rb")
-            self._in.seek(start * self.row_bytes)
-            count = (stop - start) * self.items
-            return np.fromfile(self._in, self.dtype, count=count).reshape(
-                (stop - start, *self.shape)
-            )
-        if self._view is None:
-            fd = os.open(self.path, os.O_RDONLY)
-            try:
-                self._map = mmap.mmap(fd, 0, access=mmap.ACCESS_READ)
-            finally:
-                os.close(fd)
-            self._view = np.frombuffer(self._map, self.dtype).reshape((-1, *self.shape))
-        out = self._view[order[start:stop]]
-        # The mapped pages count as this process's memory until given back: the file's pages
-        # stay in the page cache, only this process lets go of them.
-        assert self._map is not None
-        self._map.madvise(mmap.MADV_DONTNEED)
-        return out
+    def read(self, start: int, stop: int, within: np.ndarray | None = None) -> np.ndarray:
+        """Rows start..stop as staged; with `within` (a sorted upload's places of its rows in
+        their chunk, see StagedUpload), the rows of sorted positions start..stop, which must be
+        one whole chunk."""
+        if self._in is None:
+            self._in = self.path.open("rb")
+        self._in.seek(start * self.row_bytes)
+        count = (stop - start) * self.items
+        block = np.fromfile(self._in, self.dtype, count=count).reshape((stop - start, *self.shape))
+        return block if within is None else block[within[start:stop]]
+
+    def rewrite(self, slot_of_row: np.ndarray, rows_at_once: int) -> None:
+        """Move every row to its slot (`slot_of_row`, a permutation), reading the file in order
+        `rows_at_once` rows at a time. The rows of one read bound for one chunk go to
+        consecutive slots (see _Stager._group_by_chunk), so each such run is one write."""
+        moved = self.path.with_suffix(".moved")
+        fd = os.open(moved, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+        try:
+            for start in range(0, self.rows, rows_at_once):
+                stop = min(self.rows, start + rows_at_once)
+                slots = slot_of_row[start:stop]
+                by_slot = np.argsort(slots, kind="stable")
+                slots = slots[by_slot]
+                values = np.ascontiguousarray(self.read(start, stop)[by_slot])
+                raw = memoryview(values.tobytes()) if values.size else memoryview(b"")
+                runs = np.flatnonzero(np.diff(slots) != 1) + 1
+                for a, b in zip([0, *runs.tolist()], [*runs.tolist(), len(slots)], strict=True):
+                    data = raw[a * self.row_bytes : b * self.row_bytes]
+                    position = int(slots[a]) * self.row_bytes
+                    while len(data):
+                        written = os.pwrite(fd, data, position)
+                        data, position = data[written:], position + written
+        finally:
+            os.close(fd)
+        if self._in is not None:
+            self._in.close()
+            self._in = None
+        os.replace(moved, self.path)
 
     def close(self) -> None:
         self.finish()
         if self._in is not None:
             self._in.close()
             self._in = None
-        self._view = None
-        if self._map is not None:
-            self._map.close()
-            self._map = None
 
 
 # Staged values (camera images) are handed to the disk every this many bytes: the kernel is
@@ -260,8 +269,11 @@ class StagedUpload:
 
     rollout_keys : the distinct rollout keys, sorted
     counts : ndarray of shape (n_rollouts,), steps of each rollout
-    order : ndarray of shape (n_steps,), the file row of each sorted position; None when the
-        file was sorted already
+    chunk_rows : rows of every chunk read back (the last may have fewer)
+    within : None when the file was sorted already; otherwise its staged columns were rewritten
+        so that each chunk of sorted positions holds its rows together (in file order), and
+        within[p], an ndarray of shape (n_steps,), is where in its chunk the row of sorted
+        position p is
     """
 
     folder: Path
@@ -270,7 +282,8 @@ class StagedUpload:
     rollout_keys: list[str]
     robot: list[str | None]
     counts: np.ndarray
-    order: np.ndarray | None
+    chunk_rows: int
+    within: np.ndarray | None
     columns: dict[str, _Column]
     present: dict[str, bool]
     ensemble_size: int
@@ -287,16 +300,14 @@ class StagedUpload:
 
     def chunks(self) -> Iterator[tuple[int, int]]:
         """Ranges of sorted positions of a bounded number of rows and bytes."""
-        row_bytes = sum(c.row_bytes for c in self.columns.values()) + 64
-        rows = int(max(1, min(CHUNK_ROWS, stream_read.BATCH_BYTES // row_bytes)))
-        for start in range(0, self.n_steps, rows):
-            yield start, min(self.n_steps, start + rows)
+        for start in range(0, self.n_steps, self.chunk_rows):
+            yield start, min(self.n_steps, start + self.chunk_rows)
 
     def rollout_index(self, start: int, stop: int) -> np.ndarray:
         return np.searchsorted(self.starts, np.arange(start, stop), side="right") - 1
 
     def _read(self, name: str, start: int, stop: int) -> np.ndarray:
-        return self.columns[name].read(start, stop, self.order)
+        return self.columns[name].read(start, stop, self.within)
 
     def _optional(self, name: str, start: int, stop: int) -> np.ndarray | col.Vectors | None:
         if not self.present.get(name):
@@ -319,13 +330,13 @@ class StagedUpload:
     def scenes(self, start: int, stop: int) -> np.ndarray | None:
         if self.scene is None:
             return None
-        values = self.scene.read(self.scene.spans.read(start, stop, self.order))
+        values = self.scene.read(self.scene.spans.read(start, stop, self.within))
         return np.array([None if v is None else v.decode() for v in values], dtype=object)
 
     def image_digests(self, start: int, stop: int) -> list[str | None] | None:
         if self.image is None:
             return None
-        spans = self.image.spans.read(start, stop, self.order)
+        spans = self.image.spans.read(start, stop, self.within)
         digests = self._read("image.sha256", start, stop)
         return [
             None if length < 0 else digest.tobytes().hex()
@@ -334,7 +345,7 @@ class StagedUpload:
 
     def image_spans(self, start: int, stop: int) -> np.ndarray:
         assert self.image is not None
-        return self.image.spans.read(start, stop, self.order)
+        return self.image.spans.read(start, stop, self.within)
 
     def read_image(self, start: int, length: int) -> bytes:
         assert self.image is not None
@@ -563,14 +574,15 @@ class _Stager:
         rank_of = np.empty(len(keys), dtype=np.int64)
         rank_of[by_key] = np.arange(len(keys))
         rollout_keys = [keys[j] for j in by_key]
-        order: np.ndarray | None = None
+        chunk_rows = _chunk_rows(self.columns.values())
+        within: np.ndarray | None = None
         if self.order.sorted:
             if self.order.repeated is not None:
                 raise self.order.repeated
             if self.order.backwards is not None:
                 raise self.order.backwards
         else:
-            order = self._sort(rank_of, rollout_keys)
+            within = self._group_by_chunk(self._sort(rank_of, rollout_keys), chunk_rows)
         columns = {k: v for k, v in self.columns.items() if k != "rollout"}
         self.columns["rollout"].close()
         return StagedUpload(
@@ -580,7 +592,8 @@ class _Stager:
             rollout_keys=rollout_keys,
             robot=[self.robot[j] for j in by_key],
             counts=self.counts[by_key],
-            order=order,
+            chunk_rows=chunk_rows,
+            within=within,
             columns=columns,
             present=self.present,
             ensemble_size=self.ensemble_size,
@@ -589,14 +602,44 @@ class _Stager:
         )
 
     def _sort(self, rank_of: np.ndarray, rollout_keys: list[str]) -> np.ndarray:
-        """The permutation sorting the file by (rollout, step), after the whole-file checks."""
-        everything = (0, self.rows, None)
-        rank = rank_of[self.columns["rollout"].read(*everything)]
-        step = self.columns["step"].read(*everything)
+        """The file row of each sorted position, after the whole-file checks. Each column is
+        read back, put in order and let go in turn: about 36 bytes a row at the peak."""
+        rank = rank_of.astype(np.int32)[self.columns["rollout"].read(0, self.rows)]
+        step = self.columns["step"].read(0, self.rows)
         order = np.lexsort((step, rank))
-        time_s = self.columns["time_s"].read(*everything)
-        check_order(rank[order], step[order], time_s[order], order, rollout_keys)
+        rank, step = rank[order], step[order]
+        time_s = self.columns["time_s"].read(0, self.rows)[order]
+        check_order(rank, step, time_s, order, rollout_keys)
         return order
+
+    def _group_by_chunk(self, order: np.ndarray, chunk_rows: int) -> np.ndarray:
+        """Rewrite every staged column so that the rows of each chunk of sorted positions lie
+        together, in file order (a distribution sort: one read and one write of each column,
+        in bounded pieces); return each sorted position's place within its chunk.
+
+        Reading an unsorted file's rows in sorted order straight from the staged files would
+        touch a page for nearly every row, or, mapped, make the whole file resident."""
+        n = self.rows
+        small = np.int32 if n < 2**31 else np.int64
+        chunk_of_row = np.empty(n, dtype=small)  # the chunk each file row's position is in
+        chunk_of_row[order] = np.arange(n, dtype=small) // chunk_rows
+        slot_of_row = np.empty(n, dtype=small)  # where each file row goes
+        slot_of_row[np.argsort(chunk_of_row, kind="stable")] = np.arange(n, dtype=small)
+        del chunk_of_row
+        staged = [c for name, c in self.columns.items() if name != "rollout"]
+        staged += [b.spans for b in (self.scene, self.image) if b is not None]
+        for column in staged:  # the data of scenes and images stays where it is
+            column.rewrite(slot_of_row, max(1, stream_read.BATCH_BYTES // column.row_bytes))
+        within = slot_of_row[order]
+        del slot_of_row
+        within -= (np.arange(n, dtype=small) // chunk_rows * chunk_rows).astype(small)
+        return within.astype(np.int16) if chunk_rows <= 2**15 else within
+
+
+def _chunk_rows(columns: Iterable[_Column]) -> int:
+    """Rows of a chunk read back in pass 2: at most CHUNK_ROWS, and about BATCH_BYTES."""
+    row_bytes = sum(c.row_bytes for c in columns) + 64
+    return int(max(1, min(CHUNK_ROWS, stream_read.BATCH_BYTES // row_bytes)))
 
 
 def stage_file(

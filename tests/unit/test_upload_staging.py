@@ -146,7 +146,7 @@ def assert_same(path: Path, kind: str, spec, round_number: int = 1) -> None:
     try:
         assert staged.rollout_keys == whole.rollout_keys
         in_order = np.array_equal(whole.row_number, np.arange(1, whole.n_steps + 1))
-        assert (staged.order is None) == in_order  # an unsorted file is read through `order`
+        assert (staged.within is None) == in_order  # an unsorted file was regrouped by chunk
         assert staged.robot == whole.robot
         assert staged.counts.tolist() == [s.stop - s.start for s in whole.rollout_slices()]
         expected = rows_of(whole)
