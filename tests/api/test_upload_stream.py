@@ -415,3 +415,25 @@ def test_memory_stays_bounded_for_a_file_many_batches_long(
     )
     assert streamed_peak < MEMORY_BOUND_BYTES < whole_peak
     assert stored(engine, SLUG)["steps"] == stored(engine, OTHER)["steps"]
+
+
+@pytest.mark.parametrize("order", ["sorted", "unsorted"])
+def test_distinct_new_images_of_a_streamed_upload_are_served_byte_for_byte(
+    client, loops, uploader, admin, engine, settings, small_batches, order
+):
+    """Every image new and distinct (fresh camera frames): the staged images become the pack;
+    an unsorted file's images are staged in file order, not in the order of their steps."""
+    cols = discrete_rows(5, 12)
+    cols["image"] = [
+        b"\x89PNG\r\n\x1a\n" + hashlib.sha256(str(i).encode()).digest() * (i % 5 + 1)
+        for i in range(60)
+    ]
+    if order == "unsorted":
+        cols = shuffled(cols, seed=4)
+    response = send(client, uploader, parquet_bytes(cols))
+    assert response.status_code == 201, response.text
+    for image in cols["image"]:
+        served = client.get(f"/api/images/{hashlib.sha256(image).hexdigest()}", headers=admin)
+        assert served.status_code == 200 and served.content == image
+    assert len(store_contents(engine)["images"]) == 60
+    assert leftovers(settings) == []
