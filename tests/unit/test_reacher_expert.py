@@ -1,17 +1,15 @@
 """The reacher benchmark task's scripted expert (bench/label_tasks.py) against MuJoCo's own
 kinematics of gymnasium's Reacher-v5 model: the fingertip the expert computes is where the
 simulator puts it, its inverse kinematics put the fingertip on the target, and the expert
-reaches the target on seeded episodes. Needs the bench extra (gymnasium with MuJoCo)."""
+reaches the target on seeded episodes. gymnasium with MuJoCo comes with the test extra."""
 
 from __future__ import annotations
 
+import gymnasium as gym
+import mujoco
 import numpy as np
-import pytest
 
-gym = pytest.importorskip("gymnasium")
-mujoco = pytest.importorskip("mujoco")
-
-from bench import label_tasks as tasks  # noqa: E402
+from bench import label_tasks as tasks
 
 
 def _features(qpos: np.ndarray) -> np.ndarray:
