@@ -100,7 +100,7 @@ def _parquet_tables(
             path,
             memory_map=False,
             read_dictionary=text,
-            buffer_size=max(64 << 10, PARQUET_BUFFER_BYTES // columns),
+            buffer_size=max(8 << 10, PARQUET_BUFFER_BYTES // columns),
             pre_buffer=False,
         )
         rows = _parquet_batch_rows(metadata, batch_bytes, max_rows)
