@@ -8,7 +8,8 @@
 For each size, two Parquet files of invented rows (64 float32 features, a discrete action with
 probabilities, 1,000 steps a rollout): rows only, and rows with a distinct 20 KB image each
 (the image column written without a dictionary, as the README advises); `--kinds unsorted`
-adds a rows-only file whose 1,000 rollouts' steps are interleaved (no row sorted). Each file is uploaded
+adds a rows-only file whose 1,000 rollouts' steps are interleaved (no row sorted); `--format
+jsonl` or `npz` sends the same rows as JSON Lines (images in base64) or a compressed .npz. Each file is uploaded
 through the API to a fresh server process (uvicorn, as deployed) on a fresh store; before the
 upload the server is warmed with a small file, then its peak resident memory is reset
 (/proc/PID/clear_refs) and its resident memory read as "idle". The answer's status and the
@@ -22,6 +23,8 @@ Run it on the code before a change (same command, other checkout) for the baseli
 from __future__ import annotations
 
 import argparse
+import base64
+import json
 import os
 import sys
 import tempfile
@@ -111,6 +114,36 @@ def make_file(
     return rows
 
 
+def convert(path: Path, file_format: str) -> Path:
+    """The Parquet file's rows as JSON Lines (images in base64) or a compressed .npz."""
+    if file_format == "parquet":
+        return path
+    out = path.with_suffix(f".{file_format}")
+    if file_format == "jsonl":
+        with out.open("w") as fh:
+            for batch in pq.ParquetFile(path).iter_batches(batch_size=10_000):
+                for row in batch.to_pylist():
+                    if row.get("image") is not None:
+                        row["image"] = base64.b64encode(row["image"]).decode()
+                    fh.write(json.dumps(row) + "\n")
+    else:
+        table = pq.read_table(path)
+        arrays = {}
+        for name in table.column_names:
+            column = table[name].combine_chunks()
+            if pa.types.is_fixed_size_list(column.type):
+                width = column.type.list_size
+                arrays[name] = column.flatten().to_numpy().reshape(-1, width)
+            elif name in ("rollout", "image"):
+                arrays[name] = np.array(column.to_pylist(), dtype="S" if name == "image" else "U")
+            else:
+                arrays[name] = column.to_numpy()
+        del table
+        np.savez_compressed(out, **arrays)
+    path.unlink()
+    return out
+
+
 def _status_kb(pid: int, field: str) -> int:
     for line in Path(f"/proc/{pid}/status").read_text().splitlines():
         if line.startswith(field + ":"):
@@ -172,6 +205,7 @@ def main() -> None:
         choices=["rows", "images", "unsorted"],
         help="unsorted: rows only, every rollout's steps interleaved with the others'",
     )
+    parser.add_argument("--format", choices=["parquet", "jsonl", "npz"], default="parquet")
     parser.add_argument("--postgres", metavar="URL", help="PostgreSQL instead of SQLite")
     parser.add_argument("--folder", type=Path, help="work folder (default: a temporary one)")
     args = parser.parse_args()
@@ -191,12 +225,13 @@ def main() -> None:
                     args.image_bytes if kind == "images" else 0,
                     interleaved=kind == "unsorted",
                 )
+                path = convert(path, args.format)
                 run = folder / f"run-{kind}-{size}"
                 url = args.postgres or f"sqlite:///{run / 'store.db'}"
                 run.mkdir()
                 got = measure(run, url, path, warm, rows)
                 print(
-                    f"{store} {kind:8s} {path.stat().st_size / 1e6:7.0f} MB {rows:>9,} steps | "
+                    f"{store} {args.format:7s} {kind:8s} {path.stat().st_size / 1e6:7.0f} MB {rows:>9,} steps | "
                     f"server peak above idle {got['peak_above_idle_mb']:7.0f} MB "
                     f"(idle {got['idle_mb']:.0f} MB) | upload {got['wall_s']:6.1f} s, "
                     f"server CPU {got['cpu_s']:6.1f} s",
