@@ -12,12 +12,16 @@ from functools import partial
 
 from .jobs.runner import HANDLERS
 from .queue import service as queue_service
+from .sampler import cores
 from .sampler import jobs as sampler_jobs
 from .sampler.service import RANK_JOB
 
 
 def register_job_handlers() -> None:
     """Register every handler (idempotent)."""
+    # Before anything in a process that ranks loads an OpenMP runtime (the faiss and
+    # scikit-learn wheels share one libgomp, and the first to load it fixes how it waits).
+    cores.prefer_passive_waiting()
     HANDLERS[RANK_JOB] = partial(
         sampler_jobs.rank_job, fill_queue=queue_service.replace_round_queue
     )

@@ -14,16 +14,13 @@ import numpy as np
 from ..errors import InvalidInput
 from . import scores
 from .candidates import RoundSteps
-from .novelty import DEFAULT_EXACT_THRESHOLD, novelty
+from .novelty import exact_search_fits, novelty
 from .selection import rollout_positions, select, takeover_boost
 from .tuning import DisagreementModel
 
 NEUTRAL_PERCENTILE = 0.5
 AUTO_METHOD = "auto"
 """Uncertainty from the richest learner output: BALD for an ensemble, entropy for probabilities."""
-# Exact search costs about 10 ns per (candidate, training state) pair on our machines: above this
-# many pairs (a couple of seconds) the approximate index answers faster at recall near 1.
-EXACT_PAIR_BUDGET = 2e8
 
 
 @dataclass(frozen=True)
@@ -163,14 +160,12 @@ def rank_round(
     progress(0.2)
     search = None
     if len(training_features):
-        pairs = float(len(candidates)) * len(training_features)
-        threshold = DEFAULT_EXACT_THRESHOLD if pairs <= EXACT_PAIR_BUDGET else 0
-        search = "exact" if len(training_features) <= threshold else "approximate (faiss IVF)"
+        exact = exact_search_fits(len(candidates), len(training_features))
+        search = "exact" if exact else "approximate (faiss IVF)"
         novel = novelty(
             steps.features[candidates],
             training_features,
             k=params.novelty_k,
-            exact_threshold=threshold,
             rng=np.random.default_rng(params.seed),
             progress=lambda f: progress(0.2 + 0.6 * f),
         )

@@ -177,6 +177,27 @@ def test_novelty_switches_to_index_above_threshold_and_stays_close():
     assert_array_equal(approx, again)  # default rng is seeded: reproducible
 
 
+@pytest.mark.parametrize(
+    ("n_candidates", "n_training", "exact"),
+    [
+        # bench/rank.py's series: 200k candidates against 10k, 100k and 1M training states,
+        # where the index was the faster (README, "Benchmarks", "Ranking")
+        (200_000, 10_000, False),
+        (200_000, 100_000, False),
+        (200_000, 1_000_000, False),
+        (20_000, 100_000, False),
+        # the measured grid behind EXACT_MAX_CANDIDATES: exact was the faster at 500
+        # candidates against 10k to 100k states, the index from 2,000 candidates on
+        (500, 100_000, True),
+        (1_000, 10_000, True),
+        (2_000, 10_000, False),
+        (500, 100_001, False),  # past the float64 copy's bound
+    ],
+)
+def test_search_is_chosen_by_sizes(n_candidates, n_training, exact):
+    assert nv.exact_search_fits(n_candidates, n_training) is exact
+
+
 def test_approximate_falls_back_to_exact_when_lists_are_short():
     # 1 point per list and nprobe 1 leave most queries with fewer than k results.
     rng = np.random.default_rng(3)
