@@ -465,6 +465,12 @@ def _part(progress: Progress | None, start: int, size: int, total: int) -> Progr
     return lambda f: report((start + f * size) / total)
 
 
+def legacy_exact_search_fits(n_candidates: int, n_training: int) -> bool:
+    """The choice before ``exact_search_fits`` was measured: exact search up to 2e8 pairs and
+    50k training states. Ranking jobs recorded before it rerun with it (RankParams)."""
+    return n_training <= 50_000 and float(n_candidates) * n_training <= 2e8
+
+
 @contextmanager
 def _paced(work_pairs: float) -> Iterator[Pace | None]:
     """A ``pace`` that runs each chunk on the threads the free cores allow, then restores.

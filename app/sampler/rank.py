@@ -14,7 +14,7 @@ import numpy as np
 from ..errors import InvalidInput
 from . import scores
 from .candidates import RoundSteps
-from .novelty import exact_search_fits, novelty
+from .novelty import exact_search_fits, legacy_exact_search_fits, novelty
 from .selection import rollout_positions, select, takeover_boost
 from .tuning import DisagreementModel
 
@@ -47,6 +47,9 @@ class RankParams:
     # the training set's cut-off when the ranking was requested: a rerun reads the same one
     training_max_step_id: int | None = None
     training_max_label_id: int | None = None
+    # jobs recorded before the exact/index choice was measured chose by their pair count: a
+    # rerun must search the same way (novelty.legacy_exact_search_fits)
+    search_by_candidates: bool = False
 
 
 @dataclass
@@ -160,12 +163,14 @@ def rank_round(
     progress(0.2)
     search = None
     if len(training_features):
-        exact = exact_search_fits(len(candidates), len(training_features))
+        fits = exact_search_fits if params.search_by_candidates else legacy_exact_search_fits
+        exact = fits(len(candidates), len(training_features))
         search = "exact" if exact else "approximate (faiss IVF)"
         novel = novelty(
             steps.features[candidates],
             training_features,
             k=params.novelty_k,
+            exact_threshold=len(training_features) if exact else 0,
             rng=np.random.default_rng(params.seed),
             progress=lambda f: progress(0.2 + 0.6 * f),
         )

@@ -125,6 +125,7 @@ def test_a_stored_loop_with_early_settings_reads_with_defaults(app, client, admi
         params = rank_params(loop, budget=5, seed=1)
         assert params.self_tuning is True and params.uncertainty_method == "auto"
         assert params.tuning_min_disagreements == 10 and params.uncertainty_weight == 0.7
+        assert params.search_by_candidates is True  # new jobs take the measured search choice
     read = client.get(f"/api/loops/{DISCRETE_SPEC['slug']}", headers=admin)
     assert read.status_code == 200
     assert read.json()["settings"]["self_tuning"] is True

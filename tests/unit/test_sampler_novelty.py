@@ -198,6 +198,67 @@ def test_search_is_chosen_by_sizes(n_candidates, n_training, exact):
     assert nv.exact_search_fits(n_candidates, n_training) is exact
 
 
+def test_recorded_rankings_rerun_with_the_search_choice_they_were_made_with():
+    # A ranking job must rerun to the same selection: jobs recorded before the measured rule
+    # (no search_by_candidates in their params) keep the pair-count rule. 2,000 candidates
+    # against 5,000 states: 1e7 pairs searched exactly before; the measured rule builds the index.
+    from dataclasses import replace
+
+    from expertloop.sampler.candidates import RoundSteps
+    from expertloop.sampler.rank import RankParams, rank_round
+
+    rng = np.random.default_rng(13)
+    training = clustered(rng, 5_000, dim=8)
+    n = 2_000
+    none = np.zeros(n, dtype=bool)
+    steps = RoundSteps(
+        step_id=np.arange(n),
+        rollout_id=np.arange(n) // 100,
+        step_index=np.arange(n) % 100,
+        time_s=(np.arange(n) % 100) * 0.1,
+        expert=none,
+        features=clustered(rng, n, dim=8),
+        probs=None,
+        has_probs=none,
+        ensemble=None,
+        has_ensemble=none,
+        std=None,
+        has_std=none,
+    )
+    recorded = RankParams(
+        **{  # the params of a job recorded before the field existed
+            "budget": 20,
+            "seed": 3,
+            "min_gap_steps": 0,
+            "audit_fraction": 0.0,
+            "spread": False,
+            "uncertainty_weight": 0.5,
+            "novelty_weight": 0.5,
+            "novelty_k": 5,
+            "takeover_window_s": 0.0,
+            "takeover_boost": 0.0,
+        }
+    )
+    bounds = np.zeros(1), np.ones(1)
+    before = rank_round(
+        steps, training, kind="discrete", low=bounds[0], high=bounds[1], params=recorded
+    )
+    now = rank_round(
+        steps,
+        training,
+        kind="discrete",
+        low=bounds[0],
+        high=bounds[1],
+        params=replace(recorded, search_by_candidates=True),
+    )
+    assert before.methods["novelty"] == "exact"
+    assert now.methods["novelty"] == "approximate (faiss IVF)"
+    # reference: the exact search, itself checked against scikit-learn above
+    exact = nv.novelty(steps.features, training, k=5, exact_threshold=10**9)
+    assert_array_equal(before.novelty, exact)
+    assert not np.array_equal(now.novelty, exact)
+
+
 def test_approximate_falls_back_to_exact_when_lists_are_short():
     # 1 point per list and nprobe 1 leave most queries with fewer than k results.
     rng = np.random.default_rng(3)
