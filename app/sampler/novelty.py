@@ -40,6 +40,12 @@ Pace = Callable[[], None]
 # float64 copy of the training set would grow past 50 MB.
 EXACT_MAX_CANDIDATES = 1_000
 EXACT_MAX_TRAINING = 100_000
+# Up to this many pairs exact search takes at most about a third of a second of one core, so it
+# is kept even where the index would be faster: a ranking job spends seconds around its search,
+# the index would save a fraction of a second, and its answers are approximate (a small round's
+# novelty would depend on the index's k-means). Rounds of a few thousand states against a few
+# thousand training states, a young loop's, stay exact as they were before the rule above.
+EXACT_ALWAYS_PAIRS = 50_000_000
 DEFAULT_NPROBE = 16
 LISTS_PER_SQRT_N = 2  # inverted lists per sqrt(training states); see the module docstring
 # Bytes for one tile of the query-by-reference distance matrix: bounds exact-search memory
@@ -452,9 +458,12 @@ def approximate_knn_distances(
 def exact_search_fits(n_candidates: int, n_training: int) -> bool:
     """Whether novelty searches exactly (True) or with the IVF index (False), by sizes alone.
 
-    See ``EXACT_MAX_CANDIDATES`` for the measurements behind the rule.
+    See ``EXACT_MAX_CANDIDATES`` for the measurements behind the rule, and
+    ``EXACT_ALWAYS_PAIRS`` for the small searches kept exact whatever their shape.
     """
-    return n_candidates <= EXACT_MAX_CANDIDATES and n_training <= EXACT_MAX_TRAINING
+    if n_training > EXACT_MAX_TRAINING:
+        return False
+    return n_candidates <= EXACT_MAX_CANDIDATES or n_candidates * n_training <= EXACT_ALWAYS_PAIRS
 
 
 def _part(progress: Progress | None, start: int, size: int, total: int) -> Progress | None:

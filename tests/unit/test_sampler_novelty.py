@@ -187,11 +187,18 @@ def test_novelty_switches_to_index_above_threshold_and_stays_close():
         (200_000, 1_000_000, False),
         (20_000, 100_000, False),
         # the measured grid behind EXACT_MAX_CANDIDATES: exact was the faster at 500
-        # candidates against 10k to 100k states, the index from 2,000 candidates on
+        # candidates against 10k to 100k states, the index from 2,000 candidates on (where
+        # the search is larger than EXACT_ALWAYS_PAIRS)
         (500, 100_000, True),
         (1_000, 10_000, True),
-        (2_000, 10_000, False),
+        (6_000, 10_000, False),
+        (2_000, 100_000, False),
         (500, 100_001, False),  # past the float64 copy's bound
+        # searches of at most 5e7 pairs (a third of a second) stay exact whatever their shape
+        (2_000, 10_000, True),
+        (12_000, 2_500, True),
+        (50_000, 1_000, True),
+        (50_001, 1_000, False),
     ],
 )
 def test_search_is_chosen_by_sizes(n_candidates, n_training, exact):
@@ -200,8 +207,9 @@ def test_search_is_chosen_by_sizes(n_candidates, n_training, exact):
 
 def test_recorded_rankings_rerun_with_the_search_choice_they_were_made_with():
     # A ranking job must rerun to the same selection: jobs recorded before the measured rule
-    # (no search_by_candidates in their params) keep the pair-count rule. 2,000 candidates
-    # against 5,000 states: 1e7 pairs searched exactly before; the measured rule builds the index.
+    # (no search_by_candidates in their params) keep the pair-count rule. 12,000 candidates
+    # against 5,000 states: 6e7 pairs searched exactly before; the measured rule builds the
+    # index.
     from dataclasses import replace
 
     from expertloop.sampler.candidates import RoundSteps
@@ -209,7 +217,7 @@ def test_recorded_rankings_rerun_with_the_search_choice_they_were_made_with():
 
     rng = np.random.default_rng(13)
     training = clustered(rng, 5_000, dim=8)
-    n = 2_000
+    n = 12_000
     none = np.zeros(n, dtype=bool)
     steps = RoundSteps(
         step_id=np.arange(n),
