@@ -254,21 +254,27 @@ def npz_headers(archive: zipfile.ZipFile) -> list[NpyHeader]:
     return headers
 
 
+def checked_npz_headers(archive: zipfile.ZipFile, max_array_bytes: int) -> list[NpyHeader]:
+    """The archive's .npy headers, refused unless there is at least one array, every array has
+    one row per step (the same length), and their declared sizes fit `max_array_bytes` (413):
+    all from the headers, before anything is decompressed."""
+    headers = npz_headers(archive)
+    if not headers:
+        raise InvalidInput("the .npz file holds no arrays")
+    lengths = {h.name: h.shape[0] for h in headers}
+    if len(set(lengths.values())) != 1:
+        shown_lengths = shown(", ".join(f"{k}: {v}" for k, v in lengths.items()), 200)
+        raise InvalidInput(f".npz arrays must all have one row per step; lengths: {shown_lengths}")
+    declared = sum(h.n_bytes for h in headers)
+    if declared > max_array_bytes:
+        raise _too_large("the .npz file's arrays", declared, max_array_bytes)
+    return headers
+
+
 def _read_npz(path: Path, max_array_bytes: int) -> pa.Table:
     try:
         with zipfile.ZipFile(path) as archive:
-            headers = npz_headers(archive)
-            if not headers:
-                raise InvalidInput("the .npz file holds no arrays")
-            lengths = {h.name: h.shape[0] for h in headers}
-            if len(set(lengths.values())) != 1:
-                shown_lengths = shown(", ".join(f"{k}: {v}" for k, v in lengths.items()), 200)
-                raise InvalidInput(
-                    f".npz arrays must all have one row per step; lengths: {shown_lengths}"
-                )
-            declared = sum(h.n_bytes for h in headers)
-            if declared > max_array_bytes:
-                raise _too_large("the .npz file's arrays", declared, max_array_bytes)
+            headers = checked_npz_headers(archive, max_array_bytes)
             arrays = {}
             for header in headers:
                 with archive.open(header.name + ".npy") as stream:

@@ -39,7 +39,7 @@ from .formats import (
     _mixed_types,
     _npz_column,
     _too_large,
-    npz_headers,
+    checked_npz_headers,
 )
 
 # A table of about this many bytes once decoded: large enough that per-table costs vanish,
@@ -164,18 +164,7 @@ def _npz_tables(
     whole)."""
     try:
         with zipfile.ZipFile(path) as archive:
-            headers = npz_headers(archive)
-            if not headers:
-                raise InvalidInput("the .npz file holds no arrays")
-            lengths = {h.name: h.shape[0] for h in headers}
-            if len(set(lengths.values())) != 1:
-                shown_lengths = shown(", ".join(f"{k}: {v}" for k, v in lengths.items()), 200)
-                raise InvalidInput(
-                    f".npz arrays must all have one row per step; lengths: {shown_lengths}"
-                )
-            declared = sum(h.n_bytes for h in headers)
-            if declared > max_array_bytes:
-                raise _too_large("the .npz file's arrays", declared, max_array_bytes)
+            headers = checked_npz_headers(archive, max_array_bytes)
             n_rows = headers[0].shape[0]
             row_bytes = max(1, sum(h.n_bytes // max(1, h.shape[0]) for h in headers))
             rows = int(min(max_rows, max(1, batch_bytes // row_bytes)))
