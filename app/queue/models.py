@@ -72,7 +72,8 @@ class Skip(Base):
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     item_id: Mapped[int] = mapped_column(ForeignKey("queue_items.id", ondelete="CASCADE"))
-    user_id: Mapped[int] = mapped_column(ForeignKey("users.id", ondelete="CASCADE"))
+    # an annotator's skips (progress) without reading every open item
+    user_id: Mapped[int] = mapped_column(ForeignKey("users.id", ondelete="CASCADE"), index=True)
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
 
 
@@ -87,6 +88,8 @@ class Label(Base):
         Index("ix_labels_step_id_user_id", "step_id", "user_id"),
         # an annotator's labels of the day (progress, pace) without reading every label
         Index("ix_labels_user_id_created_at", "user_id", "created_at"),
+        # an annotator's labels in the rounds that still have open items (progress)
+        Index("ix_labels_user_id_round_id", "user_id", "round_id"),
         # a label is superseded at most once: by its annotator's correction, or their undo
         UniqueConstraint("supersedes_id"),
     )

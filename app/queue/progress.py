@@ -9,9 +9,10 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from datetime import UTC, datetime
+from functools import cache
 
 import numpy as np
-from sqlalchemy import case, func, select
+from sqlalchemy import Integer, Select, and_, bindparam, case, func, select, union
 from sqlalchemy.orm import Session
 
 from ..loops.models import Loop, Round
@@ -27,7 +28,7 @@ from .models import (
     QueueItem,
     Skip,
 )
-from .rules import answered_by, rounds_of
+from .rules import rounds_of
 
 
 @dataclass(frozen=True)
@@ -79,18 +80,9 @@ def progress(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Pr
             is_current(),
         )
     ).all()
-    in_loop = QueueItem.round_id.in_(rounds_of(loop.id))
-    left = session.scalar(
-        select(func.count())
-        .select_from(QueueItem)
-        .where(in_loop, QueueItem.status == ITEM_OPEN, ~answered_by()),
-        {"user_id": user_id},
-    )
-    missing = session.scalar(
-        select(func.coalesce(func.sum(QueueItem.labels_needed - QueueItem.labels_done), 0)).where(
-            in_loop, QueueItem.status == ITEM_OPEN
-        )
-    )
+    open_items, missing = session.execute(_open_items(), {"loop_id": loop.id}).one()
+    answered = session.scalar(_answered_open_items(), {"loop_id": loop.id, "user_id": user_id})
+    left = int(open_items) - int(answered or 0)
     seconds_per_label = None
     if len(times) >= 2:
         pace = labels_per_hour(np.array([t.timestamp() for t in times]))
@@ -106,6 +98,55 @@ def progress(session: Session, *, loop: Loop, user_id: int, now: datetime) -> Pr
         if seconds_per_label is None
         else seconds_per_label * left_for_you,
     )
+
+
+# The bench page asks for progress after every claim, so its cost is paid once a label. Counted
+# item by item ("open and not answered by you"), it grew with the open queue: about 9 ms on
+# SQLite at 20,000 open items. Now the open items are counted once, and what the annotator
+# answered is found from their own labels and skips in the rounds that still have open items,
+# which grows with their own work there, not with the queue.
+@cache
+def _open_items() -> Select[int, int]:
+    """Open items of loop :loop_id and the labels they still need, in one pass."""
+    return select(
+        func.count(),
+        func.coalesce(func.sum(QueueItem.labels_needed - QueueItem.labels_done), 0),
+    ).where(QueueItem.round_id.in_(rounds_of()), QueueItem.status == ITEM_OPEN)
+
+
+@cache
+def _answered_open_items() -> Select[int]:
+    """How many open items of loop :loop_id user :user_id has answered or skipped: the items
+    `rules.answered_by` holds true of, found from the user's side."""
+    user = bindparam("user_id", type_=Integer)
+    # the loop's rounds that still have an open item (one index probe each)
+    open_rounds = select(Round.id).where(
+        Round.loop_id == bindparam("loop_id", type_=Integer),
+        select(QueueItem.id)
+        .where(QueueItem.round_id == Round.id, QueueItem.status == ITEM_OPEN)
+        .exists(),
+    )
+    labelled = (
+        select(QueueItem.id)
+        .join(Label, and_(Label.item_id == QueueItem.id, Label.step_id == QueueItem.step_id))
+        .where(
+            Label.user_id == user,
+            Label.round_id.in_(open_rounds),
+            QueueItem.status == ITEM_OPEN,
+            is_current(),
+        )
+    )
+    skipped = (
+        select(QueueItem.id)
+        .join(Skip, Skip.item_id == QueueItem.id)
+        .where(
+            Skip.user_id == user,
+            QueueItem.round_id.in_(rounds_of()),
+            QueueItem.status == ITEM_OPEN,
+        )
+    )
+    either = union(labelled, skipped).subquery()
+    return select(func.count()).select_from(either)
 
 
 def round_queue(session: Session, *, rnd: Round, now: datetime) -> RoundQueue:
