@@ -4,11 +4,12 @@ the content hash each is stored and served by."""
 from __future__ import annotations
 
 import hashlib
-import os
 import threading
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
+
+from ..shared.cpu_quota import usable_cores
 
 # Magic numbers (docs/references.md, "Hostile input"): PNG's 8-byte signature, JPEG's start of
 # image followed by a marker, WebP's RIFF container whose form type is "WEBP".
@@ -16,11 +17,11 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 JPEG_SIGNATURE = b"\xff\xd8\xff"
 IMAGE_TYPES = ("image/png", "image/jpeg", "image/webp")
 HEAD_BYTES = 12
-# Hashing threads: one per core this process may run on (at most 4), each given at least this
+# Hashing threads: one per core this process may use (at most 4; a container's CPU quota counts), each given at least this
 # many bytes of images, so a few small images hash on the calling thread alone. Counted in
 # bytes, not images: an upload streams through in tables of a few MB (stream_read), which hold a
 # couple of hundred camera frames, enough to share among threads.
-HASH_THREADS = min(4, len(os.sched_getaffinity(0)))
+HASH_THREADS = min(4, usable_cores())
 HASH_BYTES_PER_THREAD = 1 << 20
 _pool: ThreadPoolExecutor | None = None
 _pool_lock = threading.Lock()

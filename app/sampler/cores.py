@@ -35,6 +35,8 @@ from typing import Any
 
 from threadpoolctl import ThreadpoolController
 
+from ..shared.cpu_quota import usable_cores
+
 WAIT_POLICY = "PASSIVE"
 # Seconds of /proc/stat read before the search starts: 5 clock ticks a core at USER_HZ 100,
 # enough to tell a busy core from a free one (the count is rounded to whole cores).
@@ -135,6 +137,8 @@ class CpuMeter:
     def __init__(self) -> None:
         self.cpus = set(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else set()
         self.n_cores = max(1, len(self.cpus) or (os.cpu_count() or 1))
+        # a container's CPU quota caps the threads, whatever the host's cores leave free
+        self.allowed = usable_cores(self.n_cores)
         try:
             self._ticks = float(os.sysconf("SC_CLK_TCK"))
         except (AttributeError, ValueError, OSError):
@@ -167,8 +171,8 @@ class CpuMeter:
 
     def threads(self) -> int:
         """Threads for the next stretch of work: :func:`threads_for` the cores free since the
-        previous call."""
-        return threads_for(self.free_cores(), self.n_cores)
+        previous call, at most the cores a container's CPU quota allows."""
+        return min(self.allowed, threads_for(self.free_cores(), self.n_cores))
 
 
 def start_meter(window_s: float = DEFAULT_WINDOW_S) -> CpuMeter:
