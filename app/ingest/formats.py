@@ -97,17 +97,7 @@ def _read_parquet(path: Path, max_array_bytes: int) -> pa.Table:
     try:
         parquet = pq.ParquetFile(path, memory_map=True)
         metadata = parquet.metadata
-        declared = _declared_parquet_bytes(metadata)
-        if declared > max_array_bytes:
-            raise _too_large("the Parquet file", declared, max_array_bytes)
-        # Dictionary-encoded text declares only its dictionary and indices: one long value
-        # repeated a million times is small on disk and huge once decoded. Text columns that
-        # may repeat values so are therefore read as dictionaries, their decoded size counted,
-        # and only then decoded. Text stored literally (camera images, written without a
-        # dictionary) is read as it is: it declares its decoded size, checked above, and the
-        # dictionary reader would hash and copy every value (most of an image upload's time).
-        literal = _literal_columns(metadata)
-        text = [f.name for f in parquet.schema_arrow if _is_text(f.type) and f.name not in literal]
+        text = dictionary_text_columns(parquet, max_array_bytes)
         parquet = pq.ParquetFile(path, memory_map=True, read_dictionary=text)
         groups, read_bytes = [], 0
         for i in range(metadata.num_row_groups):
@@ -119,6 +109,25 @@ def _read_parquet(path: Path, max_array_bytes: int) -> pa.Table:
         return pa.concat_tables(groups) if groups else parquet.schema_arrow.empty_table()
     except (pa.ArrowException, OSError) as exc:
         raise InvalidInput("not a readable Parquet file (truncated or damaged?)") from exc
+
+
+def dictionary_text_columns(parquet: pq.ParquetFile, max_array_bytes: int) -> list[str]:
+    """Refuse a file whose declared decoded size is over `max_array_bytes` (413), and name the
+    text columns to read as dictionaries.
+
+    Dictionary-encoded text declares only its dictionary and indices: one long value repeated a
+    million times is small on disk and huge once decoded. Text columns that may repeat values
+    so are therefore read as dictionaries, their decoded size counted, and only then decoded.
+    Text stored literally (camera images, written without a dictionary) is read as it is: it
+    declares its decoded size, checked here, and the dictionary reader would hash and copy every
+    value (most of an image upload's time).
+    """
+    metadata = parquet.metadata
+    declared = _declared_parquet_bytes(metadata)
+    if declared > max_array_bytes:
+        raise _too_large("the Parquet file", declared, max_array_bytes)
+    literal = _literal_columns(metadata)
+    return [f.name for f in parquet.schema_arrow if _is_text(f.type) and f.name not in literal]
 
 
 # Encodings that store every byte of every value in the file (RLE and BIT_PACKED only for the

@@ -29,17 +29,15 @@ from ..shared.contract import FORMATS
 from .formats import (
     DEFAULT_MAX_ARRAY_BYTES,
     NPY_MAX_HEADER_BYTES,
-    _declared_parquet_bytes,
     _decode_dictionaries,
     _decoded_bytes,
-    _is_text,
     _jsonl_row,
     _kind,
-    _literal_columns,
     _mixed_types,
     _npz_column,
     _too_large,
     checked_npz_headers,
+    dictionary_text_columns,
 )
 
 # A table of about this many bytes once decoded: large enough that per-table costs vanish,
@@ -90,11 +88,7 @@ def _parquet_tables(
     try:
         parquet = pq.ParquetFile(path, memory_map=False)
         metadata = parquet.metadata
-        declared = _declared_parquet_bytes(metadata)
-        if declared > max_array_bytes:
-            raise _too_large("the Parquet file", declared, max_array_bytes)
-        literal = _literal_columns(metadata)
-        text = [f.name for f in parquet.schema_arrow if _is_text(f.type) and f.name not in literal]
+        text = dictionary_text_columns(parquet, max_array_bytes)
         columns = max(1, metadata.num_columns)
         parquet = pq.ParquetFile(
             path,
