@@ -12,6 +12,7 @@ import json
 import math
 import zipfile
 import zlib
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -329,9 +330,9 @@ def _npz_column(name: str, array: np.ndarray) -> pa.Array:
     )
 
 
-def _read_jsonl(path: Path) -> pa.Table:
-    rows: list[dict[str, Any]] = []
-    line_of_row: list[int] = []
+def jsonl_lines(path: Path) -> Iterator[tuple[int, dict[str, Any], int]]:
+    """Each non-blank line of a JSON Lines file as (line number, row, bytes of the line);
+    UTF-16 text and every bad line are refused naming the line."""
     with path.open("rb") as fh:
         if fh.read(2) in (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE):
             raise InvalidInput("line 1: the file is UTF-16 text; save it as UTF-8")
@@ -339,8 +340,15 @@ def _read_jsonl(path: Path) -> pa.Table:
         for line_number, raw in enumerate(fh, start=1):
             row = _jsonl_row(raw, line_number)
             if row is not None:
-                rows.append(row)
-                line_of_row.append(line_number)
+                yield line_number, row, len(raw)
+
+
+def _read_jsonl(path: Path) -> pa.Table:
+    rows: list[dict[str, Any]] = []
+    line_of_row: list[int] = []
+    for line_number, row, _ in jsonl_lines(path):
+        rows.append(row)
+        line_of_row.append(line_number)
     if not rows:
         raise InvalidInput("the file holds no rows")
     # Every column any line names, in order of first appearance: Table.from_pylist would take

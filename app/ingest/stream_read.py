@@ -10,7 +10,6 @@ same order, except for JSON Lines, whose lines may name columns first seen late 
 
 from __future__ import annotations
 
-import codecs
 import zipfile
 import zlib
 from collections.abc import Iterator
@@ -31,13 +30,13 @@ from .formats import (
     NPY_MAX_HEADER_BYTES,
     _decode_dictionaries,
     _decoded_bytes,
-    _jsonl_row,
     _kind,
     _mixed_types,
     _npz_column,
     _too_large,
     checked_npz_headers,
     dictionary_text_columns,
+    jsonl_lines,
 )
 
 # A table of about this many bytes once decoded: large enough that per-table costs vanish,
@@ -226,20 +225,13 @@ def _jsonl_tables(path: Path, batch_bytes: int, max_rows: int) -> Iterator[pa.Ta
     rows: list[dict[str, Any]] = []
     lines: list[int] = []
     held = 0
-    with path.open("rb") as fh:
-        if fh.read(2) in (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE):
-            raise InvalidInput("line 1: the file is UTF-16 text; save it as UTF-8")
-        fh.seek(0)
-        for line_number, raw in enumerate(fh, start=1):
-            row = _jsonl_row(raw, line_number)
-            if row is None:
-                continue
-            rows.append(row)
-            lines.append(line_number)
-            held += len(raw)
-            if len(rows) >= max_rows or held >= batch_bytes:
-                yield _jsonl_table(rows, lines, names, first, types)
-                rows, lines, held = [], [], 0
+    for line_number, row, size in jsonl_lines(path):
+        rows.append(row)
+        lines.append(line_number)
+        held += size
+        if len(rows) >= max_rows or held >= batch_bytes:
+            yield _jsonl_table(rows, lines, names, first, types)
+            rows, lines, held = [], [], 0
     if rows:
         yield _jsonl_table(rows, lines, names, first, types)
 
