@@ -555,31 +555,31 @@ def novelty(
         cores.load_faiss()  # before the thread limit, which limits the pools loaded
     standardiser = Standardiser.fit(train)
     out = np.empty(n_cand)
-    with _paced(float(n_cand) * n_train) as pace:
-        if exact:
+    if exact:
+        # On one BLAS thread: a matrix product split over two threads summed some distances in
+        # another order and differed in the last bit, so a rerun on other free cores could rank
+        # differently. Exact search is kept for work of at most about a second on one core.
+        with cores.limited_threads(1):
             reference = standardiser.transform(train)
             for start in range(0, n_cand, _TRANSFORM_CHUNK):
                 block = standardiser.transform(cand[start : start + _TRANSFORM_CHUNK])
                 dist, _ = exact_knn_distances(
-                    block,
-                    reference,
-                    k,
-                    progress=_part(progress, start, len(block), n_cand),
-                    pace=pace,
+                    block, reference, k, progress=_part(progress, start, len(block), n_cand)
                 )
                 out[start : start + len(block)] = dist.mean(axis=1)
-        else:
-            chunks = _ivf_chunks(
-                cand,
-                train,
-                k,
-                rng=rng if rng is not None else np.random.default_rng(0),
-                nlist=None,
-                nprobe=DEFAULT_NPROBE,
-                progress=progress,
-                standardiser=standardiser,
-                pace=pace,
-            )
-            for start, dist, _ in chunks:
-                out[start : start + len(dist)] = dist.mean(axis=1)
+        return out
+    with _paced(float(n_cand) * n_train) as pace:
+        chunks = _ivf_chunks(
+            cand,
+            train,
+            k,
+            rng=rng if rng is not None else np.random.default_rng(0),
+            nlist=None,
+            nprobe=DEFAULT_NPROBE,
+            progress=progress,
+            standardiser=standardiser,
+            pace=pace,
+        )
+        for start, dist, _ in chunks:
+            out[start : start + len(dist)] = dist.mean(axis=1)
     return out
