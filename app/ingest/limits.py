@@ -50,8 +50,9 @@ class UploadLimits:
 def check_column_names(names: Sequence[str], feature_names: Sequence[str]) -> None:
     """Refuse a column the contract does not know, suggesting the nearest known name."""
     known = [*REQUIRED_COLUMNS, *OPTIONAL_COLUMNS, *feature_names]
+    known_set = set(known)
     for name in names:
-        if name in known:
+        if name in known_set:
             continue
         lowered = {k.lower(): k for k in known}
         nearest = difflib.get_close_matches(name.lower(), list(lowered), n=1, cutoff=0.6)
