@@ -656,10 +656,11 @@ def stage_file(
     `StagedUpload.close` otherwise."""
     folder = Path(tempfile.mkdtemp(dir=path.parent, prefix=UPLOAD_PREFIX))
     stager = _Stager(folder, spec)
+    tables = stream_read.iter_tables(
+        path, file_format, max_array_bytes=limits.max_array_bytes, scratch=folder
+    )
     try:
-        for table in stream_read.iter_tables(
-            path, file_format, max_array_bytes=limits.max_array_bytes
-        ):
+        for table in tables:
             try:
                 rows = validate_rows(table, spec, round_number=round_number, limits=limits)
             except col.CellError as exc:
@@ -669,6 +670,7 @@ def stage_file(
             stager.add(table, rows)
         return stager.finish()
     except BaseException:
+        tables.close()  # a refusal leaves the reader suspended; its spilled columns go now
         for column in stager.columns.values():
             column.close()
         for blobs in (stager.scene, stager.image):

@@ -10,9 +10,12 @@ same order, except for JSON Lines, whose lines may name columns first seen late 
 
 from __future__ import annotations
 
+import contextlib
+import itertools
+import tempfile
 import zipfile
 import zlib
-from collections.abc import Iterator
+from collections.abc import Generator, Iterator
 from pathlib import Path
 from typing import IO, Any
 
@@ -46,6 +49,13 @@ MAX_BATCH_ROWS = 32_768
 # Parquet read buffer for all columns together (pyarrow otherwise reads a whole column chunk,
 # which a file written as one row group makes as large as the file).
 PARQUET_BUFFER_BYTES = 8 << 20
+# What the readers of the columns read together may hold at once. A column's reader holds its
+# current page, compressed and decoded, and its dictionary: its whole chunk when the chunk is
+# small, else about PARQUET_COLUMN_HOLD_BYTES (the usual writers, pyarrow's and Spark's, cut
+# pages and dictionaries at 1 MB). Thousands of columns in one large row group would hold far
+# more than the bound, so such a file is read a group of columns at a time (_by_column_groups).
+PARQUET_READERS_BYTES = 64 << 20
+PARQUET_COLUMN_HOLD_BYTES = 3 << 20
 
 
 def iter_tables(
@@ -55,15 +65,18 @@ def iter_tables(
     max_array_bytes: int = DEFAULT_MAX_ARRAY_BYTES,
     batch_bytes: int | None = None,
     max_rows: int | None = None,
-) -> Iterator[pa.Table]:
+    scratch: Path | None = None,
+) -> Generator[pa.Table, None, None]:
     """The file's rows as tables of bounded size, in file order; refusals as `read_table`'s.
-    `batch_bytes` and `max_rows` default to BATCH_BYTES and MAX_BATCH_ROWS."""
+    `batch_bytes` and `max_rows` default to BATCH_BYTES and MAX_BATCH_ROWS. A Parquet file
+    read a group of columns at a time spills its decoded columns to a temporary folder in
+    `scratch` (default: the file's folder), removed when the iterator ends or is closed."""
     batch_bytes = BATCH_BYTES if batch_bytes is None else batch_bytes
     max_rows = MAX_BATCH_ROWS if max_rows is None else max_rows
     if path.stat().st_size == 0:
         raise InvalidInput("the file is empty")
     if file_format == "parquet":
-        tables = _parquet_tables(path, max_array_bytes, batch_bytes, max_rows)
+        tables = _parquet_tables(path, max_array_bytes, batch_bytes, max_rows, scratch)
     elif file_format == "npz":
         tables = _npz_tables(path, max_array_bytes, batch_bytes, max_rows)
     elif file_format == "jsonl":
@@ -80,7 +93,7 @@ def iter_tables(
 
 
 def _parquet_tables(
-    path: Path, max_array_bytes: int, batch_bytes: int, max_rows: int
+    path: Path, max_array_bytes: int, batch_bytes: int, max_rows: int, scratch: Path | None
 ) -> Iterator[pa.Table]:
     # As formats._read_parquet: messages never repeat pyarrow's. Not memory-mapped: a mapped
     # file's pages count as the server's resident memory.
@@ -97,15 +110,109 @@ def _parquet_tables(
             pre_buffer=False,
         )
         rows = _parquet_batch_rows(metadata, batch_bytes, max_rows)
-        read_bytes = 0
-        for batch in parquet.iter_batches(batch_size=rows, use_threads=False):
-            table = pa.Table.from_batches([batch])
-            read_bytes += _decoded_bytes(table)
-            if read_bytes > max_array_bytes:
-                raise _too_large("the Parquet file", read_bytes, max_array_bytes)
-            yield from _decoded_slices(table, batch_bytes)
+        groups = _column_groups(parquet)
+        with contextlib.ExitStack() as spilled:
+            if len(groups) == 1:
+                batches = parquet.iter_batches(rows, use_threads=False)
+                tables = (pa.Table.from_batches([batch]) for batch in batches)
+            else:
+                folder = spilled.enter_context(
+                    tempfile.TemporaryDirectory(dir=scratch or path.parent)
+                )
+                tables = _by_column_groups(parquet, groups, rows, Path(folder))
+                spilled.callback(tables.close)  # its open streams, before the folder goes
+            read_bytes = 0
+            for table in tables:
+                read_bytes += _decoded_bytes(table)
+                if read_bytes > max_array_bytes:
+                    raise _too_large("the Parquet file", read_bytes, max_array_bytes)
+                yield from _decoded_slices(table, batch_bytes)
     except (pa.ArrowException, OSError) as exc:
         raise InvalidInput("not a readable Parquet file (truncated or damaged?)") from exc
+
+
+def _column_groups(parquet: pq.ParquetFile) -> list[list[str]]:
+    """The file's column names, in file order, in groups whose readers may hold at most about
+    PARQUET_READERS_BYTES at once in any row group (one group for most files). Columns of one
+    name (a file the checks will refuse) go together: pyarrow selects them all by the name."""
+    metadata = parquet.metadata
+    fields = parquet.schema_arrow
+    leaves = [_leaf_columns(field.type) for field in fields]
+    if sum(leaves) != metadata.num_columns:  # a type whose leaves we do not count: read at once
+        return [list(dict.fromkeys(fields.names))]
+    held = np.zeros(metadata.num_columns)  # each leaf column's most in any row group
+    for i in range(metadata.num_row_groups):
+        group = metadata.row_group(i)
+        for j in range(group.num_columns):
+            chunk = group.column(j)
+            size = chunk.total_compressed_size + chunk.total_uncompressed_size
+            held[j] = max(held[j], min(size, PARQUET_COLUMN_HOLD_BYTES))
+    by_name: dict[str, float] = {}
+    ends = np.cumsum(leaves)
+    for field, count, end in zip(fields, leaves, ends, strict=True):
+        by_name[field.name] = by_name.get(field.name, 0.0) + float(held[end - count : end].sum())
+    groups: list[list[str]] = [[]]
+    size = 0.0
+    for name, bytes_held in by_name.items():
+        if groups[-1] and size + bytes_held > PARQUET_READERS_BYTES:
+            groups.append([])
+            size = 0.0
+        groups[-1].append(name)
+        size += bytes_held
+    return groups
+
+
+def _leaf_columns(kind: pa.DataType) -> int:
+    """Parquet columns an Arrow field of this type is stored as."""
+    if pa.types.is_struct(kind):
+        return sum(_leaf_columns(kind.field(i).type) for i in range(kind.num_fields))
+    if pa.types.is_map(kind):
+        return _leaf_columns(kind.key_type) + _leaf_columns(kind.item_type)
+    if (
+        pa.types.is_list(kind)
+        or pa.types.is_large_list(kind)
+        or pa.types.is_fixed_size_list(kind)
+        or pa.types.is_list_view(kind)
+        or pa.types.is_large_list_view(kind)
+    ):
+        return _leaf_columns(kind.value_type)
+    return 1
+
+
+def _by_column_groups(
+    parquet: pq.ParquetFile, groups: list[list[str]], rows: int, folder: Path
+) -> Generator[pa.Table, None, None]:
+    """Tables of `rows` rows with every column, each row group read one group of columns at a
+    time: a group's batches are written to an Arrow IPC stream in `folder`, then the streams
+    are read back together a batch at a time. Only one group's column readers are open at
+    once; the row group's decoded columns go through the disk once."""
+    for r in range(parquet.metadata.num_row_groups):
+        if parquet.metadata.row_group(r).num_rows == 0:
+            continue
+        paths = [folder / f"row-group-{r}-columns-{k}.arrows" for k in range(len(groups))]
+        for names, spill in zip(groups, paths, strict=True):
+            batches = parquet.iter_batches(rows, row_groups=[r], columns=names, use_threads=False)
+            first = next(batches, None)
+            if first is None:
+                raise OSError("a row group with rows gave none")
+            with pa.OSFile(str(spill), "wb") as sink, pa.ipc.new_stream(sink, first.schema) as out:
+                out.write_batch(first)
+                for batch in batches:
+                    out.write_batch(batch)
+        streams = [pa.OSFile(str(spill), "rb") for spill in paths]
+        try:
+            for parts in itertools.zip_longest(*(pa.ipc.open_stream(s) for s in streams)):
+                if None in parts or len({part.num_rows for part in parts}) != 1:
+                    raise OSError("the column groups of a row group have different lengths")
+                yield pa.Table.from_arrays(
+                    [column for part in parts for column in part.columns],
+                    names=[name for part in parts for name in part.schema.names],
+                )
+        finally:
+            for stream in streams:
+                stream.close()
+            for spill in paths:
+                spill.unlink()
 
 
 def _parquet_batch_rows(metadata: pq.FileMetaData, batch_bytes: int, max_rows: int) -> int:

@@ -17,6 +17,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
+from expertloop.errors import InvalidInput
 from expertloop.ingest import service, staging, stream_read
 from expertloop.ingest.columns import Vectors
 from expertloop.ingest.formats import read_table
@@ -293,3 +294,124 @@ def test_parquet_read_in_batches_equals_the_whole_table(tmp_path, small_batches)
     tables = list(stream_read.iter_tables(path, "parquet"))
     assert len(tables) > 3 and max(t.num_rows for t in tables) <= 7
     assert pa.concat_tables(tables).equals(read_table(path, "parquet"))
+
+
+# ---- a Parquet file with one column per feature, read a group of columns at a time
+
+
+def per_feature(cols: dict[str, list]) -> dict[str, list]:
+    """The rows with one column per loop feature (gap_m, speed, occluded) instead of `features`;
+    the features between the other columns, so a column group holds both kinds."""
+    names = [f["name"] for f in DISCRETE_SPEC["features"]]
+    out = {k: v for k, v in cols.items() if k != "features"}
+    for j, name in enumerate(names):
+        out[name] = [None if row is None else row[j] for row in cols["features"]]
+    order = ["rollout", "step", names[0], "time_s", names[1], "control", names[2]]
+    return {k: out[k] for k in order + [k for k in out if k not in order]}
+
+
+@pytest.fixture
+def column_groups(monkeypatch):
+    """Column readers may hold 1 byte together: every column is a group of its own."""
+    monkeypatch.setattr(stream_read, "PARQUET_READERS_BYTES", 1)
+
+
+@pytest.mark.parametrize("order", ["sorted", "unsorted"])
+def test_a_parquet_file_read_a_group_of_columns_at_a_time_stages_what_the_whole_file_holds(
+    tmp_path, small_batches, column_groups, order
+):
+    cols = per_feature(discrete_columns(n_rollouts=6, steps=11))
+    cols = shuffled(cols) if order == "unsorted" else cols
+    path = write(tmp_path, cols, "parquet", row_group=25)  # three row groups, the last short
+    groups = stream_read._column_groups(pq.ParquetFile(path))
+    assert groups == [[name] for name in cols]
+    tables = list(stream_read.iter_tables(path, "parquet"))
+    assert len(tables) > 9 and max(t.num_rows for t in tables) <= 7
+    assert pa.concat_tables(tables).equals(read_table(path, "parquet"))
+    assert_same(path, "parquet", spec_of(DISCRETE_SPEC))
+    assert sorted(p.name for p in tmp_path.iterdir()) == [path.name]  # nothing spilled is left
+
+
+def test_a_refusal_in_a_file_read_by_column_groups_leaves_nothing_spilled(
+    tmp_path, small_batches, column_groups
+):
+    cols = per_feature(discrete_columns(n_rollouts=6, steps=11))
+    cols["speed"][52] = float("nan")
+    path = write(tmp_path, cols, "parquet", row_group=40)
+    spec = spec_of(DISCRETE_SPEC)
+    with pytest.raises(InvalidInput) as whole:
+        validate(read_table(path, "parquet"), spec, round_number=1)
+    with pytest.raises(InvalidInput) as staged:
+        staging.stage_file(path, "parquet", spec, round_number=1)
+    assert str(staged.value) == str(whole.value) and "row 53" in str(whole.value)
+    assert sorted(p.name for p in tmp_path.iterdir()) == [path.name]
+
+
+def test_columns_of_one_name_are_read_together_and_refused_as_the_whole_file_refuses_them(
+    tmp_path, small_batches, column_groups
+):
+    cols = per_feature(discrete_columns(n_rollouts=2, steps=5))
+    table = pa.table(cols)
+    table = table.append_column("speed", table["speed"])  # "speed" twice, apart
+    path = tmp_path / "twice.parquet"
+    pq.write_table(table, path, row_group_size=4)
+    groups = stream_read._column_groups(pq.ParquetFile(path))
+    assert sum(g.count("speed") for g in groups) == 1
+    spec = spec_of(DISCRETE_SPEC)
+    with pytest.raises(InvalidInput) as whole:
+        validate(read_table(path, "parquet"), spec, round_number=1)
+    with pytest.raises(InvalidInput) as staged:
+        staging.stage_file(path, "parquet", spec, round_number=1)
+    assert str(staged.value) == str(whole.value) == "column 'speed' appears more than once"
+
+
+def wide_file(path: Path, rows: int, n_features: int = 300) -> Path:
+    """One row group of float32 columns f0, f1, ... (pyarrow's defaults otherwise)."""
+    rng = np.random.default_rng(0)
+    step = np.arange(rows) % 500
+    cols = {
+        "rollout": pa.array([f"w{i // 500:04d}" for i in range(rows)]),
+        "step": pa.array(step),
+        "time_s": pa.array(step * 0.1),
+    }
+    for j in range(n_features):
+        cols[f"f{j}"] = pa.array(rng.standard_normal(rows, dtype=np.float32))
+    pq.write_table(pa.table(cols), path, row_group_size=rows)
+    return path
+
+
+def held_while_read(path: Path) -> int:
+    """The most Arrow memory (pyarrow's pool: the column readers' pages and dictionaries, and
+    the tables) held above the start whenever the reader gives a table."""
+    pool = pa.default_memory_pool()
+    start, most = pool.bytes_allocated(), 0
+    for _ in stream_read.iter_tables(path, "parquet"):
+        most = max(most, pool.bytes_allocated() - start)
+    return most
+
+
+# The column readers together may hold 2 MB; a table is about BATCH_BYTES (4 MB).
+WIDE_READERS_BYTES = 2 << 20
+WIDE_HELD_BOUND = 12 << 20
+
+
+def test_memory_reading_a_wide_file_in_one_row_group_does_not_grow_with_its_rows(
+    tmp_path, monkeypatch
+):
+    """300 feature columns in one row group: read all at once, every column's reader holds its
+    pages and dictionary together (here 22 MB at 4,000 rows, 91 MB at 32,000); read a group of
+    columns at a time, the same few MB at any length."""
+    small = wide_file(tmp_path / "small.parquet", 4_000)
+    large = wide_file(tmp_path / "large.parquet", 32_000)
+    monkeypatch.setattr(stream_read, "PARQUET_READERS_BYTES", WIDE_READERS_BYTES)
+    assert len(stream_read._column_groups(pq.ParquetFile(large))) > 4
+    held_small, held_large = held_while_read(small), held_while_read(large)
+    monkeypatch.setattr(stream_read, "PARQUET_READERS_BYTES", 1 << 40)  # one group: all at once
+    assert len(stream_read._column_groups(pq.ParquetFile(large))) == 1
+    held_at_once = held_while_read(large)
+    print(
+        f"Arrow memory held reading 300 columns: 4,000 rows {held_small / 1e6:.1f} MB, "
+        f"32,000 rows {held_large / 1e6:.1f} MB; 32,000 rows at once {held_at_once / 1e6:.1f} MB"
+    )
+    assert held_large < 1.25 * held_small
+    assert held_small < WIDE_HELD_BOUND and held_large < WIDE_HELD_BOUND < held_at_once
