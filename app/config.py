@@ -42,6 +42,12 @@ class Settings(BaseSettings):
         description="How long a worker holds a job without a heartbeat before another worker may "
         "take it over (heartbeats come every third of it, at most every 5 s).",
     )
+    queue_threads: int = Field(
+        default=0,
+        ge=0,
+        description="Threads of a server process that run annotators' queue requests (claim, "
+        "renew, skip, submit, progress) at once; 0: 2 on SQLite, 4 on PostgreSQL.",
+    )
     log_format: Literal["text", "json"] = Field(
         default="text",
         description="'text': readable lines; 'json': one JSON object per line, for log collectors "

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
-from typing import Annotated
+from typing import Annotated, ParamSpec, TypeVar
 
 from anyio import CancelScope, CapacityLimiter, to_thread
 from fastapi import Depends, Request
@@ -14,6 +14,9 @@ from sqlalchemy.orm import Session, sessionmaker
 from .auth.identify import SAFE_METHODS, SESSION_COOKIE, Caller, identify
 from .config import Settings
 from .errors import Forbidden, Unauthenticated
+
+P = ParamSpec("P")
+T = TypeVar("T")
 
 CSRF_HEADER = "x-csrf-token"
 CSRF_FIELD = "csrf_token"
@@ -56,6 +59,26 @@ async def _request_session(factory: sessionmaker[Session]) -> AsyncIterator[Sess
             await _in_thread_shielded(_close, session)
         else:
             session.close()
+
+
+def queue_thread_limiter(settings: Settings, dialect: str) -> CapacityLimiter:
+    """The turns of the pool that annotators' queue requests take (`in_queue_thread`).
+
+    Thirty-two annotators clicking at once made thirty-two threads trade the interpreter lock:
+    a claim's write transaction, which holds SQLite's one writer, was stretched by every switch.
+    Two turns on SQLite (one writes while the other builds an answer) and four on PostgreSQL
+    (whose row locks let claims proceed side by side) measured best (README, Benchmarks)."""
+    turns = settings.queue_threads or (2 if dialect == "sqlite" else 4)
+    return CapacityLimiter(turns)
+
+
+async def in_queue_thread(
+    request: Request, work: Callable[P, T], *args: P.args, **kwargs: P.kwargs
+) -> T:
+    """Run a queue route's store work, all of it, in one trip through the thread pool, within
+    the queue's own turns: a sync route and its sync dependencies would take a trip each."""
+    limiter: CapacityLimiter = request.app.state.queue_threads
+    return await to_thread.run_sync(lambda: work(*args, **kwargs), limiter=limiter)
 
 
 async def get_session(request: Request) -> AsyncIterator[Session]:

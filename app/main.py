@@ -18,6 +18,7 @@ from .auth.cache import IdentityCache
 from .auth.throttle import Limits, SignInThrottle
 from .config import Settings, get_settings
 from .db import make_engine, make_session_factory, make_writer_session_factory
+from .deps import queue_thread_limiter
 from .error_pages import error_response
 from .errors import ExpertloopError
 from .ingest.image_store import PACK_SUFFIX, incoming_packs
@@ -117,6 +118,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.engine = engine
     app.state.session_factory = make_session_factory(engine)
     app.state.writer_session_factory = make_writer_session_factory(engine)
+    app.state.queue_threads = queue_thread_limiter(settings, engine.dialect.name)
     # who each credential belongs to, kept while the store's access version stays the same
     app.state.identity_cache = IdentityCache()
     app.state.access_version = make_reader(engine)

@@ -5,11 +5,13 @@ from __future__ import annotations
 
 from fastapi import APIRouter, Request, Response, status
 from fastapi.responses import HTMLResponse
+from sqlalchemy.orm import Session
 
-from ..deps import AdminDep, AnnotatorDep, SessionDep
+from ..deps import AdminDep, AnnotatorDep, SessionDep, in_queue_thread
 from ..json_answers import json_answer
 from ..limits import RowId
-from ..loops.deps import LoopDep, RoundDep
+from ..loops.deps import LoopDep, LoopSlug, RoundDep
+from ..loops.service import get_loop
 from ..loops.spec import spec_of
 from ..models import utcnow
 from ..templating import templates
@@ -30,30 +32,62 @@ router = APIRouter(tags=["queue"])
 QUEUE = "/api/loops/{slug}/queue"
 
 
+# The annotators' routes are async and run their store work, the loop's lookup included, in
+# one trip to the queue's own turns of the thread pool (`in_queue_thread`); each closes its
+# session there too. The caller's role is checked first, on the event loop, so a caller without
+# it gets 401/403 before an unknown loop's 404.
+
+
 @router.post(QUEUE + "/claim", response_model=ClaimRead)
-def claim(session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> Response:
+async def claim(
+    request: Request, slug: LoopSlug, session: SessionDep, caller: AnnotatorDep
+) -> Response:
     """Lease the next state to label, or get back the one already held (annotator)."""
+    return await in_queue_thread(request, _claim, session, slug=slug, user_id=caller.user_id)
+
+
+def _claim(session: Session, *, slug: str, user_id: int) -> Response:
+    loop = get_loop(session, slug=slug)
     with CLAIM_SECONDS.time():
-        claimed = service.claim_next(session, loop=loop, user_id=caller.user_id, now=utcnow())
-    if claimed is None:
-        return json_answer(ClaimRead(item=None))
-    item = bench_item(session, loop=loop, claim=claimed, user_id=caller.user_id)
+        claimed = service.claim_next(session, loop=loop, user_id=user_id, now=utcnow())
+    item = None
+    if claimed is not None:
+        item = bench_item(session, loop=loop, claim=claimed, user_id=user_id)
+    session.close()
     return json_answer(ClaimRead(item=item))
 
 
 @router.post(QUEUE + "/items/{item_id}/renew", response_model=LeaseRead)
-def renew(item_id: RowId, session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> LeaseRead:
+async def renew(
+    request: Request, slug: LoopSlug, item_id: RowId, session: SessionDep, caller: AnnotatorDep
+) -> LeaseRead:
     """Extend the lease on a held item while its annotator works (annotator)."""
-    expires_at = service.renew(
-        session, loop=loop, item_id=item_id, user_id=caller.user_id, now=utcnow()
+    return await in_queue_thread(
+        request, _renew, session, slug=slug, item_id=item_id, user_id=caller.user_id
     )
+
+
+def _renew(session: Session, *, slug: str, item_id: int, user_id: int) -> LeaseRead:
+    loop = get_loop(session, slug=slug)
+    expires_at = service.renew(session, loop=loop, item_id=item_id, user_id=user_id, now=utcnow())
+    session.close()
     return LeaseRead(item_id=item_id, lease_expires_at=expires_at)
 
 
 @router.post(QUEUE + "/items/{item_id}/skip", response_model=SkipRead)
-def skip(item_id: RowId, session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> SkipRead:
+async def skip(
+    request: Request, slug: LoopSlug, item_id: RowId, session: SessionDep, caller: AnnotatorDep
+) -> SkipRead:
     """Pass on an item; it is not offered to this annotator again (annotator)."""
-    service.skip(session, loop=loop, item_id=item_id, user_id=caller.user_id, now=utcnow())
+    return await in_queue_thread(
+        request, _skip, session, slug=slug, item_id=item_id, user_id=caller.user_id
+    )
+
+
+def _skip(session: Session, *, slug: str, item_id: int, user_id: int) -> SkipRead:
+    loop = get_loop(session, slug=slug)
+    service.skip(session, loop=loop, item_id=item_id, user_id=user_id, now=utcnow())
+    session.close()
     return SkipRead(item_id=item_id, skipped=True)
 
 
@@ -63,19 +97,29 @@ def skip(item_id: RowId, session: SessionDep, caller: AnnotatorDep, loop: LoopDe
     status_code=status.HTTP_201_CREATED,
     responses={200: {"description": "a repeated submission: the label stored the first time"}},
 )
-def submit(
+async def submit(
+    request: Request,
+    slug: LoopSlug,
     item_id: RowId,
     body: LabelCreate,
     session: SessionDep,
     caller: AnnotatorDep,
-    loop: LoopDep,
 ) -> Response:
     """Submit an answer (an action, or unsure) for a held item; repeats are harmless (annotator)."""
+    return await in_queue_thread(
+        request, _submit, session, slug=slug, item_id=item_id, body=body, user_id=caller.user_id
+    )
+
+
+def _submit(
+    session: Session, *, slug: str, item_id: int, body: LabelCreate, user_id: int
+) -> Response:
+    loop = get_loop(session, slug=slug)
     done = service.submit(
         session,
         loop=loop,
         item_id=item_id,
-        user_id=caller.user_id,
+        user_id=user_id,
         submission_id=body.submission_id,
         answer=body.answer,
         action=body.action,
@@ -98,13 +142,23 @@ def submit(
         created_at=label.created_at,
         repeated=done.repeated,
     )
+    session.close()
     return json_answer(answer, status_code=200 if done.repeated else 201)
 
 
 @router.get(QUEUE + "/progress", response_model=service.Progress)
-def progress(session: SessionDep, caller: AnnotatorDep, loop: LoopDep) -> service.Progress:
+async def progress(
+    request: Request, slug: LoopSlug, session: SessionDep, caller: AnnotatorDep
+) -> service.Progress:
     """Labelled today, left in the queue, and expected time left at today's pace (annotator)."""
-    return service.progress(session, loop=loop, user_id=caller.user_id, now=utcnow())
+    return await in_queue_thread(request, _progress, session, slug=slug, user_id=caller.user_id)
+
+
+def _progress(session: Session, *, slug: str, user_id: int) -> service.Progress:
+    loop = get_loop(session, slug=slug)
+    answer = service.progress(session, loop=loop, user_id=user_id, now=utcnow())
+    session.close()
+    return answer
 
 
 @router.get("/api/loops/{slug}/rounds/{number}/queue", response_model=service.RoundQueue)
