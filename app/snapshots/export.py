@@ -38,7 +38,6 @@ import json
 import tempfile
 import zipfile
 from collections.abc import Callable, Iterable, Iterator
-from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from typing import IO, Any
 
@@ -48,6 +47,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from ..loops.spec import LoopSpec
+from ..shared.overlap import alongside, mapped_ahead
 from ..shared.row_batches import RowBatch
 from ..shared.training_set import SOURCES
 
@@ -82,6 +82,9 @@ _MEMORY_POOL = pa.system_memory_pool()
 # zip members carry a fixed time stamp so that re-exports are byte-identical
 _ZIP_TIME = (1980, 1, 1, 0, 0, 0)
 _COPY_BYTES = 4 * 1024 * 1024
+# batches handed to the encoding thread, and chunks to the stored file's thread, at a time
+ENCODE_AHEAD = 1
+COPY_AHEAD = 1
 
 
 class _Sink(io.RawIOBase):
@@ -226,31 +229,24 @@ class ParquetRows:
         return self._sink.take()
 
 
-def encoded_ahead(
-    batches: Iterable[RowBatch], encode: Callable[[RowBatch], bytes]
+def row_groups(
+    batches: Iterable[RowBatch],
+    rows: ParquetRows,
+    copy_to: Callable[[bytes], None] | None = None,
 ) -> Iterator[bytes]:
-    """`encode` of every non-empty batch, in order, run in a helper thread one batch ahead.
+    """The bytes of one row group per non-empty batch, written by `rows`.
 
-    Encoding runs while the next batch is read from the store (pyarrow releases the GIL), so
-    reading and writing overlap on two cores. At most one batch is being encoded while the next
-    is read.
+    Batches are encoded on a thread of their own while the next ones are read (pyarrow releases
+    the GIL, so reading and encoding overlap on two cores); `copy_to`, when given, gets every
+    chunk on a third thread (a stored file hashed and written on the way) while the next batch
+    is encoded. At most `ENCODE_AHEAD` batches wait for the encoder and `COPY_AHEAD` chunks for
+    `copy_to`.
     """
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="parquet") as encoder:
-        pending: Future[bytes] | None = None
-        try:
-            for batch in batches:
-                if not len(batch):
-                    continue
-                following = encoder.submit(encode, batch)
-                if pending is not None:
-                    yield pending.result()
-                pending = following
-            if pending is not None:
-                yield pending.result()
-                pending = None
-        finally:
-            if pending is not None:  # stopped early: let the encoder finish, drop its bytes
-                pending.exception()
+    filled = (batch for batch in batches if len(batch))
+    chunks = mapped_ahead(filled, rows.write, depth=ENCODE_AHEAD, name="parquet")
+    if copy_to is None:
+        return chunks
+    return alongside(chunks, copy_to, depth=COPY_AHEAD, name="stored-file")
 
 
 def parquet_chunks(
@@ -261,18 +257,10 @@ def parquet_chunks(
 ) -> Iterator[bytes]:
     """A Parquet file, one row group per batch, handed over after each row group.
 
-    `copy_to` is given every chunk too, in the encoding thread (a stored file written on the
-    way: the thread reading the rows then has only the rows to read and hash).
+    `copy_to` is given every chunk too, on a thread of its own (see `row_groups`).
     """
     rows = ParquetRows(spec)
-
-    def encode(batch: RowBatch) -> bytes:
-        chunk = rows.write(batch)
-        if copy_to is not None:
-            copy_to(chunk)
-        return chunk
-
-    yield from encoded_ahead(batches, encode)
+    yield from row_groups(batches, rows, copy_to)
     # no footer unless every batch arrived: a reader then sees a broken file, not a short one
     footer = rows.close(metadata)
     if copy_to is not None:

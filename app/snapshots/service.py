@@ -29,6 +29,7 @@ from ..loops.spec import spec_of
 from ..models import utcnow
 from ..safety import SAFETY_CAUTION
 from ..shared import training_set as ts
+from ..shared.overlap import alongside
 from ..shared.row_batches import RowBatch, rows_not_in
 from . import export, files
 from .content_hash import HASH_SCHEME, ContentHasher
@@ -36,6 +37,8 @@ from .models import Snapshot
 
 LATEST = "latest"
 _VERSION = re.compile(r"^v([1-9][0-9]{0,8})$")
+# batches that may wait for the content hash while later ones stream on
+HASH_AHEAD = 1
 
 
 class SnapshotChanged(RuntimeError):
@@ -114,17 +117,18 @@ def create_snapshot(
     spec = spec_of(loop)
     hasher, tally = _hasher(loop), _Tally()
 
-    def counted() -> Iterator[RowBatch]:
-        for batch in ts.iter_batches(reader, loop=loop, spec=spec, cutoff=cutoff):
-            hasher.update(batch)
-            tally.add(batch)
-            yield batch
+    def count(batch: RowBatch) -> None:
+        hasher.update(batch)
+        tally.add(batch)
 
+    batches = ts.iter_batches(reader, loop=loop, spec=spec, cutoff=cutoff)
     parquet = export.ParquetRows(spec)
     spool = files.Spool(files.loop_folder(files_dir, loop.id), prefix="new.")
     try:
-        for chunk in export.encoded_ahead(counted(), parquet.write):
-            spool.write(chunk)
+        # this thread reads; hashing, encoding and the file each run on a thread of their own
+        counted = alongside(batches, count, depth=HASH_AHEAD, name="content-hash")
+        for _ in export.row_groups(counted, parquet, spool.write):
+            pass
         reader.commit()  # end the read transaction: SQLite's WAL cannot be reset under it
         if hasher.rows == 0:
             raise InvalidInput(
@@ -345,9 +349,9 @@ def snapshot_batches(
 
 def _verified(batches: Iterator[RowBatch], loop: Loop, snapshot: Snapshot) -> Iterator[RowBatch]:
     hasher = _hasher(loop)
-    for batch in batches:
-        hasher.update(batch)
-        yield batch
+    # hashed on a thread of its own while the batch goes on to be encoded (hashlib releases
+    # the GIL); the check below waits for the last batch's hash
+    yield from alongside(batches, hasher.update, depth=HASH_AHEAD, name="content-hash")
     found = hasher.hexdigest()
     if found != snapshot.content_sha256:
         raise SnapshotChanged(
