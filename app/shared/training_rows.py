@@ -16,7 +16,7 @@ from functools import reduce
 from typing import Protocol
 
 import numpy as np
-from sqlalchemy import select
+from sqlalchemy import bindparam, select
 from sqlalchemy.orm import Session
 
 from ..ingest.models import CONTROL_EXPERT, Rollout
@@ -68,10 +68,47 @@ class RoundTable:
         return self.numbers[np.searchsorted(self.ids, round_ids)]
 
 
-def _rollout_keys(session: Session, rollout_id: np.ndarray) -> dict[int, str]:
-    wanted = np.unique(rollout_id).tolist()
-    rows = session.execute(select(Rollout.id, Rollout.key).where(Rollout.id.in_(wanted))).all()
-    return {int(r.id): r.key for r in rows}
+# rollout keys read from the store at a time, from the first id a page of steps needs
+ROLLOUT_KEY_RANGE = 1024
+
+
+class RolloutKeys:
+    """Keys of rollouts by id during one pass over the steps, read a range of ids at a time.
+
+    Steps read in id order belong to rollouts stored in nearly the same order, so when a page
+    needs a key not known yet, the keys of the next `span` rollouts by id (default
+    `ROLLOUT_KEY_RANGE`) are read together: a pass asks the store about once per `span`
+    rollouts instead of once per page (on PostgreSQL each ask is a round trip). Ids outside
+    that range (rollouts stored out of order, relabelled states spread over many rollouts) are
+    read by id. Only the last range is kept, so memory does not grow with the rollouts.
+    """
+
+    def __init__(self, session: Session, span: int | None = None) -> None:
+        self._session = session
+        self._range = (
+            select(Rollout.id, Rollout.key)
+            .where(Rollout.id >= bindparam("low"))
+            .order_by(Rollout.id)
+            .limit(ROLLOUT_KEY_RANGE if span is None else span)
+        )
+        self._known: dict[int, str] = {}
+
+    def of(self, rollout_id: np.ndarray) -> dict[int, str]:
+        """The key of every distinct id in `rollout_id` (ids of no rollout are left out)."""
+        wanted = np.unique(rollout_id).tolist()
+        found = {i: self._known[i] for i in wanted if i in self._known}
+        if len(found) == len(wanted):
+            return found
+        missing = [i for i in wanted if i not in found]
+        connection = self._session.connection()
+        ranged = connection.execute(self._range, {"low": missing[0]})
+        self._known = {int(i): key for i, key in ranged}
+        found.update((i, self._known[i]) for i in missing if i in self._known)
+        elsewhere = [i for i in missing if i not in self._known]
+        if elsewhere:
+            by_id = select(Rollout.id, Rollout.key).where(Rollout.id.in_(elsewhere))
+            found.update((int(i), key) for i, key in connection.execute(by_id))
+        return found
 
 
 def _in_id_order(page: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
@@ -86,6 +123,7 @@ def _in_id_order(page: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
 def expert_batches(
     reader: BulkReader,
     *,
+    keys: RolloutKeys,
     shape: LoopShape,
     rounds: RoundTable,
     up_to_round: int,
@@ -97,7 +135,7 @@ def expert_batches(
     step-id order: demonstrations (round 0) and takeovers (later rounds)."""
     streams = [
         _expert_round(
-            reader, shape, rounds, int(rid), int(number), max_step_id, batch, with_features
+            reader, keys, shape, rounds, int(rid), int(number), max_step_id, batch, with_features
         )
         for rid, number in zip(rounds.ids.tolist(), rounds.numbers.tolist(), strict=True)
         if number <= up_to_round
@@ -109,6 +147,7 @@ def expert_batches(
 
 def _expert_round(
     reader: BulkReader,
+    keys: RolloutKeys,
     shape: LoopShape,
     rounds: RoundTable,
     round_id: int,
@@ -151,7 +190,7 @@ def _expert_round(
             rollout_id=page["rollout_id"],
             step_index=page["step_index"],
             features=page.get("features"),
-            rollout_keys=_rollout_keys(reader.session, page["rollout_id"]),
+            rollout_keys=keys.of(page["rollout_id"]),
             learner_versions=rounds.learner_versions,
         )
         if n < batch:
@@ -167,6 +206,7 @@ def _select_list(columns: dict[str, int | None], *, action: str) -> str:
 def relabel_batches(
     reader: BulkReader,
     *,
+    keys: RolloutKeys,
     shape: LoopShape,
     rounds: RoundTable,
     step_ids: np.ndarray,
@@ -216,6 +256,6 @@ def relabel_batches(
             rollout_id=page["rollout_id"],
             step_index=page["step_index"],
             features=page.get("features"),
-            rollout_keys=_rollout_keys(reader.session, page["rollout_id"]),
+            rollout_keys=keys.of(page["rollout_id"]),
             learner_versions=rounds.learner_versions,
         )

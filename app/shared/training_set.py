@@ -207,9 +207,11 @@ def _merged(
 ) -> Iterator[RowBatch]:
     """The two sorted streams merged, read on one bulk reader closed when the stream ends."""
     keep = found.resolved
+    keys = rows.RolloutKeys(session)  # one pass: the streams below take turns on it
     with bulk_reader(session) as reader:
         expert = rows.expert_batches(
             reader,
+            keys=keys,
             shape=spec,
             rounds=rounds,
             up_to_round=cutoff.up_to_round,
@@ -219,6 +221,7 @@ def _merged(
         )
         relabelled = rows.relabel_batches(
             reader,
+            keys=keys,
             shape=spec,
             rounds=rounds,
             step_ids=found.step_id[keep],

@@ -14,7 +14,7 @@ import adbc_driver_manager
 import adbc_driver_postgresql
 import numpy as np
 import pytest
-from sqlalchemy import select, text
+from sqlalchemy import event, select, text
 
 from expertloop.loops import service as loops_service
 from expertloop.loops.spec import spec_of
@@ -160,3 +160,35 @@ def test_an_aggregated_page_is_put_in_id_order():
     ordered = training_rows._in_id_order(page)
     np.testing.assert_array_equal(ordered["id"], [3, 5, 9])
     np.testing.assert_array_equal(ordered["features"], [[3.0], [5.0], [9.0]])
+
+
+@pytest.mark.parametrize("span", [1, 2, None])
+def test_rollout_keys_equal_the_stores_for_pages_in_any_order(app, discrete_loop, span):
+    """Reference: the rollouts table read with plain SQL."""
+    with app.state.session_factory() as session:
+        stored = {int(i): k for i, k in session.execute(text("SELECT id, key FROM rollouts"))}
+        ids = sorted(stored)
+        keys = training_rows.RolloutKeys(session, span=span)
+        pages = [ids[:2], ids[1:], ids[-1:], ids[:1], [ids[-1], ids[0]], [ids[-1] + 100, ids[1]]]
+        for page in pages:
+            expected = {i: stored[i] for i in page if i in stored}
+            assert keys.of(np.array(page * 3, dtype=np.int64)) == expected, page
+
+
+def test_rollout_keys_in_id_order_are_read_once_per_range(app, engine, discrete_loop):
+    statements: list[str] = []
+
+    def count(conn, cursor, statement, *args):  # type: ignore[no-untyped-def]
+        if "rollouts" in statement:
+            statements.append(statement)
+
+    with app.state.session_factory() as session:
+        ids = sorted(int(i) for i in session.scalars(text("SELECT id FROM rollouts")))
+        keys = training_rows.RolloutKeys(session, span=len(ids))
+        event.listen(engine, "before_cursor_execute", count)
+        try:
+            for start in range(len(ids)):  # pages walking the rollouts in id order
+                keys.of(np.array(ids[start : start + 2], dtype=np.int64))
+        finally:
+            event.remove(engine, "before_cursor_execute", count)
+    assert len(statements) == 1

@@ -24,6 +24,7 @@ from typer.testing import CliRunner
 import expertloop.client as client_module
 from expertloop.cli import cli
 from expertloop.client import ApiError, Client
+from expertloop.shared import training_rows
 from expertloop.shared import training_set as ts
 from expertloop.snapshots.service import SnapshotChanged
 from tests.snapshots.conftest import (
@@ -42,8 +43,10 @@ FORMATS = ("parquet", "npz", "jsonl")
 
 @pytest.fixture
 def small_batches(monkeypatch):
-    """Pages of 2 rows, so every export crosses many batch and merge boundaries."""
+    """Pages of 2 rows, so every export crosses many batch and merge boundaries, and rollout
+    keys read one at a time, so pages need keys outside the range last read."""
     monkeypatch.setattr(ts, "DEFAULT_BATCH", 2)
+    monkeypatch.setattr(training_rows, "ROLLOUT_KEY_RANGE", 1)
 
 
 def _labels(labeller: Labeller) -> list[int]:
