@@ -17,7 +17,6 @@ import warnings
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy.cluster.vq import kmeans2, vq
 
 IntArray = NDArray[np.int64]
 
@@ -58,6 +57,9 @@ def strata(points: ArrayLike, n_strata: int, rng: np.random.Generator) -> IntArr
     k = min(k, np.unique(sample, axis=0).shape[0])
     if k <= 1:
         return np.zeros(n, dtype=np.int64)
+    # imported here, like scipy in scores.py: at module level it costs every server some 30 MB
+    from scipy.cluster.vq import kmeans2, vq
+
     with warnings.catch_warnings():
         # a cell that ends empty keeps its centre and simply takes no candidates
         warnings.filterwarnings("ignore", "One of the clusters is empty", UserWarning)
