@@ -28,7 +28,7 @@ from .models import (
     QueueItem,
     Skip,
 )
-from .rules import rounds_of
+from .rules import open_rounds, rounds_of
 
 
 @dataclass(frozen=True)
@@ -119,19 +119,12 @@ def _answered_open_items() -> Select[int]:
     """How many open items of loop :loop_id user :user_id has answered or skipped: the items
     `rules.answered_by` holds true of, found from the user's side."""
     user = bindparam("user_id", type_=Integer)
-    # the loop's rounds that still have an open item (one index probe each)
-    open_rounds = select(Round.id).where(
-        Round.loop_id == bindparam("loop_id", type_=Integer),
-        select(QueueItem.id)
-        .where(QueueItem.round_id == Round.id, QueueItem.status == ITEM_OPEN)
-        .exists(),
-    )
     labelled = (
         select(QueueItem.id)
         .join(Label, and_(Label.item_id == QueueItem.id, Label.step_id == QueueItem.step_id))
         .where(
             Label.user_id == user,
-            Label.round_id.in_(open_rounds),
+            Label.round_id.in_(open_rounds()),
             QueueItem.status == ITEM_OPEN,
             is_current(),
         )

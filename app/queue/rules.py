@@ -48,6 +48,18 @@ def rounds_of(loop_id: Any = None) -> Select[Any]:
     )
 
 
+def open_rounds() -> Select[Any]:
+    """Ids of loop :loop_id's rounds that still have an open item (an index probe each): where
+    claims look, and where the items left for an annotator are."""
+    has_open = (
+        select(QueueItem.id)
+        .where(QueueItem.round_id == Round.id, QueueItem.status == ITEM_OPEN)
+        .correlate(Round)
+        .exists()
+    )
+    return select(Round.id).where(Round.loop_id == bindparam("loop_id", type_=Integer), has_open)
+
+
 def answered_by() -> ColumnElement[bool]:
     """EXISTS a label or a skip of user :user_id on the correlated QueueItem."""
     user = bindparam("user_id", type_=Integer)

@@ -36,6 +36,7 @@ from .rules import (
     candidate_query,
     live_leases_query,
     lock_item,
+    open_rounds,
     take_lease,
 )
 
@@ -203,7 +204,9 @@ def _lock_annotator() -> Select[int]:
 
 @cache
 def _loop_rounds() -> Select[int]:
-    return select(Round.id).where(Round.loop_id == bindparam("loop_id")).order_by(Round.number)
+    # only rounds with open items: a loop's finished rounds (the seed round, every round
+    # labelled) would cost each claim a candidate query apiece
+    return open_rounds().order_by(Round.number)
 
 
 @cache

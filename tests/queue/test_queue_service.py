@@ -7,7 +7,7 @@ from datetime import UTC, datetime, timedelta
 
 import numpy as np
 import pytest
-from sqlalchemy import event, select
+from sqlalchemy import event, select, update
 
 from expertloop.errors import Conflict, InvalidInput, NotFound
 from expertloop.ingest.models import Step
@@ -24,8 +24,9 @@ from expertloop.queue.models import (
 )
 from expertloop.sampler.models import REASON_AUDIT, REASON_RANKED, SelectedState, Selection
 from tests.conftest import store_contents
-from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC
+from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC, discrete_rows, parquet_bytes
 from tests.queue.conftest import user_id
+from tests.serving import enqueue_steps
 
 T0 = datetime(2026, 12, 2, 9, 0, tzinfo=UTC)
 
@@ -393,3 +394,54 @@ def test_claims_use_the_backend_lock(discrete_loop, session, annotators, engine)
         assert any("FOR UPDATE OF QUEUE_ITEMS SKIP LOCKED" in s for s in statements)
     else:
         assert "BEGIN IMMEDIATE" in statements
+
+
+def test_a_claim_asks_only_rounds_with_open_items(
+    client, admin, uploader, app, make_loop, make_user
+):
+    # A loop's finished rounds (the seed round, every round labelled) cost a claim nothing: it
+    # looks for a candidate once, in the round that still has open items.
+    slug = make_loop()
+    with app.state.session_factory() as session:
+        session.execute(update(QueueItem).values(status=ITEM_DONE))  # round 1 fully labelled
+        session.commit()
+    assert (
+        client.post(
+            f"/api/loops/{slug}/rounds", json={"learner_version": "v2"}, headers=admin
+        ).status_code
+        == 201
+    )
+    cols = discrete_rows(1, 5)
+    cols["rollout"] = [f"late-{r}" for r in cols["rollout"]]
+    assert (
+        client.post(
+            f"/api/loops/{slug}/rounds/2/rollouts",
+            files={"file": ("r.parquet", parquet_bytes(cols))},
+            headers=uploader,
+        ).status_code
+        == 201
+    )
+    with app.state.session_factory() as session:
+        loop = loops_service.get_loop(session, slug=slug)
+        rnd = loops_service.get_round(session, loop=loop, number=2)
+        steps = session.scalars(select(Step.id).where(Step.round_id == rnd.id)).all()
+        enqueue_steps(session, rnd=rnd, loop=loop, step_ids=steps)
+        session.commit()
+        round_two = rnd.id
+    searches: list[str] = []
+
+    def seen(conn, cursor, statement, parameters, context, executemany):
+        if "FROM queue_items" in statement and "ORDER BY queue_items.position" in statement:
+            searches.append(statement)
+
+    annotator = make_user("annotator", name="late")
+    event.listen(app.state.engine, "before_cursor_execute", seen)
+    try:
+        got = client.post(f"/api/loops/{slug}/queue/claim", headers=annotator)
+    finally:
+        event.remove(app.state.engine, "before_cursor_execute", seen)
+    assert got.status_code == 200, got.text
+    with app.state.session_factory() as session:
+        item = session.get(QueueItem, got.json()["item"]["item_id"])
+        assert item is not None and item.round_id == round_two
+    assert len(searches) == 1
