@@ -82,13 +82,13 @@ def prepare_store(url: str) -> None:
     upgrade(url)
 
 
-def open_bench_round(session: Session) -> tuple[Loop, Round]:
-    """The benchmarks' loop (N_FEATURES features, ACTIONS) with round 1 open, committed."""
+def open_bench_round(session: Session, n_features: int = N_FEATURES) -> tuple[Loop, Round]:
+    """The benchmarks' loop (features f0, f1, ..., ACTIONS) with round 1 open, committed."""
     spec = LoopCreate.model_validate(
         {
             "slug": "bench",
             "title": "bench",
-            "features": [{"name": f"f{i}", "unit": ""} for i in range(N_FEATURES)],
+            "features": [{"name": f"f{i}", "unit": ""} for i in range(n_features)],
             "action_space": {"kind": "discrete", "actions": ACTIONS},
         }
     )

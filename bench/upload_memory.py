@@ -8,8 +8,11 @@
 For each size, two Parquet files of invented rows (64 float32 features, a discrete action with
 probabilities, 1,000 steps a rollout): rows only, and rows with a distinct 20 KB image each
 (the image column written without a dictionary, as the README advises); `--kinds unsorted`
-adds a rows-only file whose 1,000 rollouts' steps are interleaved (no row sorted); `--format
-jsonl` or `npz` sends the same rows as JSON Lines (images in base64) or a compressed .npz. Each file is uploaded
+adds a rows-only file whose 1,000 rollouts' steps are interleaved (no row sorted); `--kinds wide`
+a rows-only file with one float32 column per feature (`--wide-columns`, default 2,000, for a
+loop of that many features) instead of the `features` list, written as ONE row group; `--format
+jsonl` or `npz` sends the same rows as JSON Lines (images in base64) or a compressed .npz (a wide
+file: one member per feature). Each file is uploaded
 through the API to a fresh server process (uvicorn, as deployed) on a fresh store; before the
 upload the server is warmed with a small file, then its peak resident memory is reset
 (/proc/PID/clear_refs) and its resident memory read as "idle". The answer's status and the
@@ -50,9 +53,9 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 INTERLEAVED_ROLLOUTS = 1000
 
 
-def prepare(url: str) -> str:
-    """Migrate an empty store, create the benchmarks' loop (bench/ingest.py: 64 features) with
-    round 1 open; return an uploader's token."""
+def prepare(url: str, n_features: int = N_FEATURES) -> str:
+    """Migrate an empty store, create the benchmarks' loop (bench/ingest.py: 64 features unless
+    told) with round 1 open; return an uploader's token."""
     from bench.ingest import open_bench_round
     from expertloop.auth import service as auth_service
     from expertloop.db import make_engine, make_session_factory
@@ -60,7 +63,7 @@ def prepare(url: str) -> str:
     upgrade_empty(url)
     engine = make_engine(url)
     with make_session_factory(engine)() as session:
-        open_bench_round(session)
+        open_bench_round(session, n_features)
         user = auth_service.create_user(session, name="bench-fleet", roles=["uploader"])
         token = auth_service.issue_token(session, user=user)
         session.commit()
@@ -95,6 +98,24 @@ def _rows(
             [PNG_SIGNATURE + body[i].tobytes() for i in range(n)], pa.binary()
         )
     return pa.table(columns)
+
+
+def _wide_rows(rng: np.random.Generator, start: int, n: int, n_features: int) -> pa.Table:
+    """As _rows, with one float32 column per feature (f0, f1, ...) instead of `features`."""
+    table = _rows(rng, start, n, 0)
+    columns = {name: table[name] for name in table.column_names if name != "features"}
+    values = rng.standard_normal((n_features, n), dtype=np.float32)  # a feature's column per row
+    columns.update({f"f{j}": pa.array(values[j]) for j in range(n_features)})
+    return pa.table(columns)
+
+
+def make_wide_file(path: Path, target_bytes: int, n_features: int) -> int:
+    """One row group of about `target_bytes`, pyarrow's defaults otherwise (so each feature is
+    dictionary-encoded: about 6 bytes a value); return its rows."""
+    rows = max(STEPS_PER_ROLLOUT, target_bytes // (6 * n_features + 40))
+    table = _wide_rows(np.random.default_rng(0), 0, rows, n_features)
+    pq.write_table(table, path, row_group_size=rows)
+    return rows
 
 
 def make_file(
@@ -167,8 +188,10 @@ def upload(base: str, token: str, path: Path) -> httpx.Response:
         )
 
 
-def measure(work: Path, url: str, path: Path, warm: Path, rows: int) -> dict[str, float]:
-    token = prepare(url)
+def measure(
+    work: Path, url: str, path: Path, warm: Path, rows: int, n_features: int = N_FEATURES
+) -> dict[str, float]:
+    token = prepare(url, n_features)
     with server_process(url, work / "data", log_path=work / "server.log") as server:
         assert upload(server.url, token, warm).status_code == 201
         Path(f"/proc/{server.pid}/clear_refs").write_text("5")  # reset VmHWM to VmRSS
@@ -202,8 +225,12 @@ def main() -> None:
         "--kinds",
         nargs="+",
         default=["rows", "images"],
-        choices=["rows", "images", "unsorted"],
-        help="unsorted: rows only, every rollout's steps interleaved with the others'",
+        choices=["rows", "images", "unsorted", "wide"],
+        help="unsorted: rows only, every rollout's steps interleaved with the others'; "
+        "wide: one column per feature, one row group",
+    )
+    parser.add_argument(
+        "--wide-columns", type=int, default=2000, help="features of the wide kind (and its loop)"
     )
     parser.add_argument("--format", choices=["parquet", "jsonl", "npz"], default="parquet")
     parser.add_argument("--postgres", metavar="URL", help="PostgreSQL instead of SQLite")
@@ -215,21 +242,31 @@ def main() -> None:
         folder = Path(tmp)
         warm = folder / "warm.parquet"
         pq.write_table(_rows(np.random.default_rng(9), 10**8, 1000, 0), warm)
+        warm_wide = folder / "warm-wide.parquet"  # a warm-up file for the wide kind's loop
+        if "wide" in args.kinds:
+            warm_rows = _wide_rows(np.random.default_rng(9), 10**8, 1000, args.wide_columns)
+            pq.write_table(warm_rows, warm_wide)
         store = "PostgreSQL" if args.postgres else "SQLite"
         for size in args.sizes_mb:
             for kind in args.kinds:
                 path = folder / f"{kind}-{size}.parquet"
-                rows = make_file(
-                    path,
-                    size * 10**6,
-                    args.image_bytes if kind == "images" else 0,
-                    interleaved=kind == "unsorted",
-                )
+                if kind == "wide":
+                    rows = make_wide_file(path, size * 10**6, args.wide_columns)
+                else:
+                    rows = make_file(
+                        path,
+                        size * 10**6,
+                        args.image_bytes if kind == "images" else 0,
+                        interleaved=kind == "unsorted",
+                    )
                 path = convert(path, args.format)
                 run = folder / f"run-{kind}-{size}"
                 url = args.postgres or f"sqlite:///{run / 'store.db'}"
                 run.mkdir()
-                got = measure(run, url, path, warm, rows)
+                if kind == "wide":
+                    got = measure(run, url, path, warm_wide, rows, args.wide_columns)
+                else:
+                    got = measure(run, url, path, warm, rows)
                 print(
                     f"{store} {args.format:7s} {kind:8s} {path.stat().st_size / 1e6:7.0f} MB {rows:>9,} steps | "
                     f"server peak above idle {got['peak_above_idle_mb']:7.0f} MB "
