@@ -151,21 +151,19 @@ def store_image_rows(
         return None
     name = uuid.uuid4().hex
     # The staged file holds nothing else exactly when the distinct images fill it.
-    whole = staged is not None and sum(lengths.values()) == staged.size
-    planned = (
-        dict(staged.starts) if whole and staged is not None else _offsets(list(lengths), lengths)
-    )
+    whole = staged if staged is not None and sum(lengths.values()) == staged.size else None
+    planned = dict(whole.starts) if whole is not None else _offsets(list(lengths), lengths)
     owned = _claim(session, name=name, offsets=planned, lengths=lengths)
     if not owned:
         return None
     order = [digest for digest in lengths if digest in owned]
-    if whole and staged is not None and len(order) == len(lengths):
-        adopted = adopt_pack(blob_dir, name, staged.path)
+    if whole is not None and len(order) == len(lengths):
+        adopted = adopt_pack(blob_dir, name, whole.path)
         if adopted is not None:
             return PackWrite(adopted)
     offsets = _offsets(order, lengths)
     # Some were stored already, or by an upload that committed first, or the staged file
-    # could not be moved: the pack is written back to back, so close the gaps.
+    # could not be linked: the pack is written back to back, so close the gaps.
     moved = [{"key": d, "offset": offsets[d]} for d in order if offsets[d] != planned[d]]
     if moved:
         session.execute(
