@@ -28,7 +28,7 @@ from expertloop.loops.models import Loop, Round
 from expertloop.loops.spec import spec_of
 from tests.conftest import store_contents
 from tests.helpers import DISCRETE_SPEC, discrete_rows, jsonl_bytes, npz_bytes, parquet_bytes
-from tests.unit.test_upload_staging import discrete_columns, shuffled
+from tests.unit.test_upload_staging import discrete_columns, per_feature, shuffled
 
 SLUG = DISCRETE_SPEC["slug"]
 URL = f"/api/loops/{SLUG}/rounds/1/rollouts"
@@ -153,6 +153,24 @@ def test_a_streamed_upload_stores_what_the_whole_file_path_stores(
     for image in {i for i in cols["image"] if i is not None}:
         served = client.get(f"/api/images/{hashlib.sha256(image).hexdigest()}", headers=admin)
         assert served.status_code == 200 and served.content == image
+    assert leftovers(settings) == []
+
+
+def test_a_file_read_by_column_groups_stores_what_the_whole_file_path_stores(
+    client, loops, uploader, engine, settings, tmp_path, small_batches, monkeypatch
+):
+    """One column per feature, every column read in a group of its own (spilled to the staging
+    folder and read back): the same rollouts and steps, and nothing left in the upload folder."""
+    monkeypatch.setattr(stream_read, "PARQUET_READERS_BYTES", 1)
+    cols = per_feature(shuffled(discrete_columns(n_rollouts=6, steps=11)))
+    path = as_file(tmp_path, cols, "parquet")
+    response = send(client, uploader, path.read_bytes(), path.name)
+    assert response.status_code == 201, response.text
+    assert response.json()["steps"] == len(cols["rollout"])
+    whole_file_store(engine, settings, path, "parquet")
+    streamed, whole = stored(engine, SLUG), stored(engine, OTHER)
+    assert streamed["rollouts"] == whole["rollouts"]
+    assert streamed["steps"] == whole["steps"] and len(whole["steps"]) == len(cols["rollout"])
     assert leftovers(settings) == []
 
 
