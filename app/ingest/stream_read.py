@@ -123,10 +123,11 @@ def _parquet_tables(
                 spilled.callback(tables.close)  # its open streams, before the folder goes
             read_bytes = 0
             for table in tables:
-                read_bytes += _decoded_bytes(table)
+                decoded = _decoded_bytes(table)
+                read_bytes += decoded
                 if read_bytes > max_array_bytes:
                     raise _too_large("the Parquet file", read_bytes, max_array_bytes)
-                yield from _decoded_slices(table, batch_bytes)
+                yield from _decoded_slices(table, decoded, batch_bytes)
     except (pa.ArrowException, OSError) as exc:
         raise InvalidInput("not a readable Parquet file (truncated or damaged?)") from exc
 
@@ -230,11 +231,13 @@ def _parquet_batch_rows(metadata: pq.FileMetaData, batch_bytes: int, max_rows: i
     return int(min(max_rows, max(1, batch_bytes // widest)))
 
 
-def _decoded_slices(table: pa.Table, batch_bytes: int) -> Iterator[pa.Table]:
+def _decoded_slices(table: pa.Table, decoded: int, batch_bytes: int) -> Iterator[pa.Table]:
     """The table with its dictionary columns decoded, in row slices of about `batch_bytes`:
-    a few rows of one long value repeated decode to far more than they take as a dictionary."""
-    dictionaries = [c for c in table.columns if pa.types.is_dictionary(c.type)]
-    if not dictionaries or _decoded_bytes(table) <= 2 * batch_bytes:
+    a few rows of one long value repeated decode to far more than they take as a dictionary.
+    `decoded`: the table's size once decoded (`_decoded_bytes`, counted once a table, which
+    for thousands of columns is no small cost)."""
+    dictionaries = any(pa.types.is_dictionary(kind) for kind in table.schema.types)
+    if not dictionaries or decoded <= 2 * batch_bytes:
         yield _decode_dictionaries(table)
         return
     per_row = np.full(table.num_rows, 0.0)
