@@ -119,6 +119,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.session_factory = make_session_factory(engine)
     app.state.writer_session_factory = make_writer_session_factory(engine)
     app.state.queue_threads = queue_thread_limiter(settings, engine.dialect.name)
+    app.state.known_loops = set()  # slugs of loops found (app/queue/router.py)
     # who each credential belongs to, kept while the store's access version stays the same
     app.state.identity_cache = IdentityCache()
     app.state.access_version = make_reader(engine)

@@ -3,7 +3,9 @@ admins' view of a round's queue."""
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Request, Response, status
+from typing import Annotated
+
+from fastapi import APIRouter, Depends, Request, Response, status
 from fastapi.responses import HTMLResponse
 from sqlalchemy.orm import Session
 
@@ -33,9 +35,25 @@ QUEUE = "/api/loops/{slug}/queue"
 
 
 # The annotators' routes are async and run their store work, the loop's lookup included, in
-# one trip to the queue's own turns of the thread pool (`in_queue_thread`); each closes its
-# session there too. The caller's role is checked first, on the event loop, so a caller without
-# it gets 401/403 before an unknown loop's 404.
+# one trip to the queue's own turns of the thread pool (`in_queue_thread`), closing their session
+# there too. The caller's role is checked first, on the event loop, so a caller without it gets
+# 401/403 before an unknown loop's 404. An unknown loop is a 404 whatever else the request holds
+# (tests/api/test_path_lookups.py), but FastAPI validates an item id or a body before the route
+# runs: routes with either take the slug through `KnownLoopDep`, which settles in a dependency
+# that the loop exists. Loops are never deleted, so each process remembers the slugs it found and
+# asks the store only about a slug it has not seen.
+
+
+async def _known_loop(request: Request, slug: LoopSlug, session: SessionDep) -> str:
+    """The path's slug, once its loop is known to exist (NotFound otherwise)."""
+    known: set[str] = request.app.state.known_loops
+    if slug not in known:
+        await in_queue_thread(request, get_loop, session, slug=slug)
+        known.add(slug)
+    return slug
+
+
+KnownLoopDep = Annotated[str, Depends(_known_loop)]
 
 
 @router.post(QUEUE + "/claim", response_model=ClaimRead)
@@ -59,7 +77,11 @@ def _claim(session: Session, *, slug: str, user_id: int) -> Response:
 
 @router.post(QUEUE + "/items/{item_id}/renew", response_model=LeaseRead)
 async def renew(
-    request: Request, slug: LoopSlug, item_id: RowId, session: SessionDep, caller: AnnotatorDep
+    request: Request,
+    item_id: RowId,
+    session: SessionDep,
+    caller: AnnotatorDep,
+    slug: KnownLoopDep,
 ) -> LeaseRead:
     """Extend the lease on a held item while its annotator works (annotator)."""
     return await in_queue_thread(
@@ -76,7 +98,11 @@ def _renew(session: Session, *, slug: str, item_id: int, user_id: int) -> LeaseR
 
 @router.post(QUEUE + "/items/{item_id}/skip", response_model=SkipRead)
 async def skip(
-    request: Request, slug: LoopSlug, item_id: RowId, session: SessionDep, caller: AnnotatorDep
+    request: Request,
+    item_id: RowId,
+    session: SessionDep,
+    caller: AnnotatorDep,
+    slug: KnownLoopDep,
 ) -> SkipRead:
     """Pass on an item; it is not offered to this annotator again (annotator)."""
     return await in_queue_thread(
@@ -99,11 +125,11 @@ def _skip(session: Session, *, slug: str, item_id: int, user_id: int) -> SkipRea
 )
 async def submit(
     request: Request,
-    slug: LoopSlug,
     item_id: RowId,
     body: LabelCreate,
     session: SessionDep,
     caller: AnnotatorDep,
+    slug: KnownLoopDep,
 ) -> Response:
     """Submit an answer (an action, or unsure) for a held item; repeats are harmless (annotator)."""
     return await in_queue_thread(

@@ -11,6 +11,7 @@ import time
 from typing import Any
 
 import httpx
+from sqlalchemy import event
 
 from expertloop.queue import router as queue_router
 
@@ -63,3 +64,33 @@ def test_the_turns_follow_the_setting(settings, make_user, discrete_loop, monkey
     seen = _count_overlap(monkeypatch)
     assert asyncio.run(_claims(three, annotators, discrete_loop)) == [200] * 10
     assert seen["most"] == 3
+
+
+def test_a_known_loop_is_looked_up_once_a_request(client, app, make_user, discrete_loop):
+    # Routes with an item id or a body settle in a dependency that the loop exists (so that an
+    # unknown loop is a 404 whatever the request holds); the process remembers the loops it
+    # found, and a known loop costs such a request only the route's own lookup.
+    annotator = make_user("annotator", name="known")
+    lookups: list[str] = []
+
+    def seen(conn, cursor, statement, parameters, context, executemany):
+        if "FROM loops" in statement:
+            lookups.append(statement)
+
+    queue = f"/api/loops/{discrete_loop}/queue"
+    event.listen(app.state.engine, "before_cursor_execute", seen)
+    try:
+        per_request = []
+        for n in range(3):
+            item = client.post(f"{queue}/claim", headers=annotator).json()["item"]
+            lookups.clear()
+            body = {"submission_id": f"known-loop-{n:04d}", "answer": "action", "action": 1}
+            sent = client.post(
+                f"{queue}/items/{item['item_id']}/labels", json=body, headers=annotator
+            )
+            assert sent.status_code == 201, sent.text
+            per_request.append(len(lookups))
+    finally:
+        event.remove(app.state.engine, "before_cursor_execute", seen)
+    # the first submit settles that the loop exists; later ones ask only in the route's trip
+    assert per_request == [2, 1, 1]
