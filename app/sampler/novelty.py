@@ -162,7 +162,6 @@ def exact_knn_distances(
     k: int,
     chunk: int | None = None,
     progress: Progress | None = None,
-    pace: Pace | None = None,
 ) -> tuple[FloatArray, IntArray]:
     """Exact k nearest reference points for each query (Euclidean), chunked numpy.
 
@@ -184,8 +183,6 @@ def exact_knn_distances(
         64 MiB (at least 1).
     progress : callable, optional
         Called with the fraction of queries done after each chunk of queries.
-    pace : callable, optional
-        Called before each chunk of queries (sets the thread count for it).
 
     Returns
     -------
@@ -229,8 +226,6 @@ def exact_knn_distances(
     # faults than the matrix product itself.
     tile = np.empty((min(chunk, q.shape[0]), block_rows))
     for start in range(0, q.shape[0], chunk):
-        if pace is not None:
-            pace()
         qb = q[start : start + chunk].astype(np.float64) - centre
         nb = qb.shape[0]
         best_val = np.empty((nb, n_blocks * k_block))
