@@ -17,10 +17,11 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 JPEG_SIGNATURE = b"\xff\xd8\xff"
 IMAGE_TYPES = ("image/png", "image/jpeg", "image/webp")
 HEAD_BYTES = 12
-# Hashing threads: one per core this process may use (at most 4; a container's CPU quota counts), each given at least this
-# many bytes of images, so a few small images hash on the calling thread alone. Counted in
-# bytes, not images: an upload streams through in tables of a few MB (stream_read), which hold a
-# couple of hundred camera frames, enough to share among threads.
+# Hashing threads: one per core this process may use (at most 4; a container's CPU quota
+# counts), each given at least this many bytes of images, so a few small images hash on the
+# calling thread alone. Counted in bytes, not images: an upload streams through in tables of a
+# few MB (stream_read), which hold a couple of hundred camera frames, enough to share among
+# threads.
 HASH_THREADS = min(4, usable_cores())
 HASH_BYTES_PER_THREAD = 1 << 20
 _pool: ThreadPoolExecutor | None = None
