@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
-from typing import Annotated, ParamSpec, TypeVar
+from typing import Annotated, Concatenate, ParamSpec, TypeVar
 
 from anyio import CancelScope, CapacityLimiter, to_thread
 from fastapi import Depends, Request
@@ -73,12 +73,25 @@ def queue_thread_limiter(settings: Settings, dialect: str) -> CapacityLimiter:
 
 
 async def in_queue_thread(
-    request: Request, work: Callable[P, T], *args: P.args, **kwargs: P.kwargs
+    request: Request,
+    session: Session,
+    work: Callable[Concatenate[Session, P], T],
+    *args: P.args,
+    **kwargs: P.kwargs,
 ) -> T:
-    """Run a queue route's store work, all of it, in one trip through the thread pool, within
-    the queue's own turns: a sync route and its sync dependencies would take a trip each."""
+    """`work(session, ...)`: a queue route's store work, all of it, in one trip through the
+    thread pool within the queue's own turns, the session closed at its end in the same trip.
+    A sync route and its sync dependencies would take a trip each, and closing a session still
+    in a transaction one more."""
+
+    def trip() -> T:
+        try:
+            return work(session, *args, **kwargs)
+        finally:
+            _close(session)
+
     limiter: CapacityLimiter = request.app.state.queue_threads
-    return await to_thread.run_sync(lambda: work(*args, **kwargs), limiter=limiter)
+    return await to_thread.run_sync(trip, limiter=limiter)
 
 
 async def get_session(request: Request) -> AsyncIterator[Session]:

@@ -35,9 +35,9 @@ QUEUE = "/api/loops/{slug}/queue"
 
 
 # The annotators' routes are async and run their store work, the loop's lookup included, in
-# one trip to the queue's own turns of the thread pool (`in_queue_thread`), closing their session
-# there too. The caller's role is checked first, on the event loop, so a caller without it gets
-# 401/403 before an unknown loop's 404. An unknown loop is a 404 whatever else the request holds
+# one trip to the queue's own turns of the thread pool (`in_queue_thread`, which closes the
+# session in that trip too). The caller's role is checked first, on the event loop, so a caller
+# without it gets 401/403 before an unknown loop's 404. An unknown loop is a 404 whatever else the request holds
 # (tests/api/test_path_lookups.py), but FastAPI validates an item id or a body before the route
 # runs: routes with either take the slug through `KnownLoopDep`, which settles in a dependency
 # that the loop exists. Loops are never deleted, so each process remembers the slugs it found and
@@ -48,7 +48,7 @@ async def _known_loop(request: Request, slug: LoopSlug, session: SessionDep) -> 
     """The path's slug, once its loop is known to exist (NotFound otherwise)."""
     known: set[str] = request.app.state.known_loops
     if slug not in known:
-        await in_queue_thread(request, get_loop, session, slug=slug)
+        await in_queue_thread(request, session, get_loop, slug=slug)
         known.add(slug)
     return slug
 
@@ -61,7 +61,7 @@ async def claim(
     request: Request, slug: LoopSlug, session: SessionDep, caller: AnnotatorDep
 ) -> Response:
     """Lease the next state to label, or get back the one already held (annotator)."""
-    return await in_queue_thread(request, _claim, session, slug=slug, user_id=caller.user_id)
+    return await in_queue_thread(request, session, _claim, slug=slug, user_id=caller.user_id)
 
 
 def _claim(session: Session, *, slug: str, user_id: int) -> Response:
@@ -71,7 +71,6 @@ def _claim(session: Session, *, slug: str, user_id: int) -> Response:
     item = None
     if claimed is not None:
         item = bench_item(session, loop=loop, claim=claimed, user_id=user_id)
-    session.close()
     return json_answer(ClaimRead(item=item))
 
 
@@ -85,14 +84,13 @@ async def renew(
 ) -> LeaseRead:
     """Extend the lease on a held item while its annotator works (annotator)."""
     return await in_queue_thread(
-        request, _renew, session, slug=slug, item_id=item_id, user_id=caller.user_id
+        request, session, _renew, slug=slug, item_id=item_id, user_id=caller.user_id
     )
 
 
 def _renew(session: Session, *, slug: str, item_id: int, user_id: int) -> LeaseRead:
     loop = get_loop(session, slug=slug)
     expires_at = service.renew(session, loop=loop, item_id=item_id, user_id=user_id, now=utcnow())
-    session.close()
     return LeaseRead(item_id=item_id, lease_expires_at=expires_at)
 
 
@@ -106,14 +104,13 @@ async def skip(
 ) -> SkipRead:
     """Pass on an item; it is not offered to this annotator again (annotator)."""
     return await in_queue_thread(
-        request, _skip, session, slug=slug, item_id=item_id, user_id=caller.user_id
+        request, session, _skip, slug=slug, item_id=item_id, user_id=caller.user_id
     )
 
 
 def _skip(session: Session, *, slug: str, item_id: int, user_id: int) -> SkipRead:
     loop = get_loop(session, slug=slug)
     service.skip(session, loop=loop, item_id=item_id, user_id=user_id, now=utcnow())
-    session.close()
     return SkipRead(item_id=item_id, skipped=True)
 
 
@@ -133,7 +130,7 @@ async def submit(
 ) -> Response:
     """Submit an answer (an action, or unsure) for a held item; repeats are harmless (annotator)."""
     return await in_queue_thread(
-        request, _submit, session, slug=slug, item_id=item_id, body=body, user_id=caller.user_id
+        request, session, _submit, slug=slug, item_id=item_id, body=body, user_id=caller.user_id
     )
 
 
@@ -168,7 +165,6 @@ def _submit(
         created_at=label.created_at,
         repeated=done.repeated,
     )
-    session.close()
     return json_answer(answer, status_code=200 if done.repeated else 201)
 
 
@@ -177,14 +173,12 @@ async def progress(
     request: Request, slug: LoopSlug, session: SessionDep, caller: AnnotatorDep
 ) -> service.Progress:
     """Labelled today, left in the queue, and expected time left at today's pace (annotator)."""
-    return await in_queue_thread(request, _progress, session, slug=slug, user_id=caller.user_id)
+    return await in_queue_thread(request, session, _progress, slug=slug, user_id=caller.user_id)
 
 
 def _progress(session: Session, *, slug: str, user_id: int) -> service.Progress:
     loop = get_loop(session, slug=slug)
-    answer = service.progress(session, loop=loop, user_id=user_id, now=utcnow())
-    session.close()
-    return answer
+    return service.progress(session, loop=loop, user_id=user_id, now=utcnow())
 
 
 @router.get("/api/loops/{slug}/rounds/{number}/queue", response_model=service.RoundQueue)
