@@ -189,6 +189,17 @@ def _disagrees(task: tasks.GymTask, learner: Any, features: Any) -> Any:
     return np.abs(np.asarray(learner).reshape(expert.shape) - expert).max(axis=1) > tolerance
 
 
+def _action_gap(task: tasks.GymTask, learner: Any, features: Any) -> float | None:
+    """Mean over states of the largest gap between the learner's and the expert's action, as
+    a share of the action's range (continuous tasks; None for discrete): unlike the
+    disagreement rate it does not depend on a tolerance."""
+    if task.kind == "discrete" or len(features) == 0:
+        return None
+    expert = task.expert(features)
+    gap = np.abs(np.asarray(learner).reshape(expert.shape) - expert) / (task.high - task.low)
+    return float(gap.max(axis=1).mean())
+
+
 def _trace(
     task: tasks.GymTask,
     policy: tasks.Ensemble,
@@ -215,6 +226,8 @@ def _trace(
         "candidates": len(features),
         "candidate_error": _error_rate(task, policy, visited),
         "pick_error": float(_disagrees(task, policy.act(labelled)[0], labelled).mean()),
+        "candidate_gap": _action_gap(task, policy.act(features)[0], features),
+        "pick_gap": _action_gap(task, policy.act(labelled)[0], labelled),
         "pick_nearest_median": float(np.median(gaps.min(axis=1))),
         "expert_actions": counts,
         "score": result["methods"]["score"],
@@ -311,8 +324,10 @@ def print_trace(runs: list[Run]) -> None:
     """What the selections picked (runs with --trace), by selection, over groups of rounds:
     the learner's error on the round's candidates and on the picks, the median distance from a
     pick to the nearest other pick (features standardised over the round's candidates), the
-    share of the rarer expert action among the picks (discrete tasks) and the effective sample
-    size of the self-tuned model where one ranked."""
+    share of the rarer expert action among the picks (discrete tasks), the effective sample
+    size of the self-tuned model where one ranked, and on continuous tasks the mean largest gap
+    between the learner's and the expert's action (share of the range) on the candidates and
+    on the picks."""
     traced = [r for r in runs if r.trace]
     if not traced:
         return
@@ -323,7 +338,8 @@ def print_trace(runs: list[Run]) -> None:
     }
     print(
         f"\n{'task':<13}{'B':>4} {'selection':<8} {'rounds':<31}{'n':>4}  {'err cand':>8}  "
-        f"{'err picks':>9}  {'nearest':>7}  {'rarer':>5}  {'eff n':>5}"
+        f"{'err picks':>9}  {'nearest':>7}  {'rarer':>5}  {'eff n':>5}  {'gap cand':>8}  "
+        f"{'gap picks':>9}"
     )
     for task in dict.fromkeys(r.task for r in traced):
         for budget in dict.fromkeys(r.budget for r in traced if r.task == task):
@@ -343,13 +359,27 @@ def print_trace(runs: list[Run]) -> None:
                         f"{np.mean([sorted(m)[-2] / sum(m) for m in mixes]):.2f}" if mixes else "-"
                     )
                     eff = [t["tuning_effective_n"] for t in chosen if t.get("tuning_effective_n")]
+                    gaps = [
+                        (t["candidate_gap"], t["pick_gap"])
+                        for t in chosen
+                        if t.get("candidate_gap") is not None
+                    ]
+                    gap_cand, gap_picks = (
+                        (
+                            f"{np.mean([g[0] for g in gaps]):.3f}",
+                            f"{np.mean([g[1] for g in gaps]):.3f}",
+                        )
+                        if gaps
+                        else ("-", "-")
+                    )
                     print(
                         f"{task:<13}{budget:>4} {selection:<8} {name:<31}{len(chosen):>4}  "
                         f"{np.mean([t['candidate_error'] for t in chosen]):>8.3f}  "
                         f"{np.mean([t['pick_error'] for t in chosen]):>9.3f}  "
                         f"{np.median([t['pick_nearest_median'] for t in chosen]):>7.2f}  "
                         f"{rarer:>5}  "
-                        f"{(f'{np.median(eff):.1f}' if eff and selection == 'ranked' else '-'):>5}"
+                        f"{(f'{np.median(eff):.1f}' if eff and selection == 'ranked' else '-'):>5}  "
+                        f"{gap_cand:>8}  {gap_picks:>9}"
                     )
 
 
