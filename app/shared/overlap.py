@@ -7,17 +7,84 @@ with two cores they run side by side when each has a thread. Every helper here k
 `depth` items in the hands of its thread: memory stays bounded by a few items, whatever the
 length of the stream. Work runs in item order on one thread, so it may keep state (a running
 hash, a file being written).
+
+The threads are lanes that live as long as the process and serve one stream after another
+(`LANES`). A thread started per stream cost more than its start: glibc's allocator gives each
+new thread an arena of its own, and a server that started four threads per export peaked about
+20-40 MB higher (README, "Export").
 """
 
 from __future__ import annotations
 
+import threading
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
-from concurrent.futures import Future, ThreadPoolExecutor
-from typing import TypeVar
+from concurrent.futures import Future, ThreadPoolExecutor, wait
+from contextlib import contextmanager
+from typing import Generic, TypeVar
 
 T = TypeVar("T")
 R = TypeVar("R")
+
+# idle lanes kept for the next stream: a rebuilt export takes four at once, so two exports
+# at the same time find theirs; a lane beyond this ends when its stream does
+KEEP_IDLE_LANES = 8
+
+
+class Lanes:
+    """Single-thread workers lent to one stream at a time and kept for the next."""
+
+    def __init__(self, keep_idle: int) -> None:
+        self._keep_idle = keep_idle
+        self._idle: list[ThreadPoolExecutor] = []
+        self._lock = threading.Lock()
+        self.started = 0  # lanes made so far (tests: repeated streams reuse them)
+
+    def take(self, name: str) -> ThreadPoolExecutor:
+        """A worker of one thread, lent until `give`; `name` says what for (profilers show it)."""
+        with self._lock:
+            worker = self._idle.pop() if self._idle else None
+            if worker is None:
+                self.started += 1
+                worker = ThreadPoolExecutor(max_workers=1, thread_name_prefix="expertloop-lane")
+        worker.submit(_rename, name)
+        return worker
+
+    def give(self, worker: ThreadPoolExecutor) -> None:
+        """Take back a worker whose stream left no work to run on it, other than the caller's."""
+        with self._lock:
+            if len(self._idle) < self._keep_idle:
+                self._idle.append(worker)
+                return
+        worker.shutdown(wait=False)
+
+    @contextmanager
+    def lane(self, name: str) -> Iterator[ThreadPoolExecutor]:
+        """A worker of one thread for the block; the block must leave no work running on it."""
+        worker = self.take(name)
+        try:
+            yield worker
+        finally:
+            self.give(worker)
+
+    def idle(self) -> int:
+        """Lanes waiting for a stream."""
+        with self._lock:
+            return len(self._idle)
+
+
+def _rename(name: str) -> None:
+    threading.current_thread().name = f"lane-{name}"
+
+
+LANES = Lanes(KEEP_IDLE_LANES)
+
+
+def _finish(pending: deque[Future[R]]) -> None:
+    """Cancel work not started and wait for the work running: the lane goes back idle."""
+    for left in pending:
+        left.cancel()
+    wait(pending)
 
 
 def alongside(
@@ -29,7 +96,7 @@ def alongside(
     an error of the work is raised in the caller's thread (at the latest when the last item has
     been taken). Items must not be changed by the caller while their work may still run.
     """
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix=name) as worker:
+    with LANES.lane(name) as worker:
         pending: deque[Future[object]] = deque()
         try:
             for item in items:
@@ -39,9 +106,8 @@ def alongside(
                 yield item
             while pending:
                 pending.popleft().result()
-        finally:
-            for left in pending:  # stopped early or failed: the rest is not needed
-                left.cancel()
+        finally:  # stopped early or failed: the rest is not needed
+            _finish(pending)
 
 
 def mapped_ahead(
@@ -49,7 +115,7 @@ def mapped_ahead(
 ) -> Iterator[R]:
     """`work(item)` of every item, in order, computed on a thread of its own up to `depth`
     items ahead of the caller, who meanwhile takes the next items."""
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix=name) as worker:
+    with LANES.lane(name) as worker:
         pending: deque[Future[R]] = deque()
         try:
             for item in items:
@@ -59,5 +125,108 @@ def mapped_ahead(
             while pending:
                 yield pending.popleft().result()
         finally:
-            for left in pending:
-                left.cancel()
+            _finish(pending)
+
+
+class _Handoff(Generic[T]):
+    """Items passed from a producing thread to a taker, at most `depth` waiting."""
+
+    def __init__(self, depth: int) -> None:
+        self._depth = depth
+        self._items: deque[tuple[bool, object]] = deque()  # (is an item, item or error)
+        self._changed = threading.Condition()
+        self.stopped = False  # the taker wants no more
+        self.done = threading.Event()  # the producer has finished and cleaned up
+
+    def put(self, is_item: bool, value: object) -> bool:
+        """Hand over an item (or the end or an error); False once the taker stopped."""
+        with self._changed:
+            while is_item and len(self._items) >= self._depth and not self.stopped:
+                self._changed.wait()
+            if self.stopped:
+                return False
+            self._items.append((is_item, value))
+            self._changed.notify_all()
+            return True
+
+    def take(self) -> tuple[bool, object]:
+        with self._changed:
+            while not self._items:
+                self._changed.wait()
+            taken = self._items.popleft()
+            self._changed.notify_all()
+            return taken
+
+    def stop(self) -> None:
+        with self._changed:
+            self.stopped = True
+            self._items.clear()
+            self._changed.notify_all()
+
+
+_END = object()
+
+
+def _produce(
+    handoff: _Handoff[T], make: Callable[[], Iterator[T]], lane: ThreadPoolExecutor
+) -> None:
+    """Run on `lane`: hand over the items of `make()`, then the end or the error met."""
+    try:
+        stream = make()
+        try:
+            for item in stream:
+                if not handoff.put(True, item):
+                    return  # the taker stopped: the stream is closed below, on this thread
+            handoff.put(False, _END)
+        finally:
+            close = getattr(stream, "close", None)
+            if close is not None:
+                close()
+    except BaseException as exc:  # noqa: BLE001 - the taker raises it
+        handoff.put(False, exc)
+    finally:
+        LANES.give(lane)  # work submitted to it now waits for this function to return
+        handoff.done.set()
+
+
+class Ahead(Generic[T]):
+    """The items of `make()`, produced on a lane up to `depth` items ahead of the taker.
+
+    `make` is called on the lane, so the stream it returns (and anything it opens, such as a
+    store session) lives and is closed on that thread only. A producer's error is raised to the
+    taker when it reaches it. `close()` (or dropping the object) stops the producer at its next
+    item: it closes the stream on its own thread and the lane goes back idle; `close()` waits
+    for that, dropping the object does not.
+    """
+
+    def __init__(self, make: Callable[[], Iterator[T]], *, depth: int, name: str) -> None:
+        self._handoff: _Handoff[T] = _Handoff(depth)
+        self._finished = False
+        # the producer holds the handoff, never this object: dropping it must stop the producer
+        worker = LANES.take(name)
+        worker.submit(_produce, self._handoff, make, worker)
+
+    def __iter__(self) -> Ahead[T]:
+        return self
+
+    def __next__(self) -> T:
+        if self._finished:
+            raise StopIteration
+        is_item, value = self._handoff.take()
+        if is_item:
+            return value  # type: ignore[return-value]
+        self._finished = True
+        self._handoff.done.wait()
+        if value is _END:
+            raise StopIteration
+        assert isinstance(value, BaseException)
+        raise value
+
+    def close(self) -> None:
+        """Stop the producer and wait until it has cleaned up."""
+        self._finished = True
+        self._handoff.stop()
+        self._handoff.done.wait()
+
+    def __del__(self) -> None:
+        self._handoff.stop()
