@@ -30,6 +30,7 @@ from .limits import shown
 from .openapi_errors import install as document_errors
 from .request_guard import RefuseControlCharacters, RefuseOversized
 from .security_headers import SecurityHeaders
+from .shared.bulk_reads import IDLE_CONNECTIONS
 from .snapshots.files import SPOOL_SUFFIX
 from .templating import STATIC_DIR
 
@@ -112,6 +113,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             runner.stop()
         await app.state.access_version.close()
         engine.dispose()
+        IDLE_CONNECTIONS.close()
 
     app = FastAPI(title="expertloop", version="0.1.0", lifespan=lifespan)
     app.state.settings = settings

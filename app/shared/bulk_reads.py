@@ -6,8 +6,8 @@ bounded by LIMIT) arrives as a few large values that numpy decodes whole:
 
 - PostgreSQL: Apache Arrow's ADBC driver (`adbc-driver-postgresql`) reads the page by binary
   COPY into Arrow columns, in C, on a connection of its own in autocommit (one more connection
-  per export in flight, beside the pool). Each page is read
-  whole, so several row streams can take turns on the connection (it serves one COPY at a time).
+  per export in flight, beside the pool; kept for the next pass, `IdleConnections`). Each page
+  is read whole, so several row streams can take turns on the connection (it serves one COPY at a time).
 - SQLite: the page is folded into one row by aggregates on the session's own connection:
   integers as one comma-separated text, blobs concatenated into one blob (group_concat keeps a
   blob's bytes as they are in a UTF-8 database; the CAST hands them back as a blob). All
@@ -26,13 +26,13 @@ from __future__ import annotations
 import threading
 from abc import ABC, abstractmethod
 from collections.abc import Iterable, Iterator, Mapping
-from contextlib import closing, contextmanager
+from contextlib import contextmanager
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import pyarrow as pa
 from sqlalchemy import text
-from sqlalchemy.engine import URL
 from sqlalchemy.exc import OperationalError as DBAPIOperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeout
 from sqlalchemy.orm import Session
@@ -67,11 +67,12 @@ class _PostgresReader(BulkReader):
         super().__init__(session)
         self._connection = connection
 
-    def run(self, sql: str) -> None:
+    @staticmethod
+    def run_on(connection: Any, sql: str) -> None:
         """Run a statement that returns no rows."""
         import adbc_driver_manager
 
-        statement = adbc_driver_manager.AdbcStatement(self._connection)
+        statement = adbc_driver_manager.AdbcStatement(connection)
         try:
             statement.set_sql_query(sql)
             statement.execute_update()
@@ -146,10 +147,96 @@ def bulk_reader(session: Session) -> Iterator[BulkReader]:
         # the pool's own timeout error: the app answers 503 with Retry-After
         raise PoolTimeout(f"no bulk-read connection came free within {POOL_TIMEOUT_S:.0f} s")
     try:
-        with _pg_reader(session, bind.engine.url) as reader:
-            yield reader
+        libpq = bind.engine.url.set(drivername="postgresql").render_as_string(hide_password=False)
+        with _unreachable_as_sqlalchemy():
+            handles = IDLE_CONNECTIONS.take(libpq) or _connect(libpq)
+            try:
+                yield _PostgresReader(session, handles.connection)
+            except GeneratorExit:
+                # a stream closed early stops between pages, never inside one: the connection
+                # is idle and is kept (Python raises this here only when the stream is closed)
+                IDLE_CONNECTIONS.give(handles)
+                raise
+            except BaseException:
+                handles.close()  # whatever failed may have left it broken: never reused
+                raise
+            else:
+                IDLE_CONNECTIONS.give(handles)
     finally:
         _bulk_connections.release()
+
+
+@dataclass
+class _Handles:
+    """An ADBC connection to PostgreSQL and the database handle it was opened from."""
+
+    libpq: str
+    database: Any
+    connection: Any
+
+    def close(self) -> None:
+        """Close both, ignoring a connection already broken."""
+        import adbc_driver_manager
+
+        for handle in (self.connection, self.database):
+            try:
+                handle.close()
+            except adbc_driver_manager.Error:
+                pass
+
+
+class IdleConnections:
+    """Bulk-read connections kept between passes, so that a pass does not pay for a new one.
+
+    Opening an ADBC connection to PostgreSQL took about 50 ms here, a fifth of a rebuilt 100k
+    export. Connections are kept for one database (a process serves one store) and only after
+    a pass that ended cleanly; a kept one is tried with a statement before it is lent again, and
+    one that fails is closed and replaced. Passes hold at most `POSTGRES_BULK_READERS`
+    connections at a time, so no more are ever kept.
+    """
+
+    def __init__(self) -> None:
+        self._idle: list[_Handles] = []
+        self._lock = threading.Lock()
+        self.opened = 0  # connections opened so far (tests: passes reuse them)
+
+    def take(self, libpq: str) -> _Handles | None:
+        """A kept connection to `libpq` that answers, or None (others' are closed)."""
+        import adbc_driver_manager
+
+        while True:
+            with self._lock:
+                mine = [h for h in self._idle if h.libpq == libpq]
+                others = [h for h in self._idle if h.libpq != libpq]
+                self._idle = mine[:-1]
+                handles = mine[-1] if mine else None
+            for stale in others:  # another store's: this process has moved on
+                stale.close()
+            if handles is None:
+                return None
+            try:
+                _PostgresReader.run_on(handles.connection, "SET enable_sort = off")
+                return handles
+            except adbc_driver_manager.Error:
+                handles.close()  # the server closed it (a restart, an idle timeout)
+
+    def give(self, handles: _Handles) -> None:
+        with self._lock:
+            self._idle.append(handles)
+
+    def close(self) -> None:
+        """Close every kept connection (a server shutting down)."""
+        with self._lock:
+            idle, self._idle = self._idle, []
+        for handles in idle:
+            handles.close()
+
+    def __len__(self) -> int:
+        with self._lock:
+            return len(self._idle)
+
+
+IDLE_CONNECTIONS = IdleConnections()
 
 
 @contextmanager
@@ -163,26 +250,30 @@ def _unreachable_as_sqlalchemy() -> Iterator[None]:
         raise DBAPIOperationalError("bulk read (ADBC)", None, exc) from exc
 
 
-@contextmanager
-def _pg_reader(session: Session, url: URL) -> Iterator[BulkReader]:
+def _connect(libpq: str) -> _Handles:
     # imported here: a server on SQLite never loads the PostgreSQL driver
     import adbc_driver_manager
     import adbc_driver_postgresql
 
-    libpq = url.set(drivername="postgresql").render_as_string(hide_password=False)
     # the driver's low-level API: its DB-API module imports pandas, some 50 MB of a server
-    with (
-        _unreachable_as_sqlalchemy(),
-        closing(adbc_driver_postgresql.connect(libpq)) as database,
-        closing(adbc_driver_manager.AdbcConnection(database)) as connection,
-    ):  # ADBC connections start in autocommit
-        reader = _PostgresReader(session, connection)
+    database = adbc_driver_postgresql.connect(libpq)
+    try:
+        connection = adbc_driver_manager.AdbcConnection(database)  # in autocommit
+    except BaseException:
+        database.close()
+        raise
+    handles = _Handles(libpq, database, connection)
+    try:
         # Pages are read along the (round_id, id) index. A freshly filled table has no
         # statistics yet, and the planner may then guess a bitmap scan plus a sort of every
         # remaining row for each page; this connection only ever reads ordered pages.
-        reader.run("SET enable_bitmapscan = off")
-        reader.run("SET enable_sort = off")
-        yield reader
+        _PostgresReader.run_on(connection, "SET enable_bitmapscan = off")
+        _PostgresReader.run_on(connection, "SET enable_sort = off")
+    except BaseException:
+        handles.close()
+        raise
+    IDLE_CONNECTIONS.opened += 1
+    return handles
 
 
 def int_list(values: Iterable[int]) -> str:
