@@ -119,7 +119,14 @@ async def get_writer_session(request: Request) -> AsyncIterator[Session]:
         await _in_thread_shielded(Session.commit, session)
 
 
+def get_session_factory(request: Request) -> sessionmaker[Session]:
+    """Sessions for work that outlives the request's own thread (an export's producer)."""
+    factory: sessionmaker[Session] = request.app.state.session_factory
+    return factory
+
+
 SessionDep = Annotated[Session, Depends(get_session)]
+SessionFactoryDep = Annotated[sessionmaker[Session], Depends(get_session_factory)]
 # scope="function": the commit after `yield` runs before the answer is sent, not after it
 WriterSessionDep = Annotated[Session, Depends(get_writer_session, scope="function")]
 SettingsDep = Annotated[Settings, Depends(get_app_settings)]

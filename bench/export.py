@@ -56,10 +56,18 @@ SLUG = "bench-export"
 
 
 def prepare_store(
-    url: str, n_rows: int, n_features: int, rng: np.random.Generator, relabel_share: float = 0.02
+    url: str,
+    n_rows: int,
+    n_features: int,
+    rng: np.random.Generator,
+    relabel_share: float = 0.02,
+    *,
+    migrate: bool = True,
 ) -> str:
-    """Migrate a fresh store, fill it, and return a trainer's API token."""
-    upgrade_empty(url)
+    """Migrate a fresh store (unless `migrate` is False: an empty store migrated already), fill
+    it, and return a trainer's API token."""
+    if migrate:
+        upgrade_empty(url)
     engine = make_engine(url)
     factory = make_session_factory(engine)
     with factory() as session:

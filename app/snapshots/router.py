@@ -2,10 +2,14 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+
+from anyio import CancelScope, to_thread
 from fastapi import APIRouter, Query, Response, status
 from fastapi.responses import StreamingResponse
+from starlette.types import Receive, Scope, Send
 
-from ..deps import SessionDep, SettingsDep, TrainerDep, WriterSessionDep
+from ..deps import SessionDep, SessionFactoryDep, SettingsDep, TrainerDep, WriterSessionDep
 from ..loops.deps import LoopDep, WriterLoopDep
 from . import service
 from .export import MEDIA_TYPES
@@ -19,6 +23,29 @@ from .schemas import (
 )
 
 router = APIRouter(prefix="/api/loops", tags=["snapshots"])
+
+
+class _ClosingStream(StreamingResponse):
+    """A streamed answer whose pieces are closed once it ends, sent in full or not.
+
+    Starlette drops a body a client walked away from without closing it; a rebuilt export's
+    producer would then wait, holding its thread, session and partial file, until the garbage
+    collector got round to it. Closing runs in the thread pool (it waits for the producer to
+    stop) and is shielded from the cancellation that a disconnect brings.
+    """
+
+    def __init__(self, chunks: Iterator[bytes], media_type: str, headers: dict[str, str]):
+        super().__init__(chunks, media_type=media_type, headers=headers)
+        self._chunks = chunks
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        try:
+            await super().__call__(scope, receive, send)
+        finally:
+            close = getattr(self._chunks, "close", None)
+            if close is not None:
+                with CancelScope(shield=True):
+                    await to_thread.run_sync(close)
 
 
 @router.post(
@@ -73,6 +100,7 @@ def read_snapshot(
 def export_snapshot(
     version: str,
     session: SessionDep,
+    sessions: SessionFactoryDep,
     settings: SettingsDep,
     _: TrainerDep,
     loop: LoopDep,
@@ -84,13 +112,13 @@ def export_snapshot(
     """Stream a snapshot's rows as Parquet, .npz or JSON Lines."""
     snapshot, older = service.resolve_export(session, loop=loop, version=version, since=since)
     exported = service.export_chunks(
-        session,
         loop=loop,
         snapshot=snapshot,
         since=older,
         file_format=format,
         spool_dir=settings.data_dir / "exports",
         files_dir=settings.snapshot_dir,
+        sessions=sessions,
     )
     filename = service.export_filename(loop, snapshot, older, format)
     headers = {
@@ -102,4 +130,4 @@ def export_snapshot(
         headers["X-Expertloop-Rows"] = str(snapshot.row_count)
     if exported.size is not None:
         headers["Content-Length"] = str(exported.size)
-    return StreamingResponse(exported.chunks, media_type=MEDIA_TYPES[format], headers=headers)
+    return _ClosingStream(exported.chunks, media_type=MEDIA_TYPES[format], headers=headers)

@@ -10,7 +10,7 @@ Parquet export, the one training jobs pull again and again, is also kept as a fi
 from __future__ import annotations
 
 import re
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from datetime import UTC
 from pathlib import Path
@@ -29,7 +29,7 @@ from ..loops.spec import spec_of
 from ..models import utcnow
 from ..safety import SAFETY_CAUTION
 from ..shared import training_set as ts
-from ..shared.overlap import alongside
+from ..shared.overlap import Ahead, alongside
 from ..shared.row_batches import RowBatch, rows_not_in
 from . import export, files
 from .content_hash import HASH_SCHEME, ContentHasher
@@ -39,6 +39,8 @@ LATEST = "latest"
 _VERSION = re.compile(r"^v([1-9][0-9]{0,8})$")
 # batches that may wait for the content hash while later ones stream on
 HASH_AHEAD = 1
+# pieces of a rebuilt export made ahead of the server sending them (each a row group, ~2 MB)
+SEND_AHEAD = 1
 
 
 class SnapshotChanged(RuntimeError):
@@ -374,7 +376,6 @@ class ExportBytes:
 
 
 def export_chunks(
-    session: Session,
     *,
     loop: Loop,
     snapshot: Snapshot,
@@ -382,21 +383,46 @@ def export_chunks(
     file_format: str,
     spool_dir: Path,
     files_dir: Path,
+    sessions: Callable[[], Session],
 ) -> ExportBytes:
     """The bytes of an export file, a piece at a time.
 
     A full Parquet export is served from the version's stored file under `files_dir`, and read
     from the store (and stored on the way) when the file is missing; see app.snapshots.files.
     .npz exports spool their columns under `spool_dir`.
+
+    An export read from the store is made on a thread of its own, in a session of its own from
+    `sessions`, up to `SEND_AHEAD` pieces ahead of the taker: the reading goes on while the
+    server sends a piece, instead of waiting for the server to ask for the next. Closing the
+    stream (a client that went away) stops it and closes its session on that thread.
     """
+    if file_format not in export.EXPORT_FORMATS:
+        raise InvalidInput(
+            f"format must be one of {list(export.EXPORT_FORMATS)}, got '{file_format}'"
+        )
     if file_format == "parquet" and since is None:
         path = files.parquet_path(files_dir, snapshot)
         found = files.stored(path)
         if found is not None:
             size, digest = found
             return ExportBytes(files.read_chunks(path, digest), size)
-        return ExportBytes(_stored_on_the_way(session, loop, snapshot, path))
-    return ExportBytes(_chunks_from_store(session, loop, snapshot, since, file_format, spool_dir))
+    loop_id, snapshot_id = loop.id, snapshot.id
+    since_id = None if since is None else since.id
+
+    def produce() -> Iterator[bytes]:
+        with sessions() as own:
+            own_loop = own.get_one(Loop, loop_id)
+            own_snapshot = own.get_one(Snapshot, snapshot_id)
+            if file_format == "parquet" and since_id is None:
+                path = files.parquet_path(files_dir, own_snapshot)
+                yield from _stored_on_the_way(own, own_loop, own_snapshot, path)
+                return
+            older = None if since_id is None else own.get_one(Snapshot, since_id)
+            yield from _chunks_from_store(
+                own, own_loop, own_snapshot, older, file_format, spool_dir
+            )
+
+    return ExportBytes(Ahead(produce, depth=SEND_AHEAD, name="export"))
 
 
 def _stored_on_the_way(

@@ -154,13 +154,13 @@ def test_an_abandoned_rebuild_stores_nothing(app, client, settings, discrete_loo
         loop = session.scalar(select(Loop).where(Loop.slug == SLUG))
         snapshot = service.get_snapshot(session, loop=loop, version="v1")
         exported = service.export_chunks(
-            session,
             loop=loop,
             snapshot=snapshot,
             since=None,
             file_format="parquet",
             spool_dir=settings.data_dir / "exports",
             files_dir=settings.snapshot_dir,
+            sessions=app.state.session_factory,
         )
         assert next(exported.chunks).startswith(b"PAR1")
         exported.chunks.close()  # the client went away
