@@ -120,7 +120,7 @@ async def get_writer_session(request: Request) -> AsyncIterator[Session]:
 
 
 def get_session_factory(request: Request) -> sessionmaker[Session]:
-    """Sessions for work that outlives the request's own thread (an export's producer)."""
+    """Sessions for work that outlives the request's own session (a streamed export)."""
     factory: sessionmaker[Session] = request.app.state.session_factory
     return factory
 

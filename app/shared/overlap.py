@@ -9,9 +9,8 @@ length of the stream. Work runs in item order on one thread, so it may keep stat
 hash, a file being written).
 
 The threads are lanes that live as long as the process and serve one stream after another
-(`LANES`). A thread started per stream cost more than its start: glibc's allocator gives each
-new thread an arena of its own, and a server that started four threads per export peaked about
-20-40 MB higher (README, "Export").
+(`LANES`): an export no longer starts (and ends) three threads, and the number of threads of a
+server stays the same however many exports it serves, one after another.
 """
 
 from __future__ import annotations
@@ -21,13 +20,13 @@ from collections import deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import Future, ThreadPoolExecutor, wait
 from contextlib import contextmanager
-from typing import Generic, TypeVar
+from typing import TypeVar
 
 T = TypeVar("T")
 R = TypeVar("R")
 
-# idle lanes kept for the next stream: a rebuilt export takes four at once, so two exports
-# at the same time find theirs; a lane beyond this ends when its stream does
+# idle lanes kept for the next stream: a rebuilt export or a new version takes three at once,
+# so two or three at the same time find theirs; a lane beyond this ends when its stream does
 KEEP_IDLE_LANES = 8
 
 
@@ -126,107 +125,3 @@ def mapped_ahead(
                 yield pending.popleft().result()
         finally:
             _finish(pending)
-
-
-class _Handoff(Generic[T]):
-    """Items passed from a producing thread to a taker, at most `depth` waiting."""
-
-    def __init__(self, depth: int) -> None:
-        self._depth = depth
-        self._items: deque[tuple[bool, object]] = deque()  # (is an item, item or error)
-        self._changed = threading.Condition()
-        self.stopped = False  # the taker wants no more
-        self.done = threading.Event()  # the producer has finished and cleaned up
-
-    def put(self, is_item: bool, value: object) -> bool:
-        """Hand over an item (or the end or an error); False once the taker stopped."""
-        with self._changed:
-            while is_item and len(self._items) >= self._depth and not self.stopped:
-                self._changed.wait()
-            if self.stopped:
-                return False
-            self._items.append((is_item, value))
-            self._changed.notify_all()
-            return True
-
-    def take(self) -> tuple[bool, object]:
-        with self._changed:
-            while not self._items:
-                self._changed.wait()
-            taken = self._items.popleft()
-            self._changed.notify_all()
-            return taken
-
-    def stop(self) -> None:
-        with self._changed:
-            self.stopped = True
-            self._items.clear()
-            self._changed.notify_all()
-
-
-_END = object()
-
-
-def _produce(
-    handoff: _Handoff[T], make: Callable[[], Iterator[T]], lane: ThreadPoolExecutor
-) -> None:
-    """Run on `lane`: hand over the items of `make()`, then the end or the error met."""
-    try:
-        stream = make()
-        try:
-            for item in stream:
-                if not handoff.put(True, item):
-                    return  # the taker stopped: the stream is closed below, on this thread
-            handoff.put(False, _END)
-        finally:
-            close = getattr(stream, "close", None)
-            if close is not None:
-                close()
-    except BaseException as exc:  # noqa: BLE001 - the taker raises it
-        handoff.put(False, exc)
-    finally:
-        LANES.give(lane)  # work submitted to it now waits for this function to return
-        handoff.done.set()
-
-
-class Ahead(Generic[T]):
-    """The items of `make()`, produced on a lane up to `depth` items ahead of the taker.
-
-    `make` is called on the lane, so the stream it returns (and anything it opens, such as a
-    store session) lives and is closed on that thread only. A producer's error is raised to the
-    taker when it reaches it. `close()` (or dropping the object) stops the producer at its next
-    item: it closes the stream on its own thread and the lane goes back idle; `close()` waits
-    for that, dropping the object does not.
-    """
-
-    def __init__(self, make: Callable[[], Iterator[T]], *, depth: int, name: str) -> None:
-        self._handoff: _Handoff[T] = _Handoff(depth)
-        self._finished = False
-        # the producer holds the handoff, never this object: dropping it must stop the producer
-        worker = LANES.take(name)
-        worker.submit(_produce, self._handoff, make, worker)
-
-    def __iter__(self) -> Ahead[T]:
-        return self
-
-    def __next__(self) -> T:
-        if self._finished:
-            raise StopIteration
-        is_item, value = self._handoff.take()
-        if is_item:
-            return value  # type: ignore[return-value]
-        self._finished = True
-        self._handoff.done.wait()
-        if value is _END:
-            raise StopIteration
-        assert isinstance(value, BaseException)
-        raise value
-
-    def close(self) -> None:
-        """Stop the producer and wait until it has cleaned up."""
-        self._finished = True
-        self._handoff.stop()
-        self._handoff.done.wait()
-
-    def __del__(self) -> None:
-        self._handoff.stop()

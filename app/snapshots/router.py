@@ -28,10 +28,10 @@ router = APIRouter(prefix="/api/loops", tags=["snapshots"])
 class _ClosingStream(StreamingResponse):
     """A streamed answer whose pieces are closed once it ends, sent in full or not.
 
-    Starlette drops a body a client walked away from without closing it; a rebuilt export's
-    producer would then wait, holding its thread, session and partial file, until the garbage
-    collector got round to it. Closing runs in the thread pool (it waits for the producer to
-    stop) and is shielded from the cancellation that a disconnect brings.
+    Starlette drops a body a client walked away from without closing it; a rebuilt export
+    then kept its session, its threads' last work and its partial file until the garbage
+    collector got round to it. Closing runs in the thread pool (it waits for the work in hand
+    to end) and is shielded from the cancellation that a disconnect brings.
     """
 
     def __init__(self, chunks: Iterator[bytes], media_type: str, headers: dict[str, str]):
@@ -130,4 +130,7 @@ def export_snapshot(
         headers["X-Expertloop-Rows"] = str(snapshot.row_count)
     if exported.size is not None:
         headers["Content-Length"] = str(exported.size)
+    # the pieces come from the stored file or a session of their own: the request's session
+    # would otherwise hold a connection (and on SQLite a read transaction) for the whole stream
+    session.close()
     return _ClosingStream(exported.chunks, media_type=MEDIA_TYPES[format], headers=headers)

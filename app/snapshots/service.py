@@ -29,7 +29,7 @@ from ..loops.spec import spec_of
 from ..models import utcnow
 from ..safety import SAFETY_CAUTION
 from ..shared import training_set as ts
-from ..shared.overlap import Ahead, alongside
+from ..shared.overlap import alongside
 from ..shared.row_batches import RowBatch, rows_not_in
 from . import export, files
 from .content_hash import HASH_SCHEME, ContentHasher
@@ -39,8 +39,6 @@ LATEST = "latest"
 _VERSION = re.compile(r"^v([1-9][0-9]{0,8})$")
 # batches that may wait for the content hash while later ones stream on
 HASH_AHEAD = 1
-# pieces of a rebuilt export made ahead of the server sending them (each a row group, ~2 MB)
-SEND_AHEAD = 1
 
 
 class SnapshotChanged(RuntimeError):
@@ -391,10 +389,9 @@ def export_chunks(
     from the store (and stored on the way) when the file is missing; see app.snapshots.files.
     .npz exports spool their columns under `spool_dir`.
 
-    An export read from the store is made on a thread of its own, in a session of its own from
-    `sessions`, up to `SEND_AHEAD` pieces ahead of the taker: the reading goes on while the
-    server sends a piece, instead of waiting for the server to ask for the next. Closing the
-    stream (a client that went away) stops it and closes its session on that thread.
+    An export read from the store runs in a session of its own from `sessions`, opened with
+    its first piece and closed with the stream (taken to the end, or closed early by a client
+    that went away), so that the request's session need not stay open while it streams.
     """
     if file_format not in export.EXPORT_FORMATS:
         raise InvalidInput(
@@ -422,7 +419,7 @@ def export_chunks(
                 own, own_loop, own_snapshot, older, file_format, spool_dir
             )
 
-    return ExportBytes(Ahead(produce, depth=SEND_AHEAD, name="export"))
+    return ExportBytes(produce())
 
 
 def _stored_on_the_way(

@@ -6,14 +6,13 @@ The reference for every result is the work run in the caller's thread with Pytho
 
 from __future__ import annotations
 
-import gc
 import threading
 import time
 from collections.abc import Iterator
 
 import pytest
 
-from expertloop.shared.overlap import LANES, Ahead, alongside, mapped_ahead
+from expertloop.shared.overlap import LANES, alongside, mapped_ahead
 
 
 class Source:
@@ -130,77 +129,3 @@ def test_streams_one_after_another_reuse_their_threads():
         assert pipeline() == list(map(_slow_square, range(30)))
     assert LANES.started == started
     assert threading.active_count() == threads
-
-
-class Closing:
-    """A stream of items 0..n-1 that records the thread it ran on and whether it was closed."""
-
-    def __init__(self, n: int, fail_at: int | None = None) -> None:
-        self.n, self.fail_at = n, fail_at
-        self.taken = 0
-        self.threads: set[int] = set()
-        self.closed_on: int | None = None
-
-    def __call__(self) -> Iterator[int]:
-        self.threads.add(threading.get_ident())
-        try:
-            for i in range(self.n):
-                if i == self.fail_at:
-                    raise ValueError(f"item {i} is bad")
-                self.taken += 1
-                yield i
-        finally:
-            self.closed_on = threading.get_ident()
-
-
-def test_ahead_gives_every_item_in_order_made_on_another_thread():
-    source = Closing(50)
-    assert list(Ahead(source, depth=2, name="test")) == list(range(50))
-    assert source.threads and threading.get_ident() not in source.threads
-    assert source.closed_on in source.threads  # the stream ended on its own thread
-
-
-@pytest.mark.parametrize("depth", [1, 2])
-def test_ahead_makes_at_most_depth_items_ahead_of_the_taker(depth):
-    source = Closing(20)
-    stream = Ahead(source, depth=depth, name="test")
-    for received, _ in enumerate(stream, start=1):
-        time.sleep(0.01)  # a slow taker: the producer would run ahead if it could
-        # handed over, `depth` waiting, one more in the producer's hands
-        assert source.taken <= received + depth + 1
-
-
-def test_an_error_of_the_producer_reaches_the_taker_after_the_items_before_it():
-    got: list[int] = []
-    with pytest.raises(ValueError, match="item 7"):
-        for item in Ahead(Closing(20, fail_at=7), depth=2, name="test"):
-            got.append(item)
-    assert got == list(range(7))
-
-
-def test_closing_early_stops_the_producer_and_closes_its_stream_on_its_thread():
-    source = Closing(1000)
-    idle = LANES.idle()
-    stream = Ahead(source, depth=2, name="test")
-    assert next(stream) == 0
-    stream.close()  # the client went away
-    assert source.closed_on in source.threads  # closed on the producer's thread, before close()
-    taken = source.taken
-    time.sleep(0.05)
-    assert source.taken == taken <= 4
-    assert LANES.idle() >= idle  # the lane went back
-
-
-def test_dropping_the_stream_stops_the_producer():
-    """A server that abandons a response without closing it (the client went away) only drops
-    it; the producer must not stay blocked, holding its lane and whatever its stream opened."""
-    source = Closing(1000)
-    stream = Ahead(source, depth=1, name="test")
-    assert next(stream) == 0
-    del stream
-    gc.collect()
-    deadline = time.monotonic() + 5
-    while source.closed_on is None and time.monotonic() < deadline:
-        time.sleep(0.01)
-    assert source.closed_on in source.threads
-    assert source.taken <= 3

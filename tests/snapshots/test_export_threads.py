@@ -1,6 +1,6 @@
-"""A rebuilt export is made on a thread of its own, ahead of the server sending it.
+"""The threads and connections of exports rebuilt from the store, and a client that hangs up.
 
-What must hold (app/snapshots/service.py, app/shared/overlap.py, app/shared/bulk_reads.py):
+What must hold (app/shared/overlap.py, app/shared/bulk_reads.py, app/snapshots/router.py):
 repeated exports reuse their threads instead of starting new ones; on PostgreSQL, bulk-read
 connections are kept between passes, and one that broke or whose pass failed is never lent
 again; a client that goes away mid-stream leaves no thread, connection or partial file behind.
