@@ -10,8 +10,9 @@ Two phases with the same 32 clients. "paced": each annotator looks at a state fo
 they start at random moments within the first pause: the load the bench puts on the server. "flat out": no pause at all, which finds the throughput
 ceiling; there, latency is mostly waiting in line (32 clients / throughput, by Little's law).
 Prints p50/p99 round-trip latency of claims and submits, throughput in labels per second, the
-CPU time per label of the server processes and of the clients (this process: on a shared machine
-these move far less than the clock does; a PostgreSQL server's own processes are not counted),
+CPU time per label of the server processes, of the PostgreSQL backends serving them (read from
+/proc: the database must run on this machine) and of the clients (this process; on a shared
+machine these move far less than the clock does),
 and the count of double assignments. Baseline, measured in the same run with the same clients:
 `GET /api/me` (sign-in check and one query), so the ratio shows what the queue adds to the
 cheapest authenticated request.
@@ -240,7 +241,7 @@ def double_assignments(url: str, results: list[list[Any]], k: int) -> int:
 
 def process_tree_cpu(pid: int) -> float:
     """CPU seconds (user + system) used so far by a process and its descendants still running
-    (a server's workers), from /proc. A database server's own processes are not counted."""
+    (a server's workers), from /proc."""
     ticks = os.sysconf("SC_CLK_TCK")
     total, stack = 0.0, [pid]
     while stack:
@@ -255,10 +256,42 @@ def process_tree_cpu(pid: int) -> float:
     return total
 
 
-def cpu_meter(server_pid: int) -> Any:
-    """A function returning (server, clients) CPU seconds since it was made."""
+def database_cpu(url: str | None) -> dict[int, float]:
+    """CPU seconds used so far by each PostgreSQL backend serving a connection to the bench's
+    database (the server's), from /proc: the database runs on this machine and shares its cores.
+    Autovacuum and the database's other background work are not counted. Empty for SQLite,
+    whose work runs inside the server's processes."""
+    if url is None:
+        return {}
+    import psycopg
+    from sqlalchemy.engine import make_url
+
+    conninfo = make_url(url).set(drivername="postgresql").render_as_string(hide_password=False)
+    with psycopg.connect(conninfo) as conn:
+        pids = [
+            pid
+            for (pid,) in conn.execute(
+                "SELECT pid FROM pg_stat_activity WHERE datname = current_database() "
+                "AND backend_type = 'client backend' AND pid <> pg_backend_pid()"
+            )
+        ]
+    return {pid: process_tree_cpu(pid) for pid in pids}
+
+
+def cpu_meter(server_pid: int, database_url: str | None) -> Any:
+    """A function returning (server, database, clients) CPU seconds since it was made; the
+    database's is None on SQLite. Backends that connected meanwhile count from their start."""
     server0, clients0 = process_tree_cpu(server_pid), time.process_time()
-    return lambda: (process_tree_cpu(server_pid) - server0, time.process_time() - clients0)
+    database0 = database_cpu(database_url)
+
+    def read() -> tuple[float, float | None, float]:
+        database = None
+        if database_url is not None:
+            now = database_cpu(database_url)
+            database = sum(cpu - database0.get(pid, 0.0) for pid, cpu in now.items())
+        return process_tree_cpu(server_pid) - server0, database, time.process_time() - clients0
+
+    return read
 
 
 def percentile_ms(values: list[float], q: float) -> float:
@@ -266,7 +299,11 @@ def percentile_ms(values: list[float], q: float) -> float:
 
 
 def report(
-    name: str, rows: list[list[Any]], wall: float, me: list[float], cpu: tuple[float, float]
+    name: str,
+    rows: list[list[Any]],
+    wall: float,
+    me: list[float],
+    cpu: tuple[float, float | None, float],
 ) -> None:
     claims = [c for r in rows for _, c, _ in r]
     submits = [s for r in rows for _, _, s in r]
@@ -276,8 +313,10 @@ def report(
         f"{len(claims) / wall:.1f} labels/s ({len(both) / wall:.0f} requests/s)"
     )
     per_label = 1000 / max(1, len(claims))
+    database = "" if cpu[1] is None else f", database {cpu[1] * per_label:.2f} ms"
     print(
-        f"   CPU per label: server {cpu[0] * per_label:.2f} ms, clients {cpu[1] * per_label:.2f} ms"
+        f"   CPU per label: server {cpu[0] * per_label:.2f} ms{database}, "
+        f"clients {cpu[2] * per_label:.2f} ms"
     )
     print(f"   {'request':<22}{'p50 ms':>9}{'p99 ms':>9}")
     for label, values in (("claim", claims), ("submit", submits), ("claim or submit", both)):
@@ -305,7 +344,7 @@ def main() -> None:
         with server_process(url, data_dir, workers=workers) as server:
             base = server.url
             _, base_rows = run_clients(base, tokens, baseline)
-            meter = cpu_meter(server.pid)
+            meter = cpu_meter(server.pid, args.postgres)
             paced_wall, paced = run_clients(
                 base,
                 tokens,
@@ -314,7 +353,7 @@ def main() -> None:
                 ),
             )
             paced_cpu = meter()
-            meter = cpu_meter(server.pid)
+            meter = cpu_meter(server.pid, args.postgres)
             flat_wall, flat = run_clients(
                 base,
                 tokens,
