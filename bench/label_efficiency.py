@@ -136,11 +136,8 @@ def run_gym(
     if run.selection == "ranked":
         settings.update(args.setting)
     admin.create_loop(task.spec(slug, settings))
-    base = 1_000_000 + 10_000 * run.seed
-    eval_seeds = [base + 9_000 + i for i in range(args.eval_episodes)]
-    expert = tasks.run_episodes(task, None, eval_seeds, "eval").returns.mean()
-    floor = tasks.random_return(task, eval_seeds)
-    demos = tasks.run_episodes(task, None, [base + i for i in range(args.demos)], "demo")
+    world = tasks.world(task, run.seed, args.eval_episodes)
+    demos = tasks.run_episodes(task, None, world.demo_seeds(args.demos), "demo")
     _upload(admin, slug, 0, demos.columns, folder)
     admin.create_snapshot(slug, up_to_round=0)
     policy = _train(admin, slug, task, run.seed)
@@ -148,7 +145,7 @@ def run_gym(
     for number in range(args.rounds + 1):
         if number:
             admin.open_round(slug, f"learner-{number}")
-            seeds = [base + 100 * number + i for i in range(args.episodes)]
+            seeds = world.round_seeds(number, args.episodes)
             visited = tasks.run_episodes(task, policy, seeds, f"r{number}")
             _upload(admin, slug, number, visited.columns, folder)
             started = admin.request(
@@ -166,9 +163,9 @@ def run_gym(
                 )["params"]["self_tuning"]
                 run.trace.append(_trace(task, policy, visited, np.asarray(seen), job, record))
             policy = _train(admin, slug, task, run.seed * 100 + number)
-        evaluated = tasks.run_episodes(task, policy, eval_seeds, "eval")
+        evaluated = tasks.run_episodes(task, policy, world.eval_seeds, "eval")
         run.labels.append(labels)
-        run.scores.append(float((evaluated.returns.mean() - floor) / (expert - floor)))
+        run.scores.append(world.score(evaluated.returns.mean()))
         if args.trace and number:
             run.trace[-1]["eval_error"] = _error_rate(task, policy, evaluated)
     return run

@@ -391,3 +391,44 @@ def random_return(task: GymTask, seeds: list[int]) -> float:
         total.append(ret)
         env.close()
     return float(np.mean(total))
+
+
+@dataclass(frozen=True)
+class World:
+    """One task and seed of the label-efficiency runs: the seeds of every episode and the score's
+    scale (a random policy 0, the expert 1). bench/label_efficiency.py runs its rounds in these
+    worlds, and the scripts that replay those rounds without the server (bench/oracle_bound.py,
+    bench/refit_spread.py) run them in the same ones."""
+
+    task: GymTask
+    seed: int
+    eval_seeds: list[int]
+    expert_return: float
+    random_return: float
+
+    @property
+    def _base(self) -> int:
+        return 1_000_000 + 10_000 * self.seed
+
+    def demo_seeds(self, count: int) -> list[int]:
+        return [self._base + i for i in range(count)]
+
+    def round_seeds(self, number: int, count: int) -> list[int]:
+        """The learner's episodes of round `number` (1, 2, ...)."""
+        return [self._base + 100 * number + i for i in range(count)]
+
+    def score(self, mean_return: float) -> float:
+        return float((mean_return - self.random_return) / (self.expert_return - self.random_return))
+
+
+def world(task: GymTask, seed: int, eval_episodes: int) -> World:
+    """The world of `task` and `seed`, with its expert's and a random policy's mean returns on
+    `eval_episodes` evaluation episodes."""
+    eval_seeds = [1_000_000 + 10_000 * seed + 9_000 + i for i in range(eval_episodes)]
+    return World(
+        task=task,
+        seed=seed,
+        eval_seeds=eval_seeds,
+        expert_return=run_episodes(task, None, eval_seeds, "eval").returns.mean(),
+        random_return=random_return(task, eval_seeds),
+    )

@@ -45,11 +45,8 @@ def gap(task: tasks.GymTask, learner: np.ndarray, features: np.ndarray) -> np.nd
 
 def run(task: tasks.GymTask, seed: int, budget: int, pick: str, args: argparse.Namespace) -> float:
     """Labels from which the score stays at or above the target (inf: never within the rounds)."""
-    base = 1_000_000 + 10_000 * seed  # bench/label_efficiency.py's worlds and seeds
-    eval_seeds = [base + 9_000 + i for i in range(args.eval_episodes)]
-    expert = tasks.run_episodes(task, None, eval_seeds, "eval").returns.mean()
-    floor = tasks.random_return(task, eval_seeds)
-    demos = tasks.run_episodes(task, None, [base + i for i in range(args.demos)], "demo")
+    world = tasks.world(task, seed, args.eval_episodes)  # bench/label_efficiency.py's worlds
+    demos = tasks.run_episodes(task, None, world.demo_seeds(args.demos), "demo")
     x = np.asarray(demos.columns["features"], np.float64)
     y = np.asarray(demos.columns["expert_action"])
     policy = tasks.fit(task, x, y, np.random.default_rng(seed))
@@ -57,7 +54,7 @@ def run(task: tasks.GymTask, seed: int, budget: int, pick: str, args: argparse.N
     scores = []
     for number in range(args.rounds + 1):
         if number:
-            seeds = [base + 100 * number + i for i in range(args.episodes)]
+            seeds = world.round_seeds(number, args.episodes)
             visited = np.asarray(
                 tasks.run_episodes(task, policy, seeds, f"r{number}").columns["features"],
                 np.float64,
@@ -72,8 +69,8 @@ def run(task: tasks.GymTask, seed: int, budget: int, pick: str, args: argparse.N
             x = np.concatenate([x, picked])
             y = np.concatenate([y, task.expert(picked)])
             policy = tasks.fit(task, x, y, np.random.default_rng(seed * 100 + number))
-        returns = tasks.run_episodes(task, policy, eval_seeds, "eval").returns.mean()
-        scores.append(float((returns - floor) / (expert - floor)))
+        returns = tasks.run_episodes(task, policy, world.eval_seeds, "eval").returns.mean()
+        scores.append(world.score(returns))
     held = math.inf
     for number in range(args.rounds, -1, -1):
         if scores[number] < TARGET:

@@ -32,12 +32,8 @@ TARGET = 0.95
 
 def spread(task: tasks.GymTask, seed: int, args: argparse.Namespace) -> dict[int, list[float]]:
     """Scores of ``args.refits`` fits of the training set after round 0 and the last round."""
-    # the worlds of bench/label_efficiency.py: the same episode seeds for a task and seed
-    base = 1_000_000 + 10_000 * seed
-    eval_seeds = [base + 9_000 + i for i in range(args.eval_episodes)]
-    expert = tasks.run_episodes(task, None, eval_seeds, "eval").returns.mean()
-    floor = tasks.random_return(task, eval_seeds)
-    demos = tasks.run_episodes(task, None, [base + i for i in range(args.demos)], "demo")
+    world = tasks.world(task, seed, args.eval_episodes)  # bench/label_efficiency.py's worlds
+    demos = tasks.run_episodes(task, None, world.demo_seeds(args.demos), "demo")
     x = np.asarray(demos.columns["features"], np.float64)
     y = np.asarray(demos.columns["expert_action"])
     draw = np.random.default_rng(seed)
@@ -45,7 +41,7 @@ def spread(task: tasks.GymTask, seed: int, args: argparse.Namespace) -> dict[int
     found: dict[int, list[float]] = {}
     for number in range(args.rounds + 1):
         if number:
-            seeds = [base + 100 * number + i for i in range(args.episodes)]
+            seeds = world.round_seeds(number, args.episodes)
             visited = np.asarray(
                 tasks.run_episodes(task, policy, seeds, f"r{number}").columns["features"]
             )
@@ -54,20 +50,12 @@ def spread(task: tasks.GymTask, seed: int, args: argparse.Namespace) -> dict[int
             y = np.concatenate([y, task.expert(picked)])
             policy = tasks.fit(task, x, y, np.random.default_rng(seed * 100 + number))
         if number in (0, args.rounds):
+            refits = (
+                tasks.fit(task, x, y, np.random.default_rng(10_000 + k)) for k in range(args.refits)
+            )
             found[number] = [
-                float(
-                    (
-                        tasks.run_episodes(
-                            task,
-                            tasks.fit(task, x, y, np.random.default_rng(10_000 + k)),
-                            eval_seeds,
-                            "eval",
-                        ).returns.mean()
-                        - floor
-                    )
-                    / (expert - floor)
-                )
-                for k in range(args.refits)
+                world.score(tasks.run_episodes(task, fit, world.eval_seeds, "eval").returns.mean())
+                for fit in refits
             ]
     return found
 
