@@ -108,7 +108,9 @@ def _statement_runs(conn: Any, _cursor: Any, statement: str, *_: Any) -> None:
 
 def _read_transaction_ends(conn: Any) -> None:
     # Runs just before SQLAlchemy's rollback, which then finds no transaction and sends nothing.
-    if conn.info.pop(_READS_ONLY, False) and not conn.invalidated:
+    if conn.invalidated:
+        return  # a connection found broken (even `info` is out of reach): the rollback copes
+    if conn.info.pop(_READS_ONLY, False):
         try:
             conn.connection.dbapi_connection.commit()
         except Exception:  # noqa: BLE001

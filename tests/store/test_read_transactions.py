@@ -88,3 +88,19 @@ def test_a_failed_read_leaves_the_connection_usable(store: Engine) -> None:
         with sessions() as session:
             session.execute(text("DELETE FROM users"))
             session.commit()
+
+
+@needs_postgres
+def test_a_connection_lost_in_a_read_transaction_rolls_back_cleanly(store: Engine) -> None:
+    # the store restarting under a read: SQLAlchemy invalidates the connection, and ending the
+    # transaction must leave that to it (a listener touching the connection raised instead)
+    sessions = make_session_factory(store)
+    with sessions() as session:
+        pid = session.scalar(text("SELECT pg_backend_pid()"))
+        with store.connect() as other:
+            other.execute(text("SELECT pg_terminate_backend(:pid)"), {"pid": pid})
+        with pytest.raises(DBAPIError) as lost:
+            session.execute(select(User.id)).all()
+        assert lost.value.connection_invalidated
+        session.rollback()
+    assert _users(store) == 0
