@@ -104,3 +104,20 @@ def test_a_connection_lost_in_a_read_transaction_rolls_back_cleanly(store: Engin
         assert lost.value.connection_invalidated
         session.rollback()
     assert _users(store) == 0
+
+
+@needs_postgres
+def test_a_connection_lost_at_the_end_of_a_read_transaction(store: Engine) -> None:
+    # lost after the last statement: the COMMIT that ends the read fails, and the rollback that
+    # follows reports the connection as gone (the request's close ignores exactly that)
+    sessions = make_session_factory(store)
+    session = sessions()
+    pid = session.scalar(text("SELECT pg_backend_pid()"))
+    with store.connect() as other:
+        other.execute(text("SELECT pg_terminate_backend(:pid)"), {"pid": pid})
+    try:
+        session.close()
+    except DBAPIError as exc:
+        assert exc.connection_invalidated
+    with sessions() as fresh:  # the pool hands out a working connection
+        assert fresh.scalar(select(func.count()).select_from(User)) == 0
