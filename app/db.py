@@ -90,9 +90,9 @@ def make_engine(url: str) -> Engine:
 # parsing and planning, but it forgets every prepared statement at a ROLLBACK (and has the server
 # drop them). Most requests end a read transaction, and closing a session rolls back, so the
 # queue's statements were parsed and planned afresh on every run: the database's own CPU per
-# label (claim and submit) measured 4.1-4.7 ms with rollbacks and 2.5-2.6 ms with commits (README,
-# Benchmarks, Queue). A transaction whose statements were all SELECTs ends the same either way;
-# any other statement (a write, a flush, LOCK TABLE, BEGIN) leaves its transaction to roll back.
+# label (claim and submit, in process) measured 4.1-4.7 ms with rollbacks and 2.3-2.6 ms with
+# commits (README, Benchmarks, Queue). A transaction whose statements were all SELECTs ends the
+# same either way; any other statement (a write, a flush, LOCK TABLE) leaves it to roll back.
 _READS_ONLY = "expertloop_reads_only"
 
 
