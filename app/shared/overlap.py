@@ -39,37 +39,25 @@ class Lanes:
         self._lock = threading.Lock()
         self.started = 0  # lanes made so far (tests: repeated streams reuse them)
 
-    def take(self, name: str) -> ThreadPoolExecutor:
-        """A worker of one thread, lent until `give`; `name` says what for (profilers show it)."""
+    @contextmanager
+    def lane(self, name: str) -> Iterator[ThreadPoolExecutor]:
+        """A worker of one thread for the block, kept for the next stream after it; the block
+        must leave no work running on it. `name` says what for (profilers show it)."""
         with self._lock:
             worker = self._idle.pop() if self._idle else None
             if worker is None:
                 self.started += 1
                 worker = ThreadPoolExecutor(max_workers=1, thread_name_prefix="expertloop-lane")
         worker.submit(_rename, name)
-        return worker
-
-    def give(self, worker: ThreadPoolExecutor) -> None:
-        """Take back a worker whose stream left no work to run on it, other than the caller's."""
-        with self._lock:
-            if len(self._idle) < self._keep_idle:
-                self._idle.append(worker)
-                return
-        worker.shutdown(wait=False)
-
-    @contextmanager
-    def lane(self, name: str) -> Iterator[ThreadPoolExecutor]:
-        """A worker of one thread for the block; the block must leave no work running on it."""
-        worker = self.take(name)
         try:
             yield worker
         finally:
-            self.give(worker)
-
-    def idle(self) -> int:
-        """Lanes waiting for a stream."""
-        with self._lock:
-            return len(self._idle)
+            with self._lock:
+                kept = len(self._idle) < self._keep_idle
+                if kept:
+                    self._idle.append(worker)
+            if not kept:
+                worker.shutdown(wait=False)
 
 
 def _rename(name: str) -> None:
