@@ -458,9 +458,9 @@ def _chunks_from_store(
         if spool_dir is not None:  # else the system's temporary folder
             spool_dir.mkdir(parents=True, exist_ok=True)
         return export.npz_chunks(batches, spec, metadata, spool_dir)
-    if file_format == "jsonl":
-        return export.jsonl_chunks(batches, spec)
-    raise InvalidInput(f"format must be one of {list(export.EXPORT_FORMATS)}, got '{file_format}'")
+    # export_chunks refused any other format before the answer began
+    assert file_format == "jsonl", file_format
+    return export.jsonl_chunks(batches, spec)
 
 
 def export_filename(
