@@ -504,9 +504,7 @@ def main() -> None:
     parser.add_argument("--seeds", type=int, default=10)
     parser.add_argument("--first-seed", type=int, default=0)
     parser.add_argument("--rounds", type=int, default=8)
-    parser.add_argument("--episodes", type=int, default=8, help="learner rollouts per round")
-    parser.add_argument("--demos", type=int, default=2, help="demonstration episodes")
-    parser.add_argument("--eval-episodes", type=int, default=10)
+    tasks.add_world_sizes(parser)
     parser.add_argument(
         "--selections",
         default=",".join(SELECTIONS),

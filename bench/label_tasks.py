@@ -421,6 +421,14 @@ class World:
         return float((mean_return - self.random_return) / (self.expert_return - self.random_return))
 
 
+def add_world_sizes(parser: Any) -> None:
+    """The command-line options that size a world's episodes (an argparse parser): the scripts
+    that replay bench/label_efficiency.py's rounds take the same ones, with the same defaults."""
+    parser.add_argument("--episodes", type=int, default=8, help="learner rollouts per round")
+    parser.add_argument("--demos", type=int, default=2, help="demonstration episodes")
+    parser.add_argument("--eval-episodes", type=int, default=10)
+
+
 def world(task: GymTask, seed: int, eval_episodes: int) -> World:
     """The world of `task` and `seed`, with its expert's and a random policy's mean returns on
     `eval_episodes` evaluation episodes."""
