@@ -4,7 +4,7 @@ wrote anything is still rolled back when its session closes without committing (
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 
 import pytest
 from sqlalchemy import Engine, func, insert, select, text
@@ -19,7 +19,7 @@ needs_postgres = pytest.mark.skipif(not PG_URL, reason="prepared statements are 
 
 
 @pytest.fixture
-def store(database_url: str) -> Engine:
+def store(database_url: str) -> Iterator[Engine]:
     engine = make_engine(database_url)
     yield engine
     engine.dispose()
