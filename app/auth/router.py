@@ -59,6 +59,14 @@ def _form(
     return response
 
 
+# First in the router, which is first in the app (app/main.py): routes are tried in order.
+@router.get("/api/me")
+async def me(caller: ReaderDep) -> dict[str, Any]:
+    """Who the credentials belong to (any role)."""
+    # async: nothing here blocks, so the answer needs no trip through the thread pool
+    return {"name": caller.user.name, "roles": caller.user.roles}
+
+
 @router.get("/login", response_class=HTMLResponse)
 def login_page(request: Request, next: str = "/") -> Response:
     """The sign-in form (public)."""
@@ -122,10 +130,3 @@ def logout(request: Request, session: WriterSessionDep, _: ReaderDep) -> Respons
     response = RedirectResponse("/login", status_code=303)
     response.delete_cookie(SESSION_COOKIE, path="/")
     return response
-
-
-@router.get("/api/me")
-async def me(caller: ReaderDep) -> dict[str, Any]:
-    """Who the credentials belong to (any role)."""
-    # async: nothing here blocks, so the answer needs no trip through the thread pool
-    return {"name": caller.user.name, "roles": caller.user.roles}
