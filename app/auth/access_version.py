@@ -2,16 +2,18 @@
 sessions bumps (database triggers, migration 0010), compared on every request with the version a
 cached identity was read at (app/auth/cache.py).
 
-Every request reads it, so the read is made as cheap as the store allows and never waits:
+Every request needs it, so the read is made as cheap as the store allows and never waits. On
+both backends a read begun at most FRESH_S before a request arrived answers it too, as every
+change waits that long after its commit (app/auth/changes.py), so a steady stream of requests
+costs one read per FRESH_S per process, not one per request:
 
 - SQLite: one connection of its own, read on the event loop (a WAL read of one row takes
   microseconds); busy timeout 0, so a locked file answers "busy" at once instead of stalling
-  the loop;
+  the loop. Read on every request, those microseconds (its file locks and the interpreter's
+  caches it leaves cold) were the largest part of what a token-authenticated GET costs beyond
+  a bare route: about a third over HTTP (README, "Request overhead");
 - PostgreSQL: one asynchronous psycopg connection of its own per event loop, so a request
-  waits for the round trip without a thread and without a pool checkout (and its ping); a
-  read begun at most FRESH_S before a request arrived answers it too, as every change waits
-  that long after its commit (app/auth/changes.py), so a steady stream of requests costs one
-  query per FRESH_S per process, not one per request.
+  waits for the round trip without a thread and without a pool checkout (and its ping).
 
 When the fast read cannot answer (busy, a dropped connection, the store down) `current()` gives
 None and the caller takes the slow path: a pooled session in the thread pool that reads the
@@ -25,6 +27,7 @@ import asyncio
 import math
 import sqlite3
 import threading
+import time
 from typing import Any, Protocol
 
 import psycopg
@@ -65,8 +68,21 @@ class SqliteReader:
         self._engine = engine
         self._conn: Any = None
         self._lock = threading.Lock()  # the loop's thread only, in practice; never waited on
+        self._last: tuple[float, int] = (-math.inf, 0)  # latest answered read: begun, answer
 
     async def current(self) -> int | None:
+        # As PostgresReader.current: a read begun at most FRESH_S before this request arrived
+        # answers it. The read runs on the loop, so no other request waits for one under way.
+        now = time.monotonic()
+        begun, answer = self._last
+        if begun >= now - FRESH_S:
+            return answer
+        found = self._read()
+        if found is not None:  # busy is a moment's state: the next request tries again
+            self._last = (now, found)
+        return found
+
+    def _read(self) -> int | None:
         if not self._lock.acquire(blocking=False):
             return None
         try:

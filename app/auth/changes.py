@@ -2,14 +2,13 @@
 processes may still reuse an access version read begun before it (FRESH_S), so that whoever made
 the change goes on only once no process can answer from an identity it cached before.
 
-On PostgreSQL every request would otherwise wait for one round trip to read the access version
-(app/auth/access_version.py); with this wait a process may answer a request from a read begun at
-most FRESH_S before the request arrived. Why that keeps a revocation, a deactivation, a role
-change or a sign-out immediate: the change commits at t and its maker returns at t + FRESH_S or
-later; a request sent after that arrives later still, and takes only an answer read from t on.
-SQL typed by hand (no session, or a textual UPDATE) does not wait: it counts within FRESH_S.
-
-SQLite reads the version in microseconds on every request, so nothing waits there.
+Every request would otherwise read the access version (app/auth/access_version.py): a round
+trip on PostgreSQL, and on SQLite a read whose file locks cost more than the rest of the
+identification; with this wait a process may answer a request from a read begun at most FRESH_S
+before the request arrived. Why that keeps a revocation, a deactivation, a role change or a
+sign-out immediate: the change commits at t and its maker returns at t + FRESH_S or later; a
+request sent after that arrives later still, and takes only an answer read from t on. SQL typed
+by hand (no session, or a textual UPDATE) does not wait: it counts within FRESH_S.
 
 The hooks are Session events, registered once for every session of the process when this module
 is imported (app/auth/service.py imports it: every process that changes these tables does).
@@ -55,12 +54,5 @@ def _note_bulk_change(state: ORMExecuteState) -> None:
 def _wait_out_reused_reads(session: Session) -> None:
     # A rolled-back change leaves the mark for the session's next commit: one wait too many,
     # never one too few.
-    if session.info.pop(_CHANGED, False) and _on_postgresql(session):
+    if session.info.pop(_CHANGED, False):
         time.sleep(FRESH_S)
-
-
-def _on_postgresql(session: Session) -> bool:
-    try:
-        return session.get_bind().dialect.name == "postgresql"
-    except Exception:  # no bind to tell: wait, to be safe
-        return True
