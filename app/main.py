@@ -173,7 +173,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     )
     # The routes join the app's own router rather than through include_router: FastAPI (from
     # 0.139) keeps an included router as a node that every request walks, matching the
-    # chosen router's routes twice, which cost 15 of the 95 us of a GET /api/me in process
+    # chosen router's routes twice, which cost 14-18 of the 98 us of a GET /api/me in process
     # (README, "Request overhead"). Our routers set nothing at inclusion (their prefixes and
     # tags are already in their routes), so the routes are the same; only
     # app.dependency_overrides, which we do not use, would not reach them.
