@@ -13,7 +13,8 @@ Prints p50/p99 round-trip latency of claims and submits, throughput in labels pe
 CPU time per label of the server processes, of the PostgreSQL backends serving them (read from
 /proc: the database must run on this machine) and of the clients (this process; on a shared
 machine these move far less than the clock does),
-and the count of double assignments. Baseline, measured in the same run with the same clients:
+the cores busy over each phase, the bench's own and everything else's (/proc/stat: flat out is
+bounded by the cores other work leaves free), and the count of double assignments. Baseline, measured in the same run with the same clients:
 `GET /api/me` (sign-in check and one query), so the ratio shows what the queue adds to the
 cheapest authenticated request.
 """
@@ -278,18 +279,33 @@ def database_cpu(url: str | None) -> dict[int, float]:
     return {pid: process_tree_cpu(pid) for pid in pids}
 
 
+def machine_busy_cpu() -> float:
+    """CPU seconds every core of the machine has spent busy since boot (/proc/stat: all but
+    idle and I/O wait), whoever ran."""
+    fields = Path("/proc/stat").read_text().split("\n", 1)[0].split()[1:]
+    user, nice, system, _idle, _iowait, irq, softirq, steal = (int(f) for f in fields[:8])
+    return (user + nice + system + irq + softirq + steal) / os.sysconf("SC_CLK_TCK")
+
+
 def cpu_meter(server_pid: int, database_url: str | None) -> Any:
-    """A function returning (server, database, clients) CPU seconds since it was made; the
-    database's is None on SQLite. Backends that connected meanwhile count from their start."""
+    """A function returning (server, database, clients, whole machine) CPU seconds since it was
+    made; the database's is None on SQLite. Backends that connected meanwhile count from their
+    start."""
     server0, clients0 = process_tree_cpu(server_pid), time.process_time()
     database0 = database_cpu(database_url)
+    machine0 = machine_busy_cpu()
 
-    def read() -> tuple[float, float | None, float]:
+    def read() -> tuple[float, float | None, float, float]:
         database = None
         if database_url is not None:
             now = database_cpu(database_url)
             database = sum(cpu - database0.get(pid, 0.0) for pid, cpu in now.items())
-        return process_tree_cpu(server_pid) - server0, database, time.process_time() - clients0
+        return (
+            process_tree_cpu(server_pid) - server0,
+            database,
+            time.process_time() - clients0,
+            machine_busy_cpu() - machine0,
+        )
 
     return read
 
@@ -303,7 +319,7 @@ def report(
     rows: list[list[Any]],
     wall: float,
     me: list[float],
-    cpu: tuple[float, float | None, float],
+    cpu: tuple[float, float | None, float, float],
 ) -> None:
     claims = [c for r in rows for _, c, _ in r]
     submits = [s for r in rows for _, _, s in r]
@@ -317,6 +333,12 @@ def report(
     print(
         f"   CPU per label: server {cpu[0] * per_label:.2f} ms{database}, "
         f"clients {cpu[2] * per_label:.2f} ms"
+    )
+    # What else ran meanwhile: on a shared machine, flat out is bounded by the cores left over.
+    ours = cpu[0] + (cpu[1] or 0.0) + cpu[2]
+    print(
+        f"   cores busy: {cpu[3] / wall:.2f} of {os.cpu_count()} (this bench {ours / wall:.2f}, "
+        f"everything else {(cpu[3] - ours) / wall:.2f}, the database's background work included)"
     )
     print(f"   {'request':<22}{'p50 ms':>9}{'p99 ms':>9}")
     for label, values in (("claim", claims), ("submit", submits), ("claim or submit", both)):
