@@ -336,9 +336,10 @@ def report(
     )
     # What else ran meanwhile: on a shared machine, flat out is bounded by the cores left over.
     ours = cpu[0] + (cpu[1] or 0.0) + cpu[2]
+    others = max(0.0, cpu[3] - ours)  # the readings are a few clock ticks apart
     print(
         f"   cores busy: {cpu[3] / wall:.2f} of {os.cpu_count()} (this bench {ours / wall:.2f}, "
-        f"everything else {(cpu[3] - ours) / wall:.2f}, the database's background work included)"
+        f"everything else {others / wall:.2f}, the database's background work included)"
     )
     print(f"   {'request':<22}{'p50 ms':>9}{'p99 ms':>9}")
     for label, values in (("claim", claims), ("submit", submits), ("claim or submit", both)):
