@@ -108,7 +108,7 @@ def current_cutoff(session: Session, *, loop: Loop, up_to_round: int) -> Cutoff:
 
 def relabels(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) -> Relabels:
     """Consensus per labelled state from every label within the cut-off (`spec`: the loop's)."""
-    rows = session.execute(
+    query = (
         select(Label.step_id, Label.answer, Label.action, Label.action_vec)
         .join(Round, Round.id == Label.round_id)
         .where(
@@ -118,15 +118,18 @@ def relabels(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) -
             is_current(cutoff.max_label_id),  # a later correction or undo counts from its id on
         )
         .order_by(Label.id)
-    ).all()
-    width = spec.action_width
-    step_ids = np.array([r.step_id for r in rows], dtype=np.int64)
-    unique_steps, state_index = np.unique(step_ids, return_inverse=True)
-    unsure = np.array([r.answer == ANSWER_UNSURE for r in rows], dtype=bool)
-    discrete = spec.is_discrete
-    actions = stored_actions(
-        [r.action for r in rows], [r.action_vec for r in rows], discrete=discrete, width=width
     )
+    # on the session's connection, as plain rows: through the ORM, 20,000 labels took
+    # 0.065-0.1 s here against 0.03 s, and every snapshot and export reads them
+    rows = session.connection().execute(query).all()
+    width = spec.action_width
+    # columns by position (a Row's lookup by name costs many times its lookup by index)
+    step_col, answer_col, action_col, vector_col = zip(*rows, strict=True) if rows else ((),) * 4
+    step_ids = np.array(step_col, dtype=np.int64)
+    unique_steps, state_index = np.unique(step_ids, return_inverse=True)
+    unsure = np.array([answer == ANSWER_UNSURE for answer in answer_col], dtype=bool)
+    discrete = spec.is_discrete
+    actions = stored_actions(action_col, vector_col, discrete=discrete, width=width)
     actions[unsure] = -1 if discrete else np.nan  # unsure answers do not vote
     if discrete:
         found = discrete_consensus(state_index, actions, len(unique_steps), width)
