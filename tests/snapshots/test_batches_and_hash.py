@@ -7,6 +7,7 @@ splitting the same rows into other batches changes nothing.
 
 from __future__ import annotations
 
+from collections import Counter
 from typing import Any
 
 import numpy as np
@@ -14,6 +15,7 @@ import pytest
 
 from expertloop.shared.row_batches import RowBatch, concat, merge_sorted, rows_not_in
 from expertloop.snapshots.content_hash import ContentHasher
+from expertloop.snapshots.service import _Tally
 from tests.snapshots.reference import SOURCE_CODES, as_tuples, reference_hash
 
 SOURCES = list(SOURCE_CODES)
@@ -217,3 +219,20 @@ def test_concat_keeps_rollout_names_of_every_part():
     rows = random_rows(rng, np.arange(1, 60))
     pieces = [to_batch(rows[:30]), to_batch(rows[30:])]
     assert to_dicts(concat(pieces)) == rows
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_row_counts_per_round_and_source_for_any_batching(seed):
+    # reference: the rows counted one by one with Python's collections.Counter; round numbers
+    # past the three sources (7, 12) keep the pair apart
+    rng = np.random.default_rng(seed)
+    rows = random_rows(rng, np.sort(rng.choice(np.arange(1, 10_000), 500, replace=False)))
+    for row in rows[::5]:
+        row["round"] = int(rng.choice([7, 12]))
+    expected = Counter((r["round"], SOURCE_CODES[r["source"]]) for r in rows)
+    batch = to_batch(rows)
+    for pieces in ([batch], split(batch, rng, 1), split(batch, rng, 37)):
+        tally = _Tally()
+        for piece in pieces:
+            tally.add(piece)
+        assert tally.counts == dict(expected)
