@@ -34,14 +34,14 @@ router = APIRouter(tags=["queue"])
 QUEUE = "/api/loops/{slug}/queue"
 
 
-# The annotators' routes are async and run their store work, the loop's lookup included, in
-# one trip to the queue's own turns of the thread pool (`in_queue_thread`, which closes the
-# session in that trip too). The caller's role is checked first, on the event loop, so a caller
-# without it gets 401/403 before an unknown loop's 404. An unknown loop is a 404 whatever else
-# the request holds (tests/api/test_path_lookups.py), but FastAPI validates an item id or a body
-# before the route runs: routes with either take the slug through `KnownLoopDep`, which settles
-# in a dependency that the loop exists. Loops are never deleted, so each process remembers the slugs it found and
-# asks the store only about a slug it has not seen.
+# The annotators' routes are async and run their store work, the loop's lookup included, in one trip
+# to the queue's own turns of the thread pool (`in_queue_thread`, which closes the session in that
+# trip too). The caller's role is checked first, on the event loop, so a caller without it gets
+# 401/403 before an unknown loop's 404. An unknown loop is a 404 whatever else the request holds
+# (tests/api/test_path_lookups.py), but FastAPI validates an item id or a body before the route
+# runs: routes with either take the slug through `KnownLoopDep`, which settles in a dependency that
+# the loop exists. Loops are never deleted, so each process remembers the slugs it found and asks
+# the store only about a slug it has not seen.
 
 
 async def _known_loop(request: Request, slug: LoopSlug, session: SessionDep) -> str:
