@@ -127,7 +127,7 @@ def relabels(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) -
     step_col, answer_col, action_col, vector_col = zip(*rows, strict=True) if rows else ((),) * 4
     step_ids = np.array(step_col, dtype=np.int64)
     unique_steps, state_index = np.unique(step_ids, return_inverse=True)
-    unsure = np.array([answer == ANSWER_UNSURE for answer in answer_col], dtype=bool)
+    unsure = np.array(answer_col, dtype=object) == ANSWER_UNSURE
     discrete = spec.is_discrete
     actions = stored_actions(action_col, vector_col, discrete=discrete, width=width)
     actions[unsure] = -1 if discrete else np.nan  # unsure answers do not vote
