@@ -7,16 +7,18 @@
 
 Two phases with the same 32 clients. "paced": each annotator looks at a state for a while
 (uniform 0.5 to 1.5 s by default, `--think`; real experts take longer) before submitting, and
-they start at random moments within the first pause: the load the bench puts on the server. "flat out": no pause at all, which finds the throughput
-ceiling; there, latency is mostly waiting in line (32 clients / throughput, by Little's law).
+they start at random moments within the first pause: the load the bench puts on the server.
+"flat out": no pause at all, which finds the throughput ceiling; there, latency is mostly
+waiting in line (32 clients / throughput, by Little's law).
+
 Prints p50/p99 round-trip latency of claims and submits, throughput in labels per second, the
 CPU time per label of the server processes, of the PostgreSQL backends serving them (read from
 /proc: the database must run on this machine) and of the clients (this process; on a shared
-machine these move far less than the clock does),
-the cores busy over each phase, the bench's own and everything else's (/proc/stat: flat out is
-bounded by the cores other work leaves free), and the count of double assignments. Baseline, measured in the same run with the same clients:
-`GET /api/me` (sign-in check and one query), so the ratio shows what the queue adds to the
-cheapest authenticated request.
+machine these move far less than the clock does), the cores busy over each phase, the bench's
+own and everything else's (/proc/stat: flat out is bounded by the cores other work leaves
+free), and the count of double assignments. Baseline, measured in the same run with the same
+clients: `GET /api/me` (sign-in check and one query), so the ratio shows what the queue adds to
+the cheapest authenticated request.
 """
 
 from __future__ import annotations
@@ -34,8 +36,9 @@ import time
 import urllib.parse
 import uuid
 from collections import Counter
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 import pyarrow as pa
@@ -287,20 +290,28 @@ def machine_busy_cpu() -> float:
     return (user + nice + system + irq + softirq + steal) / os.sysconf("SC_CLK_TCK")
 
 
-def cpu_meter(server_pid: int, database_url: str | None) -> Any:
-    """A function returning (server, database, clients, whole machine) CPU seconds since it was
-    made; the database's is None on SQLite. Backends that connected meanwhile count from their
-    start."""
+class CpuSpent(NamedTuple):
+    """CPU seconds over a phase; `database` is None on SQLite, whose work is the server's."""
+
+    server: float
+    database: float | None
+    clients: float
+    machine: float  # every process's, ours included
+
+
+def cpu_meter(server_pid: int, database_url: str | None) -> Callable[[], CpuSpent]:
+    """A function returning the CPU spent since it was made. Backends that connected meanwhile
+    count from their start."""
     server0, clients0 = process_tree_cpu(server_pid), time.process_time()
     database0 = database_cpu(database_url)
     machine0 = machine_busy_cpu()
 
-    def read() -> tuple[float, float | None, float, float]:
+    def read() -> CpuSpent:
         database = None
         if database_url is not None:
             now = database_cpu(database_url)
             database = sum(cpu - database0.get(pid, 0.0) for pid, cpu in now.items())
-        return (
+        return CpuSpent(
             process_tree_cpu(server_pid) - server0,
             database,
             time.process_time() - clients0,
@@ -319,7 +330,7 @@ def report(
     rows: list[list[Any]],
     wall: float,
     me: list[float],
-    cpu: tuple[float, float | None, float, float],
+    cpu: CpuSpent,
 ) -> None:
     claims = [c for r in rows for _, c, _ in r]
     submits = [s for r in rows for _, _, s in r]
@@ -329,17 +340,18 @@ def report(
         f"{len(claims) / wall:.1f} labels/s ({len(both) / wall:.0f} requests/s)"
     )
     per_label = 1000 / max(1, len(claims))
-    database = "" if cpu[1] is None else f", database {cpu[1] * per_label:.2f} ms"
+    database = "" if cpu.database is None else f", database {cpu.database * per_label:.2f} ms"
     print(
-        f"   CPU per label: server {cpu[0] * per_label:.2f} ms{database}, "
-        f"clients {cpu[2] * per_label:.2f} ms"
+        f"   CPU per label: server {cpu.server * per_label:.2f} ms{database}, "
+        f"clients {cpu.clients * per_label:.2f} ms"
     )
     # What else ran meanwhile: on a shared machine, flat out is bounded by the cores left over.
-    ours = cpu[0] + (cpu[1] or 0.0) + cpu[2]
-    others = max(0.0, cpu[3] - ours)  # the readings are a few clock ticks apart
+    ours = cpu.server + (cpu.database or 0.0) + cpu.clients
+    others = max(0.0, cpu.machine - ours)  # the readings are a few clock ticks apart
     print(
-        f"   cores busy: {cpu[3] / wall:.2f} of {os.cpu_count()} (this bench {ours / wall:.2f}, "
-        f"everything else {others / wall:.2f}, the database's background work included)"
+        f"   cores busy: {cpu.machine / wall:.2f} of {os.cpu_count()} "
+        f"(this bench {ours / wall:.2f}, everything else {others / wall:.2f}, "
+        "the database's background work included)"
     )
     print(f"   {'request':<22}{'p50 ms':>9}{'p99 ms':>9}")
     for label, values in (("claim", claims), ("submit", submits), ("claim or submit", both)):
