@@ -10,7 +10,11 @@ with the same writer options (compression, dictionary columns), run between the 
 best of --repeat runs of each is kept, since other work on the machine skews single runs. Two
 export paths are timed: the version's Parquet file, written when the snapshot was created, and
 a rebuild from the store after that file was deleted (the path of a version whose file is
-missing). The server's peak memory covers the snapshot creation and every export. The server's
+missing). Then the exports derived from the rows (--derived): .npz, JSON Lines, and the rows a
+second version adds (v2 with a tenth more rows, pulled with since=v1), each timed from the
+versions' stored Parquet files and again with those files moved aside (read from the store),
+against pyarrow writing the same rows as Parquet from memory (and, for .npz, np.savez of the
+same arrays). The server's peak memory covers the snapshot creation and every export. The server's
 CPU time (/proc/<pid>/stat) for each pull and pyarrow's own CPU time are printed too: on a
 machine shared with other work, wall-clock ratios depend on how many cores are free, CPU
 seconds much less.
@@ -30,6 +34,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import Any
 
 import httpx
 import numpy as np
@@ -171,11 +176,13 @@ def _insert_round(
     insert_steps(session.connection(), columns, count)  # type: ignore[arg-type]
 
 
-def _download(api: httpx.Client, target: Path) -> float:
-    """Seconds to stream the v1 Parquet export into a file."""
+def _download(api: httpx.Client, target: Path, version: str = "v1", **params: str) -> float:
+    """Seconds to stream an export of `version` (Parquet unless `format` says) into a file."""
     started = time.perf_counter()
     with (
-        api.stream("GET", f"/api/loops/{SLUG}/snapshots/v1/export") as response,
+        api.stream(
+            "GET", f"/api/loops/{SLUG}/snapshots/{version}/export", params=params
+        ) as response,
         target.open("wb") as handle,
     ):
         response.raise_for_status()
@@ -200,10 +207,12 @@ def cpu_seconds(pid: int) -> float:
     return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
 
-def _timed_download(api: httpx.Client, target: Path, pid: int) -> tuple[float, float]:
+def _timed_download(
+    api: httpx.Client, target: Path, pid: int, version: str = "v1", **params: str
+) -> tuple[float, float]:
     """Seconds of a download, and CPU seconds the server spent on it (load-independent)."""
     cpu = cpu_seconds(pid)
-    seconds = _download(api, target)
+    seconds = _download(api, target, version, **params)
     return seconds, cpu_seconds(pid) - cpu
 
 
@@ -216,8 +225,14 @@ def peak_rss_mb(pid: int) -> float:
 
 
 def run_once(
-    url: str, n_rows: int, n_features: int, workdir: Path, relabel_share: float, repeat: int
-) -> dict[str, float]:
+    url: str,
+    n_rows: int,
+    n_features: int,
+    workdir: Path,
+    relabel_share: float,
+    repeat: int,
+    formats: list[str],
+) -> dict[str, Any]:
     rng = np.random.default_rng(n_rows)
     load = os.getloadavg()[0]  # other work on the machine skews every figure
     started = time.perf_counter()
@@ -251,6 +266,9 @@ def run_once(
                     path.unlink()
                 rebuild_times.append(_timed_download(api, target, server.pid))
                 assert stored[0].exists()
+            derived = _derived_exports(
+                api, url, server.pid, workdir, n_rows, n_features, rng, formats, repeat
+            )
         server_mb = peak_rss_mb(server.pid)
     (export_s, _), (pyarrow_s, _), (rebuild_s, _) = (
         min(export_times),
@@ -278,7 +296,109 @@ def run_once(
         "peak_mb": server_mb,
         "file_mb": target.stat().st_size / 1e6,
         "load": load,
+        "derived": derived,
     }
+
+
+def add_round(url: str, n_rows: int, n_features: int, rng: np.random.Generator) -> None:
+    """Round 2 of the benchmark loop: `n_rows` new takeover steps (the rows a v2 adds)."""
+    engine = make_engine(url)
+    factory = make_session_factory(engine)
+    with factory() as session:
+        loop = loops_service.get_loop(session, slug=SLUG)
+        round_2 = loops_service.open_round(
+            session, loop=loop, learner_version="bench-2", user_id=None
+        )
+        session.commit()
+        _insert_round(session, loop.id, round_2.id, round_2.number, n_rows, n_features, rng, 0.0)
+        session.commit()
+    engine.dispose()
+
+
+def _moved_aside(folder: Path, aside: Path) -> list[tuple[Path, Path]]:
+    """Move every stored file (and its hash) out of `folder`; the moves, to undo them."""
+    aside.mkdir(exist_ok=True)
+    moves = [(path, aside / path.name) for path in sorted(folder.rglob("*")) if path.is_file()]
+    for source, target in moves:
+        source.rename(target)
+    return moves
+
+
+def _timed_both_ways(
+    api: httpx.Client,
+    target: Path,
+    pid: int,
+    stored_dir: Path,
+    aside: Path,
+    repeat: int,
+    version: str,
+    **params: str,
+) -> tuple[list[tuple[float, float]], list[tuple[float, float]]]:
+    """An export timed `repeat` times from the stored files and from the store (files aside)."""
+    from_files, from_store = [], []
+    for _ in range(repeat):
+        from_files.append(_timed_download(api, target, pid, version, **params))
+        moves = _moved_aside(stored_dir, aside)
+        from_store.append(_timed_download(api, target, pid, version, **params))
+        for back, away in moves:
+            away.rename(back)
+    return from_files, from_store
+
+
+def _derived_exports(
+    api: httpx.Client,
+    url: str,
+    pid: int,
+    workdir: Path,
+    n_rows: int,
+    n_features: int,
+    rng: np.random.Generator,
+    formats: list[str],
+    repeat: int,
+) -> dict[str, dict[str, float]]:
+    """.npz, JSON Lines and an incremental export, from the stored files and from the store,
+    each against a library writing the same rows from memory (pyarrow's Parquet writer; for
+    .npz numpy's own savez as well)."""
+    stored_dir, aside = workdir / "data" / "snapshots", workdir / "aside"
+    out: dict[str, dict[str, float]] = {}
+    for fmt in formats:
+        target = workdir / f"export.{fmt}"
+        if fmt == "since":
+            add_round(url, n_rows // 10, n_features, rng)
+            api.post(f"/api/loops/{SLUG}/snapshots", json={}).raise_for_status()
+            times = _timed_both_ways(api, target, pid, stored_dir, aside, repeat, "v2", since="v1")
+        else:
+            times = _timed_both_ways(api, target, pid, stored_dir, aside, repeat, "v1", format=fmt)
+        numpy_s = float("nan")
+        if fmt == "npz":
+            with np.load(target) as archive:
+                arrays = {name: archive[name] for name in archive.files}
+            numpy_s = min(_numpy_savez(arrays, workdir / "baseline.npz") for _ in range(repeat))
+            del arrays
+        # the same rows as Parquet: the since= pull itself, else v1's full export pulled above
+        table = pq.read_table(target if fmt == "since" else workdir / "export.parquet")
+        rows = table.num_rows
+        pyarrow_s = min(
+            _pyarrow_write(table, workdir / "baseline.parquet")[0] for _ in range(repeat)
+        )
+        del table
+        (file_s, file_cpu), (store_s, store_cpu) = (min(t) for t in times)
+        out[fmt] = {
+            "rows": rows,
+            "file_s": file_s,
+            "file_cpu": file_cpu,
+            "store_s": store_s,
+            "store_cpu": store_cpu,
+            "pyarrow_s": pyarrow_s,
+            "numpy_s": numpy_s,
+        }
+    return out
+
+
+def _numpy_savez(arrays: dict[str, np.ndarray], target: Path) -> float:
+    started = time.perf_counter()
+    np.savez(target, **arrays)
+    return time.perf_counter() - started
 
 
 def main() -> None:
@@ -295,17 +415,29 @@ def main() -> None:
         help="share of rows that are relabelled states (one label each), at most 0.1",
     )
     parser.add_argument(
+        "--derived",
+        default="npz,since",
+        help="exports derived from the rows besides Parquet, comma-separated: npz, jsonl, since "
+        "(v2 with a tenth more rows, since v1), or none",
+    )
+    parser.add_argument(
         "--database-url",
         default=None,
         help="scratch database (its schema is dropped); default: a fresh SQLite file per run",
     )
     args = parser.parse_args()
+    formats = [] if args.derived == "none" else args.derived.split(",")
+    unknown = set(formats) - {"npz", "jsonl", "since"}
+    if unknown:
+        parser.error(f"--derived: unknown {sorted(unknown)}")
     results = []
     for n_rows in args.rows:
         with tempfile.TemporaryDirectory(prefix="bench-export-") as folder:
             workdir = Path(folder)
             url = args.database_url or f"sqlite:///{workdir / 'store.db'}"
-            result = run_once(url, n_rows, args.features, workdir, args.relabel_share, args.repeat)
+            result = run_once(
+                url, n_rows, args.features, workdir, args.relabel_share, args.repeat, formats
+            )
             results.append(result)
             print(
                 f"{n_rows:>9} rows x {args.features} features: store filled in "
@@ -339,6 +471,28 @@ def main() -> None:
         "pyarrow's CPU time for its write (by CPU: their ratio, which other work on the machine "
         "does not skew)"
     )
+    if formats:
+        print(
+            f"\n{'rows':>9}  {'export':>14}  {'rows out':>9}  {'file s':>7}  {'CPU':>5}  "
+            f"{'speed':>6}  {'store s':>7}  {'CPU':>5}  {'speed':>6}  {'pyarrow s':>9}  "
+            f"{'numpy s':>7}"
+        )
+    for r in results:
+        for fmt, d in r["derived"].items():
+            name = "since=v1 (v2)" if fmt == "since" else fmt
+            print(
+                f"{r['rows']:>9}  {name:>14}  {d['rows']:>9}  {d['file_s']:>7.2f}  "
+                f"{d['file_cpu']:>5.2f}  {d['pyarrow_s'] / d['file_s']:>5.2f}x  "
+                f"{d['store_s']:>7.2f}  {d['store_cpu']:>5.2f}  "
+                f"{d['pyarrow_s'] / d['store_s']:>5.2f}x  {d['pyarrow_s']:>9.2f}  "
+                f"{d['numpy_s']:>7.2f}"
+            )
+    if formats:
+        print(
+            "derived exports: file = decoded from the versions' stored Parquet files; store = "
+            "the same pull with those files moved aside; speed: pyarrow's time to write the same "
+            "rows (as Parquet, from memory) over ours; numpy s: np.savez of the same arrays"
+        )
     print("targets: speed >= 0.5x pyarrow; server peak < 300 MB and not growing with rows")
 
 

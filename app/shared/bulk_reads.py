@@ -38,6 +38,7 @@ from sqlalchemy.exc import TimeoutError as PoolTimeout
 from sqlalchemy.orm import Session
 
 from ..db import POOL_TIMEOUT_S, POSTGRES_BULK_READERS
+from .arrow_columns import numbers
 from .encode import FLOAT32_LE
 
 _bulk_connections = threading.BoundedSemaphore(POSTGRES_BULK_READERS)
@@ -282,22 +283,11 @@ def int_list(values: Iterable[int]) -> str:
 
 
 def _arrow_ints(table: pa.Table, name: str) -> np.ndarray:
-    """An integer column as int64, read from its Arrow data buffers.
-
-    Not Array.to_numpy: pyarrow imports pandas on the way, some 45 MB of a server.
-    """
+    """An integer column as int64, read from its Arrow data buffers."""
     parts = [np.empty(0, np.int64)]
     for chunk in table.column(name).chunks:
-        if not len(chunk):
-            continue
-        if chunk.null_count:
-            raise ValueError(f"column {name} has {chunk.null_count} missing values")
-        if not pa.types.is_integer(chunk.type):
-            raise ValueError(f"column {name} holds {chunk.type}, not integers")
-        kind = "i" if pa.types.is_signed_integer(chunk.type) else "u"
-        dtype = np.dtype(f"{kind}{chunk.type.bit_width // 8}")  # Arrow buffers: native order
-        values = np.frombuffer(chunk.buffers()[1], dtype=dtype)
-        parts.append(values[chunk.offset : chunk.offset + len(chunk)].astype(np.int64))
+        if len(chunk):
+            parts.append(numbers(chunk, np.int64, name=f"column {name}", integers=True))
     return np.concatenate(parts)
 
 

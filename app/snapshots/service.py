@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import re
 from collections.abc import Callable, Iterator
+from contextlib import ExitStack
 from dataclasses import dataclass
 from datetime import UTC
 from pathlib import Path
@@ -25,13 +26,13 @@ from ..auth.models import User
 from ..errors import Conflict, InvalidInput, NotFound
 from ..loops import service as loops_service
 from ..loops.models import Loop, Round
-from ..loops.spec import spec_of
+from ..loops.spec import LoopSpec, spec_of
 from ..models import utcnow
 from ..safety import SAFETY_CAUTION
 from ..shared import training_set as ts
 from ..shared.overlap import alongside
 from ..shared.row_batches import RowBatch, rows_not_in
-from . import export, files
+from . import export, files, stored_rows
 from .content_hash import HASH_SCHEME, ContentHasher
 from .models import Snapshot
 
@@ -330,23 +331,32 @@ def resolve_export(
 def snapshot_batches(
     session: Session, *, loop: Loop, snapshot: Snapshot, since: Snapshot | None = None
 ) -> Iterator[RowBatch]:
-    """A snapshot's rows in step-id order, checked against its content hash as they stream.
+    """A snapshot's rows read from the store in step-id order, checked against its content hash
+    as they stream.
 
     With `since`, only rows that have no identical row in that earlier version: new states, and
     relabelled states whose consensus (action, label count or agreement) changed. Raises
     SnapshotChanged after the last row if the rows no longer match the hash.
     """
-    rows = _verified(
-        ts.iter_batches(session, loop=loop, spec=spec_of(loop), cutoff=cutoff_of(snapshot)),
-        loop,
-        snapshot,
-    )
+    rows = _store_rows(session, loop, snapshot)
     if since is None:
         return rows
-    older = ts.iter_batches(
-        session, loop=loop, spec=spec_of(loop), cutoff=cutoff_of(since), with_features=False
+    return rows_not_in(rows, _store_rows(session, loop, since, with_features=False))
+
+
+def _store_rows(
+    session: Session, loop: Loop, snapshot: Snapshot, *, with_features: bool = True
+) -> Iterator[RowBatch]:
+    """A version's rows from the store; with their features, checked against the content hash
+    (the rows of the older side of an incremental export are only compared with)."""
+    rows = ts.iter_batches(
+        session,
+        loop=loop,
+        spec=spec_of(loop),
+        cutoff=cutoff_of(snapshot),
+        with_features=with_features,
     )
-    return rows_not_in(rows, older)
+    return _verified(rows, loop, snapshot) if with_features else rows
 
 
 def _verified(batches: Iterator[RowBatch], loop: Loop, snapshot: Snapshot) -> Iterator[RowBatch]:
@@ -387,39 +397,60 @@ def export_chunks(
 ) -> ExportBytes:
     """The bytes of an export file, a piece at a time.
 
-    A full Parquet export is served from the version's stored file under `files_dir`, and read
-    from the store (and stored on the way) when the file is missing; see app.snapshots.files.
+    Rows come from the versions' stored Parquet files under `files_dir` where they are there
+    (app.snapshots.files): a full Parquet export streams its file as it is; other formats and
+    incremental exports decode the files (app.snapshots.stored_rows). A version whose file is
+    missing is read from the store, and a full Parquet export stores its file on the way.
     .npz exports spool their columns under `spool_dir`.
 
-    An export read from the store runs in a session of its own from `sessions`, opened with
-    its first piece and closed with the stream (taken to the end, or closed early by a client
-    that went away), so that the request's session need not stay open while it streams.
+    Reading the store takes a session of its own from `sessions`, opened with the first piece
+    and closed with the stream (taken to the end, or closed early by a client that went away),
+    so that the request's session need not stay open while it streams.
     """
     if file_format not in export.EXPORT_FORMATS:
         raise InvalidInput(
             f"format must be one of {list(export.EXPORT_FORMATS)}, got '{file_format}'"
         )
+    path = files.parquet_path(files_dir, snapshot)
     if file_format == "parquet" and since is None:
-        path = files.parquet_path(files_dir, snapshot)
         found = files.stored(path)
         if found is not None:
             size, digest = found
             return ExportBytes(files.read_chunks(path, digest), size)
-    loop_id, snapshot_id = loop.id, snapshot.id
-    since_id = None if since is None else since.id
+    # what the stream needs, taken now: the request's session closes before it starts
+    spec, metadata = spec_of(loop), export_metadata(snapshot, since)
+    versions = [(snapshot.id, path)]
+    if since is not None:
+        versions.append((since.id, files.parquet_path(files_dir, since)))
+    loop_id = loop.id
 
     def produce() -> Iterator[bytes]:
-        with sessions() as own:
-            own_loop = own.get_one(Loop, loop_id)
-            own_snapshot = own.get_one(Snapshot, snapshot_id)
-            if file_format == "parquet" and since_id is None:
-                path = files.parquet_path(files_dir, own_snapshot)
-                yield from _stored_on_the_way(own, own_loop, own_snapshot, path)
+        with ExitStack() as stack:
+            own: Session | None = None
+
+            def from_store(snapshot_id: int) -> tuple[Session, Loop, Snapshot]:
+                nonlocal own
+                if own is None:
+                    own = stack.enter_context(sessions())
+                return own, own.get_one(Loop, loop_id), own.get_one(Snapshot, snapshot_id)
+
+            def rows(snapshot_id: int, stored_at: Path, with_features: bool) -> Iterator[RowBatch]:
+                opened = stored_rows.open_stored(stored_at, spec)
+                if opened is not None:
+                    stack.callback(opened.close)
+                    return opened.batches(with_features=with_features)
+                session, own_loop, own_snapshot = from_store(snapshot_id)
+                return _store_rows(session, own_loop, own_snapshot, with_features=with_features)
+
+            (newer_id, newer_path), *older = versions
+            if file_format == "parquet" and not older:
+                # no stored file when the request came: rebuilt, and stored on the way
+                yield from _stored_on_the_way(*from_store(newer_id), newer_path)
                 return
-            older = None if since_id is None else own.get_one(Snapshot, since_id)
-            yield from _chunks_from_store(
-                own, own_loop, own_snapshot, older, file_format, spool_dir
-            )
+            batches = rows(newer_id, newer_path, True)
+            if older:
+                batches = rows_not_in(batches, rows(*older[0], False))
+            yield from _encoded(batches, spec, metadata, file_format, spool_dir)
 
     return ExportBytes(produce())
 
@@ -434,31 +465,25 @@ def _stored_on_the_way(
     """
     spool = files.Spool(path.parent, prefix=path.name + ".")
     try:
-        yield from _chunks_from_store(session, loop, snapshot, None, "parquet", copy_to=spool)
+        batches = _store_rows(session, loop, snapshot)
+        metadata = export_metadata(snapshot, None)
+        yield from export.parquet_chunks(batches, spec_of(loop), metadata, spool.write)
         spool.keep(path)
     finally:
         spool.discard()
 
 
-def _chunks_from_store(
-    session: Session,
-    loop: Loop,
-    snapshot: Snapshot,
-    since: Snapshot | None,
+def _encoded(
+    batches: Iterator[RowBatch],
+    spec: LoopSpec,
+    metadata: dict[str, Any],
     file_format: str,
-    spool_dir: Path | None = None,
-    copy_to: files.Spool | None = None,
+    spool_dir: Path,
 ) -> Iterator[bytes]:
-    batches = snapshot_batches(session, loop=loop, snapshot=snapshot, since=since)
-    spec = spec_of(loop)
-    metadata = export_metadata(snapshot, since)
     if file_format == "parquet":
-        return export.parquet_chunks(
-            batches, spec, metadata, None if copy_to is None else copy_to.write
-        )
+        return export.parquet_chunks(batches, spec, metadata)
     if file_format == "npz":
-        if spool_dir is not None:  # else the system's temporary folder
-            spool_dir.mkdir(parents=True, exist_ok=True)
+        spool_dir.mkdir(parents=True, exist_ok=True)
         return export.npz_chunks(batches, spec, metadata, spool_dir)
     # export_chunks refused any other format before the answer began
     assert file_format == "jsonl", file_format

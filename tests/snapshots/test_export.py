@@ -209,12 +209,24 @@ def test_since_equals_the_difference_of_two_full_exports(
     assert nothing == []
 
 
-def test_tampered_store_cuts_the_export_off(client, engine, discrete_loop, trainer):
-    """Formats rebuilt from the store; the stored Parquet file: test_stored_files.py."""
+def test_a_tampered_store_changes_no_export(
+    client, engine, settings, discrete_loop, trainer, tmp_path
+):
+    """Every format holds the rows the version was made with: decoded from its stored file, or,
+    once that is gone, rebuilt from the store and cut off when the store no longer hashes to the
+    version. The stored Parquet file streamed as it is: test_stored_files.py."""
     _snapshot(client, trainer)
+    made = {
+        fmt: as_tuples(rows_of(_get(client, trainer, format=fmt), fmt, tmp_path))
+        for fmt in ("npz", "jsonl")
+    }
     with engine.begin() as conn:
         conn.execute(text("UPDATE steps SET features = :f WHERE id = 1"), {"f": b"\x00" * 12})
-    for fmt in ("npz", "jsonl"):
+    for fmt, rows in made.items():
+        assert as_tuples(rows_of(_get(client, trainer, format=fmt), fmt, tmp_path)) == rows
+    for path in settings.snapshot_dir.rglob("*.parquet"):
+        path.unlink()
+    for fmt in made:
         with pytest.raises(SnapshotChanged, match="v1"):
             client.get(f"{BASE}/snapshots/v1/export", params={"format": fmt}, headers=trainer)
 

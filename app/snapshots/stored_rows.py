@@ -1,0 +1,161 @@
+"""A version's rows read back from its stored Parquet file, for the exports derived from it.
+
+The .npz and JSON Lines exports of a version, and its incremental (`since=`) exports, hold rows of
+its full Parquet export, which the version stored when it was made (app.snapshots.files). Read
+from that file they cost one Parquet decode instead of a pass over the store: no page queries, no
+consensus votes, no content-hash re-check, and an incremental export reads the older version
+without its features.
+
+The file's SHA-256 stands in for the content hash: it is computed again on a thread of its own
+while the row groups are decoded, and the last batch is held back until it matches, so a damaged
+file never completes an export. It is then deleted; the next export reads the store (and stores
+the file again when it is a full Parquet pull). Both the hash and the decoder read from handles
+opened before the first row, so a file deleted meanwhile (the files are a cache) is still read
+whole.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import threading
+from collections.abc import Iterator
+from concurrent.futures import Future
+from contextlib import ExitStack
+from pathlib import Path
+from typing import IO
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..loops.spec import LoopSpec
+from ..shared.arrow_columns import dictionary_codes, fixed_width_floats, numbers
+from ..shared.overlap import LANES
+from ..shared.row_batches import SOURCES, RowBatch
+from . import files
+from .export import COLUMNS
+
+# the text columns, read as dictionaries: a row group holds a few distinct values of each
+TEXT_COLUMNS = ("source", "learner_version", "rollout")
+_SOURCE_INDEX = {name: index for index, name in enumerate(SOURCES)}
+
+
+class StoredRows:
+    """An opened stored file, ready to give its rows once (`batches`); close it after.
+
+    `open_stored` opens it; a file that is not there (never written, or deleted as cache) gives
+    None, and the caller reads the store instead.
+    """
+
+    def __init__(self, path: Path, digest: str, spec: LoopSpec) -> None:
+        self.path = path
+        self._digest = digest
+        self._spec = spec
+        self._stack = ExitStack()
+        try:
+            self._for_hash: IO[bytes] = self._stack.enter_context(path.open("rb"))
+            self._for_rows = self._stack.enter_context(pa.OSFile(str(path), "rb"))
+        except BaseException:
+            self._stack.close()
+            raise
+
+    def close(self) -> None:
+        self._stack.close()
+
+    def batches(self, *, with_features: bool = True) -> Iterator[RowBatch]:
+        """The file's rows a row group at a time, in step-id order, as the store would give them.
+
+        Raises files.StoredFileDamaged, after deleting the file, when its bytes no longer match
+        the SHA-256 written beside it; the last batch is only given once they do.
+        """
+        names = [c for c in COLUMNS if with_features or c != "features"]
+        stop = threading.Event()
+        with LANES.lane("stored-rows-hash") as worker:
+            hashed = worker.submit(_sha256, self._for_hash, stop)
+            try:
+                yield from self._checked(names, with_features, hashed)
+            finally:
+                stop.set()
+                hashed.exception()  # waits: the lane goes back idle
+
+    def _checked(
+        self, names: list[str], with_features: bool, hashed: Future[str]
+    ) -> Iterator[RowBatch]:
+        held: RowBatch | None = None
+        try:
+            parquet = pq.ParquetFile(self._for_rows, read_dictionary=list(TEXT_COLUMNS))
+            for index in range(parquet.num_row_groups):
+                table = parquet.read_row_group(index, columns=names, use_threads=False)
+                batch = _as_batch(table, self._spec, with_features)
+                if held is not None:
+                    yield held
+                held = batch
+        except (pa.ArrowException, ValueError, KeyError, OSError) as error:
+            # a damaged file can fail to decode before its hash is known; a sound one is a bug
+            self._check(hashed.result())
+            raise error
+        self._check(hashed.result())
+        if held is not None:
+            yield held
+
+    def _check(self, found: str) -> None:
+        if found != self._digest:
+            files.discard(self.path)
+            raise files.StoredFileDamaged(
+                f"{self.path} no longer matches its SHA-256; it was deleted"
+            )
+
+
+def open_stored(path: Path, spec: LoopSpec) -> StoredRows | None:
+    """The stored file at `path`, opened, or None when there is no complete one."""
+    found = files.stored(path)
+    if found is None:
+        return None
+    try:
+        return StoredRows(path, found[1], spec)
+    except FileNotFoundError:  # deleted since it was found: the store has the rows
+        return None
+
+
+def _sha256(handle: IO[bytes], stop: threading.Event) -> str:
+    hasher = hashlib.sha256()
+    while not stop.is_set() and (chunk := handle.read(files.READ_BYTES)):
+        hasher.update(chunk)
+    return hasher.hexdigest()
+
+
+def _as_batch(table: pa.Table, spec: LoopSpec, with_features: bool) -> RowBatch:
+    """A row group of the export columns as a RowBatch (rollouts numbered within the batch)."""
+    table = table.unify_dictionaries().combine_chunks()
+    column = {name: table.column(name).chunk(0) for name in table.column_names}
+    source_codes, source_names = dictionary_codes(column["source"])
+    if None in source_names or not set(source_names) <= _SOURCE_INDEX.keys():
+        raise ValueError(f"unknown row sources {sorted(map(str, source_names))} in the file")
+    to_source = np.array([_SOURCE_INDEX[str(n)] for n in source_names] or [0], dtype=np.int8)
+    rollout_codes, rollout_keys = dictionary_codes(column["rollout"])
+    if None in rollout_keys:
+        raise ValueError("a row without its rollout key in the file")
+    rounds = numbers(column["round"], np.int64)
+    version_codes, version_names = dictionary_codes(column["learner_version"])
+    round_numbers, first_rows = np.unique(rounds, return_index=True)
+    action = (
+        numbers(column["expert_action"], np.int64)
+        if spec.is_discrete
+        else fixed_width_floats(column["expert_action"], spec.action_width)
+    )
+    return RowBatch(
+        step_id=numbers(column["step_id"], np.int64),
+        source=to_source[source_codes],
+        action=action,
+        label_count=numbers(column["label_count"], np.int64),
+        agreement=numbers(column["agreement"], np.float64),
+        round=rounds,
+        rollout_id=rollout_codes.astype(np.int64),
+        step_index=numbers(column["step"], np.int64),
+        features=fixed_width_floats(column["features"], spec.n_features) if with_features else None,
+        rollout_keys={i: str(key) for i, key in enumerate(rollout_keys)},
+        learner_versions={
+            int(r): version_names[version_codes[i]] if version_codes[i] >= 0 else None
+            for r, i in zip(round_numbers.tolist(), first_rows.tolist(), strict=True)
+        },
+    )
