@@ -434,11 +434,13 @@ def export_chunks(
                     own = stack.enter_context(sessions())
                 return own, own.get_one(Loop, loop_id), own.get_one(Snapshot, snapshot_id)
 
-            def rows(snapshot_id: int, stored_at: Path, with_features: bool) -> Iterator[RowBatch]:
+            def stored(stored_at: Path) -> stored_rows.StoredRows | None:
                 opened = stored_rows.open_stored(stored_at, spec)
                 if opened is not None:
                     stack.callback(opened.close)
-                    return opened.batches(with_features=with_features)
+                return opened
+
+            def from_store_rows(snapshot_id: int, with_features: bool) -> Iterator[RowBatch]:
                 session, own_loop, own_snapshot = from_store(snapshot_id)
                 return _store_rows(session, own_loop, own_snapshot, with_features=with_features)
 
@@ -447,9 +449,22 @@ def export_chunks(
                 # no stored file when the request came: rebuilt, and stored on the way
                 yield from _stored_on_the_way(*from_store(newer_id), newer_path)
                 return
-            batches = rows(newer_id, newer_path, True)
+            newer = stored(newer_path)
             if older:
-                batches = rows_not_in(batches, rows(*older[0], False))
+                older_id, older_path = older[0]
+                older_file = stored(older_path)
+                older_rows = (
+                    older_file.batches(with_features=False)
+                    if older_file is not None
+                    else from_store_rows(older_id, False)
+                )
+                batches = (
+                    newer.rows_not_in(older_rows)
+                    if newer is not None
+                    else rows_not_in(from_store_rows(newer_id, True), older_rows)
+                )
+            else:
+                batches = newer.batches() if newer is not None else from_store_rows(newer_id, True)
             yield from _encoded(batches, spec, metadata, file_format, spool_dir)
 
     return ExportBytes(produce())

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import hashlib
 import threading
+from bisect import bisect_right
 from collections.abc import Iterator
 from concurrent.futures import Future
 from contextlib import ExitStack
@@ -30,18 +31,20 @@ import pyarrow.parquet as pq
 
 from ..loops.spec import LoopSpec
 from ..shared.arrow_columns import dictionary_codes, fixed_width_floats, numbers
-from ..shared.overlap import LANES
-from ..shared.row_batches import SOURCES, RowBatch
+from ..shared.overlap import LANES, mapped_ahead
+from ..shared.row_batches import SOURCES, RowBatch, rows_not_in
 from . import files
 from .export import COLUMNS
 
 # the text columns, read as dictionaries: a row group holds a few distinct values of each
 TEXT_COLUMNS = ("source", "learner_version", "rollout")
 _SOURCE_INDEX = {name: index for index, name in enumerate(SOURCES)}
+# row groups decoded ahead of the export's encoder
+DECODE_AHEAD = 1
 
 
 class StoredRows:
-    """An opened stored file, ready to give its rows once (`batches`); close it after.
+    """An opened stored file, ready to give its rows (`batches`, `rows_not_in`); close it after.
 
     `open_stored` opens it; a file that is not there (never written, or deleted as cache) gives
     None, and the caller reads the store instead.
@@ -52,6 +55,7 @@ class StoredRows:
         self._digest = digest
         self._spec = spec
         self._stack = ExitStack()
+        self._parquet: pq.ParquetFile | None = None
         try:
             self._for_hash: IO[bytes] = self._stack.enter_context(path.open("rb"))
             self._for_rows = self._stack.enter_context(pa.OSFile(str(path), "rb"))
@@ -61,6 +65,39 @@ class StoredRows:
 
     def close(self) -> None:
         self._stack.close()
+
+    def _file(self) -> pq.ParquetFile:
+        if self._parquet is None:
+            self._parquet = pq.ParquetFile(
+                self._for_rows, read_dictionary=list(TEXT_COLUMNS), pre_buffer=False
+            )
+        return self._parquet
+
+    def _decoded(self, index: int, names: list[str]) -> RowBatch:
+        table = self._file().read_row_group(index, columns=names, use_threads=False)
+        return _as_batch(table, self._spec, with_features="features" in names)
+
+    def rows_not_in(self, older: Iterator[RowBatch]) -> Iterator[RowBatch]:
+        """The file's rows that have no identical row in `older` (app.shared.row_batches), their
+        features decoded only in the row groups that have such rows.
+
+        The rows are compared on their keys first (step id, action, label count, agreement: a
+        pass without features, which checks the file's hash); an incremental export's rows
+        usually sit in a few row groups at the end, and only those are decoded whole.
+        """
+        starts: list[int] = []  # first step id of each row group compared so far
+
+        def keys() -> Iterator[RowBatch]:
+            for batch in self.batches(with_features=False):
+                starts.append(int(batch.step_id[0]))
+                yield batch
+
+        # rows_not_in gives the new rows of each batch before it takes the next one
+        for new in rows_not_in(keys(), older):
+            if not len(new):
+                continue
+            whole = self._decoded(bisect_right(starts, int(new.step_id[0])) - 1, list(COLUMNS))
+            yield whole.take(np.isin(whole.step_id, new.step_id, assume_unique=True))
 
     def batches(self, *, with_features: bool = True) -> Iterator[RowBatch]:
         """The file's rows a row group at a time, in step-id order, as the store would give them.
@@ -73,20 +110,22 @@ class StoredRows:
         with LANES.lane("stored-rows-hash") as worker:
             hashed = worker.submit(_sha256, self._for_hash, stop)
             try:
-                yield from self._checked(names, with_features, hashed)
+                yield from self._checked(names, hashed)
             finally:
                 stop.set()
                 hashed.exception()  # waits: the lane goes back idle
 
-    def _checked(
-        self, names: list[str], with_features: bool, hashed: Future[str]
-    ) -> Iterator[RowBatch]:
+    def _checked(self, names: list[str], hashed: Future[str]) -> Iterator[RowBatch]:
         held: RowBatch | None = None
         try:
-            parquet = pq.ParquetFile(self._for_rows, read_dictionary=list(TEXT_COLUMNS))
-            for index in range(parquet.num_row_groups):
-                table = parquet.read_row_group(index, columns=names, use_threads=False)
-                batch = _as_batch(table, self._spec, with_features)
+            groups = range(self._file().num_row_groups)
+
+            def decoded(index: int) -> RowBatch:
+                return self._decoded(index, names)
+
+            # decoded on a lane, a row group ahead: one thread's heap serves every export's
+            # Arrow buffers (the request's next piece may run on any of the server's threads)
+            for batch in mapped_ahead(groups, decoded, depth=DECODE_AHEAD, name="stored-rows"):
                 if held is not None:
                     yield held
                 held = batch
@@ -119,14 +158,17 @@ def open_stored(path: Path, spec: LoopSpec) -> StoredRows | None:
 
 def _sha256(handle: IO[bytes], stop: threading.Event) -> str:
     hasher = hashlib.sha256()
-    while not stop.is_set() and (chunk := handle.read(files.READ_BYTES)):
-        hasher.update(chunk)
+    buffer = bytearray(files.READ_BYTES)  # one buffer, read into again and again
+    view = memoryview(buffer)
+    while not stop.is_set() and (size := handle.readinto(buffer)):  # type: ignore[attr-defined]
+        hasher.update(view[:size])
     return hasher.hexdigest()
 
 
 def _as_batch(table: pa.Table, spec: LoopSpec, with_features: bool) -> RowBatch:
     """A row group of the export columns as a RowBatch (rollouts numbered within the batch)."""
-    table = table.unify_dictionaries().combine_chunks()
+    if any(c.num_chunks != 1 for c in table.columns):
+        table = table.unify_dictionaries().combine_chunks()
     column = {name: table.column(name).chunk(0) for name in table.column_names}
     source_codes, source_names = dictionary_codes(column["source"])
     if None in source_names or not set(source_names) <= _SOURCE_INDEX.keys():
