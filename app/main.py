@@ -30,6 +30,7 @@ from .limits import shown
 from .openapi_errors import install as document_errors
 from .request_guard import RefuseControlCharacters, RefuseOversized
 from .security_headers import SecurityHeaders
+from .shared.allocator import use_system_allocator
 from .shared.bulk_reads import IDLE_CONNECTIONS
 from .snapshots.files import SPOOL_SUFFIX
 from .templating import STATIC_DIR
@@ -96,6 +97,7 @@ async def _value_beyond_store(request: Request, exc: Exception) -> Response:
 def create_app(settings: Settings | None = None) -> FastAPI:
     """Build the application for the given settings (defaults: from the environment)."""
     settings = settings or get_settings()
+    use_system_allocator()  # app.shared.allocator: memory goes back between bulk jobs
     engine = make_engine(settings.resolved_database_url)
 
     @asynccontextmanager

@@ -11,6 +11,7 @@ from starlette.types import Receive, Scope, Send
 
 from ..deps import SessionDep, SessionFactoryDep, SettingsDep, TrainerDep, WriterSessionDep
 from ..loops.deps import LoopDep, WriterLoopDep
+from ..shared.allocator import release_free_memory
 from . import service
 from .export import MEDIA_TYPES
 from .schemas import (
@@ -42,10 +43,15 @@ class _ClosingStream(StreamingResponse):
         try:
             await super().__call__(scope, receive, send)
         finally:
-            close = getattr(self._chunks, "close", None)
-            if close is not None:
-                with CancelScope(shield=True):
-                    await to_thread.run_sync(close)
+            with CancelScope(shield=True):
+                await to_thread.run_sync(self._close)
+
+    def _close(self) -> None:
+        close = getattr(self._chunks, "close", None)
+        if close is not None:
+            close()
+        # the export's buffers are free now: give their pages back (app.shared.allocator)
+        release_free_memory()
 
 
 @router.post(
