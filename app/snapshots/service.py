@@ -419,55 +419,71 @@ def export_chunks(
             return ExportBytes(files.read_chunks(path, digest), size)
     # what the stream needs, taken now: the request's session closes before it starts
     spec, metadata = spec_of(loop), export_metadata(snapshot, since)
-    versions = [(snapshot.id, path)]
-    if since is not None:
-        versions.append((since.id, files.parquet_path(files_dir, since)))
+    newer = _Version(snapshot.id, path)
+    older = None if since is None else _Version(since.id, files.parquet_path(files_dir, since))
     loop_id = loop.id
 
     def produce() -> Iterator[bytes]:
         with ExitStack() as stack:
-            own: Session | None = None
-
-            def from_store(snapshot_id: int) -> tuple[Session, Loop, Snapshot]:
-                nonlocal own
-                if own is None:
-                    own = stack.enter_context(sessions())
-                return own, own.get_one(Loop, loop_id), own.get_one(Snapshot, snapshot_id)
-
-            def stored(stored_at: Path) -> stored_rows.StoredRows | None:
-                opened = stored_rows.open_stored(stored_at, spec)
-                if opened is not None:
-                    stack.callback(opened.close)
-                return opened
-
-            def from_store_rows(snapshot_id: int, with_features: bool) -> Iterator[RowBatch]:
-                session, own_loop, own_snapshot = from_store(snapshot_id)
-                return _store_rows(session, own_loop, own_snapshot, with_features=with_features)
-
-            (newer_id, newer_path), *older = versions
-            if file_format == "parquet" and not older:
+            sources = _RowSources(stack, spec, sessions, loop_id)
+            if file_format == "parquet" and older is None:
                 # no stored file when the request came: rebuilt, and stored on the way
-                yield from _stored_on_the_way(*from_store(newer_id), newer_path)
+                yield from _stored_on_the_way(*sources.in_store(newer.id), newer.path)
                 return
-            newer = stored(newer_path)
-            if older:
-                older_id, older_path = older[0]
-                older_file = stored(older_path)
-                older_rows = (
-                    older_file.batches(with_features=False)
-                    if older_file is not None
-                    else from_store_rows(older_id, False)
-                )
-                batches = (
-                    newer.rows_not_in(older_rows)
-                    if newer is not None
-                    else rows_not_in(from_store_rows(newer_id, True), older_rows)
-                )
-            else:
-                batches = newer.batches() if newer is not None else from_store_rows(newer_id, True)
-            yield from _encoded(batches, spec, metadata, file_format, spool_dir)
+            rows = sources.rows(newer, older)
+            yield from _encoded(rows, spec, metadata, file_format, spool_dir)
 
     return ExportBytes(produce())
+
+
+@dataclass(frozen=True)
+class _Version:
+    id: int
+    path: Path  # where its stored Parquet file is kept, if it is
+
+
+class _RowSources:
+    """Where an export's rows come from: each version's stored file while it is there, else the
+    store, in a session of its own opened when first needed. Everything opened is closed with
+    `stack`."""
+
+    def __init__(
+        self, stack: ExitStack, spec: LoopSpec, sessions: Callable[[], Session], loop_id: int
+    ) -> None:
+        self._stack, self._spec, self._sessions, self._loop_id = stack, spec, sessions, loop_id
+        self._session: Session | None = None
+
+    def in_store(self, snapshot_id: int) -> tuple[Session, Loop, Snapshot]:
+        if self._session is None:
+            self._session = self._stack.enter_context(self._sessions())
+        own = self._session
+        return own, own.get_one(Loop, self._loop_id), own.get_one(Snapshot, snapshot_id)
+
+    def _from_store(self, version: _Version, *, with_features: bool) -> Iterator[RowBatch]:
+        return _store_rows(*self.in_store(version.id), with_features=with_features)
+
+    def _stored(self, version: _Version) -> stored_rows.StoredRows | None:
+        opened = stored_rows.open_stored(version.path, self._spec)
+        if opened is not None:
+            self._stack.callback(opened.close)
+        return opened
+
+    def rows(self, newer: _Version, older: _Version | None) -> Iterator[RowBatch]:
+        """The rows of `newer`, or with `older` those that have no identical row in it."""
+        newer_file = self._stored(newer)
+        if older is None:
+            if newer_file is not None:
+                return newer_file.batches()
+            return self._from_store(newer, with_features=True)
+        older_file = self._stored(older)
+        older_rows = (
+            older_file.batches(with_features=False)
+            if older_file is not None
+            else self._from_store(older, with_features=False)
+        )
+        if newer_file is not None:
+            return newer_file.rows_not_in(older_rows)
+        return rows_not_in(self._from_store(newer, with_features=True), older_rows)
 
 
 def _stored_on_the_way(

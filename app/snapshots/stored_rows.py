@@ -55,7 +55,7 @@ class StoredRows:
         self._digest = digest
         self._spec = spec
         self._stack = ExitStack()
-        self._parquet: pq.ParquetFile | None = None
+        self._readers: dict[str, pq.ParquetFile] = {}
         try:
             self._for_hash: IO[bytes] = self._stack.enter_context(path.open("rb"))
             self._for_rows = self._stack.enter_context(pa.OSFile(str(path), "rb"))
@@ -66,15 +66,17 @@ class StoredRows:
     def close(self) -> None:
         self._stack.close()
 
-    def _file(self) -> pq.ParquetFile:
-        if self._parquet is None:
-            self._parquet = pq.ParquetFile(
+    def _reader(self, role: str) -> pq.ParquetFile:
+        """A reader of the file for one thread's use (`role`): Parquet readers are not shared
+        between threads, while reads at an offset of the one opened file are safe."""
+        if role not in self._readers:
+            self._readers[role] = pq.ParquetFile(
                 self._for_rows, read_dictionary=list(TEXT_COLUMNS), pre_buffer=False
             )
-        return self._parquet
+        return self._readers[role]
 
-    def _decoded(self, index: int, names: list[str]) -> RowBatch:
-        table = self._file().read_row_group(index, columns=names, use_threads=False)
+    def _decoded(self, role: str, index: int, names: list[str]) -> RowBatch:
+        table = self._reader(role).read_row_group(index, columns=names, use_threads=False)
         return _as_batch(table, self._spec, with_features="features" in names)
 
     def rows_not_in(self, older: Iterator[RowBatch]) -> Iterator[RowBatch]:
@@ -96,7 +98,8 @@ class StoredRows:
         for new in rows_not_in(keys(), older):
             if not len(new):
                 continue
-            whole = self._decoded(bisect_right(starts, int(new.step_id[0])) - 1, list(COLUMNS))
+            index = bisect_right(starts, int(new.step_id[0])) - 1
+            whole = self._decoded("whole", index, list(COLUMNS))
             yield whole.take(np.isin(whole.step_id, new.step_id, assume_unique=True))
 
     def batches(self, *, with_features: bool = True) -> Iterator[RowBatch]:
@@ -118,10 +121,10 @@ class StoredRows:
     def _checked(self, names: list[str], hashed: Future[str]) -> Iterator[RowBatch]:
         held: RowBatch | None = None
         try:
-            groups = range(self._file().num_row_groups)
+            groups = range(self._reader("batches").num_row_groups)
 
             def decoded(index: int) -> RowBatch:
-                return self._decoded(index, names)
+                return self._decoded("batches", index, names)
 
             # decoded on a lane, a row group ahead: one thread's heap serves every export's
             # Arrow buffers (the request's next piece may run on any of the server's threads)
@@ -158,6 +161,7 @@ def open_stored(path: Path, spec: LoopSpec) -> StoredRows | None:
 
 def _sha256(handle: IO[bytes], stop: threading.Event) -> str:
     hasher = hashlib.sha256()
+    handle.seek(0)
     buffer = bytearray(files.READ_BYTES)  # one buffer, read into again and again
     view = memoryview(buffer)
     while not stop.is_set() and (size := handle.readinto(buffer)):  # type: ignore[attr-defined]
