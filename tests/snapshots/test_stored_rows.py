@@ -109,6 +109,22 @@ def test_a_damaged_file_never_completes_a_derived_export(
     assert as_tuples(again) == good
 
 
+@pytest.mark.parametrize("damaged", [1, 2])
+def test_a_damaged_file_on_either_side_never_completes_an_incremental_export(
+    client, settings, trainer, two_versions, tmp_path, damaged
+):
+    rows_1 = _file_rows(_file_of(settings, 1), tmp_path)
+    rows_2 = _file_rows(_file_of(settings, 2), tmp_path)
+    path = _file_of(settings, damaged)
+    _flip_middle(path)
+    export_v2 = f"{BASE}/snapshots/v2/export"
+    with pytest.raises(StoredFileDamaged, match="no longer matches"):
+        client.get(export_v2, params={"since": "v1"}, headers=trainer)
+    assert not path.exists()
+    again = rows_of(_get(client, trainer, "v2", since="v1"), "parquet", tmp_path)
+    assert as_tuples(again) == rows_2 - rows_1  # the damaged side read from the store
+
+
 def _opened(settings, version: int) -> stored_rows.StoredRows:
     path = _file_of(settings, version)
     found = files.stored(path)
