@@ -284,7 +284,7 @@ _JSONL_END = b"}\n"
 _NUMPY = orjson.OPT_SERIALIZE_NUMPY
 # Lines written (and handed over) at a time. A piece of about 1.4 MB at 64 features stays in the
 # processor's cache between being written and joined; a batch's 8192 rows at once (12 MB) took
-# twice the CPU time a row (README, "Export").
+# two to three times the CPU time a row.
 JSONL_ROWS = 1024
 
 
