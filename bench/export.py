@@ -57,6 +57,7 @@ from expertloop.snapshots.export import PARQUET_COMPRESSION, PARQUET_DICTIONARY_
 from tests.serving import server_process, upgrade_empty  # noqa: E402
 
 STEPS_PER_ROLLOUT = 1000
+SETTLE_S = 0.5
 SLUG = "bench-export"
 
 
@@ -216,6 +217,19 @@ def _timed_download(
     return seconds, cpu_seconds(pid) - cpu
 
 
+def _peak_of_download(
+    api: httpx.Client, target: Path, pid: int, version: str, **params: str
+) -> tuple[float, float, float]:
+    """`_timed_download`, and the server's peak resident memory during it (VmHWM reset first,
+    through /proc/<pid>/clear_refs: the caller keeps the peak from before). The reset waits
+    SETTLE_S: the server hands back the last pull's pages as its stream closes, just after the
+    client has the last byte."""
+    time.sleep(SETTLE_S)
+    Path(f"/proc/{pid}/clear_refs").write_text("5")
+    seconds, cpu = _timed_download(api, target, pid, version, **params)
+    return seconds, cpu, peak_rss_mb(pid)
+
+
 def peak_rss_mb(pid: int) -> float:
     """Peak resident memory of a process (VmHWM), in MB."""
     for line in Path(f"/proc/{pid}/status").read_text().splitlines():
@@ -266,10 +280,13 @@ def run_once(
                     path.unlink()
                 rebuild_times.append(_timed_download(api, target, server.pid))
                 assert stored[0].exists()
+            parquet_mb = server_mb = peak_rss_mb(server.pid)  # creation and the Parquet pulls
             derived = _derived_exports(
                 api, url, server.pid, workdir, n_rows, n_features, rng, formats, repeat
             )
-        server_mb = peak_rss_mb(server.pid)
+        server_mb = max(
+            [server_mb, *(v for d in derived.values() for k, v in d.items() if k in _PEAKS)]
+        )
     (export_s, _), (pyarrow_s, _), (rebuild_s, _) = (
         min(export_times),
         min(pyarrow_times),
@@ -294,6 +311,7 @@ def run_once(
         "idle_mb": idle_mb,
         "created_mb": created_mb,
         "peak_mb": server_mb,
+        "parquet_peak_mb": parquet_mb,
         "file_mb": target.stat().st_size / 1e6,
         "load": load,
         "derived": derived,
@@ -333,16 +351,20 @@ def _timed_both_ways(
     repeat: int,
     version: str,
     **params: str,
-) -> tuple[list[tuple[float, float]], list[tuple[float, float]]]:
-    """An export timed `repeat` times from the stored files and from the store (files aside)."""
+) -> tuple[list[tuple[float, float, float]], list[tuple[float, float, float]]]:
+    """An export timed `repeat` times from the stored files and from the store (files aside),
+    with the server's peak memory during each pull."""
     from_files, from_store = [], []
     for _ in range(repeat):
-        from_files.append(_timed_download(api, target, pid, version, **params))
+        from_files.append(_peak_of_download(api, target, pid, version, **params))
         moves = _moved_aside(stored_dir, aside)
-        from_store.append(_timed_download(api, target, pid, version, **params))
+        from_store.append(_peak_of_download(api, target, pid, version, **params))
         for back, away in moves:
             away.rename(back)
     return from_files, from_store
+
+
+_PEAKS = ("file_peak_mb", "store_peak_mb", "peak_mb")
 
 
 def _derived_exports(
@@ -365,7 +387,9 @@ def _derived_exports(
         target = workdir / f"export.{fmt}"
         if fmt == "since":
             add_round(url, n_rows // 10, n_features, rng)
+            Path(f"/proc/{pid}/clear_refs").write_text("5")
             api.post(f"/api/loops/{SLUG}/snapshots", json={}).raise_for_status()
+            out["create v2"] = {"peak_mb": peak_rss_mb(pid)}
             times = _timed_both_ways(api, target, pid, stored_dir, aside, repeat, "v2", since="v1")
         else:
             times = _timed_both_ways(api, target, pid, stored_dir, aside, repeat, "v1", format=fmt)
@@ -382,8 +406,10 @@ def _derived_exports(
             _pyarrow_write(table, workdir / "baseline.parquet")[0] for _ in range(repeat)
         )
         del table
-        (file_s, file_cpu), (store_s, store_cpu) = (min(t) for t in times)
+        (file_s, file_cpu, _), (store_s, store_cpu, _) = (min(t) for t in times)
         out[fmt] = {
+            "file_peak_mb": max(peak for _, _, peak in times[0]),
+            "store_peak_mb": max(peak for _, _, peak in times[1]),
             "rows": rows,
             "file_s": file_s,
             "file_cpu": file_cpu,
@@ -443,7 +469,8 @@ def main() -> None:
                 f"{n_rows:>9} rows x {args.features} features: store filled in "
                 f"{result['fill_s']:.1f} s; snapshot created (one pass: content hash and its "
                 f"Parquet file) in {result['create_s']:.2f} s, {result['create_cpu']:.2f} s of "
-                f"server CPU; server peak then {result['created_mb']:.0f} MB",
+                f"server CPU; server peak then {result['created_mb']:.0f} MB, "
+                f"{result['parquet_peak_mb']:.0f} MB after the Parquet pulls",
                 flush=True,
             )
     backend = "PostgreSQL" if (args.database_url or "").startswith("postgresql") else "SQLite"
@@ -475,23 +502,27 @@ def main() -> None:
         print(
             f"\n{'rows':>9}  {'export':>14}  {'rows out':>9}  {'file s':>7}  {'CPU':>5}  "
             f"{'speed':>6}  {'store s':>7}  {'CPU':>5}  {'speed':>6}  {'pyarrow s':>9}  "
-            f"{'numpy s':>7}"
+            f"{'numpy s':>7}  {'peak MB: file':>13}  {'store':>5}"
         )
     for r in results:
         for fmt, d in r["derived"].items():
+            if fmt == "create v2":
+                print(f"{r['rows']:>9}  {'(v2 created)':>14}  server peak {d['peak_mb']:.0f} MB")
+                continue
             name = "since=v1 (v2)" if fmt == "since" else fmt
             print(
                 f"{r['rows']:>9}  {name:>14}  {d['rows']:>9}  {d['file_s']:>7.2f}  "
                 f"{d['file_cpu']:>5.2f}  {d['pyarrow_s'] / d['file_s']:>5.2f}x  "
                 f"{d['store_s']:>7.2f}  {d['store_cpu']:>5.2f}  "
                 f"{d['pyarrow_s'] / d['store_s']:>5.2f}x  {d['pyarrow_s']:>9.2f}  "
-                f"{d['numpy_s']:>7.2f}"
+                f"{d['numpy_s']:>7.2f}  {d['file_peak_mb']:>13.0f}  {d['store_peak_mb']:>5.0f}"
             )
     if formats:
         print(
             "derived exports: file = decoded from the versions' stored Parquet files; store = "
             "the same pull with those files moved aside; speed: pyarrow's time to write the same "
-            "rows (as Parquet, from memory) over ours; numpy s: np.savez of the same arrays"
+            "rows (as Parquet, from memory) over ours; numpy s: np.savez of the same arrays; peak MB: "
+            "the server's peak resident memory during the pulls (the most of the runs)"
         )
     print("targets: speed >= 0.5x pyarrow; server peak < 300 MB and not growing with rows")
 

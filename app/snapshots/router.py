@@ -82,6 +82,7 @@ def create_snapshot(
         reader=reader,
         files_dir=settings.snapshot_dir,
     )
+    release_free_memory()  # the pass over the rows is done (app.shared.allocator)
     if not created:
         response.status_code = status.HTTP_200_OK
     return SnapshotCreated.made(snapshot, created=created)
