@@ -5,9 +5,9 @@ through its pool, numpy's and Python's through the C library's malloc, on whiche
 server's threads the work ran. Two choices keep a server near its idle size between such jobs:
 
 - Arrow allocates through the C library too (`use_system_allocator`). Its default pool, mimalloc,
-  keeps each thread's freed pages for that thread: decoding a version's stored file on one
-  thread while another frees the buffers peaked 60–100 MB above the same export read from the
-  store, against about 30 MB with the C library's allocator (bench/export.py, 1M rows).
+  keeps each thread's freed pages for that thread, and an export decoded from a stored file
+  makes its buffers on one thread and frees them on others: an incremental pull of 1M rows
+  peaked at 325–335 MB with it and 248–258 MB with the C library's allocator (README, Export).
 - When a job ends, free pages go back to the system (`release_free_memory`): the C library's
   malloc_trim returns every arena's free pages, so the next job maps fresh ones instead of a
   server holding on to the largest job it ever ran, one arena per thread.
