@@ -55,10 +55,14 @@ def fixed_width_floats(array: pa.Array, width: int) -> np.ndarray:
     return values[flat.offset : flat.offset + len(flat)].reshape(len(array), width)
 
 
-def dictionary_codes(array: pa.Array) -> tuple[np.ndarray, list[str | None]]:
-    """A dictionary-encoded string array as int32 codes (-1 where missing) and its values."""
+def dictionary_codes(
+    array: pa.Array, *, name: str = "a column", missing: bool = False
+) -> tuple[np.ndarray, list[str | None]]:
+    """A dictionary-encoded string array as int32 codes into its values; with `missing`, -1
+    where a row has no value (else such a row is refused, as in `numbers`)."""
     if not pa.types.is_dictionary(array.type):
-        raise ValueError(f"a column holds {array.type}, not dictionary-encoded text")
+        raise ValueError(f"{name} holds {array.type}, not dictionary-encoded text")
     indices = array.indices
-    codes = numbers(indices.fill_null(-1) if indices.null_count else indices, np.int32)
-    return codes, array.dictionary.to_pylist()
+    if missing and indices.null_count:
+        indices = indices.fill_null(-1)
+    return numbers(indices, np.int32, name=name, integers=True), array.dictionary.to_pylist()

@@ -328,27 +328,12 @@ def resolve_export(
     return snapshot, older
 
 
-def snapshot_batches(
-    session: Session, *, loop: Loop, snapshot: Snapshot, since: Snapshot | None = None
-) -> Iterator[RowBatch]:
-    """A snapshot's rows read from the store in step-id order, checked against its content hash
-    as they stream.
-
-    With `since`, only rows that have no identical row in that earlier version: new states, and
-    relabelled states whose consensus (action, label count or agreement) changed. Raises
-    SnapshotChanged after the last row if the rows no longer match the hash.
-    """
-    rows = _store_rows(session, loop, snapshot)
-    if since is None:
-        return rows
-    return rows_not_in(rows, _store_rows(session, loop, since, with_features=False))
-
-
 def _store_rows(
     session: Session, loop: Loop, snapshot: Snapshot, *, with_features: bool = True
 ) -> Iterator[RowBatch]:
-    """A version's rows from the store; with their features, checked against the content hash
-    (the rows of the older side of an incremental export are only compared with)."""
+    """A version's rows read from the store in step-id order; with their features, checked
+    against its content hash as they stream (SnapshotChanged after the last row if they no longer
+    match; the older side of an incremental export is only compared with)."""
     rows = ts.iter_batches(
         session,
         loop=loop,

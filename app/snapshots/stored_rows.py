@@ -22,8 +22,8 @@ from bisect import bisect_right
 from collections.abc import Iterator
 from concurrent.futures import Future
 from contextlib import ExitStack
+from io import BufferedReader
 from pathlib import Path
-from typing import IO
 
 import numpy as np
 import pyarrow as pa
@@ -38,7 +38,6 @@ from .export import COLUMNS
 
 # the text columns, read as dictionaries: a row group holds a few distinct values of each
 TEXT_COLUMNS = ("source", "learner_version", "rollout")
-_SOURCE_INDEX = {name: index for index, name in enumerate(SOURCES)}
 # row groups decoded ahead of the export's encoder
 DECODE_AHEAD = 1
 
@@ -57,7 +56,7 @@ class StoredRows:
         self._stack = ExitStack()
         self._readers: dict[str, pq.ParquetFile] = {}
         try:
-            self._for_hash: IO[bytes] = self._stack.enter_context(path.open("rb"))
+            self._for_hash: BufferedReader = self._stack.enter_context(path.open("rb"))
             self._for_rows = self._stack.enter_context(pa.OSFile(str(path), "rb"))
         except BaseException:
             self._stack.close()
@@ -159,12 +158,12 @@ def open_stored(path: Path, spec: LoopSpec) -> StoredRows | None:
         return None
 
 
-def _sha256(handle: IO[bytes], stop: threading.Event) -> str:
+def _sha256(handle: BufferedReader, stop: threading.Event) -> str:
     hasher = hashlib.sha256()
     handle.seek(0)
     buffer = bytearray(files.READ_BYTES)  # one buffer, read into again and again
     view = memoryview(buffer)
-    while not stop.is_set() and (size := handle.readinto(buffer)):  # type: ignore[attr-defined]
+    while not stop.is_set() and (size := handle.readinto(buffer)):
         hasher.update(view[:size])
     return hasher.hexdigest()
 
@@ -174,15 +173,16 @@ def _as_batch(table: pa.Table, spec: LoopSpec, with_features: bool) -> RowBatch:
     if any(c.num_chunks != 1 for c in table.columns):
         table = table.unify_dictionaries().combine_chunks()
     column = {name: table.column(name).chunk(0) for name in table.column_names}
-    source_codes, source_names = dictionary_codes(column["source"])
-    if None in source_names or not set(source_names) <= _SOURCE_INDEX.keys():
-        raise ValueError(f"unknown row sources {sorted(map(str, source_names))} in the file")
-    to_source = np.array([_SOURCE_INDEX[str(n)] for n in source_names] or [0], dtype=np.int8)
-    rollout_codes, rollout_keys = dictionary_codes(column["rollout"])
-    if None in rollout_keys:
-        raise ValueError("a row without its rollout key in the file")
+    source_codes, source_names = dictionary_codes(column["source"], name="source")
+    unknown = set(source_names) - set(SOURCES)
+    if unknown:
+        raise ValueError(f"unknown row sources {sorted(map(str, unknown))} in the file")
+    to_source = np.array([SOURCES.index(n) for n in source_names] or [0], dtype=np.int8)
+    rollout_codes, rollout_keys = dictionary_codes(column["rollout"], name="rollout")
     rounds = numbers(column["round"], np.int64)
-    version_codes, version_names = dictionary_codes(column["learner_version"])
+    version_codes, version_names = dictionary_codes(
+        column["learner_version"], name="learner_version", missing=True
+    )
     round_numbers, first_rows = np.unique(rounds, return_index=True)
     action = (
         numbers(column["expert_action"], np.int64)

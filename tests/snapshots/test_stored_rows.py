@@ -222,8 +222,10 @@ def test_arrow_readers_agree_with_pyarrow_and_refuse_what_they_cannot_read():
     vectors = pa.array([[1, 2], [3, 4], [5, 6]], type=pa.list_(pa.float32(), 2)).slice(1)
     assert fixed_width_floats(vectors, 2).tolist() == vectors.to_pylist()
     names = pa.array(["x", None, "y", "x"]).dictionary_encode()
-    codes, values = dictionary_codes(names)
+    codes, values = dictionary_codes(names, missing=True)
     assert [values[c] if c >= 0 else None for c in codes] == names.to_pylist()
+    with pytest.raises(ValueError, match="rollout has 1 missing values"):
+        dictionary_codes(names, name="rollout")  # a column every row must have
     with pytest.raises(ValueError, match="missing values"):
         numbers(pa.array([1, None]), np.int64)
     with pytest.raises(ValueError, match="not numbers"):
