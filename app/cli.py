@@ -130,7 +130,7 @@ def serve(
 
 @cli.command()
 def worker() -> None:
-    """Run background jobs (ranking, snapshots) until interrupted; for team deployments."""
+    """Run background jobs (rankings) until interrupted; for team deployments."""
     import logging
     import signal
     import threading
@@ -138,8 +138,10 @@ def worker() -> None:
     from .db import make_engine, make_session_factory
     from .job_handlers import register_job_handlers
     from .jobs.runner import run_until_stopped, worker_name
+    from .shared.allocator import use_system_allocator
     from .system.logs import configure_logging
 
+    use_system_allocator()  # as the server does (app.shared.allocator)
     settings = get_settings()
     configure_logging(settings.log_format)
     log = logging.getLogger("expertloop.worker")

@@ -20,6 +20,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from ..config import Settings
 from ..errors import ExpertloopError
+from ..shared.allocator import release_free_memory
 from . import service
 from .models import Job
 
@@ -92,6 +93,18 @@ def run_one(session_factory: sessionmaker[Session], settings: Settings, worker: 
     if job is None:
         return False
     context = JobContext(job=job, session_factory=session_factory, settings=settings, worker=worker)
+    try:
+        _run_claimed(job, context, session_factory, worker)
+    finally:
+        # a ranking's arrays (tens to hundreds of MB) are freed on the job's threads: hand the
+        # pages back so a worker does not keep the largest job it ever ran (app.shared.allocator)
+        release_free_memory()
+    return True
+
+
+def _run_claimed(
+    job: Job, context: JobContext, session_factory: sessionmaker[Session], worker: str
+) -> None:
     func = HANDLERS.get(job.kind)
     try:
         if func is None:
@@ -99,21 +112,20 @@ def run_one(session_factory: sessionmaker[Session], settings: Settings, worker: 
         result = func(context)
     except JobLost:
         log.warning("job %s lost to another worker", job.id)
-        return True
+        return
     except ExpertloopError as exc:
         with session_factory.begin() as session:
             service.fail(session, job_id=job.id, worker=worker, message=exc.message)
-        return True
+        return
     except Exception as exc:  # a bug: record it on the job so the user sees it, and log it
         log.exception("job %s failed", job.id)
         with session_factory.begin() as session:
             service.fail(
                 session, job_id=job.id, worker=worker, message=f"{type(exc).__name__}: {exc}"
             )
-        return True
+        return
     with session_factory.begin() as session:
         service.finish(session, job_id=job.id, worker=worker, result=result)
-    return True
 
 
 def run_until_stopped(

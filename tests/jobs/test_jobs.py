@@ -129,3 +129,34 @@ def test_job_api_shows_progress(app, client, admin, echo_handler):
     queued = client.get(f"/api/jobs/{job.id}", headers=admin).json()
     assert queued["status"] == "queued" and queued["progress"] == 0.0
     assert client.get("/api/jobs/999", headers=admin).status_code == 404
+
+
+def test_free_pages_go_back_after_every_job_whatever_its_end(app, settings, monkeypatch):
+    """A worker hands freed pages back after each job (app.shared.allocator), done or failed,
+    so it does not keep the largest ranking it ever ran; with no job it does nothing."""
+    from expertloop.errors import InvalidInput
+
+    released = []
+    monkeypatch.setattr(runner, "release_free_memory", lambda: released.append(1))
+
+    @runner.handler("test-ok")
+    def ok(ctx: runner.JobContext) -> dict:
+        return {}
+
+    @runner.handler("test-refused")
+    def refused(ctx: runner.JobContext) -> dict:
+        raise InvalidInput("no")
+
+    try:
+        factory = app.state.session_factory
+        with factory.begin() as session:
+            service.enqueue(session, kind="test-ok", params={})
+            service.enqueue(session, kind="test-refused", params={})
+        assert runner.run_one(factory, settings, "w1") is True
+        assert runner.run_one(factory, settings, "w1") is True
+        assert len(released) == 2
+        assert runner.run_one(factory, settings, "w1") is False
+        assert len(released) == 2
+    finally:
+        runner.HANDLERS.pop("test-ok", None)
+        runner.HANDLERS.pop("test-refused", None)
