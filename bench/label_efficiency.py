@@ -55,6 +55,9 @@ class Run:
     budget: int
     seed: int
     selection: str
+    # what the ensemble's members are (bench/label_tasks.py LEARNERS), or "demo" for the demo
+    # task, which trains the demo's own learner
+    learner: str = "mlp"
     labels: list[int] = field(default_factory=list)
     scores: list[float] = field(default_factory=list)
     trace: list[dict[str, Any]] = field(default_factory=list)
@@ -119,10 +122,14 @@ def _answer(client: Client, slug: str, task: tasks.GymTask, seen: list[Any]) -> 
         answered += 1
 
 
-def _train(client: Client, slug: str, task: tasks.GymTask, seed: int) -> tasks.Ensemble:
+def _train(
+    client: Client, slug: str, task: tasks.GymTask, seed: int, learner: str
+) -> tasks.Ensemble:
     rows = client.pull(slug, version="latest")
     assert isinstance(rows, dict)
-    return tasks.fit(task, rows["features"], rows["expert_action"], np.random.default_rng(seed))
+    return tasks.fit(
+        task, rows["features"], rows["expert_action"], np.random.default_rng(seed), learner
+    )
 
 
 def run_gym(
@@ -140,7 +147,7 @@ def run_gym(
     demos = tasks.run_episodes(task, None, world.demo_seeds(args.demos), "demo")
     _upload(admin, slug, 0, demos.columns, folder)
     admin.create_snapshot(slug, up_to_round=0)
-    policy = _train(admin, slug, task, run.seed)
+    policy = _train(admin, slug, task, run.seed, run.learner)
     labels = 0
     for number in range(args.rounds + 1):
         if number:
@@ -162,7 +169,7 @@ def run_gym(
                     "GET", f"/api/loops/{slug}/rounds/{number}/selection?limit=1"
                 )["params"]["self_tuning"]
                 run.trace.append(_trace(task, policy, visited, np.asarray(seen), job, record))
-            policy = _train(admin, slug, task, run.seed * 100 + number)
+            policy = _train(admin, slug, task, run.seed * 100 + number, run.learner)
         evaluated = tasks.run_episodes(task, policy, world.eval_seeds, "eval")
         run.labels.append(labels)
         run.scores.append(world.score(evaluated.returns.mean()))
@@ -282,6 +289,7 @@ def summarise(runs: list[Run]) -> list[dict[str, Any]]:
                 {
                     "task": task,
                     "budget": budget,
+                    "learner": (ranked or uniform)[0].learner,
                     "seeds": len(paired),
                     "cap": rounds * budget,
                     "reach_ranked": _median([r.reach() for r in ranked]),
@@ -300,7 +308,7 @@ def summarise(runs: list[Run]) -> list[dict[str, Any]]:
 
 def print_summary(lines: list[dict[str, Any]]) -> None:
     print(
-        f"{'task':<13}{'B':>4}{'seeds':>6}  {'reach r/u':>13}  {'hold r/u':>13}  "
+        f"{'task':<13}{'B':>4}{'learner':>8}{'seeds':>6}  {'reach r/u':>13}  {'hold r/u':>13}  "
         f"{'held r/u':>9}  {'wins r/u':>9}  {'u/r':>6}"
     )
     for x in lines:
@@ -311,7 +319,7 @@ def print_summary(lines: list[dict[str, Any]]) -> None:
         if math.isinf(x["hold_uniform"]) and not math.isinf(x["hold_ranked"]):
             ratio = f">{cap / x['hold_ranked']:.2f}" if x["hold_ranked"] else ratio
         print(
-            f"{x['task']:<13}{x['budget']:>4}{x['seeds']:>6}  {reach:>13}  {hold:>13}  "
+            f"{x['task']:<13}{x['budget']:>4}{x['learner']:>8}{x['seeds']:>6}  {reach:>13}  {hold:>13}  "
             f"{x['held_ranked']:>4}/{x['held_uniform']:<4}  "
             f"{x['wins_ranked']:>4}/{x['wins_uniform']:<4}  {ratio:>6}"
         )
@@ -477,6 +485,8 @@ def merge(paths: list[Path]) -> tuple[list[Run], dict[str, Any]]:
             }
         )
         for record in saved["runs"]:
+            # runs saved before the learner was a choice: the demo's own, else "mlp"
+            record.setdefault("learner", "demo" if record["task"] == "demo" else "mlp")
             run = Run(**record)
             key = (run.task, run.budget, run.seed, run.selection)
             if key in found:
@@ -489,6 +499,13 @@ def merge(paths: list[Path]) -> tuple[list[Run], dict[str, Any]]:
     if mixed:
         # the medians, the cap and the plot compare runs round by round
         raise SystemExit(f"runs of one task and budget differ in rounds: {mixed}")
+    learners: dict[tuple[str, int], set[str]] = {}
+    for run in found.values():
+        learners.setdefault((run.task, run.budget), set()).add(run.learner)
+    mixed_learners = {key: sorted(n) for key, n in learners.items() if len(n) > 1}
+    if mixed_learners:
+        # ranked and uniform are compared on the same learner
+        raise SystemExit(f"runs of one task and budget differ in learner: {mixed_learners}")
     return list(found.values()), {"merged_from": sources}
 
 
@@ -571,7 +588,8 @@ def main() -> None:
                 for budget in budgets:
                     for seed in range(args.first_seed, args.first_seed + args.seeds):
                         for selection in args.selections.split(","):
-                            run = Run(name, budget, seed, selection)
+                            learner = "demo" if name == "demo" else args.learner
+                            run = Run(name, budget, seed, selection, learner)
                             if name == "demo":
                                 run_demo(admin, annotator, run, args)
                             else:

@@ -50,6 +50,7 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
+from sklearn.ensemble import ExtraTreesClassifier, ExtraTreesRegressor
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.neural_network import MLPClassifier, MLPRegressor
 
@@ -61,6 +62,8 @@ REACHER_KP = 0.5
 REACHER_KD = 0.1
 HIDDEN_UNITS = 32
 MAX_ITER = 200
+FOREST_TREES = 20
+LEARNERS = ("mlp", "trees")
 
 
 @dataclass(frozen=True)
@@ -286,7 +289,23 @@ class Ensemble:
         return action, members
 
 
-def fit(task: GymTask, x: NDArray[Any], y: NDArray[Any], rng: np.random.Generator) -> Ensemble:
+def fit(
+    task: GymTask,
+    x: NDArray[Any],
+    y: NDArray[Any],
+    rng: np.random.Generator,
+    learner: str = "mlp",
+) -> Ensemble:
+    """Fit the bootstrap ensemble: `N_MEMBERS` members, each on its own bootstrap sample.
+
+    ``learner`` names what a member is (`LEARNERS`): ``mlp``, a small neural network trained
+    from a random start (its fit moves with the start as well as the sample), or ``trees``, an
+    extremely randomised forest of `FOREST_TREES` trees (Geurts, Ernst and Wehenkel, "Extremely
+    randomized trees", Machine Learning 63, 2006; scikit-learn's ExtraTrees), a local learner
+    whose fit moves far less from one seed to the next.
+    """
+    if learner not in LEARNERS:
+        raise ValueError(f"unknown learner {learner!r}; one of {LEARNERS}")
     x = np.asarray(x, np.float64)
     mean, scale = x.mean(axis=0), x.std(axis=0)
     scale[scale == 0] = 1.0
@@ -296,21 +315,24 @@ def fit(task: GymTask, x: NDArray[Any], y: NDArray[Any], rng: np.random.Generato
         sample = rng.integers(0, len(z), len(z))
         seed = int(rng.integers(0, 2**31 - 1))
         if task.kind == "discrete":
-            member: Any = MLPClassifier(
-                hidden_layer_sizes=(HIDDEN_UNITS,), max_iter=MAX_ITER, random_state=seed
-            )
             target = np.asarray(y, np.int64)[sample]
         else:
-            member = MLPRegressor(
-                hidden_layer_sizes=(HIDDEN_UNITS,), max_iter=MAX_ITER, random_state=seed
-            )
             target = np.asarray(y, np.float64).reshape(len(z), -1)[sample]
             if target.shape[1] == 1:  # one dimension: scikit-learn wants a 1-d target
                 target = target.ravel()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ConvergenceWarning)
-            members.append(member.fit(z[sample], target))
+            members.append(_member(task, learner, seed).fit(z[sample], target))
     return Ensemble(task, members, mean, scale)
+
+
+def _member(task: GymTask, learner: str, seed: int) -> Any:
+    discrete = task.kind == "discrete"
+    if learner == "trees":
+        forest = ExtraTreesClassifier if discrete else ExtraTreesRegressor
+        return forest(n_estimators=FOREST_TREES, random_state=seed)
+    network = MLPClassifier if discrete else MLPRegressor
+    return network(hidden_layer_sizes=(HIDDEN_UNITS,), max_iter=MAX_ITER, random_state=seed)
 
 
 @dataclass
@@ -427,6 +449,9 @@ def add_world_sizes(parser: Any) -> None:
     parser.add_argument("--episodes", type=int, default=8, help="learner rollouts per round")
     parser.add_argument("--demos", type=int, default=2, help="demonstration episodes")
     parser.add_argument("--eval-episodes", type=int, default=10)
+    parser.add_argument(
+        "--learner", default="mlp", choices=LEARNERS, help="what each ensemble member is"
+    )
 
 
 def world(task: GymTask, seed: int, eval_episodes: int) -> World:

@@ -49,7 +49,7 @@ def run(task: tasks.GymTask, seed: int, budget: int, pick: str, args: argparse.N
     demos = tasks.run_episodes(task, None, world.demo_seeds(args.demos), "demo")
     x = np.asarray(demos.columns["features"], np.float64)
     y = np.asarray(demos.columns["expert_action"])
-    policy = tasks.fit(task, x, y, np.random.default_rng(seed))
+    policy = tasks.fit(task, x, y, np.random.default_rng(seed), args.learner)
     draw = np.random.default_rng(seed)
     scores = []
     for number in range(args.rounds + 1):
@@ -68,7 +68,7 @@ def run(task: tasks.GymTask, seed: int, budget: int, pick: str, args: argparse.N
             picked = visited[shuffled[:budget]]
             x = np.concatenate([x, picked])
             y = np.concatenate([y, task.expert(picked)])
-            policy = tasks.fit(task, x, y, np.random.default_rng(seed * 100 + number))
+            policy = tasks.fit(task, x, y, np.random.default_rng(seed * 100 + number), args.learner)
         returns = tasks.run_episodes(task, policy, world.eval_seeds, "eval").returns.mean()
         scores.append(world.score(returns))
     held = math.inf

@@ -37,7 +37,7 @@ def spread(task: tasks.GymTask, seed: int, args: argparse.Namespace) -> dict[int
     x = np.asarray(demos.columns["features"], np.float64)
     y = np.asarray(demos.columns["expert_action"])
     draw = np.random.default_rng(seed)
-    policy = tasks.fit(task, x, y, np.random.default_rng(seed))
+    policy = tasks.fit(task, x, y, np.random.default_rng(seed), args.learner)
     found: dict[int, list[float]] = {}
     for number in range(args.rounds + 1):
         if number:
@@ -48,10 +48,11 @@ def spread(task: tasks.GymTask, seed: int, args: argparse.Namespace) -> dict[int
             picked = visited[draw.choice(len(visited), size=args.budget, replace=False)]
             x = np.concatenate([x, picked])
             y = np.concatenate([y, task.expert(picked)])
-            policy = tasks.fit(task, x, y, np.random.default_rng(seed * 100 + number))
+            policy = tasks.fit(task, x, y, np.random.default_rng(seed * 100 + number), args.learner)
         if number in (0, args.rounds):
             refits = (
-                tasks.fit(task, x, y, np.random.default_rng(10_000 + k)) for k in range(args.refits)
+                tasks.fit(task, x, y, np.random.default_rng(10_000 + k), args.learner)
+                for k in range(args.refits)
             )
             found[number] = [
                 world.score(tasks.run_episodes(task, fit, world.eval_seeds, "eval").returns.mean())
