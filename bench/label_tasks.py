@@ -1,5 +1,6 @@
 """Control tasks for bench/label_efficiency.py: gymnasium environments, scripted experts and a
-bootstrap-ensemble learner (scikit-learn MLPs, CPU only).
+bootstrap-ensemble learner (scikit-learn MLPs, or extra-trees forests with --learner trees;
+CPU only).
 
 Experts are written from the tasks' published dynamics (gymnasium's documentation of each
 environment), not tuned against the learner:
