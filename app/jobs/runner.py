@@ -94,7 +94,7 @@ def run_one(session_factory: sessionmaker[Session], settings: Settings, worker: 
         return False
     context = JobContext(job=job, session_factory=session_factory, settings=settings, worker=worker)
     try:
-        _run_claimed(job, context, session_factory, worker)
+        _run_claimed(context)
     finally:
         # a ranking's arrays (tens to hundreds of MB) are freed on the job's threads: hand the
         # pages back so a worker does not keep the largest job it ever ran (app.shared.allocator)
@@ -102,9 +102,9 @@ def run_one(session_factory: sessionmaker[Session], settings: Settings, worker: 
     return True
 
 
-def _run_claimed(
-    job: Job, context: JobContext, session_factory: sessionmaker[Session], worker: str
-) -> None:
+def _run_claimed(context: JobContext) -> None:
+    """Run a claimed job's handler and record how it ended."""
+    job, session_factory, worker = context.job, context.session_factory, context.worker
     func = HANDLERS.get(job.kind)
     try:
         if func is None:
