@@ -17,6 +17,9 @@ from ..limits import INT64_MAX, shown
 # float32 has a 24-bit significand: integers up to 2**24 in magnitude are exact, some beyond are
 # not (docs/references.md, "Hostile input"); larger integers are refused, not rounded silently.
 FLOAT32_EXACT_INTEGER = 2**24
+# float32's largest finite value (docs/references.md, "Hostile input"): a finite float beyond it
+# would be stored as infinity, so it is refused as the infinities sent as such are.
+FLOAT32_MAX = float(np.finfo(np.float32).max)
 
 
 @dataclass
@@ -118,6 +121,33 @@ def _is_list(type_: pa.DataType) -> bool:
     )
 
 
+def as_float32(values: np.ndarray) -> np.ndarray:
+    """Numbers as float32 for storage; values beyond float32's range become infinite, which the
+    callers refuse, naming the value with `float32_range_reason`."""
+    with np.errstate(over="ignore"):
+        return values.astype(np.float32, copy=False)
+
+
+def float32_range_reason(value: float) -> str:
+    return (
+        f"{value:g} is beyond float32's range (±{FLOAT32_MAX:.7g}), in which it is stored; "
+        "scale it into that range"
+    )
+
+
+def floats32(column: pa.ChunkedArray, name: str) -> np.ndarray:
+    """A non-null, finite numeric column as float32, refusing values float32 cannot hold."""
+    values = floats(column, name)
+    if pa.types.is_integer(column.type):
+        check_exact_in_float32(values, np.arange(len(values)), name)
+    stored = as_float32(values)
+    over = np.isinf(stored)  # `values` are finite: these were beyond float32's range
+    if over.any():
+        i = _first(over)
+        raise fail(i, name, float32_range_reason(float(values[i])))
+    return stored
+
+
 def float_vectors(
     column: pa.ChunkedArray,
     name: str,
@@ -167,12 +197,16 @@ def float_vectors(
         row_of_value = np.repeat(rows[present], width)
         check_exact_in_float32(raw, row_of_value, name)
     # Cast to float32 before the finiteness check: a float64 beyond float32's range becomes
-    # infinite in storage, so it must be refused too.
-    dense = raw.astype(np.float32, copy=False).reshape(-1, width)
+    # infinite in storage, so it must be refused too (and named as such: it was finite).
+    dense = as_float32(raw).reshape(-1, width)
     bad_rows = ~np.isfinite(dense).all(axis=1)
     if bad_rows.any():
-        row = int(np.flatnonzero(present)[_first(bad_rows)])
-        raise fail(int(rows[row]), name, "values must be finite (found NaN or infinity)")
+        i = _first(bad_rows)
+        row = int(rows[int(np.flatnonzero(present)[i])])
+        sent = raw.reshape(-1, width)[i]
+        if np.isfinite(sent).all():
+            raise fail(row, name, float32_range_reason(float(sent[_first(np.isinf(dense[i]))])))
+        raise fail(row, name, "values must be finite (found NaN or infinity)")
     if not nulls.any():
         return Vectors(dense, present)
     values = np.zeros((len(combined), width), dtype=np.float32)

@@ -9,6 +9,7 @@ same file gets the same answer on SQLite and PostgreSQL. Every refusal names the
 | step | 0 to 2**31 - 1 (the store's INTEGER column) |
 | time_s | 0 or more, finite |
 | integer features | at most 2**24 in magnitude (float32 holds those exactly) |
+| float features and learner outputs | within float32's range (a larger finite value would be stored as infinity) |
 | scene | a JSON object of at most `max_scene_bytes`: `frame`, up to 256 `agents` (`kind`, `x`, `y`, `heading`), up to 64 `geometry` shapes and `view_m` (app.ingest.scene) |
 | image | PNG, JPEG or WebP by their first bytes, at most `max_image_bytes` |
 """

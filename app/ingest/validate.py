@@ -236,10 +236,7 @@ def _features(table: pa.Table, spec: LoopSpec) -> np.ndarray:
         raise InvalidInput(f"missing feature column '{absent[0]}'")
     out = np.empty((table.num_rows, width), dtype=np.float32)
     for j, name in enumerate(spec.feature_names):
-        values = col.floats(table[name], name)
-        if pa.types.is_integer(table[name].type):
-            col.check_exact_in_float32(values, np.arange(len(values)), name)
-        out[:, j] = values
+        out[:, j] = col.floats32(table[name], name)
     return out
 
 

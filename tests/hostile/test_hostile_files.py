@@ -67,7 +67,7 @@ def deep(n: int) -> str:
     return "[" * n + "]" * n
 
 
-# Image signatures and the float32 bound: docs/references.md, "Hostile input".
+# Image signatures and the float32 bounds: docs/references.md, "Hostile input".
 CASES: list[tuple[str, str, Callable[[], bytes], int, str]] = [
     # JSON Lines: encodings, nesting, numbers, kinds
     (
@@ -317,6 +317,27 @@ CASES: list[tuple[str, str, Callable[[], bytes], int, str]] = [
         lambda: lines(line(features=[1, 2, 16_777_217])),
         422,
         r"row 1, column features: the integer 16777217 cannot be stored exactly as float32",
+    ),
+    (
+        "float-features-beyond-float32",
+        "a.jsonl",
+        lambda: lines(line(features=[1.0, 1e39, 3.0])),
+        422,
+        r"row 1, column features: 1e\+39 is beyond float32's range",
+    ),
+    (
+        "float-feature-column-beyond-float32",
+        "a.parquet",
+        lambda: table(features=..., gap_m=[1.0, 1e300], speed=[0.0, 0.0], occluded=[0.0, 0.0]),
+        422,
+        r"row 2, column gap_m: 1e\+300 is beyond float32's range",
+    ),
+    (
+        "float-feature-column-beyond-float32-jsonl",
+        "a.jsonl",
+        lambda: lines(line(features=..., gap_m=-3.5e38, speed=0.0, occluded=0.0)),
+        422,
+        r"row 1, column gap_m: -3\.5e\+38 is beyond float32's range",
     ),
     (
         "int-feature-column",
