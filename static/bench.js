@@ -73,12 +73,23 @@
   function claim() {
     root.dataset.phase = "loading";
     return call("POST", api + "/claim").then(function (r) {
-      if (!r.ok) { setStatus(detail(r), true); return; }
+      if (!r.ok) {
+        root.dataset.phase = "retry";  // R (or Enter) claims again
+        setStatus(detail(r) + (r.status === 401 ? "" : " Press R to try again."), true);
+        return;
+      }
       if (!r.data.item) { showEmpty(); } else { show(r.data.item); }
       refreshProgress();
     }, function () {
+      root.dataset.phase = "retry";
       setStatus("The server cannot be reached. Press R to try again.", true);
     });
+  }
+
+  // Once a state is answered or skipped nothing more is sent for it: keys pressed before the
+  // next one is shown would otherwise answer it again under its submission id.
+  function doneWithItem() {
+    s.item = null;
   }
 
   function showEmpty() {
@@ -180,16 +191,19 @@
     body.seconds_spent = Math.min((performance.now() - s.shownAt) / 1000, 86400);
     if (spanInput && !spanInput.disabled) body.span_steps = parseInt(spanInput.value || "0", 10) || 0;
     s.busy = true;
-    var said = body.answer === "unsure" ? "unsure" : describeAction(body.action);
     call("POST", api + "/items/" + s.item.item_id + "/labels", body).then(function (r) {
       s.busy = false;
       if (r.ok) {
-        s.note = "Saved: " + said + ".";
+        doneWithItem();
+        // say what the store holds: a repeated submission id returns the answer stored first
+        var stored = r.data.answer === "unsure" ? "unsure" : describeAction(r.data.action);
+        s.note = (r.data.repeated ? "Already saved: " : "Saved: ") + stored + ".";
         setStatus(s.note + " Loading the next state…");
         recent.changed();
         return claim();
       }
       if (r.status === 409) {
+        doneWithItem();
         setStatus(detail(r), true);
         return claim();
       }
@@ -206,6 +220,7 @@
     call("POST", api + "/items/" + s.item.item_id + "/skip").then(function (r) {
       s.busy = false;
       if (!r.ok && r.status !== 409 && r.status !== 404) { setStatus(detail(r), true); return; }
+      doneWithItem();
       s.note = "Skipped; it will not be offered to you again.";
       setStatus(s.note);
       return claim();
@@ -559,7 +574,7 @@
       // Enter submits, except on a control outside the answer (a stepper button, a summary)
       if (t !== document.body && !form.contains(t) && t.matches("button, summary, a, input")) return;
       e.preventDefault();
-      if (root.dataset.phase === "empty") { claim(); return; }
+      if (root.dataset.phase === "empty" || root.dataset.phase === "retry") { claim(); return; }
       submit();
       return;
     }
@@ -582,7 +597,9 @@
       case "+": case "=": nudge(1, 1); break;
       case "-": case "_": nudge(-1, 1); break;
       case "b": case "B": if (spanInput && !spanInput.disabled) { spanInput.focus(); spanInput.select(); } break;
-      case "r": case "R": if (root.dataset.phase === "empty") claim(); else handled = false; break;
+      case "r": case "R":
+        if (root.dataset.phase === "empty" || root.dataset.phase === "retry") claim(); else handled = false;
+        break;
       default: handled = false;
     }
     if (handled) e.preventDefault();

@@ -265,6 +265,100 @@ def test_continuous_action_typed_and_nudged(make_loop, make_user, settings, app,
     )
 
 
+# Claims held back or refused on the page's side of the network, so that what an annotator does
+# while the next state loads, or after the server could not be reached, can be tried at will.
+FLAKY_CLAIMS = """
+window.__claimDelayMs = 0; window.__claimFailures = 0;
+const realFetch = window.fetch;
+window.fetch = function (url, init) {
+  if (!String(url).endsWith('/queue/claim')) return realFetch(url, init);
+  if (window.__claimFailures > 0) {
+    window.__claimFailures -= 1;
+    return Promise.reject(new TypeError('network down'));
+  }
+  const wait = window.__claimDelayMs;
+  return new Promise((go) => setTimeout(go, wait)).then(() => realFetch(url, init));
+};
+"""
+
+
+def flaky_bench(browser: Any, base: str, slug: str) -> tuple[Any, list[tuple[str, str]]]:
+    """A signed-in bench page whose claims can be delayed or failed; returns it and the label
+    requests it sends (address, body)."""
+    context = browser.new_context(viewport={"width": 1366, "height": 768})
+    context.add_init_script(FLAKY_CLAIMS)
+    page = context.new_page()
+    sent: list[tuple[str, str]] = []
+    page.on(
+        "request",
+        lambda r: sent.append((r.url, r.post_data or "")) if r.url.endswith("/labels") else None,
+    )
+    sign_in_and_open_bench(page, base, slug)
+    return page, sent
+
+
+def test_keys_while_the_next_state_loads_answer_no_state(
+    make_loop, make_user, settings, app, browser
+):
+    """An answer typed after Enter, before the next state is shown, is sent for no state: it
+    used to go to the state just answered, where the server returned the stored label as a
+    repeat and the page said the new answer was saved."""
+    slug = make_loop(DISCRETE_SPEC, queue=3)
+    make_user("annotator", name="ann", password=PASSWORD)
+    with server_process(
+        settings.resolved_database_url,
+        settings.data_dir,
+        log_path=settings.data_dir.parent / "server.log",
+    ) as server:
+        page, sent = flaky_bench(browser, server.url, slug)
+        first = current_item(page)
+        page.evaluate("window.__claimDelayMs = 1500")
+        page.keyboard.press("1")
+        page.keyboard.press("Enter")
+        expect(page.locator("#status")).to_contain_text("Saved: 1 proceed.")
+        page.keyboard.press("2")  # meant for the next state, which is not shown yet
+        page.keyboard.press("Enter")
+        bench = page.locator("#bench")
+        expect(bench).not_to_have_attribute("data-item-id", str(first))
+        expect(bench).to_have_attribute("data-phase", "ready")
+        status = page.inner_text("#status")
+        page.close()
+    assert "creep" not in status, status
+    assert len(sent) == 1 and sent[0][0].endswith(f"/items/{first}/labels"), sent
+    with app.state.session_factory() as session:
+        labels = session.scalars(select(Label).where(Label.user_id == user_id(app, "ann"))).all()
+    assert [(lab.item_id, lab.action) for lab in labels] == [(first, 0)]
+
+
+def test_r_tries_again_after_the_next_state_could_not_be_fetched(
+    make_loop, make_user, settings, app, browser
+):
+    """The page says "Press R to try again" when a claim cannot reach the server; R used to
+    work only on the empty-queue page, so the bench stayed stuck until reloaded."""
+    slug = make_loop(DISCRETE_SPEC, queue=3)
+    make_user("annotator", name="ann", password=PASSWORD)
+    with server_process(
+        settings.resolved_database_url,
+        settings.data_dir,
+        log_path=settings.data_dir.parent / "server.log",
+    ) as server:
+        page, sent = flaky_bench(browser, server.url, slug)
+        first = current_item(page)
+        page.evaluate("window.__claimFailures = 1")
+        page.keyboard.press("3")
+        page.keyboard.press("Enter")
+        expect(page.locator("#status")).to_contain_text("Press R to try again")
+        page.keyboard.press("r")
+        bench = page.locator("#bench")
+        expect(bench).to_have_attribute("data-phase", "ready")
+        expect(bench).not_to_have_attribute("data-item-id", str(first))
+        page.close()
+    assert len(sent) == 1, sent
+    with app.state.session_factory() as session:
+        labels = session.scalars(select(Label).where(Label.user_id == user_id(app, "ann"))).all()
+    assert [(lab.item_id, lab.action) for lab in labels] == [(first, 2)]
+
+
 @pytest.fixture(autouse=True)
 def _artifacts_ignored() -> None:
     # screenshots must never be committed
