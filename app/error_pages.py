@@ -31,10 +31,14 @@ TITLES = {
 }
 
 
+def is_page_path(path: str) -> bool:
+    """Whether errors at this path are pages for a browser (unless it asks for JSON only)."""
+    return not (path.startswith(("/api/", "/static/")) or path == "/api" or path in MACHINE_PATHS)
+
+
 def wants_page(request: Request) -> bool:
     """Whether an error for this request should be a page rather than JSON."""
-    path = request.url.path
-    if path.startswith(("/api/", "/static/")) or path == "/api" or path in MACHINE_PATHS:
+    if not is_page_path(request.url.path):
         return False
     accept = request.headers.get("accept", "")
     return not ("application/json" in accept and "text/html" not in accept)

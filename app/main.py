@@ -185,10 +185,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     document_errors(
         app,
         routers,
-        extra={
-            "/login": {401, 403, 429},
-            "/api/loops/{slug}/rounds/{number}/rollouts": {413},
-        },
+        # POST /login declares its own 401, 403 and 429 (pages); GET /login gives none of them
+        extra={"/api/loops/{slug}/rounds/{number}/rollouts": {413}},
     )
 
     app.add_middleware(RefuseOversized, max_upload_bytes=settings.max_upload_bytes)

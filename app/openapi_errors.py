@@ -16,6 +16,7 @@ from fastapi.routing import APIRoute
 from pydantic import BaseModel
 
 from .deps import Roles
+from .error_pages import is_page_path
 
 
 class Problem(BaseModel):
@@ -44,9 +45,24 @@ WHY = {
     503: "The database is unreachable right now; nothing was changed (see Retry-After).",
 }
 _REF = "#/components/schemas/ErrorRead"
+# Browser routes answer errors as pages (app.error_pages), or as ErrorRead JSON to a client that
+# accepts only JSON; validation errors (422) and the request guard's refusals are always JSON.
+_PAGE_ERROR = {
+    "text/html": {"schema": {"type": "string"}},
+    "application/json": {"schema": {"$ref": _REF}},
+}
+_SIGN_IN = {
+    "description": "No credentials were sent: a browser is sent to the sign-in form, with this "
+    "page as `next` (Location).",
+    "headers": {"Location": {"schema": {"type": "string"}}},
+}
 
 
 CHANGES = frozenset({"POST", "PUT", "PATCH", "DELETE"})
+
+
+def _needs_role(route: APIRoute) -> bool:
+    return any(isinstance(d.call, Roles) for d in _walk(route.dependant.dependencies))
 
 
 def _statuses(route: APIRoute) -> set[int]:
@@ -54,7 +70,7 @@ def _statuses(route: APIRoute) -> set[int]:
     # path and query parameters may be declared by dependencies (LoopDep takes the slug)
     dependants = [route.dependant, *_walk(route.dependant.dependencies)]
     path_params = any(d.path_params for d in dependants)
-    if any(isinstance(d.call, Roles) for d in dependants):
+    if _needs_role(route):
         found |= {401, 403}
     if path_params:
         found.add(404)
@@ -81,7 +97,7 @@ def install(
     """Make `app.openapi()` declare ErrorRead for every error status each route of `routers`
     (included in `app` without a further prefix) can give.
 
-    `extra` adds statuses by route path (for example 413 for uploads, 429 for sign-in).
+    `extra` adds statuses by route path (for example 413 for uploads).
     """
     extra = extra or {}
 
@@ -98,16 +114,17 @@ def install(
             if not isinstance(route, APIRoute) or not route.include_in_schema:
                 continue
             statuses = _statuses(route) | extra.get(route.path, set())
+            page = is_page_path(route.path)
+            content = _PAGE_ERROR if page else {"application/json": {"schema": {"$ref": _REF}}}
             for method in route.methods or ():
                 operation = schema["paths"][route.path_format][method.lower()]
                 responses = operation.setdefault("responses", {})
                 for status in sorted(statuses):
                     if status in route.responses:  # the route declares this one itself
                         continue
-                    responses[str(status)] = {
-                        "description": WHY[status],
-                        "content": {"application/json": {"schema": {"$ref": _REF}}},
-                    }
+                    responses[str(status)] = {"description": WHY[status], "content": content}
+                if page and _needs_role(route) and 303 not in route.responses:
+                    responses["303"] = _SIGN_IN
         app.openapi_schema = schema
         return schema
 

@@ -121,7 +121,12 @@ def login(
     return response
 
 
-@router.post("/logout")
+@router.post(
+    "/logout",
+    response_class=RedirectResponse,
+    status_code=303,
+    responses={303: {"description": "Signed out: to the sign-in form."}},
+)
 def logout(request: Request, session: WriterSessionDep, _: ReaderDep) -> Response:
     """End the browser session (any signed-in role; the form carries the CSRF token)."""
     cookie = request.cookies.get(SESSION_COOKIE)

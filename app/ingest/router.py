@@ -15,7 +15,7 @@ from ..limits import PageOffset, StepId
 from ..loops.deps import LoopDep, RoundDep
 from ..loops.spec import spec_of
 from . import image_store, reads, service
-from .images import HEAD_BYTES, image_media_type
+from .images import HEAD_BYTES, IMAGE_TYPES, image_media_type
 from .limits import UploadLimits
 from .schemas import RolloutList, StateContext, StepList, UploadRead
 from .spool import CHUNK_BYTES, spool
@@ -121,7 +121,20 @@ def read_state(
     return StateContext(state=state, before=before, after=after, context_seconds=window)
 
 
-@router.get("/images/{sha256}", response_model=None)
+@router.get(
+    "/images/{sha256}",
+    response_class=Response,
+    responses={
+        200: {
+            "description": "The image with its own type; a blob stored before images were "
+            "checked comes as an application/octet-stream download.",
+            "content": {
+                kind: {"schema": {"type": "string", "format": "binary"}}
+                for kind in (*IMAGE_TYPES, "application/octet-stream")
+            },
+        }
+    },
+)
 def read_image(
     sha256: str, session: SessionDep, settings: SettingsDep, _: AnnotatorDep
 ) -> Response:

@@ -43,7 +43,11 @@ def loop_report(session: SessionDep, cache: CacheDep, _: ReaderDep, loop: LoopDe
     return table.loop_table(loop, service.loop_reports(session, loop=loop, cache=cache))
 
 
-@router.get("/api/loops/{slug}/report.csv", response_class=Response)
+@router.get(
+    "/api/loops/{slug}/report.csv",
+    response_class=Response,
+    responses={200: {"content": {"text/csv": {"schema": {"type": "string"}}}}},
+)
 def loop_report_csv(session: SessionDep, cache: CacheDep, _: ReaderDep, loop: LoopDep) -> Response:
     """The table across rounds as CSV, one row per round (any signed-in role)."""
     rows = table.loop_table(loop, service.loop_reports(session, loop=loop, cache=cache)).items

@@ -103,7 +103,19 @@ def read_snapshot(
     return SnapshotDetail.of(service.get_snapshot(session, loop=loop, version=version))
 
 
-@router.get("/{slug}/snapshots/{version}/export")
+@router.get(
+    "/{slug}/snapshots/{version}/export",
+    response_class=Response,
+    responses={
+        200: {
+            "description": "The rows in the asked format: Parquet, .npz or JSON Lines.",
+            "content": {
+                kind: {"schema": {"type": "string", "format": "binary"}}
+                for kind in MEDIA_TYPES.values()
+            },
+        }
+    },
+)
 def export_snapshot(
     version: str,
     session: SessionDep,

@@ -38,7 +38,16 @@ def readyz(request: Request) -> JSONResponse:
     return JSONResponse({"status": "ready", "schema": current})
 
 
-@router.get("/metrics")
+@router.get(
+    "/metrics",
+    response_class=Response,
+    responses={
+        200: {
+            "description": "Prometheus text exposition format 0.0.4.",
+            "content": {"text/plain": {"schema": {"type": "string"}}},
+        }
+    },
+)
 def metrics(request: Request, _: AdminDep) -> Response:
     """Prometheus metrics (admin: give the scraper an admin token)."""
     return Response(render(request.app.state.engine), media_type="text/plain; version=0.0.4")

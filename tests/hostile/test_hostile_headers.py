@@ -123,3 +123,96 @@ def test_images_are_served_with_their_own_type_and_old_blobs_only_as_downloads(
     assert old.headers["content-type"] == "application/octet-stream"
     assert old.headers["content-disposition"] == "attachment"
     assert old.headers["x-content-type-options"] == "nosniff"
+
+
+def _declared(schema, method: str, template: str, response) -> None:
+    """The answer's status is declared for the operation, with the answer's content type."""
+    declared = schema["paths"][template][method]["responses"]
+    status = str(response.status_code)
+    assert status in declared, f"{method} {template}: {status} not declared ({sorted(declared)})"
+    kind = response.headers.get("content-type", "").split(";")[0].strip()
+    if kind:  # a redirect has no body
+        content = declared[status].get("content", {})
+        assert kind in content, f"{method} {template} {status}: {kind} not in {sorted(content)}"
+
+
+def test_answers_that_are_not_json_are_declared_with_their_own_content_type(
+    client, admin, make_user
+):
+    """Found by fuzzing from outside (schemathesis, content_type_conformance): exports, images,
+    metrics, the CSV and the browser pages' error pages and sign-in redirects were declared as
+    JSON or not at all."""
+    import base64
+    import hashlib
+    import json
+
+    from tests.helpers import DISCRETE_SPEC, discrete_rows, parquet_bytes
+
+    schema = client.get("/openapi.json").json()
+    slug = DISCRETE_SPEC["slug"]
+    assert client.post("/api/loops", json=DISCRETE_SPEC, headers=admin).status_code == 201
+    client.post(f"/api/loops/{slug}/rounds", json={"learner_version": "v1"}, headers=admin)
+    uploader = make_user("uploader", name="fleet")
+    annotator = make_user("annotator", name="ann")
+    seed = parquet_bytes(discrete_rows(1, 4, expert=True))
+    sent = client.post(
+        f"/api/loops/{slug}/rounds/0/rollouts",
+        files={"file": ("d.parquet", seed)},
+        headers=uploader,
+    )
+    assert sent.status_code == 201, sent.text
+    png = b"\x89PNG\r\n\x1a\n" + b"\x00" * 16
+    row = {"rollout": "run-1", "step": 0, "time_s": 0.0, "features": [1.0, 2.0, 3.0]}
+    row["image"] = base64.b64encode(png).decode()
+    sent = client.post(
+        f"/api/loops/{slug}/rounds/1/rollouts",
+        files={"file": ("a.jsonl", json.dumps(row).encode())},
+        headers=uploader,
+    )
+    assert sent.status_code == 201, sent.text
+    assert client.post(f"/api/loops/{slug}/snapshots", json={}, headers=admin).status_code == 201
+
+    for file_format in ("parquet", "npz", "jsonl"):
+        answer = client.get(
+            f"/api/loops/{slug}/snapshots/v1/export?format={file_format}", headers=admin
+        )
+        assert answer.status_code == 200
+        _declared(schema, "get", "/api/loops/{slug}/snapshots/{version}/export", answer)
+    image = client.get(f"/api/images/{hashlib.sha256(png).hexdigest()}", headers=annotator)
+    assert image.status_code == 200
+    _declared(schema, "get", "/api/images/{sha256}", image)
+    _declared(schema, "get", "/metrics", client.get("/metrics", headers=admin))
+    _declared(
+        schema,
+        "get",
+        "/api/loops/{slug}/report.csv",
+        client.get(f"/api/loops/{slug}/report.csv", headers=admin),
+    )
+
+    # browser pages: errors as pages, or JSON to a client that accepts only JSON
+    pages = [
+        ("/", "/"),
+        ("/loops/{slug}", f"/loops/{slug}"),
+        ("/loops/{slug}/bench", f"/loops/{slug}/bench"),
+    ]
+    wrong = {"Authorization": "Bearer el_not-a-token"}
+    for template, path in pages:
+        for headers, status in ((wrong, 401), ({}, 303)):
+            answer = client.get(path, headers=headers, follow_redirects=False)
+            assert answer.status_code == status
+            _declared(schema, "get", template, answer)
+            json_only = client.get(path, headers={**headers, "Accept": "application/json"})
+            assert json_only.status_code == 401
+            _declared(schema, "get", template, json_only)
+    for template in ("/loops/{slug}", "/loops/{slug}/bench"):
+        missing = client.get(template.replace("{slug}", "no-such-loop"), headers=admin)
+        assert missing.status_code == 404 and missing.headers["content-type"].startswith(
+            "text/html"
+        )
+        _declared(schema, "get", template, missing)
+    refused = client.get(f"/loops/{slug}/bench", headers=uploader)
+    assert refused.status_code == 403
+    _declared(schema, "get", "/loops/{slug}/bench", refused)
+    out = client.post("/logout", headers=admin, follow_redirects=False)
+    assert out.status_code == 303
+    _declared(schema, "post", "/logout", out)
