@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
 from typing import Any
 
 from sqlalchemy.orm import Session
@@ -21,8 +22,14 @@ def pinned_cutoff(session: Session, *, loop: Loop, rnd: Round, params: RankParam
     """The training set as it was when the ranking was requested (jobs queued before the
     cut-off was recorded read the current one)."""
     if params.training_max_step_id is None or params.training_max_label_id is None:
-        return training_set.current_cutoff(session, loop=loop, up_to_round=rnd.number)
-    return Cutoff(rnd.number, params.training_max_step_id, params.training_max_label_id)
+        current = training_set.current_cutoff(session, loop=loop, up_to_round=rnd.number)
+        return replace(current, one_vote_each=params.one_vote_each)
+    return Cutoff(
+        rnd.number,
+        params.training_max_step_id,
+        params.training_max_label_id,
+        one_vote_each=params.one_vote_each,
+    )
 
 
 def tune(

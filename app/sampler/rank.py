@@ -50,6 +50,9 @@ class RankParams:
     # jobs recorded before the exact/index choice was measured chose by their pair count: a
     # rerun must search the same way (novelty.legacy_exact_search_fits)
     search_by_candidates: bool = False
+    # jobs recorded before consensus gave each annotator one vote per state counted every
+    # label of the training set and its history (training_set.Cutoff.one_vote_each)
+    one_vote_each: bool = False
 
 
 @dataclass

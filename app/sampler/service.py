@@ -53,6 +53,7 @@ def rank_params(
         tuning_min_disagreements=s.tuning_min_disagreements,
         tuning_effective_counts=True,
         search_by_candidates=True,
+        one_vote_each=True,
         training_max_step_id=None if cutoff is None else cutoff.max_step_id,
         training_max_label_id=None if cutoff is None else cutoff.max_label_id,
     )

@@ -82,6 +82,42 @@ class ContinuousConsensus:
     resolved: NDArray[np.bool_]
 
 
+def one_vote_each(state: ArrayLike, annotator: ArrayLike, span: ArrayLike) -> NDArray[np.bool_]:
+    """Which labels vote, so that each annotator has one vote on a state.
+
+    A span label copies an answer onto the steps just before the state shown, which the same
+    annotator may also have answered directly, or covered with another span: counted as they
+    come, one person's answers made a majority or a tie on their own. Their direct answer
+    votes (it was given looking at that state); without one, their newest span copy.
+
+    Parameters
+    ----------
+    state, annotator : array_like of shape (n_labels,)
+        Each label's state and annotator ids, labels in id order (oldest first).
+    span : array_like of bool, shape (n_labels,)
+        Whether each label is a span copy.
+
+    Returns
+    -------
+    ndarray of bool, shape (n_labels,)
+        True for the one label per (state, annotator) that votes.
+    """
+    states = np.asarray(state, dtype=np.int64)
+    annotators = np.asarray(annotator, dtype=np.int64)
+    copies = np.asarray(span, dtype=bool)
+    n = len(states)
+    keep = np.zeros(n, dtype=bool)
+    if n == 0:
+        return keep
+    # by state, then annotator, then direct before span copies, then newest first
+    order = np.lexsort((-np.arange(n), copies, annotators, states))
+    s, a = states[order], annotators[order]
+    first = np.ones(n, dtype=bool)
+    first[1:] = (s[1:] != s[:-1]) | (a[1:] != a[:-1])
+    keep[order[first]] = True
+    return keep
+
+
 def _check_state_index(state_index: ArrayLike, n_states: int) -> NDArray[np.int64]:
     states = np.asarray(state_index)
     if states.ndim != 1:

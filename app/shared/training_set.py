@@ -19,7 +19,7 @@ from ..loops.models import Loop, Round
 from ..queue.models import ANSWER_UNSURE, Label
 from . import training_rows as rows
 from .bulk_reads import bulk_reader
-from .consensus import continuous_consensus, discrete_consensus
+from .consensus import continuous_consensus, discrete_consensus, one_vote_each
 from .current import is_current
 from .encode import stored_actions
 from .row_batches import (
@@ -59,6 +59,9 @@ class Cutoff:
     up_to_round: int
     max_step_id: int
     max_label_id: int
+    # one vote per annotator and state (consensus.one_vote_each); versions and rankings made
+    # before that rule counted every label, and must read their rows as they did
+    one_vote_each: bool = True
 
 
 @dataclass
@@ -109,7 +112,9 @@ def current_cutoff(session: Session, *, loop: Loop, up_to_round: int) -> Cutoff:
 def relabels(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) -> Relabels:
     """Consensus per labelled state from every label within the cut-off (`spec`: the loop's)."""
     query = (
-        select(Label.step_id, Label.answer, Label.action, Label.action_vec)
+        select(
+            Label.step_id, Label.answer, Label.action, Label.action_vec, Label.user_id, Label.span
+        )
         .join(Round, Round.id == Label.round_id)
         .where(
             Round.loop_id == loop.id,
@@ -124,8 +129,18 @@ def relabels(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) -
     rows = session.connection().execute(query).all()
     width = spec.action_width
     # columns by position (a Row's lookup by name costs many times its lookup by index)
-    step_col, answer_col, action_col, vector_col = zip(*rows, strict=True) if rows else ((),) * 4
+    step_col, answer_col, action_col, vector_col, user_col, span_col = (
+        zip(*rows, strict=True) if rows else ((),) * 6
+    )
     step_ids = np.array(step_col, dtype=np.int64)
+    if cutoff.one_vote_each and rows:
+        votes = one_vote_each(step_ids, np.array(user_col, np.int64), np.array(span_col, bool))
+        if not votes.all():
+            kept = np.flatnonzero(votes).tolist()
+            step_ids = step_ids[votes]
+            answer_col = tuple(answer_col[i] for i in kept)
+            action_col = tuple(action_col[i] for i in kept)
+            vector_col = tuple(vector_col[i] for i in kept)
     unique_steps, state_index = np.unique(step_ids, return_inverse=True)
     unsure = np.array(answer_col, dtype=object) == ANSWER_UNSURE
     discrete = spec.is_discrete

@@ -46,9 +46,21 @@ class SnapshotChanged(RuntimeError):
     """A snapshot's rows no longer hash to its manifest: the store was altered behind our back."""
 
 
+# The manifest of a version whose consensus gave each annotator one vote per state; versions
+# made before counted every label (a span copy beside its author's own answer too), and their
+# rows are read back as they were made, so that their content hash still holds.
+VOTES = "votes"
+ONE_VOTE_EACH = "one per annotator and state"
+
+
 def cutoff_of(snapshot: Snapshot) -> ts.Cutoff:
     """The cut-off that pins a snapshot's rows."""
-    return ts.Cutoff(snapshot.up_to_round, snapshot.max_step_id, snapshot.max_label_id)
+    return ts.Cutoff(
+        snapshot.up_to_round,
+        snapshot.max_step_id,
+        snapshot.max_label_id,
+        one_vote_each=snapshot.manifest.get(VOTES) == ONE_VOTE_EACH,
+    )
 
 
 def _hasher(loop: Loop) -> ContentHasher:
@@ -263,6 +275,7 @@ def build_manifest(
         "rows_per_source": per_source,
         "rows_per_round_and_source": detail,
         "labelled_states": len(consensus.step_id),
+        VOTES: ONE_VOTE_EACH if cutoff.one_vote_each else None,
         "unresolved_states": {
             "count": len(unresolved),
             "step_ids": unresolved.tolist(),

@@ -3,6 +3,7 @@ idempotent submits, k labels from k annotators, span labels, and refusals that c
 
 from __future__ import annotations
 
+from dataclasses import replace
 from datetime import UTC, datetime, timedelta
 
 import numpy as np
@@ -12,6 +13,7 @@ from sqlalchemy import event, select, update
 from expertloop.errors import Conflict, InvalidInput, NotFound
 from expertloop.ingest.models import Step
 from expertloop.loops import service as loops_service
+from expertloop.loops.spec import spec_of
 from expertloop.queue import service
 from expertloop.queue.models import (
     ANSWER_UNSURE,
@@ -23,6 +25,7 @@ from expertloop.queue.models import (
     Skip,
 )
 from expertloop.sampler.models import REASON_AUDIT, REASON_RANKED, SelectedState, Selection
+from expertloop.shared import training_set as ts
 from tests.conftest import store_contents
 from tests.helpers import CONTINUOUS_SPEC, DISCRETE_SPEC, discrete_rows, parquet_bytes
 from tests.queue.conftest import user_id
@@ -336,6 +339,61 @@ def test_span_labels_cover_the_steps_just_before(make_loop, session, annotators,
     item = session.get(QueueItem, sixth.id, populate_existing=True)
     assert item.labels_done == 1  # span labels do not fill queue items
     assert loop.settings["span_labels"] is True
+
+
+def test_an_annotator_has_one_vote_per_state_beside_their_span_copies(
+    make_loop, session, annotators
+):
+    """A span copy onto a state its author answered, or covered before, is no second vote: one
+    annotator's answers used to tie (the state left out) or outvote each other on their own."""
+    make_loop(
+        DISCRETE_SPEC, settings={"span_labels": True, "span_max_steps": 3, "labels_per_state": 2}
+    )
+    a, b = annotators["a"], annotators["b"]
+    loop = loop_of(session)
+    queued = items(session)  # rollout r0 steps 0..9, then r1
+    for n in range(5):  # a answers steps 0..4 directly: 0 proceed
+        got = claim(session, a)
+        answer(session, a, got.item.id, f"one-vote-a-{n:03d}", action=0)
+    got = claim(session, a)  # step 5: hold, copied onto steps 2..4
+    answer(session, a, got.item.id, "one-vote-a-005", action=2, span_steps=3)
+    got = claim(session, a)  # step 6: creep, copied onto steps 3..5
+    answer(session, a, got.item.id, "one-vote-a-006", action=1, span_steps=3)
+    got = claim(session, b)  # b answers step 0 with creep: a 1-1 split of two annotators
+    assert got.item.id == queued[0].id
+    answer(session, b, got.item.id, "one-vote-b-000", action=1)
+    session.commit()
+    step_of = {item.step_id: n for n, item in enumerate(queued[:7])}
+    cutoff = ts.current_cutoff(session, loop=loop, up_to_round=1)
+    found = ts.relabels(session, loop=loop, spec=spec_of(loop), cutoff=cutoff)
+    by_step = {
+        step_of[int(s)]: (int(act), int(n), float(agree))
+        for s, act, n, agree, ok in zip(
+            found.step_id,
+            found.action,
+            found.label_count,
+            found.agreement,
+            found.resolved,
+            strict=True,
+        )
+        if ok
+    }
+    # steps 1..4 keep a's direct answer; step 5 a's direct hold (the creep copy does not vote);
+    # step 6 a's creep; step 0 is a tie of two people, left out
+    assert by_step == {
+        1: (0, 1, 1.0),
+        2: (0, 1, 1.0),
+        3: (0, 1, 1.0),
+        4: (0, 1, 1.0),
+        5: (2, 1, 1.0),
+        6: (1, 1, 1.0),
+    }
+    # versions and rankings made before the rule read every label, as they were hashed
+    legacy = ts.relabels(
+        session, loop=loop, spec=spec_of(loop), cutoff=replace(cutoff, one_vote_each=False)
+    )
+    legacy_count = dict(zip(legacy.step_id.tolist(), legacy.label_count.tolist(), strict=True))
+    assert [legacy_count[queued[n].step_id] for n in range(7)] == [2, 1, 2, 3, 3, 2, 1]
 
 
 def test_a_span_reaching_before_the_rollout_start_is_refused(make_loop, session, annotators):

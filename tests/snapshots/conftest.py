@@ -76,12 +76,16 @@ def discrete_loop(client, admin, uploader) -> str:
 
 
 class Labeller:
-    """Adds labels straight through the ORM (the queue that normally writes them is elsewhere)."""
+    """Adds labels straight through the ORM (the queue that normally writes them is elsewhere).
+
+    Each label on a state comes from an annotator who has none there yet, as the queue stores
+    them (one standing answer per annotator and state)."""
 
     def __init__(self, app: Any) -> None:
         self.app = app
+        self.answered: dict[int, int] = {}  # step id -> annotators who labelled it so far
         with app.state.session_factory() as session:
-            for n in range(3):
+            for n in range(6):
                 if session.scalar(select(User).where(User.name == f"labeller-{n}")) is None:
                     session.add(User(name=f"labeller-{n}", roles=["annotator"]))
             session.commit()
@@ -104,11 +108,15 @@ class Labeller:
             )
 
     def add(self, slug: str, step_id: int, answers: list[Any]) -> None:
-        """One label per answer, from different users: an action index, a vector, or None
-        for "unsure"."""
+        """One label per answer, from different users who have not labelled the state yet: an
+        action index, a vector, or None for "unsure"."""
+        first = self.answered.get(step_id, 0)
+        users = self.users[first : first + len(answers)]
+        assert len(users) == len(answers), "more labels on one state than labellers"
+        self.answered[step_id] = first + len(answers)
         with self.app.state.session_factory() as session:
             round_id = session.scalar(select(Step.round_id).where(Step.id == step_id))
-            for user, answer in zip(self.users, answers, strict=False):
+            for user, answer in zip(users, answers, strict=True):
                 vector = isinstance(answer, list | tuple)
                 session.add(
                     Label(

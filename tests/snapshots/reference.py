@@ -54,14 +54,21 @@ def reference_rows(
         ).all()
         labels = conn.execute(
             text(
-                "SELECT l.step_id, l.answer, l.action, l.action_vec FROM labels l "
-                "JOIN rounds r ON r.id = l.round_id "
-                "WHERE r.loop_id = :loop AND r.number <= :up AND l.id <= :max_label"
+                "SELECT l.step_id, l.answer, l.action, l.action_vec, l.user_id, l.span "
+                "FROM labels l JOIN rounds r ON r.id = l.round_id "
+                "WHERE r.loop_id = :loop AND r.number <= :up AND l.id <= :max_label "
+                "ORDER BY l.id"
             ),
             {"loop": loop_id, "up": up_to_round, "max_label": max_label_id},
         ).all()
+    # one vote per annotator and state: their direct answer, else their latest span copy
+    voting: dict[tuple[int, int], Any] = {}
+    for label in labels:
+        held = voting.get((label.step_id, label.user_id))
+        if held is None or held.span or not label.span:
+            voting[(label.step_id, label.user_id)] = label
     answers: dict[int, list[Any]] = defaultdict(list)
-    for step_id, answer, action, vec in labels:
+    for step_id, answer, action, vec, _user, _span in voting.values():
         if answer == "unsure":
             answers[step_id].append(None)
         else:

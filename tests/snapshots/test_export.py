@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import io
 import json
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -18,15 +19,21 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
-from sqlalchemy import text
+from sqlalchemy import select, text
 from typer.testing import CliRunner
 
 import expertloop.client as client_module
 from expertloop.cli import cli
 from expertloop.client import ApiError, Client
+from expertloop.ingest.models import Step
+from expertloop.loops.models import Loop
+from expertloop.loops.spec import spec_of
+from expertloop.queue.models import ANSWER_ACTION, Label
 from expertloop.shared import training_rows
 from expertloop.shared import training_set as ts
-from expertloop.snapshots.service import SnapshotChanged
+from expertloop.snapshots.content_hash import ContentHasher
+from expertloop.snapshots.models import Snapshot
+from expertloop.snapshots.service import SnapshotChanged, cutoff_of
 from tests.snapshots.conftest import (
     BASE,
     LATE_ROLLOUT,
@@ -229,6 +236,53 @@ def test_a_tampered_store_changes_no_export(
     for fmt in made:
         with pytest.raises(SnapshotChanged, match="v1"):
             client.get(f"{BASE}/snapshots/v1/export", params={"format": fmt}, headers=trainer)
+
+
+def test_a_version_made_before_one_vote_each_reads_back_as_it_was_hashed(
+    client, app, engine, settings, discrete_loop, labeller, trainer, tmp_path
+):
+    """Consensus gives each annotator one vote per state (a span copy beside its author's own
+    answer does not vote); a version made before counted every label, and once its stored file
+    is gone its rows are rebuilt the way they were hashed, not refused as altered."""
+    steps = labeller.learner_steps(SLUG, 1)
+    labeller.add(SLUG, steps[0], [1, 2])  # creep and hold from two annotators: a tie
+    with app.state.session_factory() as session:
+        round_id = session.scalar(select(Step.round_id).where(Step.id == steps[0]))
+        session.add(  # the first annotator's span copy of a hold answered on a later state
+            Label(
+                step_id=steps[0],
+                round_id=round_id,
+                user_id=labeller.users[0],
+                submission_id="later-answer.1",
+                answer=ANSWER_ACTION,
+                action=2,
+                span=True,
+            )
+        )
+        session.commit()
+    _snapshot(client, trainer, up_to_round=1)
+    made = rows_of(_get(client, trainer, format="jsonl"), "jsonl", tmp_path)
+    assert steps[0] not in {r["step_id"] for r in made}  # one vote each: a tie, left out
+    with app.state.session_factory() as session:  # the version as the service made it before
+        snapshot = session.scalar(select(Snapshot))
+        loop = session.get(Loop, snapshot.loop_id)
+        legacy = replace(cutoff_of(snapshot), one_vote_each=False)
+        spec = spec_of(loop)
+        hasher = ContentHasher(
+            n_features=spec.n_features, discrete=True, action_width=spec.action_width
+        )
+        for batch in ts.iter_batches(session, loop=loop, spec=spec, cutoff=legacy):
+            hasher.update(batch)
+        snapshot.manifest = {k: v for k, v in snapshot.manifest.items() if k != "votes"}
+        snapshot.content_sha256 = hasher.hexdigest()
+        session.commit()
+    for path in settings.snapshot_dir.rglob("*.parquet"):
+        path.unlink()
+    rows = rows_of(_get(client, trainer, format="jsonl"), "jsonl", tmp_path)
+    relabel = {r["step_id"]: r for r in rows}[steps[0]]
+    # every label voted: creep, hold and the span copy's hold
+    assert (relabel["expert_action"], relabel["label_count"]) == (2, 3)
+    assert len(rows) == len(made) + 1
 
 
 def _client(client, headers) -> Client:

@@ -49,6 +49,7 @@ def _label(session, step_id, round_id, user_id, answer, action, n):
 
 def test_members_sources_actions_and_cutoff(app, client, admin, uploader, make_user):
     _setup(client, admin, uploader)
+    make_user("annotator", name="third-voter")  # three annotators: one vote each per state
     from expertloop.auth.models import User
 
     with app.state.session_factory() as session:
@@ -61,7 +62,7 @@ def test_members_sources_actions_and_cutoff(app, client, admin, uploader, make_u
         a, b, c = learner_steps
         _label(session, a, round1.id, users[0], ANSWER_ACTION, 1, 1)
         _label(session, a, round1.id, users[1], ANSWER_ACTION, 1, 2)
-        _label(session, a, round1.id, users[1] if len(users) > 2 else users[0], ANSWER_ACTION, 2, 3)
+        _label(session, a, round1.id, users[2], ANSWER_ACTION, 2, 3)
         _label(session, b, round1.id, users[0], ANSWER_ACTION, 0, 4)
         _label(session, b, round1.id, users[1], ANSWER_ACTION, 2, 5)
         _label(session, c, round1.id, users[0], ANSWER_UNSURE, None, 6)
@@ -90,7 +91,7 @@ def test_members_sources_actions_and_cutoff(app, client, admin, uploader, make_u
         )
         assert {ts.SOURCES[i] for i in only_demos.source} == {"demonstration"}
         # a later label does not change the pinned version
-        _label(session, b, round1.id, users[0], ANSWER_ACTION, 0, 7)
+        _label(session, b, round1.id, users[2], ANSWER_ACTION, 0, 7)
         session.commit()
         assert len(ts.members(session, loop=loop, spec=spec, cutoff=cutoff)) == len(rows)
         newer = ts.members(

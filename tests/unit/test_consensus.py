@@ -5,7 +5,7 @@ import pytest
 from numpy.testing import assert_allclose, assert_array_equal
 from scipy.stats import median_abs_deviation
 
-from expertloop.shared.consensus import continuous_consensus, discrete_consensus
+from expertloop.shared.consensus import continuous_consensus, discrete_consensus, one_vote_each
 
 
 def test_majority_tie_unsure_and_empty_states_by_hand() -> None:
@@ -118,3 +118,40 @@ def test_continuous_is_invariant_to_label_order() -> None:
 def test_continuous_rejects_nan_votes() -> None:
     with pytest.raises(ValueError, match="finite"):
         continuous_consensus([0], [[np.nan]], [False], 1, [0.1])
+
+
+def test_one_vote_each_keeps_a_direct_answer_else_the_newest_span_copy() -> None:
+    # Hand-checked (one vote per annotator and state, README "Training sets"): labels in id order.
+    # state 7: annotator 1 answered directly (id 0), then two span copies (ids 1, 2): the direct
+    #          answer votes; annotator 2's single span copy (id 3) votes.
+    # state 8: annotator 1 has only span copies (ids 4, 6): the newest (id 6) votes; annotator 3's
+    #          direct answer (id 5) votes.
+    # state 9: one label: it votes.
+    state = [7, 7, 7, 7, 8, 8, 8, 9]
+    annotator = [1, 1, 1, 2, 1, 3, 1, 1]
+    span = [False, True, True, True, True, False, True, True]
+    assert_array_equal(
+        one_vote_each(state, annotator, span),
+        [True, False, False, True, False, True, True, True],
+    )
+    assert one_vote_each([], [], []).shape == (0,)
+
+
+def test_one_vote_each_matches_a_loop_reference() -> None:
+    # Slow, obvious reference: walk the labels in id order keeping, per (state, annotator), the
+    # latest label, except that a span copy never replaces a direct answer (the service stores
+    # at most one standing direct answer per annotator and state; here the latest one votes).
+    rng = np.random.default_rng(11)
+    n = 400
+    state = rng.integers(0, 30, n)
+    annotator = rng.integers(0, 4, n)
+    span = rng.random(n) < 0.6
+    chosen: dict[tuple[int, int], int] = {}
+    for i in range(n):
+        key = (int(state[i]), int(annotator[i]))
+        held = chosen.get(key)
+        if held is None or span[held] or not span[i]:
+            chosen[key] = i
+    expected = np.zeros(n, dtype=bool)
+    expected[list(chosen.values())] = True
+    assert_array_equal(one_vote_each(state, annotator, span), expected)
