@@ -638,7 +638,11 @@ def export(
         Path | None, typer.Option(help="Output file (default: LOOP-vN.FORMAT here).")
     ] = None,
     since: Annotated[
-        str | None, typer.Option(help="Only rows not identical in this earlier version (vN).")
+        str | None,
+        typer.Option(
+            help="Only rows not identical in this earlier version (vN); the default name is "
+            "then LOOP-vN-since-vM.FORMAT."
+        ),
     ] = None,
     url: Annotated[str, URL_OPTION] = "http://127.0.0.1:8000",
     token: Annotated[str, TOKEN_OPTION] = "",
@@ -647,10 +651,19 @@ def export(
     from tqdm import tqdm
 
     from .client import ApiError, Client
+    from .snapshots.names import download_name
 
-    # "latest" is resolved to its number once, so the name and the rows agree
+    # "latest" is resolved to its number once, so the name and the rows agree; an incremental
+    # export is named as one, never like the full version it would otherwise overwrite
     version = _over_http(url, token, lambda client: client.snapshot(loop, version))["version"]
-    target = out or Path(f"{loop}-{version}.{file_format}")
+    if since is not None:
+        earlier = since
+        since = _over_http(url, token, lambda client: client.snapshot(loop, earlier))["version"]
+    target = out or Path(
+        download_name(
+            loop, int(version[1:]), None if since is None else int(since[1:]), file_format
+        )
+    )
     with (
         Client(url, token) as client,
         tqdm(unit="B", unit_scale=True, desc=target.name) as bar,

@@ -35,6 +35,7 @@ from ..shared.row_batches import RowBatch, rows_not_in
 from . import export, files, stored_rows
 from .content_hash import HASH_SCHEME, ContentHasher
 from .models import Snapshot
+from .names import download_name
 
 LATEST = "latest"
 _VERSION = re.compile(r"^v([1-9][0-9]{0,8})$")
@@ -523,5 +524,6 @@ def export_filename(
     loop: Loop, snapshot: Snapshot, since: Snapshot | None, file_format: str
 ) -> str:
     """A download name such as tow-tractor-v3.parquet or tow-tractor-v3-since-v1.parquet."""
-    tail = "" if since is None else f"-since-v{since.version}"
-    return f"{loop.slug}-v{snapshot.version}{tail}.{file_format}"
+    return download_name(
+        loop.slug, snapshot.version, None if since is None else since.version, file_format
+    )

@@ -348,6 +348,45 @@ def test_cli_export_writes_the_file(client, discrete_loop, trainer, monkeypatch,
     assert not (tmp_path / "x.parquet").exists()
 
 
+def test_cli_names_an_incremental_export_as_one(
+    client, discrete_loop, labeller, trainer, monkeypatch, tmp_path
+):
+    """`export --since` used to write LOOP-vN.FORMAT, the full version's name, over a full
+    export pulled before; it takes the server's name for it, LOOP-vN-since-vM.FORMAT."""
+    steps = _labels(labeller)
+    _snapshot(client, trainer, up_to_round=1)
+    labeller.add(SLUG, steps[2], [2])
+    _snapshot(client, trainer, up_to_round=1)
+    real = httpx.Client
+
+    def through_test_app(*args: Any, **kwargs: Any) -> httpx.Client:
+        return real(*args, **{**kwargs, "transport": client._transport})
+
+    monkeypatch.setattr(client_module.httpx, "Client", through_test_app)
+    pulls = tmp_path / "pulls"
+    pulls.mkdir()
+    monkeypatch.chdir(pulls)
+    token = trainer["Authorization"].split(" ", 1)[1]
+    remote = ["--url", "http://testserver", "--token", token]
+    full = CliRunner().invoke(cli, ["export", "--loop", SLUG, "--format", "jsonl", *remote])
+    assert full.exit_code == 0, full.output
+    since = CliRunner().invoke(
+        cli, ["export", "--loop", SLUG, "--format", "jsonl", "--since", "v1", *remote]
+    )
+    assert since.exit_code == 0, since.output
+    assert sorted(p.name for p in pulls.iterdir()) == [
+        f"{SLUG}-v2-since-v1.jsonl",
+        f"{SLUG}-v2.jsonl",
+    ]
+    whole = rows_of((pulls / f"{SLUG}-v2.jsonl").read_bytes(), "jsonl", tmp_path)
+    added = rows_of((pulls / f"{SLUG}-v2-since-v1.jsonl").read_bytes(), "jsonl", tmp_path)
+    assert [r["step_id"] for r in added] == [steps[2]] and len(whole) > len(added)
+    missing = CliRunner().invoke(
+        cli, ["export", "--loop", SLUG, "--format", "jsonl", "--since", "v7", *remote]
+    )
+    assert missing.exit_code == 2 and "v7" in missing.output
+
+
 def _stored_rows(settings, version: int, tmp_path: Path) -> set[tuple[Any, ...]]:
     """Rows of a version's stored Parquet file, written in the pass that made the version."""
     [path] = settings.snapshot_dir.rglob(f"v{version}-*.parquet")
