@@ -39,6 +39,7 @@ from ..queue.models import ANSWER_UNSURE, Label
 from ..sampler import history, tuning
 from ..sampler.models import REASON_AUDIT, SelectedState, Selection
 from ..shared import training_set as ts
+from ..shared.consensus import one_vote_each
 from ..shared.current import is_current
 from ..shared.encode import FLOAT32_LE, stored_actions
 from . import annotators, compute, rates
@@ -250,10 +251,17 @@ def _labels(
             Label.action_vec,
             Label.learner_shown,
             Label.created_at,
+            Label.span,
         )
         .where(Label.round_id == rnd.id, is_current())
         .order_by(Label.id)
     ).all()
+    # each annotator's one vote on a state, as the training set counts it (a span copy beside
+    # their own answer there does not vote)
+    votes = one_vote_each(
+        [r.step_id for r in rows], [r.user_id for r in rows], [bool(r.span) for r in rows]
+    )
+    rows = [r for r, vote in zip(rows, votes, strict=True) if vote]
     step_ids = np.array([r.step_id for r in rows], dtype=np.int64)
     states, state_index = np.unique(step_ids, return_inverse=True)
     unsure = np.array([r.answer == ANSWER_UNSURE for r in rows], dtype=bool)

@@ -110,6 +110,7 @@ class LabelSpec:
     vector: list[float] | None = None
     unsure: bool = False
     at: datetime = T0
+    span: bool = False  # a span copy of an answer given on a later state (no queue item)
 
 
 def add_selection_and_labels(
@@ -171,7 +172,8 @@ def add_selection_and_labels(
                 vector = np.asarray(spec.vector, dtype=FLOAT32_LE).tobytes()
             session.add(
                 Label(
-                    item_id=items.get(spec.step_id),
+                    item_id=None if spec.span else items.get(spec.step_id),
+                    span=spec.span,
                     step_id=spec.step_id,
                     round_id=rnd.id,
                     user_id=spec.user_id,

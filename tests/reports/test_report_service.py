@@ -203,6 +203,55 @@ def test_shown_versus_hidden_matches_statsmodels_newcombe(app, world):
     assert_allclose([effect.lower, effect.upper], [lower, upper], rtol=1e-9)
 
 
+def test_a_span_copy_beside_its_authors_answer_is_no_vote_in_the_report(
+    app, client, admin, uploader, make_user
+):
+    """The report's agreement takes each annotator's vote as the training set does: their own
+    answer on a state, not a later span copy of another answer (it used to take the last)."""
+    slug = builders.create_loop(client, admin, {**DISCRETE_SPEC, "slug": "span-report"})
+    builders.open_round(client, admin, slug, "v1")
+    rng = np.random.default_rng(3)
+    keys = builders.upload_round(
+        client,
+        uploader,
+        slug=slug,
+        number=1,
+        features=rng.normal(size=(1, 6, 3)),
+        actions=np.zeros((1, 6), dtype=np.int64),
+        action_names=DISCRETE_SPEC["action_space"]["actions"],
+        prefix="sp",
+    )
+    steps = builders.step_ids(app, slug, keys, 6)[0].tolist()
+    for name in ("ann-x", "ann-y"):
+        make_user("annotator", name=name)
+    ids = builders.user_ids(app, ["ann-x", "ann-y"])
+    x, y = ids["ann-x"], ids["ann-y"]
+    answers = [0, 1, 2, 0]  # both give these on steps 0..3: full agreement, by hand
+    labels = [
+        builders.LabelSpec(steps[i], who, action=a) for who in (x, y) for i, a in enumerate(answers)
+    ]
+    # ann-x then answers step 5 with hold, copied onto steps 3 and 4 as span labels
+    labels += [builders.LabelSpec(steps[5], x, action=2)]
+    labels += [builders.LabelSpec(steps[s], x, action=2, span=True) for s in (3, 4)]
+    builders.add_selection_and_labels(
+        app,
+        slug=slug,
+        number=1,
+        audit=[],
+        ranked=steps[:4] + [steps[5]],
+        shown=set(),
+        labels=labels,
+    )
+    report = _report(app, slug)
+    # four states with two votes each, all equal: Krippendorff's alpha and Cohen's kappa are 1
+    # (docs/references.md, "Krippendorff's alpha", "Cohen's kappa": observed disagreement 0)
+    assert report.agreement.n_states == 4 and report.agreement.n_annotators == 2
+    assert report.agreement.krippendorff[0].alpha == pytest.approx(1.0)
+    assert report.agreement.cohen_kappa == pytest.approx(1.0)
+    rows = {a.name: a for a in report.annotators}
+    assert (rows["ann-x"].compared, rows["ann-x"].agreeing) == (4, 4)
+
+
 def test_too_few_audit_labels_are_said_not_quoted(app, client, admin, uploader, make_user):
     world = build_discrete(app, client, admin, uploader, make_user, mode="three", n_audit=12)
     audit = _report(app, world.slug).audit.disagreement
