@@ -13,6 +13,7 @@ from sqlalchemy import Float, Integer, Select, bindparam, func, select
 from sqlalchemy.orm import Session, aliased
 
 from ..errors import NotFound
+from ..limits import shown
 from ..loops.models import Loop, Round
 from ..loops.spec import LoopSpec, spec_of
 from ..shared.encode import FLOAT32_LE
@@ -66,7 +67,7 @@ def get_rollout(session: Session, *, loop: Loop, key: str) -> Rollout:
     """A loop's rollout by key, or NotFound."""
     found = session.scalar(select(Rollout).where(Rollout.loop_id == loop.id, Rollout.key == key))
     if found is None:
-        raise NotFound(f"loop '{loop.slug}' has no rollout '{key}'")
+        raise NotFound(f"loop '{loop.slug}' has no rollout '{shown(key)}'")
     return found
 
 

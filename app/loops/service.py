@@ -10,6 +10,7 @@ from sqlalchemy.orm import Session
 
 from ..errors import Conflict, InvalidInput, NotFound
 from ..ingest.models import Rollout
+from ..limits import shown
 from ..models import utcnow
 from .log_mapping import LogMapping, check_against_loop
 from .models import Loop, Round
@@ -53,7 +54,7 @@ def get_loop(session: Session, *, slug: str) -> Loop:
     """The loop with this slug, or NotFound."""
     loop = session.scalar(_loop_by_slug(), {"slug": slug})
     if loop is None:
-        raise NotFound(f"no loop with slug '{slug}'")
+        raise NotFound(f"no loop with slug '{shown(slug)}'")
     return loop
 
 

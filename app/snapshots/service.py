@@ -24,6 +24,7 @@ from sqlalchemy.orm import Session
 
 from ..auth.models import User
 from ..errors import Conflict, InvalidInput, NotFound
+from ..limits import shown
 from ..loops import service as loops_service
 from ..loops.models import Loop, Round
 from ..loops.spec import LoopSpec, spec_of
@@ -318,7 +319,7 @@ def get_snapshot(session: Session, *, loop: Loop, version: str) -> Snapshot:
     match = _VERSION.match(version)
     if match is None:
         raise InvalidInput(
-            f"version must be 'latest' or 'v' and a number (v1, v2, ...), got '{version}'"
+            f"version must be 'latest' or 'v' and a number (v1, v2, ...), got '{shown(version)}'"
         )
     found = session.scalar(query.where(Snapshot.version == int(match.group(1))))
     if found is None:
