@@ -214,6 +214,14 @@ def float_vectors(
     return Vectors(values, present)
 
 
+def members_differ(found: int, expected: int) -> str:
+    """Why an ensemble row is refused: its member count differs from the earlier rows'."""
+    return (
+        f"{found} members where earlier rows have {expected}; every row must have the same "
+        "number of members"
+    )
+
+
 def float_matrices(column: pa.ChunkedArray, name: str, width: int) -> tuple[Vectors, int]:
     """A list-of-lists column (members x width) as float32 arrays; all rows share the member count.
 
@@ -232,10 +240,12 @@ def float_matrices(column: pa.ChunkedArray, name: str, width: int) -> tuple[Vect
     if not present.any():
         return Vectors(np.zeros((len(combined), 1, width), np.float32), present), 0
     members = pc.list_value_length(combined).to_numpy(zero_copy_only=False)
-    counts = set(np.unique(members[present]).tolist())
-    if len(counts) != 1:
-        raise InvalidInput(f"column {name}: every row must have the same number of members")
-    n_members = int(counts.pop())
+    rows = np.flatnonzero(present)
+    n_members = int(members[rows[0]])
+    other = members[rows] != n_members
+    if other.any():
+        i = int(rows[_first(other)])
+        raise fail(i, name, members_differ(int(members[i]), n_members))
     if n_members < 2:
         raise InvalidInput(f"column {name}: an ensemble needs at least 2 members")
     inner = pc.list_flatten(combined.filter(pa.array(present)))

@@ -31,7 +31,6 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from ..errors import InvalidInput
 from ..loops.spec import LoopSpec
 from . import columns as col
 from . import stream_read
@@ -531,8 +530,9 @@ class _Stager:
                 if size == 0:  # no row of this table has an ensemble
                     value = None
                 elif self.ensemble_size and size != self.ensemble_size:
-                    raise InvalidInput(
-                        f"column {name}: every row must have the same number of members"
+                    first = int(np.flatnonzero(value.present)[0])
+                    raise col.fail(
+                        offset + first, name, col.members_differ(size, self.ensemble_size)
                     )
                 else:
                     self.ensemble_size = size

@@ -280,6 +280,7 @@ def test_a_refusal_in_a_late_batch_names_the_row_and_changes_nothing(
     response = send(client, uploader, data, f"late.{kind}")
     assert response.status_code == 422, response.text
     assert response.json()["detail"] == expected
+    assert expected.startswith(("row ", "line ")), expected  # the place is named
     assert store_contents(engine) == before
     assert leftovers(settings) == []
 

@@ -340,6 +340,16 @@ CASES: list[tuple[str, str, Callable[[], bytes], int, str]] = [
         r"row 1, column gap_m: -3\.5e\+38 is beyond float32's range",
     ),
     (
+        "ensemble-members-differ",
+        "a.jsonl",
+        lambda: lines(
+            line(learner_ensemble=[[1.0, 0.0, 0.0]] * 2),
+            line(step=1, time_s=0.1, learner_ensemble=[[1.0, 0.0, 0.0]] * 3),
+        ),
+        422,
+        r"row 2, column learner_ensemble: 3 members where earlier rows have 2",
+    ),
+    (
         "int-feature-column",
         "a.parquet",
         lambda: table(features=..., gap_m=[1, 2**40], speed=[0.0, 0.0], occluded=[0.0, 0.0]),
