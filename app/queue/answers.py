@@ -14,9 +14,10 @@ from ..loops.schemas import LoopSettings
 from ..loops.spec import LoopSpec
 from ..shared.encode import FLOAT32_LE
 from .models import ANSWER_ACTION, ANSWER_UNSURE, Label
+from .schemas import SUBMISSION_ID_PATTERN
 
 # Room is left in the 64-character column for the ".N" suffix of span labels.
-SUBMISSION_ID = re.compile(r"^[A-Za-z0-9_-]{8,48}$")
+SUBMISSION_ID = re.compile(SUBMISSION_ID_PATTERN)
 MAX_SECONDS_SPENT = 86_400.0
 
 

@@ -7,7 +7,7 @@ from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
-from ..queue.schemas import BenchStep
+from ..queue.schemas import SUBMISSION_ID_SCHEMA, BenchStep
 
 
 class MyLabel(BaseModel):
@@ -33,7 +33,7 @@ class MyLabelList(BaseModel):
 class UndoCreate(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
-    submission_id: str = Field(max_length=64)
+    submission_id: str = Field(max_length=64, json_schema_extra=SUBMISSION_ID_SCHEMA)
 
 
 class UndoRead(BaseModel):
@@ -47,7 +47,7 @@ class ChangeCreate(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
 
-    submission_id: str = Field(max_length=64)
+    submission_id: str = Field(max_length=64, json_schema_extra=SUBMISSION_ID_SCHEMA)
     answer: Literal["action", "unsure"]
     action: int | list[float] | None = None
 

@@ -3,9 +3,10 @@
 from __future__ import annotations
 
 from collections.abc import Iterator
+from typing import Annotated
 
 from anyio import CancelScope, to_thread
-from fastapi import APIRouter, Query, Response, status
+from fastapi import APIRouter, Path, Query, Response, status
 from fastapi.responses import StreamingResponse
 from starlette.types import Receive, Scope, Send
 
@@ -24,6 +25,11 @@ from .schemas import (
 )
 
 router = APIRouter(prefix="/api/loops", tags=["snapshots"])
+
+# The versions service.get_snapshot takes. It refuses any other with a message of its own, so
+# the pattern is stated in the schema only, not checked by FastAPI before it.
+VERSION_SCHEMA = {"pattern": r"^(latest|v[1-9][0-9]{0,8})$"}
+Version = Annotated[str, Path(description='"vN" or "latest".', json_schema_extra=VERSION_SCHEMA)]
 
 
 class _ClosingStream(StreamingResponse):
@@ -97,7 +103,7 @@ def list_snapshots(session: SessionDep, _: TrainerDep, loop: LoopDep) -> Snapsho
 
 @router.get("/{slug}/snapshots/{version}", response_model=SnapshotDetail)
 def read_snapshot(
-    version: str, session: SessionDep, _: TrainerDep, loop: LoopDep
+    version: Version, session: SessionDep, _: TrainerDep, loop: LoopDep
 ) -> SnapshotDetail:
     """One snapshot ("vN" or "latest") with its manifest."""
     return SnapshotDetail.of(service.get_snapshot(session, loop=loop, version=version))
@@ -117,7 +123,7 @@ def read_snapshot(
     },
 )
 def export_snapshot(
-    version: str,
+    version: Version,
     session: SessionDep,
     sessions: SessionFactoryDep,
     settings: SettingsDep,
@@ -125,7 +131,9 @@ def export_snapshot(
     loop: LoopDep,
     format: ExportFormat = Query("parquet", description="parquet, npz or jsonl"),
     since: str | None = Query(
-        None, description="An earlier version (vN): only rows not identical in it."
+        None,
+        description="An earlier version (vN or latest): only rows not identical in it.",
+        json_schema_extra=VERSION_SCHEMA,
     ),
 ) -> StreamingResponse:
     """Stream a snapshot's rows as Parquet, .npz or JSON Lines."""

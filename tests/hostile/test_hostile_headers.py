@@ -216,3 +216,66 @@ def test_answers_that_are_not_json_are_declared_with_their_own_content_type(
     out = client.post("/logout", headers=admin, follow_redirects=False)
     assert out.status_code == 303
     _declared(schema, "post", "/logout", out)
+
+
+def test_the_schema_states_the_submission_id_and_version_rules_the_service_applies(client, admin):
+    """Found by fuzzing (positive_data_acceptance): the schema let any text up to 64 characters
+    be a submission id and any text a snapshot version, so schema-valid requests were refused."""
+    import re
+
+    from expertloop.errors import InvalidInput
+    from expertloop.loops.schemas import LoopSettings
+    from expertloop.queue.answers import check_request
+    from tests.helpers import DISCRETE_SPEC
+
+    schema = client.get("/openapi.json").json()
+    bodies = schema["components"]["schemas"]
+    for body in ("LabelCreate", "UndoCreate", "ChangeCreate"):
+        pattern = bodies[body]["properties"]["submission_id"]["pattern"]
+        for sent in (
+            "abcd-123",
+            "A" * 48,
+            "a_b-c" * 9,
+            "abc1234",
+            "A" * 49,
+            "abcd 123",
+            "abcd12é3",
+        ):
+            try:
+                check_request(
+                    LoopSettings(),
+                    submission_id=sent,
+                    answer="unsure",
+                    span_steps=0,
+                    seconds_spent=None,
+                )
+                taken = True
+            except InvalidInput:
+                taken = False
+            assert taken == bool(re.search(pattern, sent)), (body, sent)
+
+    slug = DISCRETE_SPEC["slug"]
+    assert client.post("/api/loops", json=DISCRETE_SPEC, headers=admin).status_code == 201
+    for template in (
+        "/api/loops/{slug}/snapshots/{version}",
+        "/api/loops/{slug}/snapshots/{version}/export",
+    ):
+        parameters = schema["paths"][template]["get"]["parameters"]
+        pattern = next(p for p in parameters if p["name"] == "version")["schema"]["pattern"]
+        for version in (
+            "v1",
+            "v999999999",
+            "latest",
+            "v0",
+            "v01",
+            "V1",
+            "v1000000000",
+            "v١",
+            "Latest",
+        ):
+            got = client.get(template.format(slug=slug, version=version), headers=admin)
+            # no snapshot exists: a version the service takes is not found, any other refused
+            assert got.status_code == (404 if re.search(pattern, version) else 422), (
+                template,
+                version,
+            )
