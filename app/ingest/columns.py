@@ -13,13 +13,11 @@ import pyarrow.compute as pc
 
 from ..errors import InvalidInput
 from ..limits import INT64_MAX, shown
+from ..shared.encode import FLOAT32_MAX
 
 # float32 has a 24-bit significand: integers up to 2**24 in magnitude are exact, some beyond are
 # not (docs/references.md, "Hostile input"); larger integers are refused, not rounded silently.
 FLOAT32_EXACT_INTEGER = 2**24
-# float32's largest finite value (docs/references.md, "Hostile input"): a finite float beyond it
-# would be stored as infinity, so it is refused as the infinities sent as such are.
-FLOAT32_MAX = float(np.finfo(np.float32).max)
 
 
 @dataclass

@@ -4,10 +4,12 @@ from __future__ import annotations
 
 from typing import Annotated, Any, Literal
 
+import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from ..limits import PlainText, RequestBody, UtcDatetime
 from ..shared.contract import OPTIONAL_COLUMNS, REQUIRED_COLUMNS
+from ..shared.encode import FLOAT32_MAX
 from .log_mapping import LogMapping, check_against_loop
 
 NAME_PATTERN = r"^[a-z][a-z0-9_]{0,62}$"
@@ -164,6 +166,27 @@ class LoopCreate(RequestBody):
         if clash:
             raise ValueError(f"feature names {clash} are column names of the rollout file")
         return features
+
+    @field_validator("action_space")
+    @classmethod
+    def _bounds_in_float32(cls, space: ActionSpace) -> ActionSpace:
+        """Actions are stored as float32: a bound beyond its range let an answer within the
+        bounds be stored as infinity (and every snapshot and report of the loop fail), and
+        bounds equal as float32 leave the dimension no range. Checked when a loop is created,
+        so that loops stored before still read."""
+        for d in getattr(space, "dimensions", ()):
+            for bound in (d.low, d.high):
+                if abs(bound) > FLOAT32_MAX:
+                    raise ValueError(
+                        f"dimension {d.name}: bound {bound:g} is beyond float32's range "
+                        f"(±{FLOAT32_MAX:.7g}), in which actions are stored"
+                    )
+            if not np.float32(d.low) < np.float32(d.high):
+                raise ValueError(
+                    f"dimension {d.name}: low ({d.low}) and high ({d.high}) are the same as "
+                    "float32, in which actions are stored"
+                )
+        return space
 
     @model_validator(mode="after")
     def _uncertainty_method(self) -> LoopCreate:

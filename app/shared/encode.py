@@ -8,6 +8,9 @@ import numpy as np
 from numpy.typing import DTypeLike
 
 FLOAT32_LE = np.dtype("<f4")
+# float32's largest finite value (docs/references.md, "Hostile input"): features, actions and
+# learner outputs are stored as float32, so a finite number beyond it would become infinity
+FLOAT32_MAX = float(np.finfo(np.float32).max)
 
 
 def rows_to_bytes(values: np.ndarray) -> list[bytes]:

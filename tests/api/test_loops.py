@@ -68,6 +68,30 @@ BAD_SPECS = [
         ),
         "low",
     ),
+    # actions are stored as float32 (docs/references.md, "Hostile input": largest finite value
+    # about 3.4028235e38; 1 and 1 + 1e-9 are the same float32)
+    (
+        _bad(
+            lambda s: s.update(
+                action_space={
+                    "kind": "continuous",
+                    "dimensions": [{"name": "v", "low": -1e300, "high": 1e300}],
+                }
+            )
+        ),
+        "dimension v: bound -1e+300 is beyond float32's range",
+    ),
+    (
+        _bad(
+            lambda s: s.update(
+                action_space={
+                    "kind": "continuous",
+                    "dimensions": [{"name": "v", "low": 1.0, "high": 1.000000001}],
+                }
+            )
+        ),
+        "are the same as float32",
+    ),
     (_bad(lambda s: s.update(settings={"labels_per_state": 0})), "labels_per_state"),
     (_bad(lambda s: s.update(settings={"no_such_setting": 1})), "no_such_setting"),
 ]
