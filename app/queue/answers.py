@@ -12,7 +12,7 @@ import numpy as np
 from ..errors import InvalidInput
 from ..loops.schemas import LoopSettings
 from ..loops.spec import LoopSpec
-from ..shared.encode import FLOAT32_LE
+from ..shared.encode import FLOAT32_LE, FLOAT32_MAX
 from .models import ANSWER_ACTION, ANSWER_UNSURE, Label
 from .schemas import SUBMISSION_ID_PATTERN
 
@@ -56,6 +56,11 @@ def check_answer(spec: LoopSpec, *, answer: str, action: Any) -> tuple[int | Non
         name, unit = spec.action_names[i], spec.action_units[i]
         if not math.isfinite(value):
             raise InvalidInput(f"action[{i}] ({name}): must be a finite number")
+        if abs(value) > FLOAT32_MAX:  # within the bounds of a loop stored with wider ones
+            raise InvalidInput(
+                f"action[{i}] ({name}): {value:g} is beyond float32's range "
+                f"(±{FLOAT32_MAX:.7g}), in which actions are stored"
+            )
         if not spec.low[i] <= value <= spec.high[i]:
             raise InvalidInput(
                 f"action[{i}] ({name}): {value:g} is outside its bounds "

@@ -3,12 +3,13 @@ idempotent submits, k labels from k annotators, span labels, and refusals that c
 
 from __future__ import annotations
 
+import json
 from dataclasses import replace
 from datetime import UTC, datetime, timedelta
 
 import numpy as np
 import pytest
-from sqlalchemy import event, select, update
+from sqlalchemy import event, select, text, update
 
 from expertloop.errors import Conflict, InvalidInput, NotFound
 from expertloop.ingest.models import Step
@@ -263,6 +264,35 @@ def test_refused_answers_name_the_field_and_change_nothing(
     sid = kwargs.pop("sid", "refused-answer-1")
     with pytest.raises(InvalidInput, match=message):
         answer(session, a, got.item.id, sid, slug=slug, **kwargs)
+    assert store_contents(engine) == before
+
+
+def test_an_answer_beyond_float32_is_refused_on_a_loop_stored_with_wider_bounds(
+    make_loop, session, annotators, engine
+):
+    """Loops are created with bounds within float32's range; one stored before that rule may
+    have wider ones, and an answer within them but beyond float32 (docs/references.md,
+    "Hostile input": largest finite about 3.4028235e38) was stored as infinity, failing every
+    snapshot and report of the loop afterwards."""
+    slug = make_loop(CONTINUOUS_SPEC)
+    wide = {
+        "kind": "continuous",
+        "dimensions": [
+            {"name": "speed_cmd", "low": -1e300, "high": 1e300, "unit": "m/s"},
+            {"name": "curvature", "low": -0.2, "high": 0.2, "unit": "1/m"},
+        ],
+    }
+    with engine.begin() as conn:  # the row as a loop created before the rule was stored
+        conn.execute(
+            text("UPDATE loops SET action_space = :space WHERE slug = :slug"),
+            {"space": json.dumps(wide), "slug": slug},
+        )
+    session.expire_all()
+    a = annotators["a"]
+    got = claim(session, a, slug=slug)
+    before = store_contents(engine)
+    with pytest.raises(InvalidInput, match=r"action\[0\] \(speed_cmd\): 1e\+299 is beyond float32"):
+        answer(session, a, got.item.id, "beyond-float32-1", action=[1e299, 0.0], slug=slug)
     assert store_contents(engine) == before
 
 
