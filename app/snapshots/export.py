@@ -45,6 +45,8 @@ import json
 import tempfile
 import zipfile
 from collections.abc import Callable, Iterable, Iterator
+from dataclasses import dataclass
+from functools import partial
 from pathlib import Path
 from typing import IO, Any
 
@@ -395,8 +397,14 @@ class _SpooledText:
         self.codes.add(to_global[codes])
 
     def names(self) -> np.ndarray:
-        width = max([1, *(len(v) for v in self.table)])
-        return np.array(list(self.table), dtype=f"<U{width}")
+        return text_table(self.table)
+
+
+def text_table(names: Iterable[str]) -> np.ndarray:
+    """Distinct names as a fixed-width string array: the width of a text member's values."""
+    listed = list(names)
+    width = max([1, *(len(v) for v in listed)])
+    return np.array(listed, dtype=f"<U{width}")
 
 
 def _npy_header(dtype: np.dtype[Any], shape: tuple[int, ...]) -> bytes:
@@ -406,13 +414,26 @@ def _npy_header(dtype: np.dtype[Any], shape: tuple[int, ...]) -> bytes:
     return out.getvalue()
 
 
+@dataclass(frozen=True)
+class NpzMember:
+    """One .npy member of an .npz export: its dtype and shape, and arrays whose bytes, one
+    after another, are its body (made only when the member is written)."""
+
+    dtype: np.dtype[Any]
+    shape: tuple[int, ...]
+    parts: Callable[[], Iterator[np.ndarray]]
+
+
 def npz_chunks(
     batches: Iterable[RowBatch],
     spec: LoopSpec,
     metadata: dict[str, Any],
     spool_dir: Path | None = None,
 ) -> Iterator[bytes]:
-    """A .npz archive of one .npy member per column, plus "manifest" (a 0-d JSON string)."""
+    """A .npz archive of one .npy member per column, plus "manifest" (a 0-d JSON string).
+
+    A zip holds its members one after another, so the rows' columns are spooled to temporary
+    files first and copied out member by member (`npz_archive`)."""
     action_dtype = "<i8" if spec.is_discrete else "<f4"
     fixed = {
         "step_id": _SpooledColumn("<i8", None, spool_dir),
@@ -446,44 +467,58 @@ def npz_chunks(
             rollouts, rollout_code = np.unique(batch.rollout_id, return_inverse=True)
             text["rollout"].add(rollout_code, [batch.rollout_keys[i] for i in rollouts.tolist()])
             rows += len(batch)
-        yield from _zip_members(fixed, text, rows, metadata)
+        members = {
+            **{
+                name: NpzMember(
+                    column.dtype, column.shape(rows), partial(_spooled, column.file, column.dtype)
+                )
+                for name, column in fixed.items()
+            },
+            **{
+                name: NpzMember(
+                    (names := column.names()).dtype,
+                    (rows,),
+                    partial(_spooled_names, column.codes.file, names),
+                )
+                for name, column in text.items()
+            },
+        }
+        yield from npz_archive(members, metadata)
     finally:
-        for column in [*fixed.values(), *(t.codes for t in text.values())]:
-            column.file.close()
+        for spooled in [*fixed.values(), *(t.codes for t in text.values())]:
+            spooled.file.close()
 
 
-def _zip_members(
-    fixed: dict[str, _SpooledColumn],
-    text: dict[str, _SpooledText],
-    rows: int,
-    metadata: dict[str, Any],
-) -> Iterator[bytes]:
+def _spooled(file: IO[bytes], dtype: np.dtype[Any]) -> Iterator[np.ndarray]:
+    file.seek(0)
+    while chunk := file.read(_COPY_BYTES):  # whole values: the size is a multiple of 8
+        yield np.frombuffer(chunk, dtype=dtype)
+
+
+def _spooled_names(codes: IO[bytes], names: np.ndarray) -> Iterator[np.ndarray]:
+    rows_per_chunk = max(1, _COPY_BYTES // names.dtype.itemsize)
+    codes.seek(0)
+    while chunk := codes.read(4 * rows_per_chunk):
+        yield names[np.frombuffer(chunk, dtype="<i4")]
+
+
+def npz_archive(members: dict[str, NpzMember], metadata: dict[str, Any]) -> Iterator[bytes]:
+    """The .npz archive of `members` (one per export column, in `COLUMNS` order) and the
+    manifest, a piece per part of a member."""
     sink = _Sink()
     with zipfile.ZipFile(sink, mode="w", compression=zipfile.ZIP_STORED) as archive:
         for name in COLUMNS:
+            column = members[name]
             info = zipfile.ZipInfo(f"{name}.npy", date_time=_ZIP_TIME)
-            if name in fixed:
-                column = fixed[name]
-                header = _npy_header(column.dtype, column.shape(rows))
-                info.file_size = len(header) + column.file.tell()
-                with archive.open(info, mode="w") as member:
-                    member.write(header)
-                    column.file.seek(0)
-                    while chunk := column.file.read(_COPY_BYTES):
-                        member.write(chunk)
-                        yield sink.take()
-            else:
-                names = text[name].names()
-                header = _npy_header(names.dtype, (rows,))
-                info.file_size = len(header) + rows * names.dtype.itemsize
-                codes = text[name].codes.file
-                rows_per_chunk = max(1, _COPY_BYTES // names.dtype.itemsize)
-                with archive.open(info, mode="w") as member:
-                    member.write(header)
-                    codes.seek(0)
-                    while chunk := codes.read(4 * rows_per_chunk):
-                        member.write(names[np.frombuffer(chunk, dtype="<i4")].tobytes())
-                        yield sink.take()
+            header = _npy_header(column.dtype, column.shape)
+            # the size is known before the body: zipfile then decides on ZIP64 up front
+            info.file_size = len(header) + int(np.prod(column.shape)) * column.dtype.itemsize
+            with archive.open(info, mode="w") as member:
+                member.write(header)
+                for part in column.parts():
+                    body = np.ascontiguousarray(part, dtype=column.dtype).reshape(-1)
+                    member.write(body.view(np.uint8).data)
+                    yield sink.take()
             yield sink.take()
         manifest = np.array(json.dumps(metadata, sort_keys=True))
         info = zipfile.ZipInfo("manifest.npy", date_time=_ZIP_TIME)

@@ -399,9 +399,10 @@ def export_chunks(
 
     Rows come from the versions' stored Parquet files under `files_dir` where they are there
     (app.snapshots.files): a full Parquet export streams its file as it is; other formats and
-    incremental exports decode the files (app.snapshots.stored_rows). A version whose file is
-    missing is read from the store, and a full Parquet export stores its file on the way.
-    .npz exports spool their columns under `spool_dir`.
+    incremental exports decode the files (app.snapshots.stored_rows; a full .npz export a column
+    at a time). A version whose file is missing is read from the store, and a full Parquet
+    export stores its file on the way. .npz exports of rows that arrive in batches (from the
+    store, or incremental) spool their columns under `spool_dir`.
 
     Reading the store takes a session of its own from `sessions`, opened with the first piece
     and closed with the stream (taken to the end, or closed early by a client that went away),
@@ -429,6 +430,10 @@ def export_chunks(
             if file_format == "parquet" and older is None:
                 # no stored file when the request came: rebuilt, and stored on the way
                 yield from _stored_on_the_way(*sources.in_store(newer.id), newer.path)
+                return
+            stored = sources.stored(newer) if file_format == "npz" and older is None else None
+            if stored is not None:  # read a column at a time, nothing spooled
+                yield from stored.npz(metadata)
                 return
             rows = sources.rows(newer, older)
             yield from _encoded(rows, spec, metadata, file_format, spool_dir)
@@ -462,7 +467,8 @@ class _RowSources:
     def _from_store(self, version: _Version, *, with_features: bool) -> Iterator[RowBatch]:
         return _store_rows(*self.in_store(version.id), with_features=with_features)
 
-    def _stored(self, version: _Version) -> stored_rows.StoredRows | None:
+    def stored(self, version: _Version) -> stored_rows.StoredRows | None:
+        """The version's stored file, opened (closed with the stack), or None."""
         opened = stored_rows.open_stored(version.path, self._spec)
         if opened is not None:
             self._stack.callback(opened.close)
@@ -470,12 +476,12 @@ class _RowSources:
 
     def rows(self, newer: _Version, older: _Version | None) -> Iterator[RowBatch]:
         """The rows of `newer`, or with `older` those that have no identical row in it."""
-        newer_file = self._stored(newer)
+        newer_file = self.stored(newer)
         if older is None:
             if newer_file is not None:
                 return newer_file.batches()
             return self._from_store(newer, with_features=True)
-        older_file = self._stored(older)
+        older_file = self.stored(older)
         older_rows = (
             older_file.batches(with_features=False)
             if older_file is not None

@@ -19,11 +19,13 @@ from __future__ import annotations
 import hashlib
 import threading
 from bisect import bisect_right
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from concurrent.futures import Future
 from contextlib import ExitStack
+from functools import partial
 from io import BufferedReader
 from pathlib import Path
+from typing import Any, TypeVar
 
 import numpy as np
 import pyarrow as pa
@@ -33,13 +35,16 @@ from ..loops.spec import LoopSpec
 from ..shared.arrow_columns import dictionary_codes, fixed_width_floats, numbers
 from ..shared.overlap import LANES, mapped_ahead
 from ..shared.row_batches import SOURCES, RowBatch, rows_not_in
-from . import files
+from . import export, files
 from .export import COLUMNS
 
 # the text columns, read as dictionaries: a row group holds a few distinct values of each
 TEXT_COLUMNS = ("source", "learner_version", "rollout")
 # row groups decoded ahead of the export's encoder
 DECODE_AHEAD = 1
+T = TypeVar("T")
+# an .npz member's dtype, shape and decoder of a row group's Arrow array
+_Column = tuple[str, tuple[int, ...], Callable[[pa.Array], np.ndarray]]
 
 
 class StoredRows:
@@ -108,36 +113,122 @@ class StoredRows:
         the SHA-256 written beside it; the last batch is only given once they do.
         """
         names = [c for c in COLUMNS if with_features or c != "features"]
+
+        def decoded(index: int) -> RowBatch:
+            return self._decoded("batches", index, names)
+
+        def pieces() -> Iterator[RowBatch]:
+            groups = range(self._reader("batches").num_row_groups)
+            # decoded on a lane, a row group ahead: one thread's heap serves every export's
+            # Arrow buffers (the request's next piece may run on any of the server's threads)
+            return mapped_ahead(groups, decoded, depth=DECODE_AHEAD, name="stored-rows")
+
+        return self._verified(pieces)
+
+    def npz(self, metadata: dict[str, Any]) -> Iterator[bytes]:
+        """The file's .npz export (app.snapshots.export), read a column at a time.
+
+        Parquet keeps each column's values together, so every member of the archive is decoded
+        straight into its place, a row group at a time, where rows that arrive a batch at a time
+        must first be spooled to disk column by column. Checked like `batches`: the archive's
+        last piece is only given once the file's SHA-256 matches.
+        """
+        return self._verified(lambda: export.npz_archive(self._npz_members(), metadata))
+
+    def _npz_members(self) -> dict[str, export.NpzMember]:
+        reader = self._reader("npz")
+        rows = reader.metadata.num_rows
+        spec = self._spec
+        action: _Column = (
+            ("<i8", (rows,), _integers)
+            if spec.is_discrete
+            else (
+                "<f4",
+                (rows, spec.action_width),
+                partial(fixed_width_floats, width=spec.action_width),
+            )
+        )
+        fixed: dict[str, _Column] = {
+            "step_id": ("<i8", (rows,), _integers),
+            "features": (
+                "<f4",
+                (rows, spec.n_features),
+                partial(fixed_width_floats, width=spec.n_features),
+            ),
+            "expert_action": action,
+            "round": ("<i8", (rows,), _integers),
+            "step": ("<i8", (rows,), _integers),
+            "label_count": ("<i8", (rows,), _integers),
+            "agreement": ("<f8", (rows,), partial(numbers, dtype=np.float64)),
+        }
+        members = {
+            name: export.NpzMember(np.dtype(dtype), shape, partial(self._parts, name, decode))
+            for name, (dtype, shape, decode) in fixed.items()
+        }
+        for name in TEXT_COLUMNS:
+            table = export.text_table(self._text_values(name) if rows else [])
+            members[name] = export.NpzMember(
+                table.dtype, (rows,), partial(self._parts, name, partial(_text, dtype=table.dtype))
+            )
+        return members
+
+    def _column(self, role: str, index: int, name: str) -> Iterator[pa.Array]:
+        table = self._reader(role).read_row_group(index, columns=[name], use_threads=False)
+        return iter(table.column(0).chunks)
+
+    def _parts(self, name: str, decode: Callable[[pa.Array], np.ndarray]) -> Iterator[np.ndarray]:
+        """One column's values a row group at a time, decoded on a lane a row group ahead."""
+
+        def decoded(index: int) -> list[np.ndarray]:
+            return [decode(chunk) for chunk in self._column("npz-parts", index, name)]
+
+        groups = range(self._reader("npz").num_row_groups)
+        for parts in mapped_ahead(groups, decoded, depth=DECODE_AHEAD, name="stored-rows"):
+            yield from parts
+
+    def _text_values(self, name: str) -> list[str]:
+        """The distinct values a text column's rows hold ("" for none): what sets the width of
+        its member, as `export.npz_chunks` finds it (every row source's name, once any row is
+        there)."""
+        values: dict[str, None] = {}
+        for index in range(self._reader("npz").num_row_groups):
+            for chunk in self._column("npz", index, name):
+                codes, names = dictionary_codes(chunk, name=name, missing=True)
+                for code in np.unique(codes).tolist():
+                    values[(names[code] or "") if code >= 0 else ""] = None
+        if name != "source":
+            return list(values)
+        unknown = set(values) - set(SOURCES)
+        if unknown:
+            raise ValueError(f"unknown row sources {sorted(unknown)} in the file")
+        return list(SOURCES)
+
+    def _verified(self, pieces: Callable[[], Iterator[T]]) -> Iterator[T]:
+        """What `pieces()` gives, the last piece held back until the file's SHA-256, computed
+        meanwhile on a lane of its own, matches (decoding starts inside the check: a damaged
+        file may fail to decode at all)."""
         stop = threading.Event()
         with LANES.lane("stored-rows-hash") as worker:
             hashed = worker.submit(_sha256, self._for_hash, stop)
             try:
-                yield from self._checked(names, hashed)
+                yield from self._held(pieces, hashed)
             finally:
                 stop.set()
                 hashed.exception()  # waits: the lane goes back idle
 
-    def _checked(self, names: list[str], hashed: Future[str]) -> Iterator[RowBatch]:
-        held: RowBatch | None = None
+    def _held(self, pieces: Callable[[], Iterator[T]], hashed: Future[str]) -> Iterator[T]:
+        held: list[T] = []
         try:
-            groups = range(self._reader("batches").num_row_groups)
-
-            def decoded(index: int) -> RowBatch:
-                return self._decoded("batches", index, names)
-
-            # decoded on a lane, a row group ahead: one thread's heap serves every export's
-            # Arrow buffers (the request's next piece may run on any of the server's threads)
-            for batch in mapped_ahead(groups, decoded, depth=DECODE_AHEAD, name="stored-rows"):
-                if held is not None:
-                    yield held
-                held = batch
+            for piece in pieces():
+                if held:
+                    yield held.pop()
+                held.append(piece)
         except (pa.ArrowException, ValueError, KeyError, OSError) as error:
             # a damaged file can fail to decode before its hash is known; a sound one is a bug
             self._check(hashed.result())
             raise error
         self._check(hashed.result())
-        if held is not None:
-            yield held
+        yield from held
 
     def _check(self, found: str) -> None:
         if found != self._digest:
@@ -205,3 +296,14 @@ def _as_batch(table: pa.Table, spec: LoopSpec, with_features: bool) -> RowBatch:
             for r, i in zip(round_numbers.tolist(), first_rows.tolist(), strict=True)
         },
     )
+
+
+def _integers(array: pa.Array) -> np.ndarray:
+    return numbers(array, np.int64)
+
+
+def _text(array: pa.Array, dtype: np.dtype[Any]) -> np.ndarray:
+    """A dictionary-encoded text column's rows as fixed-width strings ("" for none)."""
+    codes, names = dictionary_codes(array, missing=True)
+    # code -1 (no value) takes the last entry, ""
+    return np.array([*(name or "" for name in names), ""], dtype=dtype)[codes]

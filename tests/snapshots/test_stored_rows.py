@@ -10,6 +10,7 @@ deleted while it is read is still read whole; many exports at once get the same 
 from __future__ import annotations
 
 import io
+import zipfile
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -236,3 +237,103 @@ def test_arrow_readers_agree_with_pyarrow_and_refuse_what_they_cannot_read():
         fixed_width_floats(vectors, 3)
     with pytest.raises(ValueError, match="missing values"):
         fixed_width_floats(pa.array([[1, 2], None], type=pa.list_(pa.float32(), 2)), 2)
+
+
+# --- .npz from a stored file, a column at a time ------------------------------------------
+
+
+def _npz_of_file(data: bytes, spec: LoopSpec, tmp_path: Path, metadata: dict) -> bytes:
+    """The column-at-a-time .npz of a Parquet file's bytes, stored as a version's file is."""
+    path = tmp_path / "v1-file.parquet"
+    spool = files.Spool(tmp_path, prefix="v1.")
+    spool.write(data)
+    spool.keep(path)
+    found = files.stored(path)
+    assert found is not None
+    opened = stored_rows.StoredRows(path, found[1], spec)
+    try:
+        return b"".join(opened.npz(metadata))
+    finally:
+        opened.close()
+
+
+def _refuse_spooling(*args, **kwargs):
+    raise AssertionError("an .npz from a stored file spooled its rows")
+
+
+@pytest.mark.parametrize("loop", [DISCRETE_SPEC, CONTINUOUS_SPEC], ids=["discrete", "continuous"])
+def test_an_npz_read_a_column_at_a_time_is_the_npz_of_its_rows(tmp_path, monkeypatch, loop):
+    """The archive made from the file's columns is byte for byte the one the batch writer makes
+    of the same rows (text widths, the rows' order, a round without a learner version, several
+    row groups with their own dictionaries), and numpy reads the rows back (the reference)."""
+    spec = _spec(loop)
+    rng = np.random.default_rng(11)
+    longest = max(ts.SOURCES, key=len)
+    shorter = [i for i, name in enumerate(ts.SOURCES) if len(name) < len(longest)]
+    rows = export.ParquetRows(spec)
+    batches = []
+    data = b""
+    start = 0
+    for n, rollouts in ((7, {3: "short", 4: "a-much-longer-rollout-key"}), (5, {9: "mid-key"})):
+        ids = list(rollouts)
+        batch = ts.RowBatch(
+            step_id=np.arange(start, start + n, dtype=np.int64),
+            # never the longest source name: its member is as wide as that name all the same
+            source=rng.choice(shorter, n).astype(np.int8),
+            action=(
+                rng.integers(0, len(loop["action_space"].get("actions", [0])), n)
+                if spec.is_discrete
+                else rng.normal(size=(n, spec.action_width)).astype(np.float32)
+            ),
+            label_count=rng.integers(1, 4, n),
+            agreement=rng.random(n),
+            round=np.sort(rng.integers(0, 3, n)).astype(np.int64),
+            rollout_id=rng.choice(ids, n).astype(np.int64),
+            step_index=rng.integers(0, 500, n).astype(np.int64),
+            features=rng.normal(size=(n, spec.n_features)).astype(np.float32),
+            rollout_keys=rollouts,
+            learner_versions={0: None, 1: "learner-7", 2: "learner-8b"},
+        )
+        batches.append(batch)
+        data += rows.write(batch)
+        start += n
+    data += rows.close({"manifest": {}})
+    metadata = {"manifest": {"rows": start}}
+    expected = b"".join(export.npz_chunks(iter(batches), spec, metadata, tmp_path))
+    monkeypatch.setattr(export, "_SpooledColumn", _refuse_spooling)
+    got = _npz_of_file(data, spec, tmp_path, metadata)
+    assert got == expected
+    with np.load(io.BytesIO(got)) as archive:
+        np.testing.assert_array_equal(
+            archive["features"], np.concatenate([b.features for b in batches])
+        )
+        assert archive["rollout"].tolist() == [r for b in batches for r in b.rollout().tolist()]
+        assert archive["learner_version"].tolist() == [
+            v or "" for b in batches for v in b.learner_version().tolist()
+        ]
+
+
+def test_the_npz_of_a_damaged_file_never_gets_its_end(settings, two_versions):
+    path = _file_of(settings, 2)
+    _flip_middle(path)  # the flip lands in values that still decode
+    opened = _opened(settings, 2)
+    given = []
+    with pytest.raises(StoredFileDamaged):
+        for piece in opened.npz({"manifest": {}}):
+            given.append(piece)
+    opened.close()
+    assert given  # the archive was under way...
+    with pytest.raises(zipfile.BadZipFile):  # ...and a reader finds no end to it
+        zipfile.ZipFile(io.BytesIO(b"".join(given)))
+    assert not path.exists()
+
+
+def test_a_full_npz_export_of_a_stored_file_spools_nothing(
+    client, settings, trainer, two_versions, tmp_path, monkeypatch
+):
+    first = _get(client, trainer, "v2", format="npz")
+    monkeypatch.setattr(export, "_SpooledColumn", _refuse_spooling)
+    assert _get(client, trainer, "v2", format="npz") == first
+    _file_of(settings, 2).unlink()  # from the store: rows come in batches, and are spooled
+    with pytest.raises(AssertionError, match="spooled its rows"):
+        client.get(f"{BASE}/snapshots/v2/export", params={"format": "npz"}, headers=trainer)
