@@ -9,7 +9,8 @@ response can stream any number of rows in bounded memory:
   single pass over the rows spools each column to a temporary file first (bounded memory, disk
   proportional to the rows); the members are then copied out in chunks. Text columns are spooled
   as int32 codes into a small table of distinct values, so their fixed string width is known when
-  the member is written.
+  the member is written. Rows that are already stored by column (a version's Parquet file,
+  app.snapshots.stored_rows) go into the archive (`npz_archive`) a column at a time instead.
 - JSON Lines: one object per row, its keys the columns below in their order, written by orjson
   a batch of lines at a time. Floats are written as the exact decimal value of the stored
   float32 (e.g. 0.10000000149011612: the shortest text of that value as a float64), so casting

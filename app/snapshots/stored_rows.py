@@ -4,14 +4,16 @@ The .npz and JSON Lines exports of a version, and its incremental (`since=`) exp
 its full Parquet export, which the version stored when it was made (app.snapshots.files). Read
 from that file they cost one Parquet decode instead of a pass over the store: no page queries, no
 consensus votes, no content-hash re-check, and an incremental export reads the older version
-without its features.
+without its features. A full .npz export reads the file a column at a time (`StoredRows.npz`),
+each member of the archive decoded straight into place, where rows given a batch at a time must
+be spooled to disk column by column first.
 
 The file's SHA-256 stands in for the content hash: it is computed again on a thread of its own
-while the row groups are decoded, and the last batch is held back until it matches, so a damaged
-file never completes an export. It is then deleted; the next export reads the store (and stores
-the file again when it is a full Parquet pull). Both the hash and the decoder read from handles
-opened before the first row, so a file deleted meanwhile (the files are a cache) is still read
-whole.
+while the row groups are decoded, and the last batch (or piece of the archive) is held back until
+it matches, so a damaged file never completes an export. It is then deleted; the next export
+reads the store (and stores the file again when it is a full Parquet pull). Both the hash and
+the decoder read from handles opened before the first row, so a file deleted meanwhile (the
+files are a cache) is still read whole.
 """
 
 from __future__ import annotations
