@@ -111,7 +111,7 @@ def read_state(
     session: SessionDep,
     _: ReaderDep,
     loop: LoopDep,
-    seconds: float | None = Query(None, gt=0, le=120),
+    seconds: float | None = Query(None, gt=0, le=120, allow_inf_nan=False),
 ) -> StateContext:
     """One state with its rollout's steps around it in time (the bench's context)."""
     window = seconds if seconds is not None else spec_of(loop).settings.context_seconds
