@@ -127,6 +127,21 @@ def browser():
             launched.close()
 
 
+def served(settings: Any) -> Any:
+    """The service as deployed (uvicorn in a subprocess) on the test's store."""
+    return server_process(
+        settings.resolved_database_url,
+        settings.data_dir,
+        log_path=settings.data_dir.parent / "server.log",
+    )
+
+
+def labels_by(session: Any, app: Any, name: str) -> list[Label]:
+    """The labels a user gave, oldest first."""
+    query = select(Label).where(Label.user_id == user_id(app, name)).order_by(Label.id)
+    return list(session.scalars(query).all())
+
+
 def sign_in_and_open_bench(page: Any, base: str, slug: str) -> None:
     page.goto(f"{base}/loops/{slug}/bench")
     assert "/login" in page.url  # the page sends a signed-out browser to the sign-in form
@@ -159,11 +174,7 @@ def test_label_by_keyboard_skip_and_unsure(make_loop, make_user, settings, app, 
     slug = make_loop(DISCRETE_SPEC, columns=crossing_rows(), queue=6, start=20)
     make_user("annotator", name="ann", password=PASSWORD)
     requests: list[str] = []
-    with server_process(
-        settings.resolved_database_url,
-        settings.data_dir,
-        log_path=settings.data_dir.parent / "server.log",
-    ) as server:
+    with served(settings) as server:
         base = server.url
         page = browser.new_page(viewport={"width": 1440, "height": 1000})
         page.on("request", lambda request: requests.append(request.url))
@@ -205,7 +216,7 @@ def test_label_by_keyboard_skip_and_unsure(make_loop, make_user, settings, app, 
     assert refusals == []
     ann = user_id(app, "ann")
     with app.state.session_factory() as session:
-        labels = session.scalars(select(Label).where(Label.user_id == ann).order_by(Label.id)).all()
+        labels = labels_by(session, app, "ann")
         positions = dict(session.execute(select(QueueItem.id, QueueItem.position)).all())
         skips = session.scalars(select(Skip.item_id).where(Skip.user_id == ann)).all()
         leases = session.scalars(select(Lease.item_id).where(Lease.user_id == ann)).all()
@@ -224,11 +235,7 @@ def test_label_by_keyboard_skip_and_unsure(make_loop, make_user, settings, app, 
 def test_continuous_action_typed_and_nudged(make_loop, make_user, settings, app, browser):
     slug = make_loop(CONTINUOUS_SPEC, queue=2, start=5)
     make_user("annotator", name="ann", password=PASSWORD)
-    with server_process(
-        settings.resolved_database_url,
-        settings.data_dir,
-        log_path=settings.data_dir.parent / "server.log",
-    ) as server:
+    with served(settings) as server:
         base = server.url
         page = browser.new_page(viewport={"width": 1440, "height": 900})
         sign_in_and_open_bench(page, base, slug)
@@ -305,11 +312,7 @@ def test_keys_while_the_next_state_loads_answer_no_state(
     repeat and the page said the new answer was saved."""
     slug = make_loop(DISCRETE_SPEC, queue=3)
     make_user("annotator", name="ann", password=PASSWORD)
-    with server_process(
-        settings.resolved_database_url,
-        settings.data_dir,
-        log_path=settings.data_dir.parent / "server.log",
-    ) as server:
+    with served(settings) as server:
         page, sent = flaky_bench(browser, server.url, slug)
         first = current_item(page)
         page.evaluate("window.__claimDelayMs = 1500")
@@ -326,7 +329,7 @@ def test_keys_while_the_next_state_loads_answer_no_state(
     assert "creep" not in status, status
     assert len(sent) == 1 and sent[0][0].endswith(f"/items/{first}/labels"), sent
     with app.state.session_factory() as session:
-        labels = session.scalars(select(Label).where(Label.user_id == user_id(app, "ann"))).all()
+        labels = labels_by(session, app, "ann")
     assert [(lab.item_id, lab.action) for lab in labels] == [(first, 0)]
 
 
@@ -337,11 +340,7 @@ def test_r_tries_again_after_the_next_state_could_not_be_fetched(
     work only on the empty-queue page, so the bench stayed stuck until reloaded."""
     slug = make_loop(DISCRETE_SPEC, queue=3)
     make_user("annotator", name="ann", password=PASSWORD)
-    with server_process(
-        settings.resolved_database_url,
-        settings.data_dir,
-        log_path=settings.data_dir.parent / "server.log",
-    ) as server:
+    with served(settings) as server:
         page, sent = flaky_bench(browser, server.url, slug)
         first = current_item(page)
         page.evaluate("window.__claimFailures = 1")
@@ -355,7 +354,7 @@ def test_r_tries_again_after_the_next_state_could_not_be_fetched(
         page.close()
     assert len(sent) == 1, sent
     with app.state.session_factory() as session:
-        labels = session.scalars(select(Label).where(Label.user_id == user_id(app, "ann"))).all()
+        labels = labels_by(session, app, "ann")
     assert [(lab.item_id, lab.action) for lab in labels] == [(first, 2)]
 
 
