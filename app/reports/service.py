@@ -135,8 +135,15 @@ def _counts(session: Session, rnd: Round) -> dict[str, int]:
     return {"rollouts": int(rollouts), "states": states, "learner_states": learner}
 
 
-def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundReport:
-    """Compute the report of one round from the store (no cache)."""
+def compute_round_report(
+    session: Session, *, loop: Loop, number: int, training: ts.Members | None = None
+) -> RoundReport:
+    """Compute the report of one round from the store (no cache).
+
+    `training`, when given, is the training set as it is now up to at least the round before
+    this one (`_training_now`): the loop's reports take it from one read instead of one per
+    round.
+    """
     rnd = loops_service.get_round(session, loop=loop, number=number)
     spec = spec_of(loop)
     counts = _counts(session, rnd)
@@ -170,7 +177,7 @@ def compute_round_report(session: Session, *, loop: Loop, number: int) -> RoundR
     labels, names = _labels(session, rnd, found, spec)
     voted_states = np.bincount(labels.state[labels.voted()], minlength=len(labels.consensus))
     rng = np.random.default_rng([SHIFT_SEED, number])
-    shift = _shift(session, loop=loop, rnd=rnd, rng=rng)
+    shift = _shift(session, loop=loop, rnd=rnd, rng=rng, training=training)
     return RoundReport(
         loop=loop.slug,
         round=number,
@@ -282,15 +289,31 @@ def _labels(
     return labels, {int(k): str(v) for k, v in names.items()}
 
 
-def _shift(session: Session, *, loop: Loop, rnd: Round, rng: np.random.Generator) -> Any:
+def _training_now(session: Session, *, loop: Loop, up_to_round: int) -> ts.Members:
+    """The training set as the store holds it now, rounds up to `up_to_round`. Its rows of
+    rounds up to any earlier number are that round's training set: a state's consensus counts
+    all of its labels, and labels belong to the state's round (training_set.current_cutoff)."""
+    cutoff = ts.current_cutoff(session, loop=loop, up_to_round=up_to_round)
+    return ts.members(session, loop=loop, spec=spec_of(loop), cutoff=cutoff)
+
+
+def _shift(
+    session: Session,
+    *,
+    loop: Loop,
+    rnd: Round,
+    rng: np.random.Generator,
+    training: ts.Members | None = None,
+) -> Any:
     spec = spec_of(loop)
     names = list(spec.feature_names)
     units = list(spec.feature_units)
     if rnd.number == 0:
         training_ids = np.zeros(0, np.int64)
     else:
-        cutoff = ts.current_cutoff(session, loop=loop, up_to_round=rnd.number - 1)
-        training_ids = ts.members(session, loop=loop, spec=spec, cutoff=cutoff).step_id
+        if training is None:
+            training = _training_now(session, loop=loop, up_to_round=rnd.number - 1)
+        training_ids = training.step_id[training.round <= rnd.number - 1]
     visited_ids = np.array(
         session.scalars(
             select(Step.id)
@@ -403,11 +426,17 @@ def loop_reports(
     """Reports of every round of a loop, oldest first."""
     prints = _fingerprints(session, loop=loop)
     reports = []
+    # read once for every round that is not cached: each round's report compares its states with
+    # the training set before it, and rebuilding that per round made a loop's reports quadratic
+    # in its rounds (60 rounds: thousands of page queries)
+    training: ts.Members | None = None
     for number, fingerprint in prints.items():
         key = f"{loop.id}:{number}:{fingerprint}"
         found = cache.get(key) if cache is not None else None
         if found is None:
-            found = compute_round_report(session, loop=loop, number=number)
+            if training is None:
+                training = _training_now(session, loop=loop, up_to_round=max(prints))
+            found = compute_round_report(session, loop=loop, number=number, training=training)
             if cache is not None:
                 cache.put(key, found)
         reports.append(found)

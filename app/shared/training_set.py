@@ -89,6 +89,7 @@ class Members:
     action: np.ndarray  # (n,) int or (n, n_dims) float32
     label_count: np.ndarray
     agreement: np.ndarray
+    round: np.ndarray  # (n,) round number of each step
 
     def __len__(self) -> int:
         return len(self.step_id)
@@ -178,6 +179,7 @@ def members(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) ->
             action=np.empty(shape, dtype),
             label_count=np.empty(0, np.int64),
             agreement=np.empty(0, np.float64),
+            round=np.empty(0, np.int64),
         )
     rows = concat(parts)
     return Members(
@@ -186,6 +188,7 @@ def members(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) ->
         action=rows.action,
         label_count=rows.label_count,
         agreement=rows.agreement,
+        round=rows.round,
     )
 
 

@@ -306,3 +306,35 @@ def test_shift_on_a_seeded_subsample_of_a_large_round(app, client, admin, upload
     bandwidth = np.median(pdist(np.vstack([xs, ys])))
     assert_allclose(shift.bandwidth, bandwidth, rtol=1e-9)
     assert_allclose(shift.mmd2, _direct_unbiased_mmd2(xs, ys, bandwidth), rtol=1e-7)
+
+
+def test_a_loops_reports_read_the_training_set_once_and_match_each_rounds_own(
+    app, client, admin, uploader, make_user, monkeypatch
+):
+    """The loop's reports compare each round with the training set before it, taken from one
+    read of the training set as it is now; each must equal the report of its round computed
+    alone (which reads the training set up to the round before). The shift's training count
+    grows from round 1 to round 2 by round 1's resolved relabels (the test's own record)."""
+    world = build_discrete(app, client, admin, uploader, make_user, mode="two")
+    rng = np.random.default_rng(5)
+    for number in (2, 3):
+        builders.open_round(client, admin, world.slug, f"v{number}")
+        builders.upload_round(
+            client, uploader, slug=world.slug, number=number,
+            features=rng.normal(size=(2, 10, 3)).astype(np.float32),
+            actions=np.zeros((2, 10), np.int64), action_names=list(DISCRETE_SPEC["action_space"]["actions"]),
+            prefix=f"r{number}-",
+        )  # fmt: skip
+    with app.state.session_factory() as session:
+        loop = loops_service.get_loop(session, slug=world.slug)
+        alone = [service.compute_round_report(session, loop=loop, number=n) for n in range(4)]
+        reads = []
+        members = service.ts.members
+        monkeypatch.setattr(
+            service.ts, "members", lambda *a, **k: reads.append(1) or members(*a, **k)
+        )
+        together = service.loop_reports(session, loop=loop)
+    assert len(reads) == 1
+    assert [r.model_dump() for r in together] == [r.model_dump() for r in alone]
+    n_training = [r.shift.n_training for r in together[1:]]
+    assert n_training == [60, 60 + len(world.consensus()), 60 + len(world.consensus())]
