@@ -117,6 +117,51 @@ def agreement_read(labels: LabelArrays, spec: LoopSpec) -> AgreementRead:
         cohen_kappa=cohen,
         fleiss_kappa=fleiss,
         krippendorff=alphas,
+        note=_undefined_note(
+            votes,
+            spec,
+            cohen_applies=spec.is_discrete and n_annotators == 2,
+            fleiss_applies=spec.is_discrete and bool(np.all(per_state == per_state[0])),
+            cohen=cohen,
+            fleiss=fleiss,
+            alphas=alphas,
+        ),
+    )
+
+
+def _undefined_note(
+    votes: _MultiVotes,
+    spec: LoopSpec,
+    *,
+    cohen_applies: bool,
+    fleiss_applies: bool,
+    cohen: float | None,
+    fleiss: float | None,
+    alphas: list[AlphaRead],
+) -> str | None:
+    """Why a statistic that applies came out undefined, or None when none did.
+
+    With at least one state of two votes, the kappas and alpha are undefined only when the
+    votes do not vary (chance agreement is then already perfect): say so, or a reader sees a
+    dash where the annotators in fact agreed on every state.
+    """
+    missing = []
+    if cohen_applies and cohen is None:
+        missing.append("Cohen's kappa")
+    if fleiss_applies and fleiss is None:
+        missing.append("Fleiss' kappa")
+    missing += [
+        "Krippendorff's alpha" + (f" ({a.dimension})" if a.dimension else "")
+        for a in alphas
+        if a.alpha is None
+    ]
+    if not missing:
+        return None
+    what = "action" if spec.is_discrete else "value in that dimension"
+    return (
+        f"{', '.join(missing)} undefined: all {len(votes.unit)} votes on the "
+        f"{len(votes.states)} states with two or more votes give the same {what}, so chance "
+        "agreement is already perfect and agreement beyond chance cannot be measured"
     )
 
 

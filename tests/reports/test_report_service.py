@@ -338,3 +338,45 @@ def test_a_loops_reports_read_the_training_set_once_and_match_each_rounds_own(
     assert [r.model_dump() for r in together] == [r.model_dump() for r in alone]
     n_training = [r.shift.n_training for r in together[1:]]
     assert n_training == [60, 60 + len(world.consensus()), 60 + len(world.consensus())]
+
+
+def test_agreement_on_votes_that_never_vary_says_why_it_is_undefined(
+    app, client, admin, uploader, make_user
+):
+    """Two annotators who give the same action on every state: the kappas and alpha are
+    undefined (chance agreement is already perfect), and the report says so instead of
+    leaving bare nulls that read as "not computed"."""
+    slug = builders.create_loop(client, admin, {**DISCRETE_SPEC, "slug": "all-hold"})
+    builders.open_round(client, admin, slug, "v1")
+    rng = np.random.default_rng(4)
+    keys = builders.upload_round(
+        client, uploader, slug=slug, number=1, features=rng.normal(size=(1, 6, 3)),
+        actions=np.zeros((1, 6), dtype=np.int64),
+        action_names=DISCRETE_SPEC["action_space"]["actions"], prefix="h",
+    )  # fmt: skip
+    steps = builders.step_ids(app, slug, keys, 6)[0].tolist()
+    for name in ("ann-p", "ann-q"):
+        make_user("annotator", name=name)
+    ids = builders.user_ids(app, ["ann-p", "ann-q"])
+    builders.add_selection_and_labels(
+        app, slug=slug, number=1, audit=[], ranked=steps, shown=set(),
+        labels=[builders.LabelSpec(s, ids[n], action=2) for n in ("ann-p", "ann-q") for s in steps],
+    )  # fmt: skip
+    agreement = _report(app, slug).agreement
+    matrix = np.full((2, 6), 2.0)
+    # sklearn cohen_kappa_score: undefined (nan) when both raters use one category only
+    # (docs/references.md, "Cohen's kappa")
+    with pytest.warns(UserWarning):
+        assert np.isnan(cohen_kappa_score(matrix[0], matrix[1]))
+    # krippendorff package refuses a single value in the domain
+    # (docs/references.md, "Krippendorff's alpha")
+    with pytest.raises(ValueError, match="more than one value"):
+        krippendorff.alpha(reliability_data=matrix, level_of_measurement="nominal")
+    assert (agreement.n_states, agreement.n_annotators, agreement.n_votes) == (6, 2, 12)
+    assert agreement.cohen_kappa is None and agreement.fleiss_kappa is None
+    assert agreement.krippendorff[0].alpha is None
+    assert agreement.note is not None
+    assert "Cohen's kappa, Fleiss' kappa, Krippendorff's alpha undefined" in agreement.note
+    assert "all 12 votes on the 6 states with two or more votes give the same action" in (
+        agreement.note
+    )
