@@ -184,6 +184,22 @@ def sample_read(reason: str, arrays: SampleArrays, spec: LoopSpec, minimum: int)
 # --- shift ---------------------------------------------------------------------------------
 
 
+def _smd_note(found: shift.FeatureShift) -> str | None:
+    """Why a feature's standardised mean difference is not a number, or None when it is.
+
+    A feature constant in both samples at different values has zero pooled spread, so the
+    difference is infinitely many standard deviations (JSON has no infinity): it is the most
+    shifted feature, and the note says so instead of leaving a bare dash.
+    """
+    if np.isfinite(found.smd):
+        return None
+    return (
+        "constant in both samples at different values (training "
+        f"{found.mean_x:.6g}, round {found.mean_y:.6g}): no spread to scale the difference by, "
+        "so the standardised difference is unbounded"
+    )
+
+
 def shift_read(
     training: np.ndarray,
     visited: np.ndarray,
@@ -263,6 +279,7 @@ def shift_read(
                 mean_training=s.mean_x,
                 mean_round=s.mean_y,
                 pooled_std=s.pooled_std,
+                note=_smd_note(s),
             )
             for s in shifts
         ],

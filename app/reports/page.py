@@ -313,7 +313,13 @@ def features_figure(report: RoundReport) -> Figure:
         value_label="standardised mean difference",
     )
     rows = [
-        [f.name, f.unit or DASH, number(f.mean_training), number(f.mean_round), number(f.smd)]
+        [
+            f.name,
+            f.unit or DASH,
+            number(f.mean_training),
+            number(f.mean_round),
+            number(f.smd) if f.note is None else f.note,
+        ]
         for f in shift.features
     ]
     return Figure(

@@ -50,6 +50,8 @@ class FeatureShiftRead(BaseModel):
     mean_training: float
     mean_round: float
     pooled_std: float
+    # why ``smd`` is missing: a feature constant in both samples at different values
+    note: str | None = None
 
 
 class ShiftRead(BaseModel):

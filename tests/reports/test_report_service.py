@@ -380,3 +380,42 @@ def test_agreement_on_votes_that_never_vary_says_why_it_is_undefined(
     assert "all 12 votes on the 6 states with two or more votes give the same action" in (
         agreement.note
     )
+
+
+def test_a_feature_constant_at_different_values_says_why_its_shift_is_missing(
+    app, client, admin, uploader, make_user
+):
+    """A feature constant in the training set and in the round, at another value, has no
+    spread: its standardised difference is unbounded (not JSON), so it is null with a note."""
+    rng = np.random.default_rng(6)
+    slug = builders.create_loop(client, admin, {**DISCRETE_SPEC, "slug": "flat-feature"})
+    builders.open_round(client, admin, slug, "v1")
+    demos = rng.normal(size=(3, 10, 3)).astype(np.float32)
+    demos[..., 1] = 0.5
+    visited = rng.normal(size=(4, 10, 3)).astype(np.float32)
+    visited[..., 1] = 2.0
+    for number, features, prefix in ((0, demos, "d"), (1, visited, "v")):
+        builders.upload_round(
+            client, uploader, slug=slug, number=number, features=features,
+            actions=rng.integers(0, 3, (features.shape[0], 10)),
+            action_names=DISCRETE_SPEC["action_space"]["actions"], prefix=prefix,
+        )  # fmt: skip
+    shift = _report(app, slug).shift
+    x, y = demos.reshape(-1, 3).astype(np.float64), visited.reshape(-1, 3).astype(np.float64)
+    # Cohen's d with a pooled ddof=1 standard deviation (docs/references.md,
+    # "Standardised mean difference"): zero pooled spread in feature 1, so d is unbounded
+    pooled = np.sqrt((29 * x.var(axis=0, ddof=1) + 39 * y.var(axis=0, ddof=1)) / 68)
+    assert pooled[1] == 0 and y[:, 1].mean() != x[:, 1].mean()
+    flat = shift.features[0]  # the unbounded difference ranks first
+    assert flat.name == DISCRETE_SPEC["features"][1]["name"]
+    assert flat.smd is None and flat.pooled_std == 0.0
+    assert flat.note is not None and "constant in both samples at different values" in flat.note
+    assert "training 0.5, round 2" in flat.note
+    others = {f.name: f for f in shift.features[1:]}
+    for i in (0, 2):
+        got = others[DISCRETE_SPEC["features"][i]["name"]]
+        assert got.note is None
+        assert_allclose(got.smd, (y[:, i].mean() - x[:, i].mean()) / pooled[i], rtol=1e-9)
+    # the loop page's feature table carries the note where the number would be
+    page = client.get(f"/loops/{slug}", headers=admin)
+    assert page.status_code == 200 and flat.note in page.text
