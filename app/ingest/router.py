@@ -5,12 +5,12 @@ from __future__ import annotations
 from collections.abc import AsyncIterator
 from pathlib import Path
 
-from fastapi import APIRouter, Query, UploadFile, status
+from fastapi import APIRouter, Query, Request, UploadFile, status
 from fastapi.responses import FileResponse, Response
 from starlette.concurrency import run_in_threadpool
 
 from ..deps import AnnotatorDep, ReaderDep, SessionDep, SettingsDep, UploaderDep
-from ..errors import NotFound
+from ..errors import InvalidInput, NotFound
 from ..limits import PageOffset, StepId
 from ..loops.deps import LoopDep, RoundDep
 from ..loops.spec import spec_of
@@ -36,6 +36,7 @@ async def _chunks(upload: UploadFile) -> AsyncIterator[bytes]:
     status_code=status.HTTP_201_CREATED,
 )
 async def upload_rollouts(
+    request: Request,
     file: UploadFile,
     session: SessionDep,
     settings: SettingsDep,
@@ -45,6 +46,10 @@ async def upload_rollouts(
 ) -> UploadRead:
     """Upload one rollout file (Parquet, .npz or JSON Lines) or robot log (ROS bag) into a
     round (uploader)."""
+    # the form is parsed already (FastAPI took `file` from it); a second file would be dropped
+    files = len((await request.form()).getlist("file"))
+    if files > 1:
+        raise InvalidInput(f"send one file per upload; this request has {files} parts named 'file'")
     # Store work runs in worker threads: the event loop must stay free for other requests.
     await run_in_threadpool(service.check_upload_target, session, loop=loop, rnd=rnd)
     path, sha = await spool(_chunks(file), settings.upload_dir, settings.max_upload_bytes)

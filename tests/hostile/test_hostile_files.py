@@ -558,3 +558,19 @@ def test_hostile_file_is_refused(refused, client, loops, uploader, filename, bui
 
 def test_the_corpus_is_as_large_as_promised():
     assert len(CASES) >= 60
+
+
+def test_two_files_in_one_upload_are_refused_not_half_stored(refused, client, loops, uploader):
+    """Each file alone would be stored; sent together, neither is (the second used to be
+    dropped without a word)."""
+    first = parquet_bytes(discrete_rows(n_rollouts=1, steps=5, prefix="a"))
+    second = parquet_bytes(discrete_rows(n_rollouts=1, steps=5, prefix="b"))
+    refused(
+        lambda: client.post(
+            URL,
+            files=[("file", ("a.parquet", first)), ("file", ("b.parquet", second))],
+            headers=uploader,
+        ),
+        422,
+        "one file per upload; this request has 2 parts named 'file'",
+    )
