@@ -284,6 +284,8 @@ def agreement_figure(reports: list[RoundReport]) -> Figure:
                 (f"{a.dimension}: " if a.dimension else "") + number(a.alpha)
                 for a in r.agreement.krippendorff
             ),
+            # why a statistic is a dash: no state with two votes, or votes that never vary
+            r.agreement.note or DASH,
         ]
         for r in rounds
     ]
@@ -294,7 +296,7 @@ def agreement_figure(reports: list[RoundReport]) -> Figure:
         "had the same number of votes, Krippendorff's α always (nominal for discrete actions, "
         "interval per dimension for continuous ones).",
         Markup(svg),
-        ["round", "states", "annotators", "Cohen's κ", "Fleiss' κ", "Krippendorff's α"],
+        ["round", "states", "annotators", "Cohen's κ", "Fleiss' κ", "Krippendorff's α", "note"],
         rows,
     )
 
