@@ -89,8 +89,15 @@ def json_number(value: float) -> float | None:
 # --- learner versus expert ------------------------------------------------------------------
 
 
-def rate_read(found: rates.Disagreement, minimum: int, what: str) -> RateRead:
-    """Quote a disagreement only from at least ``minimum`` compared states (see MIN_AUDIT_LABELS)."""
+def rate_read(
+    found: rates.Disagreement, minimum: int, what: str, no_learner_action: int = 0
+) -> RateRead:
+    """Quote a disagreement only from at least ``minimum`` compared states (see MIN_AUDIT_LABELS).
+
+    ``no_learner_action`` counts states with an expert answer left out because their rollout
+    recorded no learner action: the note names them, or a round labelled in full would read as
+    one that lacks labels.
+    """
     quoted = rates.audit_sufficient(found.n, minimum)
     mae = found.mean_absolute_error
     note = None
@@ -99,6 +106,11 @@ def rate_read(found: rates.Disagreement, minimum: int, what: str) -> RateRead:
             f"too few {what}: {found.n} states with an expert answer, {minimum} needed "
             "before a disagreement rate means anything"
         )
+        if no_learner_action:
+            note += (
+                f"; {no_learner_action} more states with an expert answer were left out because "
+                "their rollouts recorded no learner action to compare it with"
+            )
     return RateRead(
         count=found.count,
         n=found.n,
@@ -162,6 +174,7 @@ def sample_read(reason: str, arrays: SampleArrays, spec: LoopSpec, minimum: int)
     """
     learner, expert, previous = arrays.learner, arrays.expert.copy(), arrays.previous
     missing_learner = ~present(learner)
+    unmatched = int((missing_learner & present(arrays.expert)).sum())
     what = "audit labels" if reason == "audit" else "labels in the ranked sample"
     if spec.is_discrete:
         expert[missing_learner] = -1
@@ -175,9 +188,13 @@ def sample_read(reason: str, arrays: SampleArrays, spec: LoopSpec, minimum: int)
         reason="audit" if reason == "audit" else "ranked",
         biased=reason != "audit",
         selected=len(learner),
-        disagreement=rate_read(overall, minimum, what),
-        changed=rate_read(split.changed, minimum, what + " where the expert changes action"),
-        unchanged=rate_read(split.unchanged, minimum, what + " where the expert keeps action"),
+        disagreement=rate_read(overall, minimum, what, unmatched),
+        changed=rate_read(
+            split.changed, minimum, what + " where the expert changes action", unmatched
+        ),
+        unchanged=rate_read(
+            split.unchanged, minimum, what + " where the expert keeps action", unmatched
+        ),
     )
 
 

@@ -423,3 +423,37 @@ def test_a_feature_constant_at_different_values_says_why_its_shift_is_missing(
     # the loop page's feature table carries the note where the number would be
     page = client.get(f"/loops/{slug}", headers=admin)
     assert page.status_code == 200 and flat.note in page.text
+
+
+def test_labels_on_states_without_a_learner_action_are_named_as_the_reason_for_no_rate(
+    app, client, admin, uploader, make_user
+):
+    """Rollouts that recorded no learner action: every audit state has an expert answer but
+    nothing to compare it with. The note must say that, not "0 states with an expert answer"
+    alone, which reads as a round that still lacks labels."""
+    slug = builders.create_loop(client, admin, {**DISCRETE_SPEC, "slug": "no-learner-action"})
+    builders.open_round(client, admin, slug, "v1")
+    rng = np.random.default_rng(9)
+    keys = builders.upload_round(
+        client, uploader, slug=slug, number=1, features=rng.normal(size=(4, 10, 3)),
+        actions=np.full((4, 10), -1, dtype=np.int64),  # -1: no learner action recorded
+        action_names=DISCRETE_SPEC["action_space"]["actions"], prefix="na",
+    )  # fmt: skip
+    steps = builders.step_ids(app, slug, keys, 10).reshape(-1).tolist()
+    make_user("annotator", name="ann-n")
+    who = builders.user_ids(app, ["ann-n"])["ann-n"]
+    builders.add_selection_and_labels(
+        app, slug=slug, number=1, audit=steps[:35], ranked=steps[35:], shown=set(),
+        labels=[builders.LabelSpec(s, who, action=1) for s in steps],
+    )  # fmt: skip
+    report = _report(app, slug)
+    # the test's own record: 35 audit and 5 ranked states, each with one answer, none with a
+    # learner action, so none can be compared
+    for sample, labelled in ((report.audit, 35), (report.ranked, 5)):
+        rate = sample.disagreement
+        assert (rate.n, rate.n_excluded, rate.rate) == (0, labelled, None)
+        assert rate.note is not None and (
+            f"{labelled} more states with an expert answer were left out because their "
+            "rollouts recorded no learner action" in rate.note
+        )
+    assert report.audit.disagreement.note.startswith("too few audit labels: 0 states")
