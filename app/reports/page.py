@@ -53,6 +53,7 @@ class Figure:
     svg: Markup
     headers: list[str]
     rows: list[list[str]] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)  # why some values are missing
 
 
 def _point(rate: RateRead, x: int) -> charts.Point:
@@ -284,10 +285,18 @@ def agreement_figure(reports: list[RoundReport]) -> Figure:
                 (f"{a.dimension}: " if a.dimension else "") + number(a.alpha)
                 for a in r.agreement.krippendorff
             ),
-            # why a statistic is a dash: no state with two votes, or votes that never vary
-            r.agreement.note or DASH,
         ]
         for r in rounds
+    ]
+    # why a statistic is a dash (no state with two votes, or votes that never vary), under the
+    # table at the figure's full width: a column of its own was squeezed to a letter a line
+    by_note: dict[str, list[str]] = {}
+    for r in rounds:
+        if r.agreement.note:
+            by_note.setdefault(r.agreement.note, []).append(str(r.round))
+    notes = [
+        f"{'Round' if len(numbers) == 1 else 'Rounds'} {', '.join(numbers)}: {note}."
+        for note, numbers in by_note.items()
     ]
     return Figure(
         "chart-agreement",
@@ -296,8 +305,9 @@ def agreement_figure(reports: list[RoundReport]) -> Figure:
         "had the same number of votes, Krippendorff's α always (nominal for discrete actions, "
         "interval per dimension for continuous ones).",
         Markup(svg),
-        ["round", "states", "annotators", "Cohen's κ", "Fleiss' κ", "Krippendorff's α", "note"],
+        ["round", "states", "annotators", "Cohen's κ", "Fleiss' κ", "Krippendorff's α"],
         rows,
+        notes,
     )
 
 

@@ -381,9 +381,9 @@ def test_agreement_on_votes_that_never_vary_says_why_it_is_undefined(
     assert "all 12 votes on the 6 states with two or more votes give the same action" in (
         agreement.note
     )
-    # the loop page's agreement table says it too, beside the dashes
+    # the loop page says it too, under the agreement table with the dashes
     page = client.get(f"/loops/{slug}", headers=admin)
-    assert page.status_code == 200 and agreement.note in html.unescape(page.text)
+    assert page.status_code == 200 and f"Round 1: {agreement.note}." in html.unescape(page.text)
 
 
 def test_a_feature_constant_at_different_values_says_why_its_shift_is_missing(
