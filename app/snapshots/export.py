@@ -104,6 +104,7 @@ class _Sink(io.RawIOBase):
     def __init__(self) -> None:
         super().__init__()
         self._parts: list[bytes] = []
+        self.pending = 0  # bytes written since the last `take`
 
     def writable(self) -> bool:
         return True
@@ -111,10 +112,12 @@ class _Sink(io.RawIOBase):
     def write(self, data: Any) -> int:
         chunk = bytes(data)
         self._parts.append(chunk)
+        self.pending += len(chunk)
         return len(chunk)
 
     def take(self) -> bytes:
         parts, self._parts = self._parts, []
+        self.pending = 0
         return b"".join(parts)
 
 
@@ -505,7 +508,8 @@ def _spooled_names(codes: IO[bytes], names: np.ndarray) -> Iterator[np.ndarray]:
 
 def npz_archive(members: dict[str, NpzMember], metadata: dict[str, Any]) -> Iterator[bytes]:
     """The .npz archive of `members` (one per export column, in `COLUMNS` order) and the
-    manifest, a piece per part of a member."""
+    manifest, in pieces of at least `_COPY_BYTES` but the last: every piece is a chunk of the
+    answer, and a column decoded a row group at a time comes in parts of a few kB."""
     sink = _Sink()
     with zipfile.ZipFile(sink, mode="w", compression=zipfile.ZIP_STORED) as archive:
         for name in COLUMNS:
@@ -519,8 +523,8 @@ def npz_archive(members: dict[str, NpzMember], metadata: dict[str, Any]) -> Iter
                 for part in column.parts():
                     body = np.ascontiguousarray(part, dtype=column.dtype).reshape(-1)
                     member.write(body.view(np.uint8).data)
-                    yield sink.take()
-            yield sink.take()
+                    if sink.pending >= _COPY_BYTES:
+                        yield sink.take()
         manifest = np.array(json.dumps(metadata, sort_keys=True))
         info = zipfile.ZipInfo("manifest.npy", date_time=_ZIP_TIME)
         with archive.open(info, mode="w") as member:

@@ -327,7 +327,8 @@ def _flip_in_last_features(path: Path) -> None:
     path.write_bytes(bytes(data))
 
 
-def test_the_npz_of_a_damaged_file_never_gets_its_end(settings, two_versions):
+def test_the_npz_of_a_damaged_file_never_gets_its_end(settings, two_versions, monkeypatch):
+    monkeypatch.setattr(export, "_COPY_BYTES", 1)  # a piece per part: the small file's too
     path = _file_of(settings, 2)
     _flip_in_last_features(path)
     opened = _opened(settings, 2)
@@ -351,3 +352,20 @@ def test_a_full_npz_export_of_a_stored_file_spools_nothing(
     _file_of(settings, 2).unlink()  # from the store: rows come in batches, and are spooled
     with pytest.raises(AssertionError, match="spooled its rows"):
         client.get(f"{BASE}/snapshots/v2/export", params={"format": "npz"}, headers=trainer)
+
+
+def test_the_npz_of_a_stored_file_comes_in_pieces_of_the_copy_size(
+    settings, two_versions, monkeypatch
+):
+    """Columns decoded a row group at a time come in parts of a few bytes here; the answer's
+    pieces gather them (each one is a chunk the server sends), all but the last at least
+    `_COPY_BYTES` long."""
+    monkeypatch.setattr(export, "_COPY_BYTES", 512)
+    opened = _opened(settings, 2)
+    try:
+        pieces = list(opened.npz({"manifest": {}}))
+    finally:
+        opened.close()
+    assert len(pieces) > 2
+    assert all(len(piece) >= 512 for piece in pieces[:-1])
+    assert pq.ParquetFile(_file_of(settings, 2)).num_row_groups * 10 > len(pieces)
