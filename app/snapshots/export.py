@@ -93,6 +93,9 @@ _MEMORY_POOL = pa.system_memory_pool()
 # zip members carry a fixed time stamp so that re-exports are byte-identical
 _ZIP_TIME = (1980, 1, 1, 0, 0, 0)
 _COPY_BYTES = 4 * 1024 * 1024
+# an .npz answer's pieces gather small parts up to this size: each piece is a chunk the server
+# sends, while a larger threshold joins parts into copies that cost memory
+_PIECE_BYTES = 1024 * 1024
 # batches handed to the encoding thread, and chunks to the stored file's thread, at a time
 ENCODE_AHEAD = 1
 COPY_AHEAD = 1
@@ -425,7 +428,7 @@ class NpzMember:
 
     dtype: np.dtype[Any]
     shape: tuple[int, ...]
-    parts: Callable[[], Iterator[np.ndarray]]
+    parts: Callable[[], Iterator[np.ndarray | bytes]]  # bytes: already the member's bytes
 
 
 def npz_chunks(
@@ -473,9 +476,7 @@ def npz_chunks(
             rows += len(batch)
         members = {
             **{
-                name: NpzMember(
-                    column.dtype, column.shape(rows), partial(_spooled, column.file, column.dtype)
-                )
+                name: NpzMember(column.dtype, column.shape(rows), partial(_spooled, column.file))
                 for name, column in fixed.items()
             },
             **{
@@ -493,22 +494,22 @@ def npz_chunks(
             spooled.file.close()
 
 
-def _spooled(file: IO[bytes], dtype: np.dtype[Any]) -> Iterator[np.ndarray]:
+def _spooled(file: IO[bytes]) -> Iterator[bytes]:
     file.seek(0)
-    while chunk := file.read(_COPY_BYTES):  # whole values: the size is a multiple of 8
-        yield np.frombuffer(chunk, dtype=dtype)
+    while chunk := file.read(_COPY_BYTES):
+        yield chunk
 
 
-def _spooled_names(codes: IO[bytes], names: np.ndarray) -> Iterator[np.ndarray]:
+def _spooled_names(codes: IO[bytes], names: np.ndarray) -> Iterator[bytes]:
     rows_per_chunk = max(1, _COPY_BYTES // names.dtype.itemsize)
     codes.seek(0)
     while chunk := codes.read(4 * rows_per_chunk):
-        yield names[np.frombuffer(chunk, dtype="<i4")]
+        yield names[np.frombuffer(chunk, dtype="<i4")].tobytes()
 
 
 def npz_archive(members: dict[str, NpzMember], metadata: dict[str, Any]) -> Iterator[bytes]:
     """The .npz archive of `members` (one per export column, in `COLUMNS` order) and the
-    manifest, in pieces of at least `_COPY_BYTES` but the last: every piece is a chunk of the
+    manifest, in pieces of at least `_PIECE_BYTES` but the last: every piece is a chunk of the
     answer, and a column decoded a row group at a time comes in parts of a few kB."""
     sink = _Sink()
     with zipfile.ZipFile(sink, mode="w", compression=zipfile.ZIP_STORED) as archive:
@@ -521,9 +522,12 @@ def npz_archive(members: dict[str, NpzMember], metadata: dict[str, Any]) -> Iter
             with archive.open(info, mode="w") as member:
                 member.write(header)
                 for part in column.parts():
-                    body = np.ascontiguousarray(part, dtype=column.dtype).reshape(-1)
-                    member.write(body.view(np.uint8).data)
-                    if sink.pending >= _COPY_BYTES:
+                    if isinstance(part, bytes):  # written as it is: the sink keeps it uncopied
+                        member.write(part)
+                    else:
+                        body = np.ascontiguousarray(part, dtype=column.dtype).reshape(-1)
+                        member.write(body.view(np.uint8).data)
+                    if sink.pending >= _PIECE_BYTES:
                         yield sink.take()
         manifest = np.array(json.dumps(metadata, sort_keys=True))
         info = zipfile.ZipInfo("manifest.npy", date_time=_ZIP_TIME)

@@ -328,7 +328,7 @@ def _flip_in_last_features(path: Path) -> None:
 
 
 def test_the_npz_of_a_damaged_file_never_gets_its_end(settings, two_versions, monkeypatch):
-    monkeypatch.setattr(export, "_COPY_BYTES", 1)  # a piece per part: the small file's too
+    monkeypatch.setattr(export, "_PIECE_BYTES", 1)  # a piece per part: the small file's too
     path = _file_of(settings, 2)
     _flip_in_last_features(path)
     opened = _opened(settings, 2)
@@ -359,8 +359,8 @@ def test_the_npz_of_a_stored_file_comes_in_pieces_of_the_copy_size(
 ):
     """Columns decoded a row group at a time come in parts of a few bytes here; the answer's
     pieces gather them (each one is a chunk the server sends), all but the last at least
-    `_COPY_BYTES` long."""
-    monkeypatch.setattr(export, "_COPY_BYTES", 512)
+    `_PIECE_BYTES` long."""
+    monkeypatch.setattr(export, "_PIECE_BYTES", 512)
     opened = _opened(settings, 2)
     try:
         pieces = list(opened.npz({"manifest": {}}))
