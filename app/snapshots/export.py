@@ -421,6 +421,20 @@ def _npy_header(dtype: np.dtype[Any], shape: tuple[int, ...]) -> bytes:
     return out.getvalue()
 
 
+def npz_numbers(spec: LoopSpec) -> dict[str, tuple[str, int | None]]:
+    """The .npz members that hold numbers: each one's dtype, and its width where a row holds
+    a vector (None: one value a row). The text columns are fixed-width strings of their own."""
+    return {
+        "step_id": ("<i8", None),
+        "features": ("<f4", spec.n_features),
+        "expert_action": ("<i8", None) if spec.is_discrete else ("<f4", spec.action_width),
+        "round": ("<i8", None),
+        "step": ("<i8", None),
+        "label_count": ("<i8", None),
+        "agreement": ("<f8", None),
+    }
+
+
 @dataclass(frozen=True)
 class NpzMember:
     """One .npy member of an .npz export: its dtype and shape, and arrays whose bytes, one
@@ -441,17 +455,9 @@ def npz_chunks(
 
     A zip holds its members one after another, so the rows' columns are spooled to temporary
     files first and copied out member by member (`npz_archive`)."""
-    action_dtype = "<i8" if spec.is_discrete else "<f4"
     fixed = {
-        "step_id": _SpooledColumn("<i8", None, spool_dir),
-        "features": _SpooledColumn("<f4", spec.n_features, spool_dir),
-        "expert_action": _SpooledColumn(
-            action_dtype, None if spec.is_discrete else spec.action_width, spool_dir
-        ),
-        "round": _SpooledColumn("<i8", None, spool_dir),
-        "step": _SpooledColumn("<i8", None, spool_dir),
-        "label_count": _SpooledColumn("<i8", None, spool_dir),
-        "agreement": _SpooledColumn("<f8", None, spool_dir),
+        name: _SpooledColumn(dtype, width, spool_dir)
+        for name, (dtype, width) in npz_numbers(spec).items()
     }
     text = {name: _SpooledText(spool_dir) for name in ("source", "learner_version", "rollout")}
     rows = 0

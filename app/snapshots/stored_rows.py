@@ -45,8 +45,6 @@ TEXT_COLUMNS = ("source", "learner_version", "rollout")
 # row groups decoded ahead of the export's encoder
 DECODE_AHEAD = 1
 T = TypeVar("T")
-# an .npz member's dtype, shape and decoder of a row group's Arrow array
-_Column = tuple[str, tuple[int, ...], Callable[[pa.Array], np.ndarray]]
 
 
 class StoredRows:
@@ -138,34 +136,14 @@ class StoredRows:
         return self._verified(lambda: export.npz_archive(self._npz_members(), metadata))
 
     def _npz_members(self) -> dict[str, export.NpzMember]:
-        reader = self._reader("npz")
-        rows = reader.metadata.num_rows
-        spec = self._spec
-        action: _Column = (
-            ("<i8", (rows,), _integers)
-            if spec.is_discrete
-            else (
-                "<f4",
-                (rows, spec.action_width),
-                partial(fixed_width_floats, width=spec.action_width),
-            )
-        )
-        fixed: dict[str, _Column] = {
-            "step_id": ("<i8", (rows,), _integers),
-            "features": (
-                "<f4",
-                (rows, spec.n_features),
-                partial(fixed_width_floats, width=spec.n_features),
-            ),
-            "expert_action": action,
-            "round": ("<i8", (rows,), _integers),
-            "step": ("<i8", (rows,), _integers),
-            "label_count": ("<i8", (rows,), _integers),
-            "agreement": ("<f8", (rows,), partial(numbers, dtype=np.float64)),
-        }
+        rows = self._reader("npz").metadata.num_rows
         members = {
-            name: export.NpzMember(np.dtype(dtype), shape, partial(self._parts, name, decode))
-            for name, (dtype, shape, decode) in fixed.items()
+            name: export.NpzMember(
+                np.dtype(dtype),
+                (rows,) if width is None else (rows, width),
+                partial(self._parts, name, partial(_numbers, dtype=np.dtype(dtype), width=width)),
+            )
+            for name, (dtype, width) in export.npz_numbers(self._spec).items()
         }
         for name in TEXT_COLUMNS:
             table = export.text_table(self._text_values(name) if rows else [])
@@ -300,8 +278,9 @@ def _as_batch(table: pa.Table, spec: LoopSpec, with_features: bool) -> RowBatch:
     )
 
 
-def _integers(array: pa.Array) -> np.ndarray:
-    return numbers(array, np.int64)
+def _numbers(array: pa.Array, dtype: np.dtype[Any], width: int | None) -> np.ndarray:
+    """A numeric column's rows: one value each, or float32 vectors of `width`."""
+    return numbers(array, dtype) if width is None else fixed_width_floats(array, width)
 
 
 def _text(array: pa.Array, dtype: np.dtype[Any]) -> np.ndarray:
