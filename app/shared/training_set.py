@@ -134,18 +134,13 @@ def relabels(session: Session, *, loop: Loop, spec: LoopShape, cutoff: Cutoff) -
         zip(*rows, strict=True) if rows else ((),) * 6
     )
     step_ids = np.array(step_col, dtype=np.int64)
-    if cutoff.one_vote_each and rows:
-        votes = one_vote_each(step_ids, np.array(user_col, np.int64), np.array(span_col, bool))
-        if not votes.all():
-            kept = np.flatnonzero(votes).tolist()
-            step_ids = step_ids[votes]
-            answer_col = tuple(answer_col[i] for i in kept)
-            action_col = tuple(action_col[i] for i in kept)
-            vector_col = tuple(vector_col[i] for i in kept)
-    unique_steps, state_index = np.unique(step_ids, return_inverse=True)
     unsure = np.array(answer_col, dtype=object) == ANSWER_UNSURE
     discrete = spec.is_discrete
     actions = stored_actions(action_col, vector_col, discrete=discrete, width=width)
+    if cutoff.one_vote_each and rows:
+        votes = one_vote_each(step_ids, np.array(user_col, np.int64), np.array(span_col, bool))
+        step_ids, unsure, actions = step_ids[votes], unsure[votes], actions[votes]
+    unique_steps, state_index = np.unique(step_ids, return_inverse=True)
     actions[unsure] = -1 if discrete else np.nan  # unsure answers do not vote
     if discrete:
         found = discrete_consensus(state_index, actions, len(unique_steps), width)
